@@ -1,0 +1,392 @@
+"""Validated flow enclosures for batches of boxes.
+
+One step of size ``h`` from a set ``S = {m + A r : r in [r]}`` with box hull ``X``:
+
+1. A-priori enclosure (Picard-Lindelof): a box ``E`` with ``X + [0, h] f(E) ⊆ E``;
+   then every solution from ``X`` stays in ``E`` on ``[0, h]``.
+2. Taylor step with the mean-value form (Moore 1966; Lohner 1987)::
+
+       phi_h(x) in T(m) + DT(J) A [r] + h^q f^[q](E),   T(x) = sum_{k<q} h^k f^[k](x)
+
+   with ``J`` the hull of ``X`` and ``m``.
+3. Wrapping control (Lohner's QR method): the new set is ``m' + A' [r']`` where ``A'``
+   is the orthogonal factor of ``mid(DT A)`` (columns ordered by their spread) and
+   ``[r'] = B (Y - m') + (B DT A) [r]`` with ``B`` a rigorous enclosure of ``A'^-1``.
+
+See docs/method.md for the exact order of operations, which the checker repeats.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import interval as iv
+
+__all__ = ["FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set"]
+
+OK, STOPPED, STEP_LIMIT, NO_ENCLOSURE, NOT_FINITE = 0, 1, 2, -1, -2
+STATUS_REASONS = {
+    OK: "reached the horizon",
+    STOPPED: "stopped early by the caller",
+    STEP_LIMIT: "step limit reached before the horizon",
+    NO_ENCLOSURE: "no a-priori enclosure: the step size fell below its minimum "
+                  "(fast dynamics or blow-up)",
+    NOT_FINITE: "enclosure not finite (overflow, a division by an interval containing 0, "
+                "or a function outside its domain)",
+}
+
+
+def imatmul(alo, ahi, blo, bhi):
+    """Interval matrix product of stacks ``(N, n, k) @ (N, k, p)``.
+
+    Entry ``(i, j)`` is ``sum_l a_il b_lj`` folded left over ``l``.
+    """
+    k = alo.shape[-1]
+    lo, hi = iv.mul(alo[..., :, 0:1], ahi[..., :, 0:1], blo[..., 0:1, :], bhi[..., 0:1, :])
+    for l in range(1, k):
+        plo, phi = iv.mul(alo[..., :, l:l + 1], ahi[..., :, l:l + 1],
+                          blo[..., l:l + 1, :], bhi[..., l:l + 1, :])
+        lo, hi = iv.add(lo, hi, plo, phi)
+    return lo, hi
+
+
+def _matvec(alo, ahi, vlo, vhi):
+    lo, hi = imatmul(alo, ahi, vlo[..., None], vhi[..., None])
+    return lo[..., 0], hi[..., 0]
+
+
+def hull_of_set(m, A, rlo, rhi):
+    """Box hull of ``{m + A r : r in [rlo, rhi]}`` for stacks (outward rounded)."""
+    plo, phi = _matvec(A, A, rlo, rhi)
+    return iv.add(m, m, plo, phi)
+
+
+def interval_inverse(A):
+    """Rigorous enclosure of ``A^-1`` for a stack of float matrices close to orthogonal.
+
+    With ``C = A^T`` and ``delta = ||I - C A||_inf < 1/2``,
+    ``|A^-1 - C| <= delta / (1 - delta) ||C||_inf`` entrywise.
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (N, n, n)
+    ok : ndarray of bool, shape (N,)
+        False where ``delta`` is not below 1/2 (the enclosure is then unusable).
+    """
+    n = A.shape[-1]
+    C = np.swapaxes(A, -1, -2).copy()
+    plo, phi = imatmul(C, C, A, A)
+    eye = np.eye(n)
+    rlo, rhi = iv.sub(eye, eye, plo, phi)
+    mag = np.maximum(np.abs(rlo), np.abs(rhi))
+    delta = _sum_up(mag)                         # row sums rounded up, shape (N, n)
+    delta = delta.max(axis=-1)
+    norm_c = _sum_up(np.abs(C)).max(axis=-1)
+    ok = delta < 0.5
+    one_minus = iv.round_down(1.0 - delta)
+    eps = iv.round_up(iv.round_up(delta / one_minus) * norm_c)
+    eps = np.where(ok, eps, np.inf)[:, None, None]
+    return iv.round_down(C - eps), iv.round_up(C + eps), ok
+
+
+def _sum_up(a):
+    """Sum over the last axis rounded up (nonnegative entries)."""
+    acc = a[..., 0]
+    for j in range(1, a.shape[-1]):
+        _, acc = iv.add(acc, acc, a[..., j], a[..., j])
+    return acc
+
+
+@dataclass
+class FlowResult:
+    """Enclosures of the flow of a batch of boxes.
+
+    Step records are stored flat, grouped by box in step order; ``step_start[b]`` and
+    ``n_steps[b]`` locate box ``b``'s steps.
+
+    Attributes
+    ----------
+    status : ndarray of int, shape (N,)
+        ``>= 0`` finished (0 horizon, 1 stopped by caller, 2 step limit); ``< 0`` failed.
+    n_steps, step_start : ndarray of int, shape (N,)
+    t_lo, t_hi : ndarray, shape (N,)
+        Enclosure of the time reached (the horizon).
+    image_lo, image_hi : ndarray, shape (N, n)
+        Box containing the flow of the box at the horizon (NaN where failed).
+    set0_m, set0_r_lo, set0_r_hi : ndarray, shape (N, n)
+        The starting set ``m0 + [r0]`` (``A0 = I``), which contains the box.
+    h : ndarray, shape (S,)
+        Step sizes.
+    t0_lo, t0_hi : ndarray, shape (S,)
+        Enclosure of each step's start time.
+    x_lo, x_hi : ndarray, shape (S, n)
+        Box at the start of each step (the point-time enclosure at ``t0``).
+    e_lo, e_hi : ndarray, shape (S, n)
+        A-priori box of each step (the tube over the step).
+    m, A, r_lo, r_hi : ndarray, shapes (S, n), (S, n, n), (S, n), (S, n)
+        Set at the end of each step.
+    end_lo, end_hi : ndarray, shape (S, n)
+        Box at the end of each step.
+    """
+
+    status: np.ndarray
+    n_steps: np.ndarray
+    step_start: np.ndarray
+    t_lo: np.ndarray
+    t_hi: np.ndarray
+    image_lo: np.ndarray
+    image_hi: np.ndarray
+    set0_m: np.ndarray
+    set0_r_lo: np.ndarray
+    set0_r_hi: np.ndarray
+    h: np.ndarray
+    t0_lo: np.ndarray
+    t0_hi: np.ndarray
+    x_lo: np.ndarray
+    x_hi: np.ndarray
+    e_lo: np.ndarray
+    e_hi: np.ndarray
+    m: np.ndarray
+    A: np.ndarray
+    r_lo: np.ndarray
+    r_hi: np.ndarray
+    end_lo: np.ndarray
+    end_hi: np.ndarray
+    extras: dict = field(default_factory=dict)
+
+    @property
+    def success(self):
+        """Bool array: the box has a usable image."""
+        return self.status >= 0
+
+    def reasons(self):
+        """One plain-words reason per box."""
+        return [STATUS_REASONS[int(s)] for s in self.status]
+
+    def steps_of(self, b):
+        """Slice of the step records of box `b`."""
+        return slice(self.step_start[b], self.step_start[b] + self.n_steps[b])
+
+
+def _params_columns(params, n_rows):
+    lo = [np.full(n_rows, p[0]) for p in params]
+    hi = [np.full(n_rows, p[1]) for p in params]
+    return lo, hi
+
+
+def _eval(program, xlo, xhi, plo, phi):
+    out = program.interval_columns(list(xlo.T) + plo, list(xhi.T) + phi)
+    return np.stack([o[0] for o in out], -1), np.stack([o[1] for o in out], -1)
+
+
+def _time_box(h, flo, fhi):
+    """``[0, h] * [f]``: exact zero end, other end rounded outward."""
+    _, up = iv.mul(h, h, fhi, fhi)
+    down, _ = iv.mul(h, h, flo, flo)
+    return np.minimum(down, 0.0), np.maximum(up, 0.0)
+
+
+def _apriori(programs, xlo, xhi, h, plo, phi, iterations=4):
+    """Find E with X + [0,h] f(E) ⊆ E; returns (elo, ehi, ok)."""
+    hh = h[:, None]
+    flo, fhi = _eval(programs.field, xlo, xhi, plo, phi)
+    dlo, dhi = _time_box(hh, flo, fhi)
+    elo, ehi = iv.add(xlo, xhi, dlo, dhi)
+    ok = np.zeros(len(h), bool)
+    out_lo, out_hi = elo.copy(), ehi.copy()
+    for _ in range(iterations):
+        w = ehi - elo
+        pad = 0.1 * w + 1e-12 * np.abs(elo) + 1e-300
+        elo, ehi = iv.round_down(elo - pad), iv.round_up(ehi + pad)
+        flo, fhi = _eval(programs.field, elo, ehi, plo, phi)
+        dlo, dhi = _time_box(hh, flo, fhi)
+        nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
+        inside = np.all((nlo >= elo) & (nhi <= ehi), axis=1) & ~ok
+        out_lo[inside], out_hi[inside] = elo[inside], ehi[inside]
+        ok |= inside
+        if ok.all():
+            break
+        elo, ehi = nlo, nhi
+    return out_lo, out_hi, ok
+
+
+def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi):
+    """One mean-value Taylor step; returns the new set, its box and a usable flag."""
+    N, n = m.shape
+    q = programs.order
+    hk = [(np.ones(N), np.ones(N))] + [iv.pow_int(h, h, k) for k in range(1, q + 1)]
+    # T(m)
+    tlo, thi = m.copy(), m.copy()
+    if q > 1:
+        clo, chi = _eval(programs.coefficients, m, m, plo, phi)
+        for k in range(1, q):
+            c_lo, c_hi = clo[:, (k - 1) * n:k * n], chi[:, (k - 1) * n:k * n]
+            plo_, phi_ = iv.mul(hk[k][0][:, None], hk[k][1][:, None], c_lo, c_hi)
+            tlo, thi = iv.add(tlo, thi, plo_, phi_)
+    # remainder h^q f^[q](E)
+    flo, fhi = _eval(programs.remainder, elo, ehi, plo, phi)
+    Rlo, Rhi = iv.mul(hk[q][0][:, None], hk[q][1][:, None], flo, fhi)
+    ylo, yhi = iv.add(tlo, thi, Rlo, Rhi)
+    # DT(J) = I + sum h^k Df^[k](J)
+    eye = np.broadcast_to(np.eye(n), (N, n, n))
+    dlo, dhi = eye.copy(), eye.copy()
+    if q > 1:
+        jlo, jhi = np.minimum(xlo, m), np.maximum(xhi, m)
+        glo, ghi = _eval(programs.jacobians, jlo, jhi, plo, phi)
+        for k in range(1, q):
+            g_lo = glo[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
+            g_hi = ghi[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
+            plo_, phi_ = iv.mul(hk[k][0][:, None, None], hk[k][1][:, None, None], g_lo, g_hi)
+            dlo, dhi = iv.add(dlo, dhi, plo_, phi_)
+    Mlo, Mhi = imatmul(dlo, dhi, A, A)
+    # box of the image
+    vlo, vhi = _matvec(Mlo, Mhi, rlo, rhi)
+    blo, bhi = iv.add(ylo, yhi, vlo, vhi)
+    # new coordinates (Lohner QR)
+    new_m = 0.5 * (ylo + yhi)
+    mid = 0.5 * (Mlo + Mhi)
+    spread = np.linalg.norm(mid, axis=1) * (rhi - rlo)[:, :]
+    order = np.argsort(-spread, axis=1, kind="stable")
+    cols = np.take_along_axis(mid, order[:, None, :], axis=2)
+    bad_mid = ~np.all(np.isfinite(cols), axis=(1, 2))
+    cols[bad_mid] = np.eye(n)
+    Q, _ = np.linalg.qr(cols)
+    Blo, Bhi, inv_ok = interval_inverse(Q)
+    fallback = ~inv_ok
+    if fallback.any():
+        Q[fallback] = np.eye(n)
+        Blo[fallback] = np.eye(n)
+        Bhi[fallback] = np.eye(n)
+    dylo, dyhi = iv.sub(ylo, yhi, new_m, new_m)
+    alo_, ahi_ = _matvec(Blo, Bhi, dylo, dyhi)
+    BMlo, BMhi = imatmul(Blo, Bhi, Mlo, Mhi)
+    clo_, chi_ = _matvec(BMlo, BMhi, rlo, rhi)
+    nrlo, nrhi = iv.add(alo_, ahi_, clo_, chi_)
+    hlo, hhi = hull_of_set(new_m, Q, nrlo, nrhi)
+    endlo, endhi = np.maximum(hlo, blo), np.minimum(hhi, bhi)
+    usable = np.all(np.isfinite(endlo) & np.isfinite(endhi) & np.isfinite(nrlo)
+                    & np.isfinite(nrhi) & np.isfinite(new_m), axis=1)
+    return new_m, Q, nrlo, nrhi, endlo, endhi, usable
+
+
+def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
+               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None):
+    """Enclose the flow of every box of a batch up to a horizon per box.
+
+    Parameters
+    ----------
+    programs : certify.taylor.FlowPrograms
+    lo, hi : ndarray, shape (N, n)
+        The boxes.
+    params : sequence of (float, float)
+        Parameter intervals in model order (exactly representable endpoints that enclose
+        the model's parameters).
+    min_horizon, max_horizon : float or ndarray, shape (N,)
+        A box stops at the first step end ``t >= min_horizon`` where `should_stop` says so,
+        and at the latest at the first step end ``t >= max_horizon``.
+    step : float
+        First step size tried (steps grow by 1.25 after a clean step, halve on failure).
+    max_step : float
+        Largest step size.
+    min_step : float
+        Below this step size a box fails with ``NO_ENCLOSURE``.
+    max_steps : int
+    should_stop : callable, optional
+        ``should_stop(ids, end_lo, end_hi, t_hi) -> bool array`` for boxes past
+        `min_horizon`; ``ids`` are batch indices.
+
+    Returns
+    -------
+    FlowResult
+    """
+    lo = np.asarray(lo, float)
+    hi = np.asarray(hi, float)
+    N, n = lo.shape
+    min_h = np.broadcast_to(np.asarray(min_horizon, float), (N,))
+    max_h = np.broadcast_to(np.asarray(max_horizon, float), (N,))
+    status = np.full(N, OK)
+    n_steps = np.zeros(N, int)
+    t_lo = np.zeros(N)
+    t_hi = np.zeros(N)
+    image_lo = np.full((N, n), np.nan)
+    image_hi = np.full((N, n), np.nan)
+
+    m0 = 0.5 * (lo + hi)
+    r0lo, _ = iv.sub(lo, lo, m0, m0)
+    _, r0hi = iv.sub(hi, hi, m0, m0)
+    ids = np.arange(N)
+    m, A = m0.copy(), np.broadcast_to(np.eye(n), (N, n, n)).copy()
+    rlo, rhi = r0lo.copy(), r0hi.copy()
+    xlo, xhi = lo.copy(), hi.copy()
+    h = np.full(N, float(step))
+    records = []
+    for _ in range(max_steps):
+        if len(ids) == 0:
+            break
+        plo, phi = _params_columns(params, len(ids))
+        elo, ehi, ok = _apriori(programs, xlo, xhi, h, plo, phi)
+        clean = ok.copy()
+        while not ok.all():
+            retry = ~ok & (h >= 2 * min_step)
+            if not retry.any():
+                break
+            h = np.where(retry, h / 2, h)
+            sub_p = [p[retry] for p in plo], [p[retry] for p in phi]
+            a_lo, a_hi, a_ok = _apriori(programs, xlo[retry], xhi[retry], h[retry], *sub_p)
+            elo[retry], ehi[retry] = a_lo, a_hi
+            ok[retry] = a_ok
+        failed = ~ok
+        new = _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi)
+        new_m, new_A, nrlo, nrhi, endlo, endhi, usable = new
+        bad = failed | ~usable
+        status[ids[failed]] = NO_ENCLOSURE
+        status[ids[~failed & ~usable]] = NOT_FINITE
+        good = ~bad
+        t0lo, t0hi = t_lo[ids], t_hi[ids]
+        t1lo, t1hi = iv.add(t0lo, t0hi, h, h)
+        records.append((ids[good], h[good], t0lo[good], t0hi[good], xlo[good], xhi[good],
+                        elo[good], ehi[good], new_m[good], new_A[good], nrlo[good],
+                        nrhi[good], endlo[good], endhi[good]))
+        t_lo[ids[good]], t_hi[ids[good]] = t1lo[good], t1hi[good]
+        n_steps[ids[good]] += 1
+        done = bad.copy()
+        past_min = good & (t1lo >= min_h[ids])
+        finish = good & (t1lo >= max_h[ids])
+        if should_stop is not None and past_min.any():
+            sel = np.flatnonzero(past_min & ~finish)
+            if len(sel):
+                stop = np.asarray(should_stop(ids[sel], endlo[sel], endhi[sel], t1hi[sel]), bool)
+                status[ids[sel[stop]]] = STOPPED
+                finish[sel[stop]] = True
+        image_lo[ids[finish]], image_hi[ids[finish]] = endlo[finish], endhi[finish]
+        done |= finish
+        keep = ~done
+        grow = np.where(clean, 1.25, 1.0)
+        ids, h = ids[keep], (h * grow)[keep]
+        m, A, rlo, rhi = new_m[keep], new_A[keep], nrlo[keep], nrhi[keep]
+        xlo, xhi = endlo[keep], endhi[keep]
+        # never step past the largest horizon by much
+        h = np.minimum(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
+    status[ids] = STEP_LIMIT
+    return _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi,
+                     m0, r0lo, r0hi)
+
+
+def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0, r0lo, r0hi):
+    if records:
+        cols = [np.concatenate(c) for c in zip(*records)]
+    else:
+        cols = [np.zeros((0,) + s) for s in [(), (), (), (), (n,), (n,), (n,), (n,), (n,),
+                                              (n, n), (n,), (n,), (n,), (n,)]]
+        cols[0] = cols[0].astype(int)
+    order = np.argsort(cols[0], kind="stable")
+    cols = [c[order] for c in cols]
+    step_start = np.concatenate([[0], np.cumsum(n_steps)[:-1]]).astype(int)
+    (_, h, t0lo, t0hi, xlo, xhi, elo, ehi, m, A, rlo, rhi, endlo, endhi) = cols
+    return FlowResult(status=status, n_steps=n_steps, step_start=step_start, t_lo=t_lo,
+                      t_hi=t_hi, image_lo=image_lo, image_hi=image_hi, set0_m=m0,
+                      set0_r_lo=r0lo, set0_r_hi=r0hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
+                      x_lo=xlo, x_hi=xhi, e_lo=elo, e_hi=ehi, m=m, A=A, r_lo=rlo,
+                      r_hi=rhi, end_lo=endlo, end_hi=endhi)

@@ -1,0 +1,423 @@
+"""Outward-rounded interval kernels on endpoint arrays.
+
+Every kernel takes endpoint arrays (``lo``, ``hi``; float64, broadcasting like numpy)
+and returns a ``(lo, hi)`` pair that encloses the exact range of the operation.
+
+Rounding rules
+--------------
+* ``+`` and ``-``: IEEE 754 rounds to nearest; the error-free TwoSum transformation
+  tells on which side the exact sum lies, so a bound moves one ulp only in the
+  direction needed and exact sums stay exact.
+* ``*`` and ``/``: each endpoint product or quotient moves one ulp outward unless a
+  factor (or the numerator) is exactly zero, which makes it exact.
+* ``sqrt``: correctly rounded by IEEE 754; bounds move one ulp outward (0 stays 0).
+* ``exp, log, sin, cos, tan, atan, tanh, sinh, cosh`` and real powers: library
+  functions are not correctly rounded; bounds move outward by ``|v| * 2**-49``
+  (at least 8 ulps) plus ``2**-1000`` and then one more ulp. This covers the documented
+  accuracy of glibc and numpy's vectorised routines (a few ulps) with a wide margin.
+
+Unusable results
+----------------
+NaN marks an unusable bound: division by an interval containing 0, log or sqrt of
+an interval reaching below the domain, tan over a pole, ``0 * inf``. Kernels keep NaN
+flowing; callers treat any row with a NaN bound as unusable. Infinite bounds are valid
+extended bounds (``[1, inf]`` encloses everything at least 1).
+"""
+
+from __future__ import annotations
+
+from fractions import Fraction
+
+import mpmath
+import numpy as np
+
+__all__ = [
+    "add", "sub", "neg", "mul", "div", "scale", "shift", "sqr", "pow_int", "pow_real",
+    "sqrt", "exp", "log", "sin", "cos", "tan", "atan", "tanh", "sinh", "cosh",
+    "iabs", "imin", "imax", "hull", "intersect", "enclose_fraction", "enclose_constant",
+    "certainly_lt", "certainly_le", "possibly_lt", "possibly_le", "is_usable",
+    "round_down", "round_up",
+]
+
+_INF = np.inf
+_REL = 2.0 ** -49
+_ABS = 2.0 ** -1000
+_PI_LO = float(mpmath.mpf(3.141592653589793))  # nearest double, below pi
+_PI_HI = float(np.nextafter(_PI_LO, _INF))
+_HALF_PI_HI = _PI_HI / 2
+_TWO_PI_LO = 2 * _PI_LO
+_TWO_PI_HI = 2 * _PI_HI
+
+
+def round_down(x):
+    """Return the next float below each entry of `x` (NaN stays NaN)."""
+    return np.nextafter(x, -_INF)
+
+
+def round_up(x):
+    """Return the next float above each entry of `x` (NaN stays NaN)."""
+    return np.nextafter(x, _INF)
+
+
+def _sum_bounds(a, b):
+    """Sum of float arrays rounded down and up; exact sums stay exact (TwoSum)."""
+    s = a + b
+    bb = s - a
+    err = (a - (s - bb)) + (b - bb)
+    # err is NaN when s overflowed or is infinite: widen both ways, which is sound.
+    lo = np.where(err >= 0, s, round_down(s))
+    hi = np.where(err <= 0, s, round_up(s))
+    return lo, hi
+
+
+def add(alo, ahi, blo, bhi):
+    """Interval sum ``[a] + [b]``."""
+    lo, _ = _sum_bounds(alo, blo)
+    _, hi = _sum_bounds(ahi, bhi)
+    return lo, hi
+
+
+def sub(alo, ahi, blo, bhi):
+    """Interval difference ``[a] - [b]``."""
+    lo, _ = _sum_bounds(alo, -bhi)
+    _, hi = _sum_bounds(ahi, -blo)
+    return lo, hi
+
+
+def neg(alo, ahi):
+    """Interval negation (exact)."""
+    return -ahi, -alo
+
+
+def shift(alo, ahi, c):
+    """Sum of an interval and an exactly representable float `c`."""
+    lo, _ = _sum_bounds(alo, c)
+    _, hi = _sum_bounds(ahi, c)
+    return lo, hi
+
+
+def _products(x, y):
+    """Endpoint products rounded down and up (exact when a factor is zero)."""
+    p = x * y
+    exact = (x == 0) | (y == 0)
+    return np.where(exact, p, round_down(p)), np.where(exact, p, round_up(p))
+
+
+def mul(alo, ahi, blo, bhi):
+    """Interval product ``[a] * [b]`` (``0 * inf`` gives NaN, hence unusable)."""
+    d1, u1 = _products(alo, blo)
+    d2, u2 = _products(alo, bhi)
+    d3, u3 = _products(ahi, blo)
+    d4, u4 = _products(ahi, bhi)
+    lo = np.minimum(np.minimum(d1, d2), np.minimum(d3, d4))
+    hi = np.maximum(np.maximum(u1, u2), np.maximum(u3, u4))
+    return lo, hi
+
+
+def scale(alo, ahi, c):
+    """Product of an interval and an exactly representable float `c`."""
+    dlo, ulo = _products(alo, c)
+    dhi, uhi = _products(ahi, c)
+    if np.ndim(c) == 0:
+        return (dlo, uhi) if c >= 0 else (dhi, ulo)
+    pos = c >= 0
+    return np.where(pos, dlo, dhi), np.where(pos, uhi, ulo)
+
+
+def sqr(alo, ahi):
+    """Interval square (tighter than ``mul(a, a)``: never negative)."""
+    mag_lo = np.where((alo <= 0) & (ahi >= 0), 0.0, np.minimum(np.abs(alo), np.abs(ahi)))
+    mag_hi = np.maximum(np.abs(alo), np.abs(ahi))
+    lo, _ = _products(mag_lo, mag_lo)
+    _, hi = _products(mag_hi, mag_hi)
+    nan = np.isnan(alo) | np.isnan(ahi)
+    return np.where(nan, np.nan, np.maximum(lo, 0.0)), np.where(nan, np.nan, hi)
+
+
+def div(alo, ahi, blo, bhi):
+    """Interval quotient; NaN where the divisor contains 0."""
+    bad = (blo <= 0) & (bhi >= 0)
+
+    def q(x, y):
+        v = x / y
+        exact = x == 0
+        return np.where(exact, v, round_down(v)), np.where(exact, v, round_up(v))
+
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d1, u1 = q(alo, blo)
+        d2, u2 = q(alo, bhi)
+        d3, u3 = q(ahi, blo)
+        d4, u4 = q(ahi, bhi)
+    lo = np.minimum(np.minimum(d1, d2), np.minimum(d3, d4))
+    hi = np.maximum(np.maximum(u1, u2), np.maximum(u3, u4))
+    return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
+
+
+def _pow_mag(x, n, up):
+    """``x**n`` for ``x >= 0`` and integer ``n >= 1`` rounded down (or up) by squaring."""
+    result = None
+    base = x
+    while n:
+        if n & 1:
+            if result is None:
+                result = base
+            else:
+                lo, hi = _products(result, base)
+                result = hi if up else lo
+        n >>= 1
+        if n:
+            lo, hi = _products(base, base)
+            base = hi if up else lo
+    return np.maximum(result, 0.0)
+
+
+def pow_int(alo, ahi, n):
+    """Interval power with an integer exponent `n` (negative: NaN where ``0 in a``)."""
+    n = int(n)
+    if n == 0:
+        one = np.ones(np.broadcast(alo, ahi).shape)
+        nan = np.isnan(alo) | np.isnan(ahi)
+        return np.where(nan, np.nan, one), np.where(nan, np.nan, one)
+    if n < 0:
+        plo, phi = pow_int(alo, ahi, -n)
+        return div(np.ones_like(plo), np.ones_like(phi), plo, phi)
+    if n == 1:
+        return alo, ahi
+    if n == 2:
+        return sqr(alo, ahi)
+    if n % 2 == 0:
+        mag_lo = np.where((alo <= 0) & (ahi >= 0), 0.0,
+                          np.minimum(np.abs(alo), np.abs(ahi)))
+        mag_hi = np.maximum(np.abs(alo), np.abs(ahi))
+        lo, hi = _pow_mag(mag_lo, n, False), _pow_mag(mag_hi, n, True)
+        nan = np.isnan(alo) | np.isnan(ahi)
+        return np.where(nan, np.nan, lo), np.where(nan, np.nan, hi)
+    # odd: monotone increasing, sign kept
+    lo = np.where(alo >= 0, _pow_mag(np.abs(alo), n, False), -_pow_mag(np.abs(alo), n, True))
+    hi = np.where(ahi >= 0, _pow_mag(np.abs(ahi), n, True), -_pow_mag(np.abs(ahi), n, False))
+    return lo, hi
+
+
+def _widen(vlo, vhi):
+    """Move library-function results outward (see the module notes)."""
+    lo = round_down(vlo - (np.abs(vlo) * _REL + _ABS))
+    hi = round_up(vhi + (np.abs(vhi) * _REL + _ABS))
+    return lo, hi
+
+
+def sqrt(alo, ahi):
+    """Interval square root; NaN where the interval reaches below 0."""
+    bad = alo < 0
+    with np.errstate(invalid="ignore"):
+        vlo = np.sqrt(np.where(bad, 0.0, alo))
+        vhi = np.sqrt(np.where(ahi < 0, 0.0, ahi))
+    lo = np.where(vlo == 0, 0.0, round_down(vlo))
+    hi = np.where((vhi == 0) & (ahi == 0), 0.0, round_up(vhi))
+    return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
+
+
+def exp(alo, ahi):
+    """Interval exponential (lower bound never below 0)."""
+    with np.errstate(over="ignore"):
+        lo, hi = _widen(np.exp(alo), np.exp(ahi))
+    return np.maximum(lo, 0.0), hi
+
+
+def log(alo, ahi):
+    """Interval natural logarithm; NaN where the interval reaches below 0."""
+    bad = alo < 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        lo, hi = _widen(np.log(np.where(bad, 1.0, alo)), np.log(np.where(ahi < 0, 1.0, ahi)))
+    return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
+
+
+def pow_real(alo, ahi, a):
+    """``[x] ** a`` for a real, non-integer exponent `a` (float or Fraction).
+
+    Defined for ``x >= 0`` (``0 ** a = 0`` for ``a > 0``); NaN where the interval
+    reaches below 0, or reaches 0 when ``a < 0``.
+    """
+    a_lo, a_hi = enclose_fraction(Fraction(a))
+    llo, lhi = log(alo, ahi)
+    plo, phi = mul(llo, lhi, a_lo, a_hi)
+    # log(0) = -inf times a > 0 gives -inf, and exp(-inf) = 0: correct.
+    lo, hi = exp(plo, phi)
+    bad = (alo < 0) | ((a < 0) & (alo <= 0))
+    return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
+
+
+def _monotone(func, alo, ahi, lower=-_INF, upper=_INF):
+    with np.errstate(over="ignore", invalid="ignore"):
+        lo, hi = _widen(func(alo), func(ahi))
+    return np.clip(lo, lower, upper), np.clip(hi, lower, upper)
+
+
+def atan(alo, ahi):
+    """Interval arctangent."""
+    return _monotone(np.arctan, alo, ahi, -_HALF_PI_HI, _HALF_PI_HI)
+
+
+def tanh(alo, ahi):
+    """Interval hyperbolic tangent."""
+    return _monotone(np.tanh, alo, ahi, -1.0, 1.0)
+
+
+def sinh(alo, ahi):
+    """Interval hyperbolic sine."""
+    return _monotone(np.sinh, alo, ahi)
+
+
+def cosh(alo, ahi):
+    """Interval hyperbolic cosine (minimum 1 at 0)."""
+    with np.errstate(over="ignore"):
+        clo, chi = _widen(np.cosh(alo), np.cosh(ahi))
+    lo = np.where((alo <= 0) & (ahi >= 0), 1.0, np.minimum(clo, chi))
+    hi = np.maximum(clo, chi)
+    return np.maximum(lo, 1.0), hi
+
+
+def _contains_multiple(alo, ahi, offset_lo, offset_hi):
+    """Whether ``[a]`` may contain ``offset + 2 k pi`` for some integer k (conservative)."""
+    # k ranges over [(a_lo - offset) / 2 pi, (a_hi - offset) / 2 pi]; the float
+    # quotients are off by a few ulps at most, far inside the relative slack used.
+    with np.errstate(invalid="ignore"):
+        klo = (alo - offset_hi) / _TWO_PI_LO
+        khi = (ahi - offset_lo) / _TWO_PI_LO
+        slack = 1e-9 * (np.abs(klo) + np.abs(khi)) + 1e-9
+    return np.floor(khi + slack) >= np.ceil(klo - slack)
+
+
+def cos(alo, ahi):
+    """Interval cosine (extrema inside the interval taken into account)."""
+    with np.errstate(invalid="ignore"):
+        clo, chi = _widen(np.cos(alo), np.cos(ahi))
+    lo = np.minimum(clo, chi)
+    hi = np.maximum(clo, chi)
+    wide = ~((ahi - alo) < _TWO_PI_LO)
+    has_max = wide | _contains_multiple(alo, ahi, 0.0, 0.0)
+    has_min = wide | _contains_multiple(alo, ahi, _PI_LO, _PI_HI)
+    hi = np.where(has_max, 1.0, np.minimum(hi, 1.0))
+    lo = np.where(has_min, -1.0, np.maximum(lo, -1.0))
+    nan = np.isnan(alo) | np.isnan(ahi)
+    return np.where(nan, np.nan, lo), np.where(nan, np.nan, hi)
+
+
+def sin(alo, ahi):
+    """Interval sine (extrema inside the interval taken into account)."""
+    with np.errstate(invalid="ignore"):
+        slo, shi = _widen(np.sin(alo), np.sin(ahi))
+    lo = np.minimum(slo, shi)
+    hi = np.maximum(slo, shi)
+    wide = ~((ahi - alo) < _TWO_PI_LO)
+    has_max = wide | _contains_multiple(alo, ahi, _PI_LO / 2, _PI_HI / 2)
+    has_min = wide | _contains_multiple(alo, ahi, -_PI_HI / 2, -_PI_LO / 2)
+    hi = np.where(has_max, 1.0, np.minimum(hi, 1.0))
+    lo = np.where(has_min, -1.0, np.maximum(lo, -1.0))
+    nan = np.isnan(alo) | np.isnan(ahi)
+    return np.where(nan, np.nan, lo), np.where(nan, np.nan, hi)
+
+
+def tan(alo, ahi):
+    """Interval tangent; NaN where the interval may contain a pole."""
+    pole = _contains_multiple(alo, ahi, _PI_LO / 2, _PI_HI / 2) | _contains_multiple(
+        alo, ahi, -_PI_HI / 2, -_PI_LO / 2) | ~((ahi - alo) < _PI_LO)
+    lo, hi = _monotone(np.tan, alo, ahi)
+    return np.where(pole, np.nan, lo), np.where(pole, np.nan, hi)
+
+
+def iabs(alo, ahi):
+    """Interval absolute value (exact)."""
+    lo = np.where(alo >= 0, alo, np.where(ahi <= 0, -ahi, 0.0))
+    hi = np.maximum(np.abs(alo), np.abs(ahi))
+    nan = np.isnan(alo) | np.isnan(ahi)
+    return np.where(nan, np.nan, lo), hi
+
+
+def imin(alo, ahi, blo, bhi):
+    """Interval minimum (exact)."""
+    return np.minimum(alo, blo), np.minimum(ahi, bhi)
+
+
+def imax(alo, ahi, blo, bhi):
+    """Interval maximum (exact)."""
+    return np.maximum(alo, blo), np.maximum(ahi, bhi)
+
+
+def hull(alo, ahi, blo, bhi):
+    """Smallest interval containing both (exact)."""
+    return np.minimum(alo, blo), np.maximum(ahi, bhi)
+
+
+def intersect(alo, ahi, blo, bhi):
+    """Intersection (may be empty: ``lo > hi``)."""
+    return np.maximum(alo, blo), np.minimum(ahi, bhi)
+
+
+def enclose_fraction(q):
+    """Tightest float interval ``[lo, hi]`` containing the rational `q`.
+
+    Parameters
+    ----------
+    q : Fraction or int
+
+    Returns
+    -------
+    lo, hi : float
+        Equal when `q` is exactly representable.
+    """
+    q = Fraction(q)
+    v = float(q)
+    exact = Fraction(v)
+    if exact == q:
+        return v, v
+    if exact < q:
+        return v, float(np.nextafter(v, _INF))
+    return float(np.nextafter(v, -_INF)), v
+
+
+def enclose_constant(value):
+    """Tightest float interval containing a real constant.
+
+    Parameters
+    ----------
+    value : Fraction, int, or an mpmath-convertible real (``sympy.pi``, ``sympy.E``, ...)
+
+    Returns
+    -------
+    lo, hi : float
+    """
+    if isinstance(value, (int, Fraction)):
+        return enclose_fraction(value)
+    with mpmath.workprec(200):
+        x = mpmath.mpf(value)
+        v = float(x)
+        if mpmath.mpf(v) == x:
+            return v, v
+        if mpmath.mpf(v) < x:
+            return v, float(np.nextafter(v, _INF))
+        return float(np.nextafter(v, -_INF)), v
+
+
+def certainly_lt(alo, ahi, blo, bhi):
+    """True where every point of ``[a]`` is below every point of ``[b]``."""
+    return ahi < blo
+
+
+def certainly_le(alo, ahi, blo, bhi):
+    """True where every point of ``[a]`` is at most every point of ``[b]``."""
+    return ahi <= blo
+
+
+def possibly_lt(alo, ahi, blo, bhi):
+    """True unless ``[a] < [b]`` is certainly false (NaN counts as possible)."""
+    return ~(alo >= bhi)
+
+
+def possibly_le(alo, ahi, blo, bhi):
+    """True unless ``[a] <= [b]`` is certainly false (NaN counts as possible)."""
+    return ~(alo > bhi)
+
+
+def is_usable(lo, hi):
+    """True where both bounds are finite numbers."""
+    return np.isfinite(lo) & np.isfinite(hi)

@@ -1,0 +1,120 @@
+"""Symbolic Taylor coefficients of the flow and Lie derivatives of the limits.
+
+For ``x' = f(x)`` the Taylor coefficients of a solution are ``f^[0] = x`` and
+``f^[k+1] = (D f^[k] . f) / (k + 1)``, so ``x(t + h) = sum_k h^k f^[k](x(t))``.
+They are derived once per model with sympy and compiled into interval programs.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import lru_cache
+
+import sympy
+
+from .program import Program, compile_program
+
+__all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs"]
+
+
+def taylor_coefficients(equations, states, order):
+    """Return ``[f^[0], ..., f^[order]]`` as sympy column matrices.
+
+    Parameters
+    ----------
+    equations : sequence of sympy.Expr
+        Right-hand sides in state order.
+    states : sequence of sympy.Symbol
+    order : int
+        Highest coefficient wanted (>= 1).
+
+    Returns
+    -------
+    list of sympy.Matrix, each shape (n, 1)
+    """
+    x = sympy.Matrix(states)
+    f = sympy.Matrix(equations)
+    coeffs = [x, f]
+    for k in range(1, order):
+        coeffs.append((coeffs[-1].jacobian(x) * f) / (k + 1))
+    return coeffs[: order + 1]
+
+
+@dataclass(frozen=True)
+class FlowPrograms:
+    """Compiled programs for one model and one Taylor order.
+
+    Inputs of every program are the states followed by the parameters.
+
+    Attributes
+    ----------
+    order : int
+    n : int
+        Number of states.
+    field : Program
+        ``f`` (n outputs).
+    coefficients : Program or None
+        ``f^[1], ..., f^[order-1]`` stacked (``n * (order - 1)`` outputs); None for order 1.
+    jacobians : Program or None
+        Row-major Jacobians of ``f^[1], ..., f^[order-1]`` (``n * n * (order - 1)`` outputs).
+    remainder : Program
+        ``f^[order]`` (n outputs).
+    limits : Program
+        ``g_j`` (one output per constraint; satisfied where ``g_j >= 0``).
+    limit_rates : Program
+        ``grad g_j . f`` (one output per constraint).
+    """
+
+    order: int
+    n: int
+    field: Program
+    coefficients: Program | None
+    jacobians: Program | None
+    remainder: Program
+    limits: Program
+    limit_rates: Program
+
+
+@lru_cache(maxsize=32)
+def _build(equations, states, parameters, limits, order):
+    inputs = tuple(states) + tuple(parameters)
+    x = sympy.Matrix(states)
+    coeffs = taylor_coefficients(equations, states, order)
+    middle = coeffs[1:order]
+    coefficients = jacobians = None
+    if middle:
+        coefficients = compile_program([e for c in middle for e in c], inputs)
+        jacobians = compile_program([e for c in middle for e in c.jacobian(x)], inputs)
+    rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
+             for g in limits]
+    return FlowPrograms(
+        order=order,
+        n=len(states),
+        field=compile_program(list(equations), inputs),
+        coefficients=coefficients,
+        jacobians=jacobians,
+        remainder=compile_program(list(coeffs[order]), inputs),
+        limits=compile_program(list(limits), inputs),
+        limit_rates=compile_program(rates, inputs),
+    )
+
+
+def flow_programs(model, order):
+    """Compile (once, cached) the programs a validated step of `model` needs.
+
+    Parameters
+    ----------
+    model : certify.model.Model
+    order : int
+        Taylor order, 1..8. Models with ``abs``, ``min`` or ``max`` use order 1,
+        which needs no derivative of the right-hand side.
+
+    Returns
+    -------
+    FlowPrograms
+    """
+    if model.uses_kinks:
+        order = 1
+    return _build(tuple(model.equations), tuple(model.state_symbols),
+                  tuple(model.parameter_symbols),
+                  tuple(c.g for c in model.constraints), int(order))

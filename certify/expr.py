@@ -234,7 +234,7 @@ class _Source:
                 reason = "a number has too many digits"
             raise self.error(at, f"syntax error: {reason}") from None
         except (RecursionError, MemoryError):
-            raise ModelError(f"{self.where}: the expression is nested too deeply to parse") from None
+            raise ModelError(f"{self.where}: the expression is too long or nested too deeply to parse") from None
         except ValueError as exc:
             raise ModelError(f"{self.where}: cannot parse the expression: {exc}") from None
 
@@ -283,7 +283,10 @@ class _Builder:
             if isinstance(node, ast.Attribute):
                 message = f"attribute access ('.{node.attr}') is not allowed"
             raise self.fail(node, message)
-        value = method(node, depth)
+        return self._defined(node, method(node, depth))
+
+    def _defined(self, node, value):
+        """``value``, unless it is undefined (zoo, nan, an infinity) at its top."""
         if value in _UNDEFINED or any(arg in _UNDEFINED for arg in value.args):
             raise self.fail(node, "this part is undefined (a division by zero, log(0) or similar)")
         return value
@@ -380,6 +383,7 @@ class _Builder:
 
     def _real(self, node, value):
         """``value``, unless it is a constant that is not real (powers and functions can make one)."""
+        self._defined(node, value)
         if value.has(sympy.I) or (value.is_number and value.is_extended_real is False):
             raise self.fail(node, "this part is not a real number (e.g. sqrt or log of a negative constant)")
         return value

@@ -298,11 +298,11 @@ def parse_model(text, path=None):
     ... floor = "x >= 0.5"
     ... ''')
     >>> model.equations, model.constraints[0].g
-    ((-x/2,), x - 1/2)
-    >>> parse_model('[model]\\nname = "decay"\\n[states]\\nx = { range = [4, 4] }')
+    ((-k*x,), x - 1/2)
+    >>> parse_model('[model]\\nname = "decay"\\n[states]\\nx = { range = [1, 4] }')
     Traceback (most recent call last):
     ...
-    certify.errors.ModelError: <model text>: [states] x: the range [4, 4] is empty (lo must be below hi)
+    certify.errors.ModelError: <model text>: missing section [equations]
     """
     label = path if path is not None else "<model text>"
     if len(text) > MAX_FILE_BYTES:

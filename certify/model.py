@@ -85,8 +85,17 @@ SETTINGS = {
 }
 
 
+class _Named:
+    """Gives a named model quantity its sympy symbol."""
+
+    @property
+    def symbol(self):
+        """sympy.Symbol: the symbol of ``self.name`` (``real=True``)."""
+        return sympy.Symbol(self.name, real=True)
+
+
 @dataclass(frozen=True)
-class State:
+class State(_Named):
     """A state variable and its analysis range ``[lo, hi]`` (``lo < hi``)."""
 
     name: str
@@ -95,14 +104,9 @@ class State:
     unit: str
     about: str
 
-    @property
-    def symbol(self):
-        """sympy.Symbol: the state's symbol (``real=True``)."""
-        return sympy.Symbol(self.name, real=True)
-
 
 @dataclass(frozen=True)
-class Parameter:
+class Parameter(_Named):
     """A parameter: a number (``lo == hi``) or every constant value in ``[lo, hi]``."""
 
     name: str
@@ -114,11 +118,6 @@ class Parameter:
     def is_interval(self):
         """bool: True when the parameter stands for every value of ``[lo, hi]``, ``lo < hi``."""
         return self.lo < self.hi
-
-    @property
-    def symbol(self):
-        """sympy.Symbol: the parameter's symbol (``real=True``)."""
-        return sympy.Symbol(self.name, real=True)
 
 
 @dataclass(frozen=True)

@@ -40,6 +40,8 @@ __all__ = [
 ]
 
 _INF = np.inf
+_ULP = 2.0 ** -52
+_TINY = 2.0 ** -1074
 _REL = 2.0 ** -49
 _ABS = 2.0 ** -1000
 _PI_LO = float(mpmath.mpf(3.141592653589793))  # nearest double, below pi
@@ -50,13 +52,25 @@ _TWO_PI_HI = 2 * _PI_HI
 
 
 def round_down(x):
-    """Return the next float below each entry of `x` (NaN stays NaN)."""
-    return np.nextafter(x, -_INF)
+    """Move each entry of `x` at least one ulp down (``+inf`` becomes NaN).
+
+    ``x - (|x| 2**-52 + 2**-1074)``: the subtracted amount is at least one ulp of `x`
+    (and the smallest subnormal at 0), and round-to-nearest of a value at or below
+    the float ``x - ulp`` cannot land above it. Four plain operations are much cheaper
+    than ``np.nextafter``.
+    """
+    d = np.abs(x)
+    d *= _ULP
+    d += _TINY
+    return x - d
 
 
 def round_up(x):
-    """Return the next float above each entry of `x` (NaN stays NaN)."""
-    return np.nextafter(x, _INF)
+    """Move each entry of `x` at least one ulp up (``-inf`` becomes NaN)."""
+    d = np.abs(x)
+    d *= _ULP
+    d += _TINY
+    return x + d
 
 
 def _sum_bounds(a, b):
@@ -65,8 +79,11 @@ def _sum_bounds(a, b):
     bb = s - a
     err = (a - (s - bb)) + (b - bb)
     # err is NaN when s overflowed or is infinite: widen both ways, which is sound.
-    lo = np.where(err >= 0, s, round_down(s))
-    hi = np.where(err <= 0, s, round_up(s))
+    d = np.abs(s)
+    d *= _ULP
+    d += _TINY
+    lo = s - np.where(err >= 0, 0.0, d)
+    hi = s + np.where(err <= 0, 0.0, d)
     return lo, hi
 
 
@@ -96,78 +113,80 @@ def shift(alo, ahi, c):
     return lo, hi
 
 
-def _products(x, y):
-    """Endpoint products rounded down and up (exact when a factor is zero)."""
-    p = x * y
-    exact = (x == 0) | (y == 0)
-    return np.where(exact, p, round_down(p)), np.where(exact, p, round_up(p))
+def _outward(lo, hi, neg_possible, pos_possible):
+    """Round the min and max of exact-or-rounded results outward.
+
+    A bound that came out exactly 0 stays 0 when no result of the other sign is
+    possible: then 0 is either exact (a zero factor) or a valid bound of a value that
+    underflowed towards 0 from the right side.
+    """
+    lo = np.where((lo == 0) & ~neg_possible, 0.0, round_down(lo))
+    hi = np.where((hi == 0) & ~pos_possible, 0.0, round_up(hi))
+    return lo, hi
 
 
 def mul(alo, ahi, blo, bhi):
     """Interval product ``[a] * [b]`` (``0 * inf`` gives NaN, hence unusable)."""
-    d1, u1 = _products(alo, blo)
-    d2, u2 = _products(alo, bhi)
-    d3, u3 = _products(ahi, blo)
-    d4, u4 = _products(ahi, bhi)
-    lo = np.minimum(np.minimum(d1, d2), np.minimum(d3, d4))
-    hi = np.maximum(np.maximum(u1, u2), np.maximum(u3, u4))
-    return lo, hi
+    p1 = alo * blo
+    p2 = alo * bhi
+    p3 = ahi * blo
+    p4 = ahi * bhi
+    lo = np.minimum(np.minimum(p1, p2), np.minimum(p3, p4))
+    hi = np.maximum(np.maximum(p1, p2), np.maximum(p3, p4))
+    neg = ((alo < 0) & (bhi > 0)) | ((ahi > 0) & (blo < 0))
+    pos = ((alo < 0) & (blo < 0)) | ((ahi > 0) & (bhi > 0))
+    return _outward(lo, hi, neg, pos)
 
 
 def scale(alo, ahi, c):
-    """Product of an interval and an exactly representable float `c`."""
-    dlo, ulo = _products(alo, c)
-    dhi, uhi = _products(ahi, c)
-    if np.ndim(c) == 0:
-        return (dlo, uhi) if c >= 0 else (dhi, ulo)
-    pos = c >= 0
-    return np.where(pos, dlo, dhi), np.where(pos, uhi, ulo)
+    """Product of an interval and a float `c` (scalar or array)."""
+    return mul(alo, ahi, c, c)
 
 
 def sqr(alo, ahi):
     """Interval square (tighter than ``mul(a, a)``: never negative)."""
     mag_lo = np.where((alo <= 0) & (ahi >= 0), 0.0, np.minimum(np.abs(alo), np.abs(ahi)))
     mag_hi = np.maximum(np.abs(alo), np.abs(ahi))
-    lo, _ = _products(mag_lo, mag_lo)
-    _, hi = _products(mag_hi, mag_hi)
+    lo = np.maximum(round_down(mag_lo * mag_lo), 0.0)
+    hi = np.where(mag_hi == 0, 0.0, round_up(mag_hi * mag_hi))
+    lo = np.where(mag_lo == 0, 0.0, lo)
     nan = np.isnan(alo) | np.isnan(ahi)
-    return np.where(nan, np.nan, np.maximum(lo, 0.0)), np.where(nan, np.nan, hi)
+    return np.where(nan, np.nan, lo), np.where(nan, np.nan, hi)
 
 
 def div(alo, ahi, blo, bhi):
     """Interval quotient; NaN where the divisor contains 0."""
     bad = (blo <= 0) & (bhi >= 0)
-
-    def q(x, y):
-        v = x / y
-        exact = x == 0
-        return np.where(exact, v, round_down(v)), np.where(exact, v, round_up(v))
-
     with np.errstate(divide="ignore", invalid="ignore"):
-        d1, u1 = q(alo, blo)
-        d2, u2 = q(alo, bhi)
-        d3, u3 = q(ahi, blo)
-        d4, u4 = q(ahi, bhi)
-    lo = np.minimum(np.minimum(d1, d2), np.minimum(d3, d4))
-    hi = np.maximum(np.maximum(u1, u2), np.maximum(u3, u4))
+        q1 = alo / blo
+        q2 = alo / bhi
+        q3 = ahi / blo
+        q4 = ahi / bhi
+    lo = np.minimum(np.minimum(q1, q2), np.minimum(q3, q4))
+    hi = np.maximum(np.maximum(q1, q2), np.maximum(q3, q4))
+    # the divisor has one strict sign where it is usable
+    neg = ((alo < 0) & (blo > 0)) | ((ahi > 0) & (bhi < 0))
+    pos = ((alo < 0) & (bhi < 0)) | ((ahi > 0) & (blo > 0))
+    lo, hi = _outward(lo, hi, neg, pos)
     return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
 
 
 def _pow_mag(x, n, up):
     """``x**n`` for ``x >= 0`` and integer ``n >= 1`` rounded down (or up) by squaring."""
+    rnd = round_up if up else round_down
+
+    def product(a, b):
+        p = a * b
+        return np.where((a == 0) | (b == 0), 0.0, rnd(p))
+
     result = None
     base = x
     while n:
         if n & 1:
-            if result is None:
-                result = base
-            else:
-                lo, hi = _products(result, base)
-                result = hi if up else lo
+            result = base if result is None else product(result, base)
         n >>= 1
         if n:
-            lo, hi = _products(base, base)
-            base = hi if up else lo
+            base = product(base, base)
     return np.maximum(result, 0.0)
 
 
@@ -203,6 +222,18 @@ def _widen(vlo, vhi):
     lo = round_down(vlo - (np.abs(vlo) * _REL + _ABS))
     hi = round_up(vhi + (np.abs(vhi) * _REL + _ABS))
     return lo, hi
+
+
+def _endpoint_range(func, alo, ahi):
+    """Hull of `func` at both endpoints, each value widened both ways.
+
+    For a function that is not increasing, either endpoint value may be the lower or
+    the upper bound, so each must be moved down and up before taking min and max.
+    """
+    va, vb = func(alo), func(ahi)
+    d1, u1 = _widen(va, va)
+    d2, u2 = _widen(vb, vb)
+    return np.minimum(d1, d2), np.maximum(u1, u2)
 
 
 def sqrt(alo, ahi):
@@ -242,6 +273,9 @@ def pow_real(alo, ahi, a):
     plo, phi = mul(llo, lhi, a_lo, a_hi)
     # log(0) = -inf times a > 0 gives -inf, and exp(-inf) = 0: correct.
     lo, hi = exp(plo, phi)
+    # [0, 0] ** a = 0 for a > 0; the log route would give -inf + inf = NaN there.
+    zero = (a > 0) & (ahi == 0)
+    lo, hi = np.where(zero, 0.0, lo), np.where(zero, 0.0, hi)
     bad = (alo < 0) | ((a < 0) & (alo <= 0))
     return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
 
@@ -270,9 +304,8 @@ def sinh(alo, ahi):
 def cosh(alo, ahi):
     """Interval hyperbolic cosine (minimum 1 at 0)."""
     with np.errstate(over="ignore"):
-        clo, chi = _widen(np.cosh(alo), np.cosh(ahi))
-    lo = np.where((alo <= 0) & (ahi >= 0), 1.0, np.minimum(clo, chi))
-    hi = np.maximum(clo, chi)
+        lo, hi = _endpoint_range(np.cosh, alo, ahi)
+    lo = np.where((alo <= 0) & (ahi >= 0), 1.0, lo)
     return np.maximum(lo, 1.0), hi
 
 
@@ -290,9 +323,7 @@ def _contains_multiple(alo, ahi, offset_lo, offset_hi):
 def cos(alo, ahi):
     """Interval cosine (extrema inside the interval taken into account)."""
     with np.errstate(invalid="ignore"):
-        clo, chi = _widen(np.cos(alo), np.cos(ahi))
-    lo = np.minimum(clo, chi)
-    hi = np.maximum(clo, chi)
+        lo, hi = _endpoint_range(np.cos, alo, ahi)
     wide = ~((ahi - alo) < _TWO_PI_LO)
     has_max = wide | _contains_multiple(alo, ahi, 0.0, 0.0)
     has_min = wide | _contains_multiple(alo, ahi, _PI_LO, _PI_HI)
@@ -305,9 +336,7 @@ def cos(alo, ahi):
 def sin(alo, ahi):
     """Interval sine (extrema inside the interval taken into account)."""
     with np.errstate(invalid="ignore"):
-        slo, shi = _widen(np.sin(alo), np.sin(ahi))
-    lo = np.minimum(slo, shi)
-    hi = np.maximum(slo, shi)
+        lo, hi = _endpoint_range(np.sin, alo, ahi)
     wide = ~((ahi - alo) < _TWO_PI_LO)
     has_max = wide | _contains_multiple(alo, ahi, _PI_LO / 2, _PI_HI / 2)
     has_min = wide | _contains_multiple(alo, ahi, -_PI_HI / 2, -_PI_LO / 2)
@@ -388,6 +417,9 @@ def enclose_constant(value):
     """
     if isinstance(value, (int, Fraction)):
         return enclose_fraction(value)
+    if hasattr(value, "evalf"):
+        # a sympy constant: 60 digits decide the bracket far from any float boundary
+        value = value.evalf(60)
     with mpmath.workprec(200):
         x = mpmath.mpf(value)
         v = float(x)

@@ -26,6 +26,9 @@ from . import interval as iv
 
 __all__ = ["FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set"]
 
+#: Target width of a step's Taylor remainder, as a share of the set's width.
+REMAINDER_SHARE = 0.01
+
 OK, STOPPED, STEP_LIMIT, NO_ENCLOSURE, NOT_FINITE = 0, 1, 2, -1, -2
 STATUS_REASONS = {
     OK: "reached the horizon",
@@ -268,7 +271,9 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi):
     endlo, endhi = np.maximum(hlo, blo), np.minimum(hhi, bhi)
     usable = np.all(np.isfinite(endlo) & np.isfinite(endhi) & np.isfinite(nrlo)
                     & np.isfinite(nrhi) & np.isfinite(new_m), axis=1)
-    return new_m, Q, nrlo, nrhi, endlo, endhi, usable
+    # how much the remainder adds, relative to the set's own size (step-size control)
+    growth = np.max((Rhi - Rlo) / np.maximum(xhi - xlo, 1e-300), axis=1)
+    return new_m, Q, nrlo, nrhi, endlo, endhi, usable, growth
 
 
 def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
@@ -287,7 +292,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         A box stops at the first step end ``t >= min_horizon`` where `should_stop` says so,
         and at the latest at the first step end ``t >= max_horizon``.
     step : float
-        First step size tried (steps grow by 1.25 after a clean step, halve on failure).
+        First step size tried. The next step aims at a Taylor remainder of
+        ``REMAINDER_SHARE`` of the set's width (changing by a factor 0.5 to 1.25),
+        and halves while no a-priori enclosure is found.
     max_step : float
         Largest step size.
     min_step : float
@@ -320,7 +327,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     m, A = m0.copy(), np.broadcast_to(np.eye(n), (N, n, n)).copy()
     rlo, rhi = r0lo.copy(), r0hi.copy()
     xlo, xhi = lo.copy(), hi.copy()
-    h = np.full(N, float(step))
+    # the first step obeys the same caps as later ones
+    h = np.minimum(min(float(step), max_step), np.maximum(max_h, min_step))
     records = []
     for _ in range(max_steps):
         if len(ids) == 0:
@@ -339,7 +347,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
             ok[retry] = a_ok
         failed = ~ok
         new = _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi)
-        new_m, new_A, nrlo, nrhi, endlo, endhi, usable = new
+        new_m, new_A, nrlo, nrhi, endlo, endhi, usable, growth = new
         bad = failed | ~usable
         status[ids[failed]] = NO_ENCLOSURE
         status[ids[~failed & ~usable]] = NOT_FINITE
@@ -363,8 +371,11 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         image_lo[ids[finish]], image_hi[ids[finish]] = endlo[finish], endhi[finish]
         done |= finish
         keep = ~done
-        grow = np.where(clean, 1.25, 1.0)
-        ids, h = ids[keep], (h * grow)[keep]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            factor = np.clip((REMAINDER_SHARE / growth) ** (1.0 / programs.order), 0.5, 1.25)
+        factor = np.where(np.isfinite(factor), factor, 0.5)
+        factor = np.where(clean, factor, np.minimum(factor, 1.0))
+        ids, h = ids[keep], (h * factor)[keep]
         m, A, rlo, rhi = new_m[keep], new_A[keep], nrlo[keep], nrhi[keep]
         xlo, xhi = endlo[keep], endhi[keep]
         # never step past the largest horizon by much

@@ -76,8 +76,12 @@ class FlowPrograms:
 
 
 @lru_cache(maxsize=32)
-def _build(equations, states, parameters, limits, order):
+def _build(equations, states, parameters, limits, order, fixed=()):
     inputs = tuple(states) + tuple(parameters)
+    if fixed:
+        values = dict(fixed)
+        equations = tuple(e.xreplace(values) for e in equations)
+        limits = tuple(g.xreplace(values) for g in limits)
     x = sympy.Matrix(states)
     coeffs = taylor_coefficients(equations, states, order)
     middle = coeffs[1:order]
@@ -112,9 +116,17 @@ def flow_programs(model, order):
     Returns
     -------
     FlowPrograms
+
+    Notes
+    -----
+    Parameters given as numbers are substituted as exact rationals before any
+    derivative is taken (sympy then merges constants); interval parameters stay
+    inputs. Every program still takes all parameters as inputs, in model order.
     """
     if model.uses_kinks:
         order = 1
+    fixed = tuple((p.symbol, sympy.Rational(p.lo.numerator, p.lo.denominator))
+                  for p in model.parameters if not p.is_interval)
     return _build(tuple(model.equations), tuple(model.state_symbols),
                   tuple(model.parameter_symbols),
-                  tuple(c.g for c in model.constraints), int(order))
+                  tuple(c.g for c in model.constraints), int(order), fixed)

@@ -1,0 +1,176 @@
+"""Dyadic cells of the analysis window with exact integer addresses.
+
+A cell is addressed by its depth ``d`` and an integer index vector ``i``; along axis
+``k`` it is ``[w_k + (i_k / 2^d) L_k, w_k + ((i_k + 1) / 2^d) L_k]`` where
+``[w_k, w_k + L_k]`` is the window side. Splitting a cell makes ``2^n`` children of
+depth ``d + 1``. The leaves of the tree tile the window exactly.
+
+Float boxes of cells enclose the exact cells (each boundary is rounded outward, and is
+exact whenever it is representable), so lookups may report a few extra neighbours but
+never miss one.
+"""
+
+from __future__ import annotations
+
+from fractions import Fraction
+from itertools import product
+
+import numpy as np
+
+from .interval import enclose_fraction
+
+__all__ = ["CellTree"]
+
+
+class CellTree:
+    """A tree of dyadic cells over a window.
+
+    Parameters
+    ----------
+    window : sequence of (Fraction, Fraction)
+        Exact window sides, ``lo < hi``.
+
+    Attributes
+    ----------
+    n : int
+    depth : ndarray of int, shape (M,)
+    index : ndarray of int64, shape (M, n)
+    first_child : ndarray of int, shape (M,)
+        Id of the first of ``2^n`` consecutive children, or -1 for a leaf.
+    lo, hi : ndarray, shape (M, n)
+        Float boxes enclosing the exact cells.
+    """
+
+    def __init__(self, window):
+        self.window = tuple((Fraction(a), Fraction(b)) for a, b in window)
+        self.n = len(self.window)
+        self._tables = {}
+        self.depth = np.zeros(1, int)
+        self.index = np.zeros((1, self.n), np.int64)
+        self.first_child = np.full(1, -1)
+        self.lo, self.hi = self._geometry(self.depth, self.index)
+        self._offsets = np.array(list(product((0, 1), repeat=self.n)), np.int64)
+
+    def __len__(self):
+        return len(self.depth)
+
+    def _boundaries(self, d):
+        """Float enclosures ``(lo, hi)`` of the boundaries ``j / 2^d`` along each axis."""
+        if d not in self._tables:
+            lo = np.empty((self.n, 2 ** d + 1))
+            hi = np.empty_like(lo)
+            for k, (a, b) in enumerate(self.window):
+                for j in range(2 ** d + 1):
+                    lo[k, j], hi[k, j] = enclose_fraction(a + (b - a) * Fraction(j, 2 ** d))
+            self._tables[d] = (lo, hi)
+        return self._tables[d]
+
+    def _geometry(self, depth, index):
+        lo = np.empty(index.shape)
+        hi = np.empty(index.shape)
+        for d in np.unique(depth):
+            sel = depth == d
+            blo, bhi = self._boundaries(int(d))
+            for k in range(self.n):
+                lo[sel, k] = blo[k, index[sel, k]]
+                hi[sel, k] = bhi[k, index[sel, k] + 1]
+        return lo, hi
+
+    def window_bounds(self):
+        """Float enclosures of the window's lower and upper sides.
+
+        Returns
+        -------
+        lo_lo, lo_hi, hi_lo, hi_hi : ndarray, shape (n,)
+            The exact lower side lies in ``[lo_lo, lo_hi]``, the upper in ``[hi_lo, hi_hi]``.
+        """
+        blo, bhi = self._boundaries(0)
+        return blo[:, 0], bhi[:, 0], blo[:, 1], bhi[:, 1]
+
+    def exact_box(self, cell):
+        """Exact sides of a cell as Fractions, shape (n, 2)."""
+        d = int(self.depth[cell])
+        out = []
+        for k, (a, b) in enumerate(self.window):
+            i = int(self.index[cell, k])
+            out.append((a + (b - a) * Fraction(i, 2 ** d), a + (b - a) * Fraction(i + 1, 2 ** d)))
+        return out
+
+    def leaves(self):
+        """Ids of the current leaves."""
+        return np.flatnonzero(self.first_child < 0)
+
+    def split(self, cells):
+        """Split leaves into ``2^n`` children each.
+
+        Parameters
+        ----------
+        cells : array_like of int
+            Leaf ids.
+
+        Returns
+        -------
+        ndarray of int
+            Ids of the new children, ``2^n`` consecutive per parent in parent order.
+        """
+        cells = np.asarray(cells, int)
+        if np.any(self.first_child[cells] >= 0):
+            raise ValueError("only leaves can be split")
+        k = len(self._offsets)
+        start = len(self.depth)
+        new_depth = np.repeat(self.depth[cells] + 1, k)
+        new_index = (2 * self.index[cells][:, None, :] + self._offsets[None]).reshape(-1, self.n)
+        lo, hi = self._geometry(new_depth, new_index)
+        self.first_child[cells] = start + k * np.arange(len(cells))
+        self.depth = np.concatenate([self.depth, new_depth])
+        self.index = np.concatenate([self.index, new_index])
+        self.first_child = np.concatenate([self.first_child, np.full(len(new_depth), -1)])
+        self.lo = np.concatenate([self.lo, lo])
+        self.hi = np.concatenate([self.hi, hi])
+        return np.arange(start, len(self.depth))
+
+    def leaves_meeting(self, qlo, qhi):
+        """All (query, leaf) pairs where the closed query box meets the leaf.
+
+        Parameters
+        ----------
+        qlo, qhi : ndarray, shape (Q, n)
+            Query boxes (rows with NaN meet nothing; handle them before calling).
+
+        Returns
+        -------
+        query, leaf : ndarray of int
+            Pairs, sorted by query.
+        """
+        q = np.arange(len(qlo))
+        node = np.zeros(len(qlo), int)
+        out_q, out_leaf = [], []
+        k = len(self._offsets)
+        while len(q):
+            meet = np.all((self.lo[node] <= qhi[q]) & (self.hi[node] >= qlo[q]), axis=1)
+            q, node = q[meet], node[meet]
+            child = self.first_child[node]
+            leaf = child < 0
+            out_q.append(q[leaf])
+            out_leaf.append(node[leaf])
+            q = np.repeat(q[~leaf], k)
+            node = (child[~leaf][:, None] + np.arange(k)[None]).reshape(-1)
+        query = np.concatenate(out_q)
+        leaf = np.concatenate(out_leaf)
+        order = np.argsort(query, kind="stable")
+        return query[order], leaf[order]
+
+    def leaf_containing(self, points):
+        """For each point, one leaf whose float box contains it (-1 if outside the window).
+
+        A point on a shared face gets one of the neighbours.
+        """
+        points = np.asarray(points, float)
+        q, leaf = self.leaves_meeting(points, points)
+        out = np.full(len(points), -1)
+        out[q[::-1]] = leaf[::-1]
+        return out
+
+    def volume_fraction(self, cells):
+        """Exact fraction of the window volume covered by each cell (``2^-n d``)."""
+        return 0.5 ** (self.n * self.depth[cells].astype(float))

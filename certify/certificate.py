@@ -1,0 +1,359 @@
+"""Writing and reading certificates (``certificate.json.gz``).
+
+The format is documented in docs/certificate-format.md. Exact numbers are stored as
+rational strings ``"p/q"``; float arrays as base64 of little-endian IEEE binary64,
+which is exact. Files are written atomically (temporary file, then rename).
+"""
+
+from __future__ import annotations
+
+import base64
+import gzip
+import json
+import os
+import tempfile
+from dataclasses import dataclass
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+
+from .errors import CertificateError
+
+__all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write_certificate",
+           "load_certificate_json", "read_certificate", "Certificate"]
+
+FORMAT = "certify-certificate"
+VERSION = 1
+LABELS = ("safe", "doomed", "outside", "undecided")
+
+
+def encode_array(a, dtype="<f8"):
+    """Encode an array exactly as ``{"dtype", "shape", "data"}`` (base64)."""
+    a = np.ascontiguousarray(np.asarray(a), dtype=dtype)
+    return {"dtype": dtype, "shape": list(a.shape),
+            "data": base64.b64encode(a.tobytes()).decode("ascii")}
+
+
+def decode_array(obj, where="array"):
+    """Decode an array written by :func:`encode_array`.
+
+    Raises
+    ------
+    CertificateError
+        When the object is malformed.
+    """
+    try:
+        dtype = np.dtype(obj["dtype"])
+        if dtype.kind not in "fi" or dtype.itemsize != 8:
+            raise ValueError("dtype")
+        shape = tuple(int(s) for s in obj["shape"])
+        raw = base64.b64decode(obj["data"], validate=True)
+        return np.frombuffer(raw, dtype=dtype).reshape(shape).copy()
+    except (KeyError, TypeError, ValueError) as exc:
+        raise CertificateError(f"malformed {where} in the certificate ({exc})") from None
+
+
+def fraction_text(q):
+    """Exact text of a rational: ``"p/q"`` (or ``"p"``)."""
+    q = Fraction(q)
+    return str(q.numerator) if q.denominator == 1 else f"{q.numerator}/{q.denominator}"
+
+
+def write_certificate(path, data):
+    """Write a certificate dictionary as gzip-compressed JSON, atomically.
+
+    Parameters
+    ----------
+    path : str or Path
+    data : dict
+        JSON-serialisable content (arrays already encoded).
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".certificate-", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as raw, gzip.GzipFile(fileobj=raw, mode="wb",
+                                                       compresslevel=6, mtime=0) as gz:
+            gz.write(json.dumps(data, separators=(",", ":")).encode("utf-8"))
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def load_certificate_json(path):
+    """Read the raw certificate dictionary, checking format and version.
+
+    Raises
+    ------
+    CertificateError
+        Unreadable file, not gzip/JSON, unknown format or version.
+    """
+    path = Path(path)
+    try:
+        with gzip.open(path, "rb") as f:
+            data = json.loads(f.read().decode("utf-8"))
+    except FileNotFoundError:
+        raise CertificateError(f"{path}: no such file") from None
+    except (OSError, EOFError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile) as exc:
+        raise CertificateError(f"{path}: not a readable certificate ({exc})") from None
+    if not isinstance(data, dict) or data.get("format") != FORMAT:
+        raise CertificateError(f"{path}: not a certify certificate (key 'format')")
+    if data.get("version") != VERSION:
+        raise CertificateError(f"{path}: unknown certificate version {data.get('version')!r} "
+                               f"(this tool reads version {VERSION})")
+    return data
+
+
+@dataclass
+class Certificate:
+    """The claims of a certificate, for queries at points.
+
+    Attributes
+    ----------
+    data : dict
+        The raw certificate.
+    model : certify.model.Model
+        The model rebuilt from the stored text (with the stored parameter boxes).
+    labels : ndarray of str, shape (L,)
+    lo, hi : ndarray, shape (L, n)
+        Float boxes enclosing the cells.
+    crossing_upper, survival_lower : ndarray, shape (L,)
+    """
+
+    data: dict
+    model: object
+    labels: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    crossing_upper: np.ndarray
+    survival_lower: np.ndarray
+    tree: object
+
+    def _locate(self, points):
+        points = np.atleast_2d(np.asarray(points, float))
+        if points.shape[1] != self.lo.shape[1]:
+            raise ValueError(f"points must have {self.lo.shape[1]} columns")
+        node = self.tree.leaf_containing(points)
+        return points, node
+
+    def _violates(self, points):
+        """Per point: -1 certainly violates a limit, 1 certainly satisfies all, 0 unknown."""
+        from .taylor import flow_programs
+
+        programs = flow_programs(self.model, 1)
+        params = [p for p in self.data["_param_floats"]]
+        cols_lo = list(points.T) + [np.full(len(points), p[0]) for p in params]
+        cols_hi = list(points.T) + [np.full(len(points), p[1]) for p in params]
+        out = programs.limits.interval_columns(cols_lo, cols_hi)
+        glo = np.stack([o[0] for o in out], -1)
+        ghi = np.stack([o[1] for o in out], -1)
+        res = np.zeros(len(points), int)
+        res[np.all(glo >= 0, axis=1)] = 1
+        res[np.any(ghi < 0, axis=1)] = -1
+        return res
+
+    def label_at(self, points):
+        """Proven label of each point (``outside`` where a limit is violated at t = 0).
+
+        Parameters
+        ----------
+        points : ndarray, shape (N, n)
+
+        Returns
+        -------
+        ndarray of str, shape (N,)
+            ``undecided`` outside the window or where the limits cannot be evaluated
+            with certainty at the point.
+        """
+        points, node = self._locate(points)
+        leaf = self._leaf_of_node(node)
+        out = np.where(leaf >= 0, self.labels[np.maximum(leaf, 0)], "undecided").astype(object)
+        v = self._violates(points)
+        out[v < 0] = "outside"
+        out[(v == 0) & (out != "outside")] = "undecided"
+        return out.astype(str)
+
+    def crossing_time_bounds(self, points):
+        """Proven bounds of the first time each point's trajectory leaves the limits.
+
+        Returns
+        -------
+        lower, upper : ndarray, shape (N,)
+            ``lower`` is 0 for outside points and ``inf`` for safe ones; ``upper`` is
+            ``inf`` where no crossing is proven.
+        """
+        points, node = self._locate(points)
+        leaf = self._leaf_of_node(node)
+        ok = leaf >= 0
+        lower = np.where(ok, self.survival_lower[np.maximum(leaf, 0)], 0.0)
+        upper = np.where(ok, self.crossing_upper[np.maximum(leaf, 0)], np.inf)
+        v = self._violates(points)
+        lower = np.where(v < 0, 0.0, np.where(v == 0, 0.0, lower))
+        upper = np.where(v < 0, 0.0, np.where(v == 0, np.inf, upper))
+        return lower, upper
+
+    def _leaf_of_node(self, node):
+        lookup = self.data["_node_to_leaf"]
+        return np.where(node >= 0, lookup[np.maximum(node, 0)], -1)
+
+
+def read_certificate(path):
+    """Read a certificate for queries (no verification: use ``check_certificate``).
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    Certificate
+    """
+    from .cells import CellTree
+    from .model import parse_model
+
+    data = load_certificate_json(path)
+    try:
+        model = parse_model(data["model"]["text"], path=data["model"].get("file"))
+        window = [(Fraction(a), Fraction(b)) for a, b in data["window"]]
+        params = {k: (Fraction(v[0]), Fraction(v[1])) for k, v in data["parameters"].items()}
+        model = model.with_parameters(params)
+        cells = data["cells"]
+        depth = decode_array(cells["depth"], "cells.depth").astype(int)
+        index = decode_array(cells["index"], "cells.index").astype(np.int64)
+        labels = np.array(cells["label"], dtype=object)
+        crossing = decode_array(cells["crossing_upper"], "cells.crossing_upper")
+        survival = decode_array(cells["survival_lower"], "cells.survival_lower")
+        param_floats = decode_array(data["parameter_floats"], "parameter_floats")
+    except (KeyError, TypeError, ValueError, ZeroDivisionError) as exc:
+        raise CertificateError(f"{path}: malformed certificate ({exc})") from None
+    tree = CellTree(window)
+    node_to_leaf = _rebuild_tree(tree, depth, index)
+    data["_node_to_leaf"] = node_to_leaf
+    data["_param_floats"] = [tuple(p) for p in param_floats]
+    leaf_nodes = np.full(len(depth), -1)
+    leaf_nodes[node_to_leaf[node_to_leaf >= 0]] = np.flatnonzero(node_to_leaf >= 0)
+    return Certificate(data=data, model=model, labels=labels.astype(str),
+                       lo=tree.lo[leaf_nodes], hi=tree.hi[leaf_nodes],
+                       crossing_upper=crossing, survival_lower=survival, tree=tree)
+
+
+def _rebuild_tree(tree, depth, index):
+    """Split `tree` until the given leaves exist; returns node -> leaf-number map."""
+    key_to_leaf = {(int(d), tuple(int(v) for v in i)): j for j, (d, i) in enumerate(zip(depth, index))}
+    frontier = [0]
+    max_depth = int(depth.max(initial=0))
+    while frontier:
+        split = []
+        for node in frontier:
+            key = (int(tree.depth[node]), tuple(int(v) for v in tree.index[node]))
+            if key not in key_to_leaf:
+                if key[0] >= max_depth:
+                    raise CertificateError("the cells do not tile the window")
+                split.append(node)
+        frontier = tree.split(split).tolist() if split else []
+    node_to_leaf = np.full(len(tree), -1)
+    for node in tree.leaves():
+        key = (int(tree.depth[node]), tuple(int(v) for v in tree.index[node]))
+        if key not in key_to_leaf:
+            raise CertificateError("the cells do not tile the window")
+        node_to_leaf[node] = key_to_leaf[key]
+    return node_to_leaf
+
+
+def _leaf_steps(proof):
+    """Gather the step records of every leaf, in leaf order (vectorized per batch)."""
+    leaves = proof.leaves
+    n = proof.tree.n
+    ref = proof.flow_ref[leaves]
+    counts = np.zeros(len(leaves), int)
+    for b, flow in enumerate(proof.flows):
+        sel = ref[:, 0] == b
+        counts[sel] = flow.n_steps[ref[sel, 1]]
+    start = np.concatenate([[0], np.cumsum(counts)])
+    S = int(start[-1])
+    out = {"h": np.zeros(S), "E": np.zeros((S, n, 2)), "m": np.zeros((S, n)),
+           "A": np.zeros((S, n, n)), "r": np.zeros((S, n, 2))}
+    set0_m = np.zeros((len(leaves), n))
+    set0_r = np.zeros((len(leaves), n, 2))
+    for b, flow in enumerate(proof.flows):
+        sel = np.flatnonzero(ref[:, 0] == b)
+        if len(sel) == 0:
+            continue
+        boxes = ref[sel, 1]
+        set0_m[sel] = flow.set0_m[boxes]
+        set0_r[sel, :, 0] = flow.set0_r_lo[boxes]
+        set0_r[sel, :, 1] = flow.set0_r_hi[boxes]
+        k = flow.n_steps[boxes]
+        within = np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k)
+        src = np.repeat(flow.step_start[boxes], k) + within
+        dst = np.repeat(start[sel], k) + within
+        out["h"][dst] = flow.h[src]
+        out["E"][dst, :, 0], out["E"][dst, :, 1] = flow.e_lo[src], flow.e_hi[src]
+        out["m"][dst] = flow.m[src]
+        out["A"][dst] = flow.A[src]
+        out["r"][dst, :, 0], out["r"][dst, :, 1] = flow.r_lo[src], flow.r_hi[src]
+    return start, out, set0_m, set0_r
+
+
+def certificate_data(proof, summary):
+    """Build the certificate dictionary of a proof (see docs/certificate-format.md).
+
+    Parameters
+    ----------
+    proof : certify.prove.Proof
+    summary : dict
+        The run summary (stored for information; the checker ignores it).
+
+    Returns
+    -------
+    dict
+    """
+    from dataclasses import asdict
+
+    model = proof.model
+    lab, facts = proof.labelling, proof.facts
+    start, steps, set0_m, set0_r = _leaf_steps(proof)
+    leaves = proof.leaves
+    succ_order = np.argsort(facts.src, kind="stable")
+    src, dst = facts.src[succ_order], facts.dst[succ_order]
+    succ_start = np.searchsorted(src, np.arange(len(leaves) + 1))
+    return {
+        "format": FORMAT,
+        "version": VERSION,
+        "model": {"name": model.name, "file": model.path, "text": model.text,
+                  "sha256": model.sha256},
+        "states": [s.name for s in model.states],
+        "parameters": {p.name: [fraction_text(p.lo), fraction_text(p.hi)]
+                       for p in model.parameters},
+        "parameter_floats": encode_array(np.array(proof.params, float).reshape(-1, 2)),
+        "window": [[fraction_text(a), fraction_text(b)] for a, b in model.window],
+        "method": asdict(proof.method),
+        "faces": [{"axis": f["axis"], "side": f["side"], "kind": f["kind"],
+                   "cover_lo": encode_array(f["lo"]), "cover_hi": encode_array(f["hi"]),
+                   "cover_reason": encode_array(f["reason"], "<i8")} for f in proof.faces],
+        "cells": {
+            "count": int(len(leaves)),
+            "depth": encode_array(proof.tree.depth[leaves], "<i8"),
+            "index": encode_array(proof.tree.index[leaves], "<i8"),
+            "label": [str(x) for x in lab.label],
+            "rank": encode_array(lab.rank, "<i8"),
+            "crossing_upper": encode_array(lab.crossing_upper),
+            "survival_lower": encode_array(lab.survival_lower),
+            "horizon": encode_array(np.stack([facts.horizon_lo, facts.horizon_hi], 1)),
+            "successor_start": encode_array(succ_start, "<i8"),
+            "successors": encode_array(dst, "<i8"),
+            "set0_m": encode_array(set0_m),
+            "set0_r": encode_array(set0_r),
+            "step_start": encode_array(start, "<i8"),
+            "step_h": encode_array(steps["h"]),
+            "step_E": encode_array(steps["E"]),
+            "step_m": encode_array(steps["m"]),
+            "step_A": encode_array(steps["A"]),
+            "step_r": encode_array(steps["r"]),
+        },
+        "summary": summary,
+    }

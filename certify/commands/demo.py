@@ -1,0 +1,27 @@
+"""``certify demo``: prove the built-in fermenter model and check its certificate."""
+
+from pathlib import Path
+
+from certify.commands.prove import add_budget_arguments, run_proof
+
+__all__ = ["HELP", "add_arguments", "run", "DEMO_MODEL"]
+
+HELP = "prove the built-in demo model (a substrate-inhibited fermenter) and write its map"
+
+#: The demo model ships with the repository (``make demo`` runs from an editable install).
+DEMO_MODEL = Path(__file__).resolve().parents[2] / "models" / "fermenter.toml"
+
+
+def add_arguments(parser):
+    """Add the options of ``certify demo`` to ``parser``."""
+    add_budget_arguments(parser)
+
+
+def run(args):
+    """Prove the demo model into ``proofs_out/fermenter/`` (or ``--out``)."""
+    path = DEMO_MODEL
+    try:
+        path = path.relative_to(Path.cwd())
+    except ValueError:
+        pass
+    return run_proof(str(path), args, default_out=Path("proofs_out") / "fermenter")

@@ -1,0 +1,176 @@
+"""The labels as fixpoints on the transition graph (DESIGN.md section 5).
+
+All functions work on leaves numbered ``0..L-1`` and on edges ``src -> dst`` between
+them (the successors: leaves meeting a cell's image box).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+from scipy.sparse.csgraph import breadth_first_order, dijkstra
+
+from . import interval as iv
+
+__all__ = ["CellFacts", "Labelling", "label_cells"]
+
+SAFE, DOOMED, OUTSIDE, UNDECIDED = "safe", "doomed", "outside", "undecided"
+
+
+@dataclass
+class CellFacts:
+    """What the flow proved about each leaf.
+
+    Attributes
+    ----------
+    outside : ndarray of bool, shape (L,)
+        Some limit is violated on the whole cell.
+    flow_ok : ndarray of bool
+        The image box is known (the flow did not fail).
+    kept : ndarray of bool
+        Every limit is kept on every step (DESIGN.md section 5, rules (a)/(b)).
+    escapes : ndarray of bool
+        Part of the image lies outside the window where it is not known to be harmless.
+    crossing : ndarray of float
+        Upper bound of a proven crossing time at rank 0 (a step end box wholly violating
+        one limit); ``inf`` if none.
+    horizon_lo, horizon_hi : ndarray of float
+        Enclosure of the horizon ``T_c``.
+    first_unkept : ndarray of float
+        Lower bound of the start of the first step that is not kept, or of the time where
+        the knowledge ends (flow failure, escape: the horizon); ``inf`` if all is kept.
+    src, dst : ndarray of int
+        Edges.
+    """
+
+    outside: np.ndarray
+    flow_ok: np.ndarray
+    kept: np.ndarray
+    escapes: np.ndarray
+    crossing: np.ndarray
+    horizon_lo: np.ndarray
+    horizon_hi: np.ndarray
+    first_unkept: np.ndarray
+    src: np.ndarray
+    dst: np.ndarray
+
+
+@dataclass
+class Labelling:
+    """Labels with their proven bounds.
+
+    Attributes
+    ----------
+    label : ndarray of str, shape (L,)
+    rank : ndarray of int
+        Doomed rank (-1 where not doomed).
+    crossing_upper : ndarray
+        Proven upper bound of the first crossing time (``inf`` if none).
+    survival_lower : ndarray
+        Proven lower bound of the first crossing time (``inf`` for safe, 0 for outside).
+    """
+
+    label: np.ndarray
+    rank: np.ndarray
+    crossing_upper: np.ndarray
+    survival_lower: np.ndarray
+
+
+def _reachable(n_nodes, src, dst, seeds):
+    """Nodes that reach a seed along edges (BFS on the reversed graph)."""
+    if not seeds.any():
+        return np.zeros(n_nodes, bool)
+    super_node = n_nodes
+    rows = np.concatenate([dst, np.full(seeds.sum(), super_node)])
+    cols = np.concatenate([src, np.flatnonzero(seeds)])
+    g = sp.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_nodes + 1, n_nodes + 1))
+    order = breadth_first_order(g, super_node, directed=True, return_predecessors=False)
+    out = np.zeros(n_nodes + 1, bool)
+    out[order] = True
+    return out[:n_nodes]
+
+
+def _safe(facts, L):
+    candidate = ~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes
+    keep_edge = ~facts.outside[facts.dst]
+    seeds = ~candidate & ~facts.outside
+    bad = _reachable(L, facts.src[keep_edge], facts.dst[keep_edge], seeds)
+    return candidate & ~bad
+
+
+def _doomed(facts, L, safe):
+    rank = np.full(L, -1)
+    upper = np.full(L, np.inf)
+    zero = facts.outside | np.isfinite(facts.crossing)
+    zero &= ~safe
+    rank[zero] = 0
+    upper[zero] = np.where(facts.outside[zero], 0.0, facts.crossing[zero])
+    eligible = facts.flow_ok & ~facts.escapes & ~safe & ~zero
+    out_degree = np.bincount(facts.src, minlength=L)
+    reverse = sp.csr_matrix((np.ones(len(facts.src)), (facts.dst, facts.src)), shape=(L, L))
+    remaining = out_degree - np.bincount(facts.src[zero[facts.dst]], minlength=L)
+    # a cell whose whole image lies where it is harmless has crossed by its horizon
+    new = eligible & (remaining == 0)
+    r = 0
+    while new.any():
+        r += 1
+        rank[new] = r
+        cells = np.flatnonzero(new)
+        succ_max = np.zeros(L)
+        edge = new[facts.src]
+        np.maximum.at(succ_max, facts.src[edge], upper[facts.dst[edge]])
+        _, up = iv.add(facts.horizon_hi[cells], facts.horizon_hi[cells],
+                       succ_max[cells], succ_max[cells])
+        upper[cells] = up
+        preds = reverse[cells].indices
+        np.subtract.at(remaining, preds, 1)
+        new = eligible & (rank < 0) & (remaining == 0)
+    return rank, upper
+
+
+def _survival(facts, L, label):
+    """Lower bounds L_c = min(first_unkept_c, T_c + min_d L_d) over non-outside successors."""
+    source = np.where(facts.outside, 0.0, facts.first_unkept)
+    keep_edge = ~facts.outside[facts.dst]
+    src, dst = facts.src[keep_edge], facts.dst[keep_edge]
+    finite = np.isfinite(source)
+    super_node = L
+    # weights shifted by 1 so that zero weights survive the sparse format
+    rows = np.concatenate([dst, np.full(finite.sum(), super_node)])
+    cols = np.concatenate([src, np.flatnonzero(finite)])
+    w = np.concatenate([facts.horizon_lo[src], source[finite] + 1.0])
+    if len(rows) == 0:
+        return np.where(finite, source, np.inf)
+    g = sp.csr_matrix((w, (rows, cols)), shape=(L + 1, L + 1))
+    dist = dijkstra(g, directed=True, indices=super_node)[:L] - 1.0
+    # float sums may round up: scale down so every bound stays a lower bound
+    dist = np.where(np.isfinite(dist), iv.round_down(np.maximum(dist, 0.0) * (1 - 1e-9)), np.inf)
+    dist = np.minimum(dist, source)
+    dist[label == SAFE] = np.inf
+    dist[facts.outside] = 0.0
+    return dist
+
+
+def label_cells(facts):
+    """Compute the labels and bounds of DESIGN.md section 5.
+
+    Parameters
+    ----------
+    facts : CellFacts
+
+    Returns
+    -------
+    Labelling
+    """
+    L = len(facts.outside)
+    safe = _safe(facts, L)
+    rank, upper = _doomed(facts, L, safe)
+    label = np.full(L, UNDECIDED, dtype=object)
+    label[safe] = SAFE
+    label[rank >= 0] = DOOMED
+    label[facts.outside] = OUTSIDE
+    label = label.astype(str)
+    survival = _survival(facts, L, label)
+    return Labelling(label=label, rank=rank, crossing_upper=upper, survival_lower=survival)

@@ -1,0 +1,407 @@
+"""The proof loop: a proven map of fates by adaptive refinement of dyadic cells.
+
+Each round computes, for the cells that are new, the flow over a horizon (the tube and
+the image box), then relabels every leaf by the fixpoints of :mod:`certify.labels`, and
+splits the undecided leaves. At the end of every round the labelling is complete and
+valid, so an interrupted run still leaves a proof.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import interval as iv
+from .cells import CellTree
+from .flow import flow_boxes, FlowResult
+from .labels import CellFacts, Labelling, label_cells, UNDECIDED
+from .taylor import flow_programs
+from .faces import analyse_faces, HARMLESS
+from .volumes import label_fractions
+
+__all__ = ["Method", "Budget", "Proof", "prove"]
+
+
+@dataclass(frozen=True)
+class Method:
+    """Numerical method settings (the certificate records them)."""
+
+    order: int = 4
+    min_horizon: float = 1.0
+    max_horizon: float = 20.0
+    step: float = 0.05
+    max_step: float = 0.25
+    min_step: float = 1e-6
+    max_steps: int = 400
+    start_depth: int = 3
+
+
+@dataclass(frozen=True)
+class Budget:
+    """When to stop refining."""
+
+    max_depth: int = 10
+    max_cells: int = 400_000
+    time_limit: float = 300.0
+
+
+METHOD_KEYS = {"order", "min_horizon", "max_horizon", "step", "max_step", "start_depth"}
+BUDGET_KEYS = {"max_depth", "max_cells", "time_limit"}
+
+
+@dataclass
+class _Snapshot:
+    n_nodes: int
+    first_child: np.ndarray
+    leaves: np.ndarray
+    labelling: Labelling
+    facts: CellFacts
+    round: int
+
+
+@dataclass
+class Proof:
+    """A proven map of fates.
+
+    Attributes
+    ----------
+    model : certify.model.Model
+    method : Method
+    budget : Budget
+    params : list of (float, float)
+        Float enclosures of the parameter boxes used.
+    tree : CellTree
+    leaves : ndarray of int
+        Node ids of the leaves, in certificate order.
+    labelling : Labelling
+    facts : CellFacts
+    faces : list of dict
+        Per window face: its kind (``limit``, ``inflow``, ``open``) and its cover.
+    flows : list of FlowResult
+    flow_ref : ndarray of int, shape (n_nodes, 2)
+        (flow batch, box in batch) per node, -1 where no flow was computed.
+    rounds : int
+    seconds : float
+    interrupted : bool
+    stop_reason : str
+    fractions : dict
+    fractions_exact : bool
+    """
+
+    model: object
+    method: Method
+    budget: Budget
+    params: list
+    tree: CellTree
+    leaves: np.ndarray
+    labelling: Labelling
+    facts: CellFacts
+    faces: list
+    flows: list
+    flow_ref: np.ndarray
+    successors: tuple
+    rounds: int
+    seconds: float
+    interrupted: bool
+    stop_reason: str
+    fractions: dict = field(default_factory=dict)
+    fractions_exact: bool = True
+
+    @property
+    def counts(self):
+        """Number of leaves per label."""
+        return {k: int(np.sum(self.labelling.label == k))
+                for k in ("safe", "doomed", "outside", "undecided")}
+
+    @property
+    def depth_reached(self):
+        """Largest depth among the leaves."""
+        return int(self.tree.depth[self.leaves].max())
+
+
+def _param_floats(model):
+    out = []
+    for p in model.parameters:
+        lo, _ = iv.enclose_fraction(p.lo)
+        _, hi = iv.enclose_fraction(p.hi)
+        out.append((lo, hi))
+    return out
+
+
+def _eval_limits(programs, lo, hi, params, rates=False):
+    prog = programs.limit_rates if rates else programs.limits
+    cols_lo = list(lo.T) + [np.full(len(lo), p[0]) for p in params]
+    cols_hi = list(hi.T) + [np.full(len(lo), p[1]) for p in params]
+    out = prog.interval_columns(cols_lo, cols_hi)
+    if not out:
+        return np.zeros((len(lo), 0)), np.zeros((len(lo), 0))
+    return np.stack([o[0] for o in out], -1), np.stack([o[1] for o in out], -1)
+
+
+class _Prover:
+    def __init__(self, model, method, budget, progress):
+        self.model = model
+        self.method = method
+        self.budget = budget
+        self.progress = progress
+        self.params = _param_floats(model)
+        self.programs = flow_programs(model, method.order)
+        self.limits_programs = self.programs
+        self.tree = CellTree(model.window)
+        self.n = self.tree.n
+        self.window_sides = self.tree.window_bounds()
+        self.faces = analyse_faces(self.programs, self.tree, self.params)
+        self.flows: list[FlowResult] = []
+        size = 1
+        self.flow_ref = np.full((size, 2), -1)
+        self.outside = np.zeros(size, bool)
+        self.flow_ok = np.zeros(size, bool)
+        self.kept = np.zeros(size, bool)
+        self.escapes = np.zeros(size, bool)
+        self.crossing = np.full(size, np.inf)
+        self.horizon_lo = np.zeros(size)
+        self.horizon_hi = np.zeros(size)
+        self.first_unkept = np.zeros(size)
+        self.image_lo = np.full((size, self.n), np.nan)
+        self.image_hi = np.full((size, self.n), np.nan)
+
+    def _grow(self):
+        extra = len(self.tree) - len(self.outside)
+        if extra <= 0:
+            return
+        self.flow_ref = np.concatenate([self.flow_ref, np.full((extra, 2), -1)])
+        self.outside = np.concatenate([self.outside, np.zeros(extra, bool)])
+        self.flow_ok = np.concatenate([self.flow_ok, np.zeros(extra, bool)])
+        self.kept = np.concatenate([self.kept, np.zeros(extra, bool)])
+        self.escapes = np.concatenate([self.escapes, np.zeros(extra, bool)])
+        self.crossing = np.concatenate([self.crossing, np.full(extra, np.inf)])
+        self.horizon_lo = np.concatenate([self.horizon_lo, np.zeros(extra)])
+        self.horizon_hi = np.concatenate([self.horizon_hi, np.zeros(extra)])
+        self.first_unkept = np.concatenate([self.first_unkept, np.zeros(extra)])
+        self.image_lo = np.concatenate([self.image_lo, np.full((extra, self.n), np.nan)])
+        self.image_hi = np.concatenate([self.image_hi, np.full((extra, self.n), np.nan)])
+
+    # -- per-cell analysis -------------------------------------------------------------
+    def analyse(self, nodes):
+        """Compute the facts of new leaves."""
+        self._grow()
+        lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
+        glo, ghi = _eval_limits(self.programs, lo, hi, self.params)
+        outside = np.any(ghi < 0, axis=1)
+        self.outside[nodes] = outside
+        self.first_unkept[nodes[outside]] = 0.0
+        todo = nodes[~outside]
+        if len(todo) == 0:
+            return
+        cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
+        width = np.max(cell_hi - cell_lo, axis=1)
+
+        def should_stop(ids, end_lo, end_hi, t_hi):
+            left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
+            _, gh = _eval_limits(self.programs, end_lo, end_hi, self.params)
+            crossed = np.any(gh < 0, axis=1)
+            too_wide = np.max(end_hi - end_lo, axis=1) > 16 * width[ids]
+            return left | crossed | too_wide
+
+        m = self.method
+        result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
+                            min_horizon=m.min_horizon, max_horizon=m.max_horizon,
+                            step=m.step, max_step=m.max_step, min_step=m.min_step,
+                            max_steps=m.max_steps, should_stop=should_stop)
+        batch = len(self.flows)
+        self.flows.append(result)
+        self.flow_ref[todo] = np.stack([np.full(len(todo), batch), np.arange(len(todo))], 1)
+        self._tube_facts(todo, result)
+
+    def _tube_facts(self, todo, result):
+        S = len(result.h)
+        box_of_step = np.repeat(np.arange(len(todo)), result.n_steps)
+        glo, _ = _eval_limits(self.programs, result.x_lo, result.x_hi, self.params)
+        rlo, rhi = _eval_limits(self.programs, result.e_lo, result.e_hi, self.params, rates=True)
+        h = result.h[:, None]
+        dlo = np.minimum(iv.mul(h, h, rlo, rlo)[0], 0.0)
+        lower, _ = iv.add(glo, glo, dlo, dlo)
+        kept_limit = (lower >= 0) | (rlo >= 0)
+        kept_step = np.all(kept_limit, axis=1) if S else np.zeros(0, bool)
+        t0_lo = result.t0_lo
+        unkept_time = np.where(kept_step, np.inf, t0_lo)
+        first_unkept = np.full(len(todo), np.inf)
+        np.minimum.at(first_unkept, box_of_step, unkept_time)
+        # rank-0 crossings: a step end box wholly violating one limit
+        _, ghi_end = _eval_limits(self.programs, result.end_lo, result.end_hi, self.params)
+        crossed = np.any(ghi_end < 0, axis=1) if S else np.zeros(0, bool)
+        _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
+        crossing = np.full(len(todo), np.inf)
+        np.minimum.at(crossing, box_of_step, np.where(crossed, t1_hi, np.inf))
+        ok = result.status >= 0
+        first_unkept = np.where(ok, first_unkept, np.minimum(first_unkept, result.t_lo))
+        image_lo, image_hi, escapes = self._clip(result.image_lo, result.image_hi, ok)
+        first_unkept = np.where(escapes, np.minimum(first_unkept, result.t_lo), first_unkept)
+        self.flow_ok[todo] = ok
+        self.kept[todo] = np.isinf(first_unkept)
+        self.escapes[todo] = escapes
+        self.crossing[todo] = crossing
+        self.horizon_lo[todo] = result.t_lo
+        self.horizon_hi[todo] = result.t_hi
+        self.first_unkept[todo] = first_unkept
+        self.image_lo[todo] = image_lo
+        self.image_hi[todo] = image_hi
+
+    def _clip(self, lo, hi, ok):
+        """Clip images at harmless faces; flag parts outside the window not known harmless."""
+        lo, hi = lo.copy(), hi.copy()
+        escapes = np.zeros(len(lo), bool)
+        lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
+        for face in self.faces:
+            k, side = face["axis"], face["side"]
+            if side == "lo":
+                pokes = ok & (lo[:, k] < lo_hi[k])
+            else:
+                pokes = ok & (hi[:, k] > hi_lo[k])
+            if not pokes.any():
+                continue
+            if face["kind"] in HARMLESS:
+                if side == "lo":
+                    lo[pokes, k] = np.maximum(lo[pokes, k], lo_lo[k])
+                else:
+                    hi[pokes, k] = np.minimum(hi[pokes, k], hi_hi[k])
+                continue
+            slo, shi = lo[pokes].copy(), hi[pokes].copy()
+            if side == "lo":
+                shi[:, k] = lo_hi[k]
+            else:
+                slo[:, k] = hi_lo[k]
+            _, gh = _eval_limits(self.programs, slo, shi, self.params)
+            harmless = np.any(gh < 0, axis=1)
+            idx = np.flatnonzero(pokes)
+            escapes[idx[~harmless]] = True
+            if side == "lo":
+                lo[idx, k] = np.maximum(lo[idx, k], lo_lo[k])
+            else:
+                hi[idx, k] = np.minimum(hi[idx, k], hi_hi[k])
+        return lo, hi, escapes
+
+    # -- labelling ---------------------------------------------------------------------
+    def label(self):
+        leaves = self.tree.leaves()
+        number = np.full(len(self.tree), -1)
+        number[leaves] = np.arange(len(leaves))
+        usable = self.flow_ok[leaves] & ~self.outside[leaves]
+        qlo, qhi = self.image_lo[leaves[usable]], self.image_hi[leaves[usable]]
+        nonempty = np.all(qlo <= qhi, axis=1)
+        query_nodes = np.flatnonzero(usable)[nonempty]
+        q, leaf = self.tree.leaves_meeting(qlo[nonempty], qhi[nonempty])
+        src = query_nodes[q]
+        dst = number[leaf]
+        facts = CellFacts(outside=self.outside[leaves], flow_ok=self.flow_ok[leaves],
+                          kept=self.kept[leaves], escapes=self.escapes[leaves],
+                          crossing=self.crossing[leaves], horizon_lo=self.horizon_lo[leaves],
+                          horizon_hi=self.horizon_hi[leaves],
+                          first_unkept=self.first_unkept[leaves], src=src, dst=dst)
+        return leaves, facts, label_cells(facts)
+
+
+def _settings(model, method, budget, overrides):
+    s = dict(model.settings)
+    m = {k: s[k] for k in METHOD_KEYS if k in s}
+    b = {k: s[k] for k in BUDGET_KEYS if k in s}
+    for k, v in overrides.items():
+        if v is None:
+            continue
+        if k in METHOD_KEYS:
+            m[k] = v
+        elif k in BUDGET_KEYS:
+            b[k] = v
+        else:
+            raise TypeError(f"prove() got an unexpected option {k!r}")
+    method = method or Method(**{k: type(getattr(Method, k))(v) for k, v in m.items()})
+    budget = budget or Budget(**{k: type(getattr(Budget, k))(v) for k, v in b.items()})
+    return method, budget
+
+
+def prove(model, *, method=None, budget=None, progress=None, **options):
+    """Prove a map of fates for a model.
+
+    Parameters
+    ----------
+    model : certify.model.Model
+    method : Method, optional
+        Defaults come from the model's ``[settings]``, then from :class:`Method`.
+    budget : Budget, optional
+        Same; or give ``max_depth``, ``max_cells``, ``time_limit`` as keywords.
+    progress : callable, optional
+        ``progress(round, n_leaves, decided_fraction, seconds)`` after every round.
+    **options
+        Method or budget fields by name.
+
+    Returns
+    -------
+    Proof
+        ``interrupted`` is True when a KeyboardInterrupt ended the run; the proof is then
+        the one of the last finished round.
+    """
+    method, budget = _settings(model, method, budget, options)
+    start = time.monotonic()
+    prover = _Prover(model, method, budget, progress)
+    tree = prover.tree
+    snapshot = None
+    interrupted = False
+    stop_reason = "nothing left undecided"
+    rounds = 0
+    try:
+        new = tree.split([0]) if method.start_depth > 0 else np.array([0])
+        for _ in range(1, method.start_depth):
+            new = tree.split(new)
+        while True:
+            prover.analyse(new)
+            leaves, facts, labelling = prover.label()
+            rounds += 1
+            snapshot = _Snapshot(len(tree), tree.first_child.copy(), leaves, labelling, facts,
+                                 rounds)
+            elapsed = time.monotonic() - start
+            if progress is not None:
+                undecided = labelling.label == UNDECIDED
+                frac = tree.volume_fraction(leaves[undecided]).sum()
+                progress(rounds, len(leaves), 1.0 - frac, elapsed)
+            und = leaves[labelling.label == UNDECIDED]
+            und = und[tree.depth[und] < budget.max_depth]
+            if len(und) == 0:
+                if np.any(labelling.label == UNDECIDED):
+                    stop_reason = f"maximum depth {budget.max_depth} reached"
+                break
+            if elapsed >= budget.time_limit:
+                stop_reason = f"time limit {budget.time_limit:g} s reached"
+                break
+            room = (budget.max_cells - len(leaves)) // (2 ** tree.n - 1)
+            if room <= 0:
+                stop_reason = f"cell limit {budget.max_cells} reached"
+                break
+            und = und[np.argsort(tree.depth[und], kind="stable")][:room]
+            new = tree.split(und)
+    except KeyboardInterrupt:
+        interrupted = True
+        stop_reason = "interrupted"
+        if snapshot is None:
+            raise
+        tree.first_child = snapshot.first_child
+        _truncate(tree, snapshot.n_nodes)
+    leaves, facts, labelling = snapshot.leaves, snapshot.facts, snapshot.labelling
+    proof = Proof(model=model, method=method, budget=budget, params=prover.params, tree=tree,
+                  leaves=leaves, labelling=labelling, facts=facts, faces=prover.faces,
+                  flows=prover.flows, flow_ref=prover.flow_ref[:len(tree)],
+                  successors=(facts.src, facts.dst), rounds=snapshot.round,
+                  seconds=time.monotonic() - start, interrupted=interrupted,
+                  stop_reason=stop_reason)
+    proof.fractions, proof.fractions_exact = label_fractions(proof)
+    return proof
+
+
+def _truncate(tree, n_nodes):
+    tree.depth = tree.depth[:n_nodes]
+    tree.index = tree.index[:n_nodes]
+    tree.first_child = tree.first_child[:n_nodes]
+    tree.lo = tree.lo[:n_nodes]
+    tree.hi = tree.hi[:n_nodes]

@@ -1,0 +1,80 @@
+"""Run summaries: the JSON summary of a proof and the console table for people."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["proof_summary", "summary_table", "SAFETY_NOTE"]
+
+SAFETY_NOTE = ("This certificate is a theorem about the model, not about the plant. Real "
+               "plants need validated models, margins, and review under the local codes "
+               "and licensed engineering practice that govern them.")
+
+LABELS = ("safe", "doomed", "outside", "undecided")
+
+
+def proof_summary(proof, certificate_path=None):
+    """The summary dictionary of a proof (scripts rely on its keys).
+
+    Parameters
+    ----------
+    proof : certify.prove.Proof
+    certificate_path : str, optional
+
+    Returns
+    -------
+    dict
+    """
+    model = proof.model
+    depth = proof.depth_reached
+    return {
+        "model": model.name,
+        "model_file": model.path,
+        "model_sha256": model.sha256,
+        "window": [[float(a), float(b)] for a, b in model.window],
+        "parameters": {p.name: [float(p.lo), float(p.hi)] for p in model.parameters},
+        "fractions": {k: float(proof.fractions[k]) for k in LABELS},
+        "fractions_exact": bool(proof.fractions_exact),
+        "cells": proof.counts,
+        "depth_reached": depth,
+        "finest_cells_per_side": [2 ** depth] * proof.tree.n,
+        "rounds": proof.rounds,
+        "stop_reason": proof.stop_reason,
+        "interrupted": proof.interrupted,
+        "faces": [{"state": model.states[f["axis"]].name, "side": f["side"],
+                   "kind": f["kind"]} for f in proof.faces],
+        "crossing_time_max": _finite_max(proof.labelling.crossing_upper),
+        "seconds": round(proof.seconds, 3),
+        "certificate": certificate_path,
+        "note": SAFETY_NOTE,
+    }
+
+
+def _finite_max(a):
+    a = np.asarray(a)
+    a = a[np.isfinite(a)]
+    return float(a.max()) if len(a) else None
+
+
+def summary_table(summary):
+    """A short human-readable table of a summary.
+
+    Returns
+    -------
+    str
+    """
+    lines = [f"model      {summary['model']}"]
+    lines.append(f"{'label':<10} {'cells':>8} {'window %':>10}")
+    for k in LABELS:
+        lines.append(f"{k:<10} {summary['cells'][k]:>8} {100 * summary['fractions'][k]:>10.3f}")
+    exact = "" if summary["fractions_exact"] else " (straddling cells split by estimate)"
+    lines.append(f"finest cell 1/{summary['finest_cells_per_side'][0]} of each side, "
+                 f"{summary['rounds']} rounds, {summary['seconds']:.1f} s{exact}")
+    lines.append(f"stopped:   {summary['stop_reason']}")
+    if summary.get("crossing_time_max") is not None:
+        lines.append(f"every doomed start crosses a limit within "
+                     f"{summary['crossing_time_max']:.4g} time units")
+    if summary.get("certificate"):
+        lines.append(f"certificate {summary['certificate']}")
+    lines.append(summary["note"])
+    return "\n".join(lines)

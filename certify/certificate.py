@@ -344,6 +344,7 @@ def certificate_data(proof, summary):
             "crossing_upper": encode_array(lab.crossing_upper),
             "survival_lower": encode_array(lab.survival_lower),
             "horizon": encode_array(np.stack([facts.horizon_lo, facts.horizon_hi], 1)),
+            "image_known": [bool(x) for x in facts.flow_ok],
             "successor_start": encode_array(succ_start, "<i8"),
             "successors": encode_array(dst, "<i8"),
             "set0_m": encode_array(set0_m),

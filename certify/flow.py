@@ -301,8 +301,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         Below this step size a box fails with ``NO_ENCLOSURE``.
     max_steps : int
     should_stop : callable, optional
-        ``should_stop(ids, end_lo, end_hi, t_hi) -> bool array`` for boxes past
-        `min_horizon`; ``ids`` are batch indices.
+        ``should_stop(ids, end_lo, end_hi, t_lo, t_hi) -> bool array`` for boxes past
+        `min_horizon`; ``ids`` are batch indices, ``t_lo, t_hi`` enclose the step end time.
 
     Returns
     -------
@@ -365,7 +365,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         if should_stop is not None and past_min.any():
             sel = np.flatnonzero(past_min & ~finish)
             if len(sel):
-                stop = np.asarray(should_stop(ids[sel], endlo[sel], endhi[sel], t1hi[sel]), bool)
+                stop = np.asarray(should_stop(ids[sel], endlo[sel], endhi[sel], t1lo[sel],
+                                              t1hi[sel]), bool)
                 status[ids[sel[stop]]] = STOPPED
                 finish[sel[stop]] = True
         image_lo[ids[finish]], image_hi[ids[finish]] = endlo[finish], endhi[finish]
@@ -381,6 +382,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         # never step past the largest horizon by much
         h = np.minimum(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
     status[ids] = STEP_LIMIT
+    # boxes that ran out of steps keep the image at the time they reached
+    image_lo[ids], image_hi[ids] = xlo, xhi
     return _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi,
                      m0, r0lo, r0hi)
 

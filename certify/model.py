@@ -82,6 +82,8 @@ SETTINGS = {
     "min_horizon": Setting("real", "shortest horizon of a cell, in model time units"),
     "max_horizon": Setting("real", "longest horizon of a cell, in model time units"),
     "step": Setting("real", "initial step size h, in model time units"),
+    "max_step": Setting("real", "largest step size h, in model time units"),
+    "start_depth": Setting("int", "bisection level of the first round of cells", 0, 12),
 }
 
 

@@ -22,7 +22,10 @@ from .taylor import flow_programs
 from .faces import analyse_faces, HARMLESS
 from .volumes import label_fractions
 
-__all__ = ["Method", "Budget", "Proof", "prove"]
+__all__ = ["Method", "Budget", "Proof", "prove", "GROWTH_LIMIT"]
+
+#: A flow stops once its end box is this many times wider than its cell along some axis.
+GROWTH_LIMIT = 4.0
 
 
 @dataclass(frozen=True)
@@ -197,18 +200,20 @@ class _Prover:
         if len(todo) == 0:
             return
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
-        width = np.max(cell_hi - cell_lo, axis=1)
+        widths = cell_hi - cell_lo
 
-        def should_stop(ids, end_lo, end_hi, t_hi):
+        min_horizon = self.method.min_horizon
+
+        def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
             left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
             _, gh = _eval_limits(self.programs, end_lo, end_hi, self.params)
             crossed = np.any(gh < 0, axis=1)
-            too_wide = np.max(end_hi - end_lo, axis=1) > 16 * width[ids]
-            return left | crossed | too_wide
+            too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
+            return (left & (t_lo >= min_horizon)) | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
-                            min_horizon=m.min_horizon, max_horizon=m.max_horizon,
+                            min_horizon=0.0, max_horizon=m.max_horizon,
                             step=m.step, max_step=m.max_step, min_step=m.min_step,
                             max_steps=m.max_steps, should_stop=should_stop)
         batch = len(self.flows)
@@ -236,9 +241,15 @@ class _Prover:
         _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
         crossing = np.full(len(todo), np.inf)
         np.minimum.at(crossing, box_of_step, np.where(crossed, t1_hi, np.inf))
-        ok = result.status >= 0
-        first_unkept = np.where(ok, first_unkept, np.minimum(first_unkept, result.t_lo))
-        image_lo, image_hi, escapes = self._clip(result.image_lo, result.image_hi, ok)
+        # a flow that failed after some steps still proves its last end box at the time
+        # reached: that box is the image, and the time reached the horizon
+        last = result.step_start + result.n_steps - 1
+        ok = result.n_steps > 0
+        raw_lo = np.where(ok[:, None], result.end_lo[np.maximum(last, 0)], np.nan) if S \
+            else result.image_lo
+        raw_hi = np.where(ok[:, None], result.end_hi[np.maximum(last, 0)], np.nan) if S \
+            else result.image_hi
+        image_lo, image_hi, escapes = self._clip(raw_lo, raw_hi, ok)
         first_unkept = np.where(escapes, np.minimum(first_unkept, result.t_lo), first_unkept)
         self.flow_ok[todo] = ok
         self.kept[todo] = np.isinf(first_unkept)
@@ -344,6 +355,11 @@ def prove(model, *, method=None, budget=None, progress=None, **options):
         the one of the last finished round.
     """
     method, budget = _settings(model, method, budget, options)
+    with np.errstate(all="ignore"):  # NaN marks unusable bounds; no warnings needed
+        return _prove(model, method, budget, progress)
+
+
+def _prove(model, method, budget, progress):
     start = time.monotonic()
     prover = _Prover(model, method, budget, progress)
     tree = prover.tree

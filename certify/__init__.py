@@ -4,15 +4,21 @@ This package namespace only re-exports the public entry points; see the modules
 for the details.
 """
 
+from certify.certificate import Certificate, read_certificate
 from certify.errors import CertificateError, CertifyError, ModelError, UsageError
 from certify.model import Model, load_model, parse_model
+from certify.prove import Proof, prove
 
 __all__ = [
+    "Certificate",
     "CertificateError",
     "CertifyError",
     "Model",
     "ModelError",
+    "Proof",
     "UsageError",
     "load_model",
     "parse_model",
+    "prove",
+    "read_certificate",
 ]

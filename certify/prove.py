@@ -22,7 +22,7 @@ from .taylor import flow_programs
 from .faces import analyse_faces, HARMLESS
 from .volumes import label_fractions
 
-__all__ = ["Method", "Budget", "Proof", "prove", "GROWTH_LIMIT"]
+__all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 
 #: A flow stops once its end box is this many times wider than its cell along some axis.
 GROWTH_LIMIT = 4.0
@@ -421,3 +421,35 @@ def _truncate(tree, n_nodes):
     tree.first_child = tree.first_child[:n_nodes]
     tree.lo = tree.lo[:n_nodes]
     tree.hi = tree.hi[:n_nodes]
+
+
+def write_proof(proof, out_dir, *, figures=True):
+    """Write ``certificate.json.gz``, ``summary.json`` and (optionally) the figures.
+
+    Parameters
+    ----------
+    proof : Proof
+    out_dir : str or Path
+    figures : bool
+
+    Returns
+    -------
+    dict
+        The summary.
+    """
+    import json
+    from pathlib import Path
+
+    from .certificate import certificate_data, write_certificate
+    from .report import proof_summary
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    cert_path = out / "certificate.json.gz"
+    summary = proof_summary(proof, str(cert_path))
+    write_certificate(cert_path, certificate_data(proof, summary))
+    (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+    if figures:
+        from .plots import save_figures
+        save_figures(proof, out)
+    return summary

@@ -70,11 +70,9 @@ def run_proof(model_path, args, default_out=None):
     """Load, prove, write outputs; shared by ``prove`` and ``demo``. Returns exit code."""
     from pathlib import Path
 
-    from certify.certificate import certificate_data, write_certificate
     from certify.model import load_model
-    from certify.plots import save_figures
-    from certify.prove import prove
-    from certify.report import proof_summary, summary_table
+    from certify.prove import prove, write_proof
+    from certify.report import summary_table
 
     _check_budget(args)
     model = load_model(model_path)
@@ -86,12 +84,7 @@ def run_proof(model_path, args, default_out=None):
                   time_limit=args.time_limit, progress=progress)
     if progress is not None:
         progress.close()
-    out.mkdir(parents=True, exist_ok=True)
-    cert_path = out / "certificate.json.gz"
-    summary = proof_summary(proof, str(cert_path))
-    write_certificate(cert_path, certificate_data(proof, summary))
-    (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
-    save_figures(proof, out)
+    summary = write_proof(proof, out)
     if args.json:
         print(json.dumps(summary, indent=2))
     elif not args.quiet:

@@ -206,10 +206,12 @@ class _Prover:
 
         def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
             left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
+            # an image inside its own cell closes a self-loop: longer flows add nothing
+            inside = np.all((end_lo >= cell_lo[ids]) & (end_hi <= cell_hi[ids]), axis=1)
             _, gh = _eval_limits(self.programs, end_lo, end_hi, self.params)
             crossed = np.any(gh < 0, axis=1)
             too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
-            return (left & (t_lo >= min_horizon)) | crossed | too_wide
+            return ((left | inside) & (t_lo >= min_horizon)) | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
@@ -333,7 +335,7 @@ def _settings(model, method, budget, overrides):
     return method, budget
 
 
-def prove(model, *, method=None, budget=None, progress=None, **options):
+def prove(model, *, method=None, budget=None, progress=None, focus=None, **options):
     """Prove a map of fates for a model.
 
     Parameters
@@ -345,6 +347,9 @@ def prove(model, *, method=None, budget=None, progress=None, **options):
         Same; or give ``max_depth``, ``max_cells``, ``time_limit`` as keywords.
     progress : callable, optional
         ``progress(round, n_leaves, decided_fraction, seconds)`` after every round.
+    focus : (ndarray, ndarray), optional
+        A box ``(lo, hi)``: only undecided cells meeting it, and the undecided cells
+        their images can reach, are refined (for claims about a region).
     **options
         Method or budget fields by name.
 
@@ -356,10 +361,29 @@ def prove(model, *, method=None, budget=None, progress=None, **options):
     """
     method, budget = _settings(model, method, budget, options)
     with np.errstate(all="ignore"):  # NaN marks unusable bounds; no warnings needed
-        return _prove(model, method, budget, progress)
+        return _prove(model, method, budget, progress, focus)
 
 
-def _prove(model, method, budget, progress):
+def _focused(tree, leaves, labelling, facts, focus):
+    """Undecided leaves that meet the focus box or are reachable from those that do."""
+    import scipy.sparse as sp
+    from scipy.sparse.csgraph import breadth_first_order
+
+    lo, hi = np.asarray(focus[0], float), np.asarray(focus[1], float)
+    und = labelling.label == UNDECIDED
+    meets = und & np.all((tree.lo[leaves] <= hi) & (tree.hi[leaves] >= lo), axis=1)
+    L = len(leaves)
+    keep = und[facts.src] & und[facts.dst]
+    rows = np.concatenate([facts.src[keep], np.full(meets.sum(), L)])
+    cols = np.concatenate([facts.dst[keep], np.flatnonzero(meets)])
+    g = sp.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(L + 1, L + 1))
+    reached = breadth_first_order(g, L, directed=True, return_predecessors=False)
+    mask = np.zeros(L + 1, bool)
+    mask[reached] = True
+    return leaves[mask[:L] & und]
+
+
+def _prove(model, method, budget, progress, focus):
     start = time.monotonic()
     prover = _Prover(model, method, budget, progress)
     tree = prover.tree
@@ -382,7 +406,10 @@ def _prove(model, method, budget, progress):
                 undecided = labelling.label == UNDECIDED
                 frac = tree.volume_fraction(leaves[undecided]).sum()
                 progress(rounds, len(leaves), 1.0 - frac, elapsed)
-            und = leaves[labelling.label == UNDECIDED]
+            if focus is None:
+                und = leaves[labelling.label == UNDECIDED]
+            else:
+                und = _focused(tree, leaves, labelling, facts, focus)
             und = und[tree.depth[und] < budget.max_depth]
             if len(und) == 0:
                 if np.any(labelling.label == UNDECIDED):

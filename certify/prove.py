@@ -252,6 +252,8 @@ class _Prover:
         raw_hi = np.where(ok[:, None], result.end_hi[np.maximum(last, 0)], np.nan) if S \
             else result.image_hi
         image_lo, image_hi, escapes = self._clip(raw_lo, raw_hi, ok)
+        # nothing is known after the time reached by a flow without an image
+        first_unkept = np.where(ok, first_unkept, np.minimum(first_unkept, result.t_lo))
         first_unkept = np.where(escapes, np.minimum(first_unkept, result.t_lo), first_unkept)
         self.flow_ok[todo] = ok
         self.kept[todo] = np.isinf(first_unkept)

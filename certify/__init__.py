@@ -8,6 +8,7 @@ from certify.certificate import Certificate, read_certificate
 from certify.errors import CertificateError, CertifyError, ModelError, UsageError
 from certify.model import Model, load_model, parse_model
 from certify.prove import Proof, prove
+from certify.sweep import SweepResult, sweep
 
 __all__ = [
     "Certificate",
@@ -16,9 +17,11 @@ __all__ = [
     "Model",
     "ModelError",
     "Proof",
+    "SweepResult",
     "UsageError",
     "load_model",
     "parse_model",
     "prove",
     "read_certificate",
+    "sweep",
 ]

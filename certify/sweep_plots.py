@@ -1,0 +1,136 @@
+"""Figures of a parameter sweep (matplotlib is imported inside the functions).
+
+One varied parameter: a band plot, per parameter box the band between the proven lower
+and upper bound of the safe fraction of the window. Two: heat maps of the lower and the
+upper bound side by side. Boxes proven to have no safe state are hatched in both.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from certify.plots import LABEL_COLOURS
+
+__all__ = ["plot_safe_band", "plot_safe_maps", "plot_sweep"]
+
+_NO_SAFE_COLOUR = "#b2182b"
+_NO_SAFE_LABEL = "proven: no safe state"
+
+
+def _box_edges(entries, name):
+    """Sorted distinct box edges of parameter ``name``."""
+    return np.unique([bound for e in entries for bound in e["params"][name]])
+
+
+def plot_safe_band(data, ax=None):
+    """Draw the safe-fraction bounds of a one-parameter sweep.
+
+    Parameters
+    ----------
+    data : dict
+        The content of ``sweep.json`` with one varied parameter.
+    ax : matplotlib.axes.Axes, optional
+        Drawn into a new figure when None.
+
+    Returns
+    -------
+    matplotlib.axes.Axes
+    """
+    import matplotlib.pyplot as plt
+    from matplotlib.patches import Patch
+
+    if ax is None:
+        _, ax = plt.subplots(figsize=(8, 4))
+    name = data["varied"][0]
+    for e in data["entries"]:
+        lo, hi = e["params"][name]
+        s_lo, s_hi = e["safe_bounds"]
+        ax.fill_between([lo, hi], [100 * s_lo] * 2, [100 * s_hi] * 2,
+                        color=LABEL_COLOURS["safe"], alpha=0.3, linewidth=0)
+        ax.hlines([100 * s_lo, 100 * s_hi], lo, hi, colors=LABEL_COLOURS["safe"], linewidth=1.5)
+        if e["no_safe_state"]:
+            ax.axvspan(lo, hi, facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",
+                       linewidth=0)
+    edges = _box_edges(data["entries"], name)
+    ax.set_xlim(edges[0], edges[-1])
+    ax.set_ylim(-2, 102)
+    ax.set_xlabel(f"parameter {name} (boxes)")
+    ax.set_ylabel("safe part of the window [%]")
+    ax.legend(handles=[Patch(facecolor=LABEL_COLOURS["safe"], alpha=0.3,
+                             edgecolor=LABEL_COLOURS["safe"],
+                             label="safe fraction: proven lower to upper bound"),
+                       Patch(facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",
+                             label=_NO_SAFE_LABEL)],
+              loc="lower left", fontsize=8)
+    ax.set_title(f"{data['model']}: safe fraction per box of {name}", fontsize=10)
+    return ax
+
+
+def plot_safe_maps(data, axes=None):
+    """Draw heat maps of the lower and upper safe-fraction bound of a two-parameter sweep.
+
+    Parameters
+    ----------
+    data : dict
+        The content of ``sweep.json`` with two varied parameters.
+    axes : sequence of two matplotlib.axes.Axes, optional
+        Drawn into a new figure when None.
+
+    Returns
+    -------
+    sequence of matplotlib.axes.Axes
+    """
+    import matplotlib.pyplot as plt
+    from matplotlib.patches import Patch, Rectangle
+
+    if axes is None:
+        _, axes = plt.subplots(1, 2, figsize=(11, 4.5), sharey=True)
+    first, second = data["varied"]
+    x_edges = _box_edges(data["entries"], first)
+    y_edges = _box_edges(data["entries"], second)
+    grids = np.full((2, len(y_edges) - 1, len(x_edges) - 1), np.nan)
+    for e in data["entries"]:
+        i, j = e["index"]
+        grids[:, j, i] = [100 * bound for bound in e["safe_bounds"]]
+    titles = ("proven safe fraction (lower bound)", "largest possible safe fraction (upper bound)")
+    for ax, grid, title in zip(axes, grids, titles):
+        mesh = ax.pcolormesh(x_edges, y_edges, grid, vmin=0, vmax=100, cmap="Blues",
+                             edgecolors="white", linewidth=0.3)
+        for e in data["entries"]:
+            if e["no_safe_state"]:
+                (xl, xh), (yl, yh) = e["params"][first], e["params"][second]
+                ax.add_patch(Rectangle((xl, yl), xh - xl, yh - yl, facecolor="none",
+                                       edgecolor=_NO_SAFE_COLOUR, hatch="///", linewidth=0))
+        ax.set_title(title, fontsize=10)
+        ax.set_xlabel(f"parameter {first}")
+    axes[0].set_ylabel(f"parameter {second}")
+    colorbar = axes[0].figure.colorbar(mesh, ax=list(axes), fraction=0.04)
+    colorbar.set_label("safe part of the window [%]")
+    axes[1].legend(handles=[Patch(facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",
+                                  label=_NO_SAFE_LABEL)], loc="upper right", fontsize=8)
+    return axes
+
+
+def plot_sweep(data, path):
+    """Write the figure of a sweep: a band plot (one parameter) or two heat maps (two).
+
+    Parameters
+    ----------
+    data : dict
+        The content of ``sweep.json``.
+    path : str or path-like
+        The PNG file to write.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    if len(data["varied"]) == 1:
+        ax = plot_safe_band(data)
+        fig = ax.figure
+    else:
+        fig = plot_safe_maps(data)[0].figure
+        fig.suptitle(f"{data['model']}: safe fraction per parameter box", fontsize=11)
+    fig.savefig(path, dpi=110, bbox_inches="tight")
+    plt.close(fig)

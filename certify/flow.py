@@ -212,6 +212,15 @@ def _apriori(programs, xlo, xhi, h, plo, phi, iterations=4):
         if ok.all():
             break
         elo, ehi = nlo, nhi
+    # tighten: E' = X + [0,h] f(E) is usually an a-priori box too, and a smaller one
+    flo, fhi = _eval(programs.field, out_lo, out_hi, plo, phi)
+    dlo, dhi = _time_box(hh, flo, fhi)
+    tlo, thi = iv.add(xlo, xhi, dlo, dhi)
+    flo, fhi = _eval(programs.field, tlo, thi, plo, phi)
+    dlo, dhi = _time_box(hh, flo, fhi)
+    nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
+    tight = ok & np.all((nlo >= tlo) & (nhi <= thi), axis=1)
+    out_lo[tight], out_hi[tight] = tlo[tight], thi[tight]
     return out_lo, out_hi, ok
 
 

@@ -39,6 +39,10 @@ def _draw_limits(ax, proof, i, j, fixed):
     params = np.array([0.5 * (p[0] + p[1]) for p in proof.params])
     inputs = np.concatenate([pts, np.tile(params, (len(pts), 1))], 1) if len(params) else pts
     g = flow_programs(model, 1).limits.point(inputs)
+    # points that violate a limit at t = 0 are outside whatever their cell's label
+    worst = np.min(g, axis=1).reshape(X.shape)
+    if np.nanmin(worst) < 0:
+        ax.contourf(X, Y, worst, levels=[-np.inf, 0], colors=[LABEL_COLOURS["outside"]])
     handles = []
     for k, c in enumerate(model.constraints):
         G = g[:, k].reshape(X.shape)

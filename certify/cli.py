@@ -102,6 +102,9 @@ def main(argv=None):
     except KeyboardInterrupt:
         print("certify: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into a reader that stopped (e.g. `| head`)
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":

@@ -12,6 +12,7 @@ import argparse
 import importlib
 import importlib.metadata
 import importlib.util
+import os
 import sys
 
 from certify.errors import CertifyError
@@ -103,7 +104,7 @@ def main(argv=None):
         print("certify: interrupted", file=sys.stderr)
         return 130
     except BrokenPipeError:  # output piped into a reader that stopped (e.g. `| head`)
-        sys.stderr.close()
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
 
 

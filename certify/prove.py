@@ -349,9 +349,12 @@ def prove(model, *, method=None, budget=None, progress=None, focus=None, **optio
         Same; or give ``max_depth``, ``max_cells``, ``time_limit`` as keywords.
     progress : callable, optional
         ``progress(round, n_leaves, decided_fraction, seconds)`` after every round.
-    focus : (ndarray, ndarray), optional
+    focus : (ndarray, ndarray) or callable, optional
         A box ``(lo, hi)``: only undecided cells meeting it, and the undecided cells
-        their images can reach, are refined (for claims about a region).
+        their images can reach, are refined (for claims about a region). A callable
+        ``focus(tree, leaves, labelling, facts) -> ndarray of int`` instead names the
+        leaves (node ids, any label) to split after each round; refinement stops when
+        it names none.
     **options
         Method or budget fields by name.
 
@@ -409,13 +412,17 @@ def _prove(model, method, budget, progress, focus):
                 frac = tree.volume_fraction(leaves[undecided]).sum()
                 progress(rounds, len(leaves), 1.0 - frac, elapsed)
             if focus is None:
-                und = leaves[labelling.label == UNDECIDED]
+                wanted = leaves[labelling.label == UNDECIDED]
+            elif callable(focus):
+                wanted = np.asarray(focus(tree, leaves, labelling, facts), int)
             else:
-                und = _focused(tree, leaves, labelling, facts, focus)
-            und = und[tree.depth[und] < budget.max_depth]
+                wanted = _focused(tree, leaves, labelling, facts, focus)
+            und = wanted[tree.depth[wanted] < budget.max_depth]
             if len(und) == 0:
-                if np.any(labelling.label == UNDECIDED):
+                if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"
+                elif focus is not None:
+                    stop_reason = "nothing left to refine for the focus"
                 break
             if elapsed >= budget.time_limit:
                 stop_reason = f"time limit {budget.time_limit:g} s reached"

@@ -144,7 +144,7 @@ class CellTree:
         """
         q = np.arange(len(qlo))
         node = np.zeros(len(qlo), int)
-        out_q, out_leaf = [], []
+        out_q, out_leaf = [np.zeros(0, int)], [np.zeros(0, int)]
         k = len(self._offsets)
         while len(q):
             meet = np.all((self.lo[node] <= qhi[q]) & (self.hi[node] >= qlo[q]), axis=1)

@@ -1,0 +1,99 @@
+"""``certify claim MODEL --region ... --expect ...``: prove or refute a claim about a region.
+
+Exit codes: 0 proven, 1 refuted, 2 usage or input error, 3 inconclusive.
+"""
+
+import json
+import sys
+from pathlib import Path
+
+from certify.commands.prove import parse_param
+from certify.errors import UsageError
+
+__all__ = ["HELP", "EXIT_CODES", "add_arguments", "run"]
+
+HELP = ("prove or refute a claim that every start in a region is safe, doomed, or stays "
+        "within the limits up to a time")
+
+EXIT_CODES = {"proven": 0, "refuted": 1, "inconclusive": 3}
+
+
+def add_arguments(parser):
+    """Add the options of ``certify claim`` to ``parser``."""
+    parser.add_argument("model", metavar="MODEL", help="model file (TOML)")
+    parser.add_argument("--region", required=True, metavar='"NAME=LO:HI, ..."',
+                        help="the starting states the claim is about; states not named span "
+                             "the window")
+    parser.add_argument("--expect", required=True, metavar="safe|doomed|stays",
+                        help="safe: stays within the limits forever; doomed: crosses a limit "
+                             "(by --until T if given); stays: within the limits on [0, T]")
+    parser.add_argument("--until", metavar="T",
+                        help="horizon of a doomed or stays claim (required for stays)")
+    parser.add_argument("--max-depth", type=int, metavar="D",
+                        help="deepest bisection level of a cell")
+    parser.add_argument("--time-limit", type=float, metavar="S",
+                        help="stop refining after S seconds")
+    parser.add_argument("--param", action="append", default=[], metavar="NAME=VALUE|NAME=LO:HI",
+                        help="override a parameter by a number or an interval (repeatable)")
+    parser.add_argument("--out", metavar="DIR",
+                        help="folder for the certificate and claim.json "
+                             "(default: proofs_out/<model file stem>-claim/)")
+    parser.add_argument("--json", action="store_true", help="print the verdict as JSON")
+
+
+def run(args):
+    """Judge the claim; return 0 proven, 1 refuted, 3 inconclusive."""
+    from certify.claim import check_claim, parse_region, write_claim
+    from certify.model import load_model
+
+    if args.max_depth is not None and not 0 <= args.max_depth <= 30:
+        raise UsageError("--max-depth must be between 0 and 30")
+    if args.time_limit is not None and not args.time_limit > 0:
+        raise UsageError("--time-limit must be a positive number of seconds")
+    region = parse_region(args.region)
+    model = load_model(args.model)
+    if args.param:
+        model = model.with_parameters(dict(parse_param(p) for p in args.param))
+    result = check_claim(model, region, args.expect, args.until, max_depth=args.max_depth,
+                         time_limit=args.time_limit)
+    out = Path(args.out or Path("proofs_out") / f"{Path(args.model).stem}-claim")
+    result = write_claim(result, out)
+    if args.json:
+        print(json.dumps(result.to_json(), indent=2))
+    else:
+        print(_text(result))
+    if result.proof.interrupted:
+        print("certify: interrupted; the verdict rests on the last finished round",
+              file=sys.stderr)
+    return EXIT_CODES[result.verdict]
+
+
+def _text(result):
+    region = ", ".join(f"{k}={float(lo):g}:{float(hi):g}" for k, (lo, hi) in result.region.items())
+    claim = result.expect + ("" if result.until is None else f" until {float(result.until):g}")
+    lines = [f"{result.verdict.upper()}  claim: every start in {region} is {claim}",
+             result.message]
+    c = result.counterexample
+    if c is not None:
+        lo, hi = c["crossing_time"]
+        lines.append("counterexample: " + ", ".join(
+            f"{name}={x!r}" for name, x in zip(result.region, c["point"])))
+        lines.append(f"  limit: {c['limit'] or 'not named'};  {_times(lo, hi)}")
+    if result.undecided_boxes:
+        lines.append(f"undecided parts of the region: {len(result.undecided_boxes)}, total "
+                     f"volume {result.undecided_volume:.6g}")
+        for box in result.undecided_boxes[:20]:
+            lines.append("  " + ", ".join(f"{k}=[{lo:.6g}, {hi:.6g}]"
+                                          for k, (lo, hi) in zip(result.region, box)))
+        if len(result.undecided_boxes) > 20:
+            lines.append(f"  ... ({len(result.undecided_boxes) - 20} more in claim.json)")
+    lines.append(f"certificate {result.certificate}")
+    return "\n".join(lines)
+
+
+def _times(lo, hi):
+    if lo is None:
+        return "proven to stay within the limits for all time"
+    if hi is None:
+        return f"proven within the limits up to t = {lo:.6g}"
+    return f"first crossing time in [{lo:.6g}, {hi:.6g}]"

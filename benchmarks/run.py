@@ -1,0 +1,21 @@
+"""Run every benchmark of certify and write its section of ``benchmarks/results.md``.
+
+``make bench`` calls this file. Each benchmark module has ``main(argv=None) -> int`` and
+writes (or replaces) its own section, keeping the others.
+"""
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import sweep_bench  # noqa: E402  (the folder above is not a package)
+
+
+def main():
+    """Run the benchmarks in turn; return the largest exit code."""
+    return max(bench.main([]) for bench in (sweep_bench,))
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -522,6 +522,7 @@ def _sweep_data(model, names, settings, entries):
         "model_file": model.path,
         "model_sha256": model.sha256,
         "varied": list(names),
+        "units": {p.name: p.unit for p in model.parameters if p.name in names},
         "settings": settings,
         "entries": list(entries),
         "note": SAFETY_NOTE,

@@ -22,6 +22,11 @@ def _box_edges(entries, name):
     return np.unique([bound for e in entries for bound in e["params"][name]])
 
 
+def _axis_label(data, name):
+    unit = data["units"].get(name)
+    return f"parameter {name} [{unit}]" if unit else f"parameter {name}"
+
+
 def plot_safe_band(data, ax=None):
     """Draw the safe-fraction bounds of a one-parameter sweep.
 
@@ -54,7 +59,7 @@ def plot_safe_band(data, ax=None):
     edges = _box_edges(data["entries"], name)
     ax.set_xlim(edges[0], edges[-1])
     ax.set_ylim(-2, 102)
-    ax.set_xlabel(f"parameter {name} (boxes)")
+    ax.set_xlabel(_axis_label(data, name))
     ax.set_ylabel("safe part of the window [%]")
     ax.legend(handles=[Patch(facecolor=LABEL_COLOURS["safe"], alpha=0.3,
                              edgecolor=LABEL_COLOURS["safe"],
@@ -102,8 +107,8 @@ def plot_safe_maps(data, axes=None):
                 ax.add_patch(Rectangle((xl, yl), xh - xl, yh - yl, facecolor="none",
                                        edgecolor=_NO_SAFE_COLOUR, hatch="///", linewidth=0))
         ax.set_title(title, fontsize=10)
-        ax.set_xlabel(f"parameter {first}")
-    axes[0].set_ylabel(f"parameter {second}")
+        ax.set_xlabel(_axis_label(data, first))
+    axes[0].set_ylabel(_axis_label(data, second))
     colorbar = axes[0].figure.colorbar(mesh, ax=list(axes), fraction=0.04)
     colorbar.set_label("safe part of the window [%]")
     axes[1].legend(handles=[Patch(facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",

@@ -211,6 +211,8 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
 
 
 def _check_vary(model, vary):
+    if not isinstance(vary, dict):
+        raise UsageError(f"vary must be a dict {{NAME: (lo, hi, n)}}, got {type(vary).__name__}")
     if not vary:
         raise UsageError("give at least one parameter to vary")
     if len(vary) > MAX_VARIED:

@@ -56,6 +56,8 @@ GRID = 5
 #: For claims with a horizon T, steps are at most T / STEPS_PER_HORIZON long: a survival
 #: time is proven to within about one step.
 STEPS_PER_HORIZON = 32
+#: Half-width of the box a point is flown in, as a share of the window side.
+POINT_SPREAD = 1e-6
 #: Largest number of points whose own flow is enclosed when the map is not enough.
 POINT_TRIES = 64
 
@@ -382,17 +384,25 @@ def _points_in(box):
 
 def _point_crossings(auditor, proof, points, horizon):
     """Enclose the flow of single points; for each, ``(limit index, time upper bound)``
-    of the first step end that wholly violates a limit, or None."""
+    of the first step end that wholly violates a limit, or None.
+
+    Each point is flown inside a tiny box around it (``POINT_SPREAD`` of the window
+    side): the step-size control aims at a remainder relative to the set's width, so a
+    box of zero width would crawl in tiny steps. The box contains the point, so its
+    crossing is the point's.
+    """
     from .flow import flow_boxes
 
     m = proof.method
+    spread = POINT_SPREAD * (proof.tree.hi[0] - proof.tree.lo[0])
+    lo, hi = points - spread, points + spread
     programs = flow_programs(proof.model, m.order)
 
     def crossed(ids, end_lo, end_hi, t_lo, t_hi):
         return np.any(auditor._limits(end_lo, end_hi)[1] < 0, axis=1)
 
     with np.errstate(all="ignore"):
-        result = flow_boxes(programs, points, points, proof.params, min_horizon=0.0,
+        result = flow_boxes(programs, lo, hi, proof.params, min_horizon=0.0,
                             max_horizon=float(horizon), step=m.step, max_step=m.max_step,
                             min_step=m.min_step, max_steps=m.max_steps, should_stop=crossed)
         _, ghi = auditor._limits(result.end_lo, result.end_hi)

@@ -1,0 +1,612 @@
+"""Tests of the proof loop (issue 4): every label and bound against something outside it.
+
+* Soundness against simulation: scipy's DOP853 (the method behind ``solve_ivp``) on
+  20,000 random starting points per model, with right-hand sides written out by hand
+  here in numpy (independent of the project's parser and compiler).
+* Exact boundaries and crossing times from closed forms (REFERENCES.md R1, R2, R4, R5).
+* Refinement monotonicity, bad input, the summary, interrupts.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib
+import json
+import math
+import tempfile
+from collections import Counter
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pytest
+from scipy.integrate import DOP853, solve_ivp
+
+from certify import ModelError, load_model, parse_model, prove, read_certificate
+from certify.cli import main
+
+prove_module = importlib.import_module("certify.prove")
+
+ROOT = Path(__file__).resolve().parent.parent
+DATA = Path(__file__).resolve().parent / "data"
+FERMENTER = ROOT / "models" / "fermenter.toml"
+SIR = DATA / "prove_sir_cap.toml"
+PENDULUM = DATA / "prove_damped_pendulum.toml"
+LOGISTIC = DATA / "prove_logistic_harvest.toml"
+OVERDAMPED = DATA / "prove_overdamped.toml"
+DECAY = DATA / "prove_decay.toml"
+BLOWUP = DATA / "prove_blowup.toml"
+NEVER = DATA / "prove_never_satisfiable.toml"
+
+DECIDED = ("safe", "doomed", "outside")
+N_POINTS = 20_000
+
+# -- tolerances of the simulation checks --------------------------------------------------
+# Every limit below has a margin g with |grad g| = 1 (a state minus a number), so a
+# margin error equals a state error.
+#
+# The bulk run integrates chunks of CHUNK points as one stacked system (rtol 1e-10,
+# atol 1e-12). scipy controls the RMS of the error over a chunk, so one trajectory may
+# carry up to sqrt(2 * CHUNK) ~ 45 times the tolerance per step; over the few hundred
+# steps of these non-chaotic 2D flows its margin error stays far below BAND. The bulk run
+# only selects suspects: every point it places within BAND of contradicting its label is
+# solved again on its own (rtol 1e-12, atol 1e-14), and only that solve can fail a test.
+# The single solves are sampled every GRID time units on their dense output; a dip of a
+# margin between samples is at most max|g''| GRID^2 / 8 < 1e-7 for these models, and the
+# solution error is below 1e-9, so a contradiction must exceed TOL = 1e-6 in the margin,
+# and TOL_T = 2 GRID in time (the first sample after a crossing can lag it by GRID).
+CHUNK = 1000
+BAND = 1e-4
+GRID = 1e-3
+TOL = 1e-6
+TOL_T = 2 * GRID
+
+
+# -- the models, written out by hand ------------------------------------------------------
+def fermenter_rhs(y):
+    """Andrews-inhibited chemostat of models/fermenter.toml, y = (s, x)."""
+    s, x = y
+    mu = 0.5 * s / (0.5 + s + s * s / 2.0)
+    return np.stack([0.2 * (10.0 - s) - mu * x / 0.5, (mu - 0.2) * x])
+
+
+def fermenter_margins(y):
+    s, x = y
+    return np.stack([x - 1.0, 9.0 - x, 9.0 - s])
+
+
+def sir_rhs(y):
+    """Kermack & McKendrick 1927 SIR with beta = 2, gamma = 1, y = (S, I)."""
+    S, I = y
+    return np.stack([-2.0 * S * I, 2.0 * S * I - I])
+
+
+def sir_margins(y):
+    return np.stack([0.1 - y[1]])
+
+
+def pendulum_rhs(y):
+    """Damped pendulum theta'' = -0.5 theta' - sin theta (REFERENCES.md R8)."""
+    theta, w = y
+    return np.stack([w, -0.5 * w - np.sin(theta)])
+
+
+def pendulum_margins(y):
+    theta, w = y
+    return np.stack([2.5 - theta, theta + 2.5, 3.5 - w, w + 3.5])
+
+
+@dataclass(frozen=True)
+class Case:
+    """A model file with its hand-written flow and limits for the simulation checks."""
+
+    path: Path
+    depth: int
+    rhs: Callable
+    margins: Callable
+    settle: float
+    expect: tuple
+
+
+CASES = {
+    # depth 8 is the first at which the fermenter proves safe cells
+    "fermenter": Case(FERMENTER, 8, fermenter_rhs, fermenter_margins, 100.0,
+                      ("safe", "doomed", "outside")),
+    # every SIR trajectory ends on the line I = 0 of equilibria, whose cells stay
+    # undecided (REFERENCES.md R5), so no SIR cell can be proven safe
+    "sir": Case(SIR, 7, sir_rhs, sir_margins, 100.0, ("doomed",)),
+    "pendulum": Case(PENDULUM, 7, pendulum_rhs, pendulum_margins, 40.0, ("safe", "doomed")),
+}
+
+
+# -- simulation ---------------------------------------------------------------------------
+def first_times_bulk(case, x0, t_end, thresholds):
+    """First sampled time at which the smallest margin drops below each threshold.
+
+    Parameters
+    ----------
+    case : Case
+    x0 : ndarray, shape (N, n)
+    t_end : float
+    thresholds : sequence of float
+
+    Returns
+    -------
+    ndarray, shape (len(thresholds), N)
+        ``inf`` where the margin stays at or above the threshold up to `t_end`.
+    """
+    out = np.full((len(thresholds), len(x0)), np.inf)
+    for start in range(0, len(x0), CHUNK):
+        part = x0[start:start + CHUNK]
+        out[:, start:start + CHUNK] = _first_times_chunk(case, part, t_end, thresholds)
+    return out
+
+
+def _first_times_chunk(case, x0, t_end, thresholds):
+    N, n = x0.shape
+    out = np.full((len(thresholds), N), np.inf)
+
+    def record(t, y):
+        g = case.margins(y.reshape(n, N, -1)).min(axis=0)
+        for i, c in enumerate(thresholds):
+            below = g < c
+            hit = below.any(axis=1) & np.isinf(out[i])
+            out[i, hit] = t[np.argmax(below[hit], axis=1)]
+
+    record(np.zeros(1), x0.T.reshape(-1, 1))
+    solver = DOP853(lambda t, y: case.rhs(y.reshape(n, N)).reshape(-1), 0.0,
+                    x0.T.reshape(-1), t_end, rtol=1e-10, atol=1e-12)
+    while solver.status == "running":
+        solver.step()
+        assert solver.status != "failed", solver.status
+        t = np.linspace(solver.t_old, solver.t, 9)[1:]
+        record(t, solver.dense_output()(t))
+    return out
+
+
+def first_times_single(case, x0, t_end, thresholds):
+    """The same for one point, by ``solve_ivp`` with tight tolerances, sampled every GRID."""
+    sol = solve_ivp(lambda t, y: case.rhs(y[:, None])[:, 0], (0.0, t_end), x0,
+                    method="DOP853", rtol=1e-12, atol=1e-14, dense_output=True)
+    assert sol.success, sol.message
+    t = np.linspace(0.0, t_end, int(math.ceil(t_end / GRID)) + 1)
+    g = case.margins(sol.sol(t)).min(axis=0)
+    out = []
+    for c in thresholds:
+        below = np.flatnonzero(g < c)
+        out.append(t[below[0]] if len(below) else np.inf)
+    return out
+
+
+def contradictions(case, points, labels, lower, upper):
+    """Points whose simulated trajectory contradicts their label or their time bounds.
+
+    Returns
+    -------
+    list of str
+        One line per contradiction (a reproducer).
+    """
+    finite_upper = upper[np.isfinite(upper)]
+    t_end = max(case.settle, (finite_upper.max() if len(finite_upper) else 0.0) + 1.0)
+    clearly, nearly = first_times_bulk(case, points, t_end, [-BAND, BAND])
+    safe, doomed = labels == "safe", labels == "doomed"
+    suspects = ((safe & np.isfinite(nearly))          # comes near a limit
+                | (doomed & ~(clearly <= upper))     # not clearly across by its bound
+                | (~safe & (nearly < lower)))        # near a limit before its survival bound
+    found = []
+    for i in np.flatnonzero(suspects):
+        below, at = first_times_single(case, points[i], t_end, [-TOL, TOL])
+        where = f"start {points[i].tolist()} labelled {labels[i]} with [{lower[i]}, {upper[i]}]"
+        if safe[i] and np.isfinite(below):
+            found.append(f"{where}: crosses a limit at t = {below}")
+        if doomed[i] and not at <= upper[i] + TOL_T:
+            found.append(f"{where}: has not crossed by its upper bound (first at {at})")
+        if not safe[i] and below < lower[i] - TOL_T:
+            found.append(f"{where}: crosses at t = {below}, before its lower bound")
+    return found
+
+
+# -- proofs shared by several tests -------------------------------------------------------
+@dataclass
+class Run:
+    """A proof, its summary and its certificate read back from disk."""
+
+    model: object
+    proof: object
+    summary: dict
+    cert: object
+
+
+@pytest.fixture(scope="module")
+def certified(tmp_path_factory):
+    """``certified(path, depth, **options)`` proves once per arguments and caches."""
+    cache = {}
+
+    def get(path, depth, **options):
+        key = (str(path), depth, tuple(sorted(options.items())))
+        if key not in cache:
+            model = load_model(path)
+            proof = prove(model, max_depth=depth, **options)
+            out = tmp_path_factory.mktemp(f"{Path(path).stem}-{depth}")
+            summary = prove_module.write_proof(proof, out, figures=False)
+            cache[key] = Run(model, proof, summary, read_certificate(out / "certificate.json.gz"))
+        return cache[key]
+
+    return get
+
+
+def random_points(model, count, generator):
+    """Uniform random points in the window of `model`."""
+    lo = np.array([float(a) for a, _ in model.window])
+    hi = np.array([float(b) for _, b in model.window])
+    return generator.uniform(lo, hi, (count, len(lo)))
+
+
+def cell_points(cert, generator, per_cell=4):
+    """Corners, centre and random points of every cell, clipped to the window.
+
+    Returns
+    -------
+    points : ndarray, shape (M, n)
+    cell : ndarray of int, shape (M,)
+        The cell each point was taken from.
+    """
+    lo, hi = cert.lo, cert.hi
+    L, n = lo.shape
+    corners = np.array(np.meshgrid(*[[0.0, 1.0]] * n, indexing="ij")).reshape(n, -1).T
+    fractions = np.concatenate([corners, np.full((1, n), 0.5),
+                                generator.uniform(0, 1, (per_cell, n))])
+    points = lo[:, None, :] + fractions[None] * (hi - lo)[:, None, :]
+    wlo = np.array([float(a) for a, _ in cert.model.window])
+    whi = np.array([float(b) for _, b in cert.model.window])
+    points = np.clip(points, wlo, whi).reshape(-1, n)
+    return points, np.repeat(np.arange(L), len(fractions))
+
+
+# -- soundness against simulation ---------------------------------------------------------
+@pytest.mark.parametrize("name", list(CASES))
+def test_labels_agree_with_simulation(name, certified):
+    # scipy DOP853 on 20,000 random starts; tolerances as explained at the top of the file
+    case = CASES[name]
+    run = certified(case.path, case.depth)
+    points = random_points(run.model, N_POINTS, np.random.default_rng(4))
+    labels = run.cert.label_at(points)
+    lower, upper = run.cert.crossing_time_bounds(points)
+    counts = Counter(labels)
+    for label in case.expect:
+        assert counts[label] > 0, counts  # the check is not vacuous
+    # outside: a limit is violated at t = 0 (exact sign: a float difference of two
+    # floats has the sign of the exact difference)
+    g0 = case.margins(points.T).min(axis=0)
+    assert np.all(g0[labels == "outside"] < 0)
+    assert np.all(lower[labels == "outside"] == 0)
+    # safe and doomed points satisfy the limits at t = 0
+    assert np.all(g0[(labels == "safe") | (labels == "doomed")] >= 0)
+    # safe: no proven crossing; doomed: a finite upper bound above the lower bound
+    assert np.all(np.isinf(lower[labels == "safe"]) & np.isinf(upper[labels == "safe"]))
+    doomed = labels == "doomed"
+    assert np.all(np.isfinite(upper[doomed]) & (lower[doomed] <= upper[doomed]))
+    found = contradictions(case, points, labels, lower, upper)
+    assert not found, "\n".join(found[:10])
+
+
+# -- exact boundaries ---------------------------------------------------------------------
+def sir_peak(S0, I0, rho=0.5):
+    """Largest infected fraction of the trajectory from (S0, I0).
+
+    Kermack & McKendrick 1927: S + I - rho ln S is conserved; I peaks where S = rho if
+    S0 > rho (Hethcote 2000 (mem)), else I only falls. I0 = 0 is an equilibrium.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        over = S0 + I0 - rho * (1.0 + np.log(S0 / rho))
+    return np.where((S0 <= rho) | (I0 == 0), I0, over)
+
+
+def test_sir_peak_formula_reference_values():
+    # REFERENCES.md R5 (Kermack & McKendrick 1927): I*(0.6), I*(0.7), I*(0.8) put the
+    # peak exactly at the cap 0.1, and I* = 0 at S0 = 0.8861249148046152
+    for S0, I0 in [(0.6, 0.09116077839698), (0.7, 0.06823611831061),
+                   (0.8, 0.03500181462287), (0.8861249148046152, 1e-300)]:
+        assert sir_peak(np.array(S0), np.array(I0)) == pytest.approx(0.1, abs=1e-13)
+
+
+# Cell boxes are float enclosures (one ulp outward) and the closed forms are evaluated
+# in double precision, both far below this tolerance on the quantities compared.
+EXACT_TOL = 1e-12
+
+
+def test_sir_cells_respect_the_exact_peak(certified):
+    # Kermack & McKendrick 1927: safe iff the peak of I stays <= 0.1
+    run = certified(SIR, CASES["sir"].depth)
+    points, cell = cell_points(run.cert, np.random.default_rng(5))
+    peak = sir_peak(points[:, 0], points[:, 1])
+    labels = run.cert.labels[cell]
+    assert Counter(run.cert.labels)["doomed"] > 0
+    assert not np.any((labels == "safe") & (peak > 0.1 + EXACT_TOL))
+    bad = (labels == "doomed") & (peak <= 0.1 - EXACT_TOL)
+    assert not bad.any(), points[bad][:5]
+    # the same at random points through label_at
+    points = random_points(run.model, N_POINTS, np.random.default_rng(6))
+    labels = run.cert.label_at(points)
+    peak = sir_peak(points[:, 0], points[:, 1])
+    assert not np.any((labels == "safe") & (peak > 0.1))
+    assert not np.any((labels == "doomed") & (peak <= 0.1))
+
+
+def overdamped_sup(p, q):
+    """Supremum over t >= 0 of x1(t) = (2p+q) u - (p+q) u^2, u = e^-t (exact, R4)."""
+    a, b = 2 * p + q, p + q
+    with np.errstate(divide="ignore", invalid="ignore"):
+        u = a / (2 * b)
+        inner = np.where((b > 0) & (u > 0) & (u < 1), a * a / (4 * b), -np.inf)
+    return np.maximum(np.maximum(p, 0.0), inner)
+
+
+def overdamped_crossing(p, q):
+    """First t with x1(t) = 1: t = -ln u, u the largest root <= 1 (exact, R4)."""
+    a, b = 2 * p + q, p + q
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return -np.log((a + np.sqrt(a * a - 4 * b)) / (2 * b))
+
+
+def test_overdamped_reference_values():
+    # REFERENCES.md R4 (exact): q*(0) = 4 is the boundary; T(0, 5) and T(-1, 8)
+    assert overdamped_sup(0.0, 4.0) == pytest.approx(1.0, abs=1e-15)
+    assert overdamped_sup(-1.0, 6.828427124746190) == pytest.approx(1.0, abs=1e-14)
+    assert overdamped_crossing(0.0, 5.0) == pytest.approx(0.3235071311574468, abs=1e-14)
+    assert overdamped_crossing(-1.0, 8.0) == pytest.approx(0.46108045943398307, abs=1e-14)
+
+
+def test_overdamped_cells_respect_the_exact_boundary_and_times(certified):
+    # exact (R4): safe iff sup x1 <= 1; doomed starts cross at -ln u within the bounds
+    run = certified(OVERDAMPED, 7)
+    counts = Counter(run.cert.labels)
+    assert counts["safe"] > 0 and counts["doomed"] > 0
+    points, cell = cell_points(run.cert, np.random.default_rng(7))
+    points = np.concatenate([points, random_points(run.model, N_POINTS, np.random.default_rng(8))])
+    sup = overdamped_sup(points[:, 0], points[:, 1])
+    labels = np.concatenate([run.cert.labels[cell], run.cert.label_at(points[len(cell):])])
+    assert not np.any((labels == "safe") & (sup > 1 + EXACT_TOL))
+    assert not np.any((labels == "doomed") & (sup <= 1 - EXACT_TOL))
+    lower, upper = run.cert.crossing_time_bounds(points)
+    doomed = (labels == "doomed") & (sup > 1 + EXACT_TOL)
+    T = overdamped_crossing(points[doomed, 0], points[doomed, 1])
+    assert np.all((lower[doomed] <= T + EXACT_TOL) & (T <= upper[doomed] + EXACT_TOL))
+    # every survival bound is below the exact crossing time (inf when never crossing)
+    T_all = np.where(sup > 1, overdamped_crossing(points[:, 0], points[:, 1]), np.inf)
+    assert np.all(lower <= T_all + EXACT_TOL)
+
+
+def logistic_crossing(x0):
+    """R2a (exact, partial fractions): T = (5/3) ln[(0.8 - x0) / (7 (0.2 - x0))]."""
+    return 5.0 / 3.0 * np.log((0.8 - x0) / (7.0 * (0.2 - x0)))
+
+
+def test_logistic_harvest_exact_boundary_and_times(certified):
+    # exact (R2a, Clark 1976 (mem)): safe = [0.2, 1.2], doomed = [0.1, 0.2)
+    assert logistic_crossing(0.15) == pytest.approx(1.0317320140103714, abs=1e-14)
+    run = certified(LOGISTIC, 10)
+    points, cell = cell_points(run.cert, np.random.default_rng(9))
+    x0 = points[:, 0]
+    labels = run.cert.labels[cell]
+    assert Counter(run.cert.labels)["safe"] > 0 and Counter(run.cert.labels)["doomed"] > 0
+    assert not np.any((labels == "safe") & (x0 < 0.2 - EXACT_TOL))
+    assert not np.any((labels == "doomed") & (x0 >= 0.2 + EXACT_TOL))
+    lower, upper = run.cert.crossing_time_bounds(points)
+    doomed = (run.cert.label_at(points) == "doomed") & (x0 < 0.2)
+    T = logistic_crossing(x0[doomed])
+    assert np.all((lower[doomed] <= T) & (T <= upper[doomed]))
+
+
+# -- exact crossing times -----------------------------------------------------------------
+@pytest.mark.parametrize("window,options", [
+    # R1 as listed: the window side x = 1 is neither a limit nor a side where the flow
+    # points inward, so each cell's flow must reach x = 0.5 within one horizon
+    # (T(4) = 4.16 < 5)
+    ("[1, 4]", {"min_horizon": 5.0}),
+    # a window reaching below the limit: its lower side is a limit, and the doomed
+    # proofs chain cells (ranks above 0)
+    ("[0.25, 4]", {}),
+])
+def test_exponential_decay_crossing_times(window, options):
+    # exact (R1): x' = -x/2 reaches 0.5 at T = ln(x0/0.5)/0.5 = 2 ln(2 x0)
+    model = parse_model(DECAY.read_text().replace("x = [1, 4]", f"x = {window}"))
+    proof = prove(model, max_depth=6, **options)
+    assert proof.counts["undecided"] == 0 and proof.counts["safe"] == 0
+    lo = float(model.window[0][0])
+    x0 = np.concatenate([np.linspace(lo, 4.0, 2001), np.random.default_rng(10).uniform(lo, 4, 2000)])
+    x0 = x0[x0 >= 0.5]
+    assert 2 * math.log(2 * 4.0) == pytest.approx(4.158883083359672, abs=1e-14)  # R1 T(4)
+    T = 2 * np.log(2 * x0)
+    cert = _certificate_of(proof)
+    labels = cert.label_at(x0[:, None])
+    assert np.all(labels == "doomed")
+    lower, upper = cert.crossing_time_bounds(x0[:, None])
+    assert np.all((lower <= T) & (T <= upper)), x0[(lower > T) | (T > upper)][:5]
+
+
+def _certificate_of(proof):
+    """Write a proof to a temporary folder and read its certificate back."""
+    with tempfile.TemporaryDirectory() as tmp:
+        prove_module.write_proof(proof, tmp, figures=False)
+        return read_certificate(Path(tmp) / "certificate.json.gz")
+
+
+# -- refinement monotonicity --------------------------------------------------------------
+@pytest.mark.parametrize("path,shallow,deep", [
+    (FERMENTER, 6, 8), (PENDULUM, 5, 7), (OVERDAMPED, 5, 7),
+])
+def test_deeper_run_never_relabels_decided_points(path, shallow, deep, certified):
+    # DESIGN.md section 5: decided cells are never split or relabelled
+    a, b = certified(path, shallow), certified(path, deep)
+    points = random_points(a.model, N_POINTS, np.random.default_rng(11))
+    la, lb = a.cert.label_at(points), b.cert.label_at(points)
+    both = np.isin(la, DECIDED) & np.isin(lb, DECIDED)
+    assert both.sum() > N_POINTS // 4
+    assert np.array_equal(la[both], lb[both]), Counter(zip(la[both & (la != lb)], lb[both & (la != lb)]))
+    # the deeper run decides at least as much of the window
+    assert b.summary["fractions"]["undecided"] <= a.summary["fractions"]["undecided"]
+
+
+# -- bad input ----------------------------------------------------------------------------
+@pytest.mark.parametrize("window,cap", [("[1, 2]", "10"), ("[1, 2]", "1e6"), ("[1, 12]", "10")])
+def test_blow_up_inside_the_window(window, cap):
+    # x' = x^2 from x0 escapes to infinity at t = 1/x0 (exact) and reaches the cap at
+    # T = 1/x0 - 1/cap. Flows that cannot be enclosed up to the cap leave their cells
+    # undecided; doomed cells must bracket T. With the window [1, 12] its upper side
+    # lies beyond the cap, so images leaving through it have crossed.
+    text = BLOWUP.read_text().replace("x <= 10", f"x <= {cap}")
+    model = parse_model(text.replace("x = [1, 2]", f"x = {window}"))
+    proof = prove(model, max_depth=6)
+    assert set(proof.labelling.label) <= {"doomed", "undecided", "outside"}
+    x0 = np.linspace(1.0, float(model.window[0][1]), 1001)
+    T = np.maximum(1.0 / x0 - 1.0 / float(cap), 0.0)  # 0 above the cap
+    cert = _certificate_of(proof)
+    labels = cert.label_at(x0[:, None])
+    lower, upper = cert.crossing_time_bounds(x0[:, None])
+    assert np.all((labels == "outside") == (x0 > float(cap)))
+    assert np.all(lower <= T)
+    doomed = labels == "doomed"
+    assert np.all(T[doomed] <= upper[doomed])
+    if window == "[1, 12]":
+        assert np.all(doomed | (x0 > float(cap)))
+
+
+def test_limits_that_never_hold_make_everything_outside():
+    # x >= 3 and x <= 1 together hold nowhere (exact)
+    model = load_model(NEVER)
+    proof = prove(model, max_depth=4)
+    assert set(proof.labelling.label) == {"outside"}
+    assert proof.fractions["outside"] == 1.0
+    cert = _certificate_of(proof)
+    x0 = np.linspace(0.0, 4.0, 101)[:, None]
+    assert np.all(cert.label_at(x0) == "outside")
+    lower, upper = cert.crossing_time_bounds(x0)
+    assert np.all(lower == 0) and np.all(upper == 0)
+
+
+def test_window_of_zero_width_is_a_model_error(tmp_path):
+    text = PENDULUM.read_text().replace("range = [-2.5, 2.5]", "range = [1, 1]")
+    with pytest.raises(ModelError, match=r"\[states\] theta: the range \[1, 1\] is empty"):
+        parse_model(text, path="zero.toml")
+    path = tmp_path / "zero.toml"
+    path.write_text(text)
+    with pytest.raises(ModelError, match="zero.toml"):
+        load_model(path)
+
+
+def _one_error_line(capsys):
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("certify: error: "), err
+    return err[0]
+
+
+def test_cli_prove_missing_file(tmp_path, capsys):
+    path = tmp_path / "missing.toml"
+    assert main(["prove", str(path), "--out", str(tmp_path / "out"), "--quiet"]) == 2
+    assert "missing.toml: no such file" in _one_error_line(capsys)
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("param,message", [
+    ("zz=1", "unknown parameter 'zz'"),
+    ("c=2:1", "LO is above HI"),
+    ("c=x", "is not a number"),
+])
+def test_cli_prove_bad_param(param, message, tmp_path, capsys):
+    code = main(["prove", str(PENDULUM), "--param", param, "--out", str(tmp_path), "--quiet"])
+    assert code == 2
+    assert message in _one_error_line(capsys)
+
+
+# -- the summary --------------------------------------------------------------------------
+SUMMARY_KEYS = {"model", "model_sha256", "window", "fractions", "cells", "depth_reached",
+                "finest_cells_per_side", "seconds", "certificate"}
+
+
+def test_cli_prove_json_summary(tmp_path, capsys):
+    out = tmp_path / "proof"
+    assert main(["prove", str(PENDULUM), "--max-depth", "5", "--out", str(out), "--json"]) == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary == json.loads((out / "summary.json").read_text())
+    assert SUMMARY_KEYS <= set(summary)
+    assert summary["model"] == "Damped pendulum with an angle limit"
+    assert summary["model_sha256"] == hashlib.sha256(PENDULUM.read_bytes()).hexdigest()
+    assert summary["window"] == [[-2.5, 2.5], [-3.5, 3.5]]
+    assert set(summary["fractions"]) == {"safe", "doomed", "outside", "undecided"}
+    assert abs(sum(summary["fractions"].values()) - 1.0) <= 1e-12
+    assert all(0 <= f <= 1 for f in summary["fractions"].values())
+    assert Path(summary["certificate"]) == out / "certificate.json.gz"
+    assert (out / "map.png").stat().st_size > 0
+    cert = read_certificate(summary["certificate"])
+    assert summary["cells"] == {k: int(np.sum(cert.labels == k)) for k in summary["fractions"]}
+    # finest_cells_per_side[k] = window side / smallest cell side along k (exact dyadics)
+    sides = np.array([hi - lo for lo, hi in summary["window"]])
+    smallest = (cert.hi - cert.lo).min(axis=0)
+    assert summary["finest_cells_per_side"] == [int(round(s)) for s in sides / smallest]
+    assert summary["finest_cells_per_side"] == [2 ** summary["depth_reached"]] * 2
+    assert summary["depth_reached"] == 5
+
+
+def test_fractions_split_straddling_cells_exactly(certified):
+    # The fermenter's limits are linear in one state each: the part of a cell inside
+    # K = {x >= 1, x <= 9, s <= 9} is a box, so each label's volume is exact.
+    run = certified(FERMENTER, 6)
+    cert, summary = run.cert, run.summary
+    lo = np.maximum(cert.lo, [-np.inf, 1.0])
+    hi = np.minimum(cert.hi, [9.0, 9.0])
+    inside = np.prod(np.clip(hi - lo, 0, None), axis=1) / 120.0
+    expected = {k: float(inside[cert.labels == k].sum()) for k in ("safe", "doomed", "undecided")}
+    expected["outside"] = 1.0 - sum(expected.values())
+    assert summary["fractions_exact"] is True
+    assert abs(sum(summary["fractions"].values()) - 1.0) <= 1e-12
+    for k, v in expected.items():
+        assert summary["fractions"][k] == pytest.approx(v, abs=1e-12), k
+    # the limits cut cells here, and straddling cells are not all outside
+    straddling = (cert.lo[:, 1] < 1.0) & (cert.hi[:, 1] > 1.0)
+    assert straddling.any() and np.any(cert.labels[straddling] != "outside")
+
+
+# -- interrupts ---------------------------------------------------------------------------
+@pytest.fixture
+def interrupt_second_round(monkeypatch):
+    """Make the prover raise KeyboardInterrupt when it analyses its second batch of cells."""
+    calls = []
+    original = prove_module._Prover.analyse
+
+    def analyse(self, nodes):
+        calls.append(len(nodes))
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return original(self, nodes)
+
+    monkeypatch.setattr(prove_module._Prover, "analyse", analyse)
+    return calls
+
+
+def test_interrupt_keeps_the_first_round(interrupt_second_round, tmp_path, capsys):
+    model = load_model(PENDULUM)
+    start_depth = prove_module.Method().start_depth
+    interrupted = prove(model, max_depth=7)
+    assert len(interrupt_second_round) == 2
+    assert interrupted.interrupted and interrupted.rounds == 1
+    assert interrupted.stop_reason == "interrupted"
+    # the proof of the first round alone: all leaves at the start depth, one analysis
+    interrupt_second_round.clear()
+    first = prove(model, max_depth=start_depth)
+    assert not first.interrupted and len(interrupt_second_round) == 1
+    np.testing.assert_array_equal(interrupted.leaves, first.leaves)
+    np.testing.assert_array_equal(interrupted.labelling.label, first.labelling.label)
+    np.testing.assert_array_equal(interrupted.labelling.crossing_upper,
+                                  first.labelling.crossing_upper)
+    assert interrupted.fractions == first.fractions
+    # the command line writes the certificate of that round and exits with 130
+    interrupt_second_round.clear()
+    out = tmp_path / "proof"
+    assert main(["prove", str(PENDULUM), "--max-depth", "7", "--out", str(out), "--quiet"]) == 130
+    assert "interrupted" in capsys.readouterr().err
+    cert = read_certificate(out / "certificate.json.gz")
+    np.testing.assert_array_equal(cert.labels, first.labelling.label)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["interrupted"] is True and summary["depth_reached"] == start_depth

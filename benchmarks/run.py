@@ -9,12 +9,13 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import sweep_bench  # noqa: E402  (the folder above is not a package)
+import prove_bench  # noqa: E402  (the folder above is not a package)
+import sweep_bench  # noqa: E402
 
 
 def main():
     """Run the benchmarks in turn; return the largest exit code."""
-    return max(bench.main([]) for bench in (sweep_bench,))
+    return max(bench.main([]) for bench in (sweep_bench, prove_bench))
 
 
 if __name__ == "__main__":

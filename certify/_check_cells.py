@@ -1,0 +1,449 @@
+"""What the checker recomputes per cell: its tube, image, and the facts its label needs.
+
+Everything runs vectorized over a chunk of cells, step by step, in one of the two
+arithmetics of :mod:`certify._check_arith`. For step ``k`` of a cell (stored: step size
+``h``, a-priori box ``E``, and the coordinates ``m``, ``A`` of the set at the step end):
+
+* Picard: ``X_k + [0, h] f(E) ⊆ E``, so every solution from ``X_k`` stays in ``E`` on
+  ``[0, h]``;
+* mean-value Taylor step: ``Y = T(m_k) + h^q f^[q](E)``, ``M = DT(J) A_k`` with
+  ``J = hull(X_k, m_k)``; the checker's own new coordinates
+  ``r_{k+1} = B (Y - m_{k+1}) + (B M) r_k`` with ``B`` enclosing ``A_{k+1}^-1``, and
+  ``X_{k+1} = hull(m_{k+1} + A_{k+1} r_{k+1}) ∩ (Y + M r_k)``;
+* a limit ``g`` is kept on the step when ``g(X_k) + [0, h] (grad g . f)(E) >= 0`` or
+  ``(grad g . f)(E) >= 0``;
+* the step end is crossing evidence when ``g_j(X_{k+1}) < 0`` for one ``j``.
+
+``X_0`` is the exact cell, ``m_0`` the stored start point, ``A_0 = I`` and ``r_0`` the
+cell minus ``m_0``. The stored ``r`` boxes are not used: the checker's own are proven.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from fractions import Fraction
+
+import numpy as np
+
+from ._check_arith import ARITHMETICS, evaluate
+
+__all__ = ["CheckContext", "CellTask", "cell_facts", "face_pieces_proven", "exact_cells",
+           "grid_bounds"]
+
+#: Pieces of the a-priori box for the field and the limit rates (ball arithmetic).
+TUBE_PIECES = 4
+#: Pieces of the mean-value box for the Jacobians (ball arithmetic).
+JACOBIAN_PIECES = (4, 1, 1)
+
+
+@dataclass(frozen=True)
+class CheckContext:
+    """What every chunk needs: the programs and the geometry (picklable).
+
+    Attributes
+    ----------
+    programs : certify._check_programs.CheckPrograms
+    params : tuple of (Fraction, Fraction)
+    window : tuple of (Fraction, Fraction)
+    open_faces : tuple of (int, str)
+        ``(axis, side)`` of the faces the checker treats as open.
+    grid_depth : int
+        Depth of the finest grid used for exact successor lookups.
+    """
+
+    programs: object
+    params: tuple
+    window: tuple
+    open_faces: tuple
+    grid_depth: int
+
+
+@dataclass
+class CellTask:
+    """A chunk of cells to recompute.
+
+    Attributes
+    ----------
+    cells : ndarray of int, shape (N,)
+        Leaf numbers (for the caller).
+    depth : ndarray of int, shape (N,)
+    index : ndarray of int, shape (N, n)
+    n_steps : ndarray of int, shape (N,)
+        Steps to recompute per cell (0: only the outside test).
+    image_known : ndarray of bool, shape (N,)
+    m0 : ndarray, shape (N, n)
+    h : ndarray, shape (S,)
+    E : ndarray, shape (S, n, 2)
+    m : ndarray, shape (S, n)
+    A : ndarray, shape (S, n, n)
+        Step records of the cells, concatenated in cell order.
+    """
+
+    cells: np.ndarray
+    depth: np.ndarray
+    index: np.ndarray
+    n_steps: np.ndarray
+    image_known: np.ndarray
+    m0: np.ndarray
+    h: np.ndarray
+    E: np.ndarray
+    m: np.ndarray
+    A: np.ndarray
+
+
+def exact_cells(window, depth, index):
+    """Exact sides of cells as object arrays of Fractions, each shape (N, n)."""
+    N, n = index.shape
+    lo = np.empty((N, n), dtype=object)
+    hi = np.empty((N, n), dtype=object)
+    for k, (a, b) in enumerate(window):
+        length = b - a
+        for c in range(N):
+            scale = Fraction(1, 1 << int(depth[c]))
+            i = int(index[c, k])
+            lo[c, k] = a + length * i * scale
+            hi[c, k] = a + length * (i + 1) * scale
+    return lo, hi
+
+
+def _params(ar, context):
+    return [ar.rational(lo, hi) for lo, hi in context.params]
+
+
+def _limits_upper_negative(ar, context, X, count):
+    """Bool array of length `count`: some limit is below 0 on the whole box."""
+    g = evaluate(context.programs.limits, ar, list(X) + _params(ar, context))
+    out = np.zeros(count, bool)
+    for gj in g:
+        out |= _true(ar.upper(gj) < 0)
+    return out
+
+
+def _matmul(ar, P, Q):
+    """Interval matrix product of lists of lists, each entry folded left."""
+    rows, inner, cols = len(P), len(Q), len(Q[0])
+    out = []
+    for i in range(rows):
+        row = []
+        for j in range(cols):
+            acc = ar.mul(P[i][0], Q[0][j])
+            for l in range(1, inner):
+                acc = ar.add(acc, ar.mul(P[i][l], Q[l][j]))
+            row.append(acc)
+        out.append(row)
+    return out
+
+
+def _matvec(ar, P, v):
+    return [row[0] for row in _matmul(ar, P, [[x] for x in v])]
+
+
+def _step(ar, context, X, m, A, r, h, E_bounds, m_next, A_next):
+    """One step for the active cells; returns the new box, coordinates and facts."""
+    progs = context.programs
+    n, q = progs.n, progs.order
+    params = _params(ar, context)
+    hh = ar.exact(h)
+    E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
+    tube = _joined(ar, progs.on_tube, ar.cover(E, TUBE_PIECES), params)
+    field, rates = tube[:n], tube[n:]
+    remainder = evaluate(progs.remainder, ar, E + params)
+    ok = np.ones(len(h), bool)
+    for k in range(n):
+        N = ar.add(X[k], ar.timebox(hh, field[k]))
+        ok &= _true(ar.lower(N) >= ar.lower(ar.exact(E_bounds[:, k, 0])))
+        ok &= _true(ar.upper(N) <= ar.upper(ar.exact(E_bounds[:, k, 1])))
+    powers = [None, hh] + [ar.pow_int(hh, k) for k in range(2, q + 1)]
+    # T(m) + h^q f^[q](E)
+    point = [ar.exact(m[:, k]) for k in range(n)]
+    Y = list(point)
+    if q > 1:
+        coeff = evaluate(progs.coefficients, ar, point + params)
+        for k in range(1, q):
+            for i in range(n):
+                Y[i] = ar.add(Y[i], ar.mul(powers[k], coeff[(k - 1) * n + i]))
+    Y = [ar.add(Y[i], ar.mul(powers[q], remainder[i])) for i in range(n)]
+    # DT(J) = I + sum h^k Df^[k](J)
+    D = [[ar.exact(np.full(len(h), float(i == j))) for j in range(n)] for i in range(n)]
+    if q > 1:
+        J = [ar.hull(X[k], point[k]) for k in range(n)]
+        for k in range(1, q):
+            pieces = ar.cover(J, JACOBIAN_PIECES[min(k, len(JACOBIAN_PIECES)) - 1])
+            jac = _joined(ar, progs.jacobians[k - 1], pieces, params)
+            for i in range(n):
+                for j in range(n):
+                    D[i][j] = ar.add(D[i][j], ar.mul(powers[k], jac[i * n + j]))
+    Ae = [[ar.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
+    M = _matmul(ar, D, Ae)
+    V = _matvec(ar, M, r)
+    image = [ar.add(Y[i], V[i]) for i in range(n)]
+    B = ar.inverse(A_next)
+    new_m = [ar.exact(m_next[:, k]) for k in range(n)]
+    a = _matvec(ar, B, [ar.sub(Y[i], new_m[i]) for i in range(n)])
+    c = _matvec(ar, _matmul(ar, B, M), r)
+    new_r = [ar.add(a[i], c[i]) for i in range(n)]
+    Qe = [[ar.exact(A_next[:, i, j]) for j in range(n)] for i in range(n)]
+    spread = _matvec(ar, Qe, new_r)
+    hull = [ar.add(new_m[i], spread[i]) for i in range(n)]
+    X_next = [ar.intersect(hull[i], image[i]) for i in range(n)]
+    for k in range(n):
+        ok &= ar.finite(X_next[k]) & ar.finite(new_r[k])
+    # limits kept on the step, crossing evidence at its end
+    g = evaluate(progs.limits, ar, list(X) + params)
+    kept = np.ones(len(h), bool)
+    for j in range(progs.n_limits):
+        integral = ar.lower(ar.add(g[j], ar.timebox(hh, rates[j])))
+        kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
+    crossed = _limits_upper_negative(ar, context, X_next, len(h))
+    return ok, kept, crossed, X_next, new_r, E
+
+
+def _joined(ar, program, pieces, params):
+    """Hull of a program's outputs over the pieces of a box."""
+    out = None
+    for piece in pieces:
+        part = evaluate(program, ar, piece + params)
+        out = part if out is None else [ar.hull(a, b) for a, b in zip(out, part)]
+    return out
+
+
+def _true(a):
+    return np.asarray(a, dtype=object).astype(bool)
+
+
+def _to_fraction(x):
+    """Exact value of a finite exact arb number."""
+    m, e = x.man_exp()
+    m, e = int(m), int(e)
+    return Fraction(m << e) if e >= 0 else Fraction(m, 1 << -e)
+
+
+def cell_facts(context, task, arithmetic):
+    """Recompute the facts of a chunk of cells.
+
+    Parameters
+    ----------
+    context : CheckContext
+    task : CellTask
+    arithmetic : {"ball", "endpoint"}
+
+    Returns
+    -------
+    dict
+        Arrays over the chunk's cells: ``outside`` (bool), ``n_valid`` (steps that verified,
+        a prefix), ``first_unkept`` (index of the first step not kept, ``n_valid`` if none),
+        ``crossing_step`` (first verified step whose end box violates a limit, -1),
+        ``image`` (0 not known, 1 known), ``escapes`` (bool), ``empty`` (the clipped image
+        is empty), ``grid_lo``/``grid_hi`` (int arrays (N, n): the clipped image in units
+        of the finest grid, see :func:`grid_bounds`).
+    """
+    ar = ARITHMETICS[arithmetic]()
+    ar.enter()
+    n = context.programs.n
+    N = len(task.cells)
+    lo_q, hi_q = exact_cells(context.window, task.depth, task.index)
+    cell = [ar.rationals(lo_q[:, k], hi_q[:, k]) for k in range(n)]
+    outside = _limits_upper_negative(ar, context, cell, N)
+    K = task.n_steps
+    start = np.concatenate([[0], np.cumsum(K)]).astype(int)
+    n_valid = np.zeros(N, int)
+    first_unkept = np.full(N, -1)
+    crossing = np.full(N, -1)
+    ids = np.flatnonzero(K > 0)
+    X = [ar.take(x, ids) for x in cell]
+    m = task.m0[ids]
+    A = np.broadcast_to(np.eye(n), (len(ids), n, n))
+    m_q = [np.array([Fraction(float(v)) for v in m[:, k]], dtype=object) for k in range(n)]
+    r = [ar.rationals(lo_q[ids, k] - m_q[k], hi_q[ids, k] - m_q[k]) for k in range(n)]
+    image = [None] * n
+    image_cells = np.zeros(0, int)
+    k = 0
+    while len(ids):
+        s = start[ids] + k
+        ok, kept, crossed, X_next, r_next, E = _step(
+            ar, context, X, m, A, r, task.h[s], task.E[s], task.m[s], task.A[s])
+        n_valid[ids[ok]] = k + 1
+        unkept = ok & ~kept & (first_unkept[ids] < 0)
+        first_unkept[ids[unkept]] = k
+        hit = ok & crossed & (crossing[ids] < 0)
+        crossing[ids[hit]] = k
+        finished = ok & (K[ids] == k + 1)
+        if finished.any():
+            done = np.flatnonzero(finished)
+            E_last = [ar.take(e, done) for e in E]
+            pieces = [ar.intersect(ar.take(X_next[i], done), E_last[i]) for i in range(n)]
+            image = pieces if image[0] is None else [_concat(ar, image[i], pieces[i])
+                                                     for i in range(n)]
+            image_cells = np.concatenate([image_cells, ids[done]])
+        go = ok & (K[ids] > k + 1)
+        keep = np.flatnonzero(go)
+        X = [ar.take(x, keep) for x in X_next]
+        r = [ar.take(x, keep) for x in r_next]
+        m, A = task.m[s[keep]], task.A[s[keep]]
+        ids = ids[keep]
+        k += 1
+    first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
+    facts = {"outside": outside, "n_valid": n_valid, "first_unkept": first_unkept,
+             "crossing_step": crossing}
+    facts.update(_images(ar, context, task, image, image_cells))
+    return facts
+
+
+def _concat(ar, a, b):
+    if isinstance(a, tuple):
+        return np.concatenate([a[0], b[0]]), np.concatenate([a[1], b[1]])
+    return np.concatenate([a, b])
+
+
+def _images(ar, context, task, image, image_cells):
+    """Clip the images at the window, decide escapes, express them on the grid."""
+    n = context.programs.n
+    N = len(task.cells)
+    known = np.zeros(N, int)
+    escapes = np.zeros(N, bool)
+    empty = np.zeros(N, bool)
+    grid_lo = np.zeros((N, n), np.int64)
+    grid_hi = np.full((N, n), -1, np.int64)
+    if len(image_cells) == 0:
+        return {"image": known, "escapes": escapes, "empty": empty, "grid_lo": grid_lo,
+                "grid_hi": grid_hi}
+    usable = np.ones(len(image_cells), bool)
+    for i in range(n):
+        usable &= ar.finite(image[i])
+    usable &= task.image_known[image_cells]
+    sel = np.flatnonzero(usable)
+    cells = image_cells[sel]
+    lo = np.array([[_to_fraction(x) for x in ar.lower(ar.take(image[i], sel))]
+                   for i in range(n)], dtype=object).T.reshape(len(sel), n)
+    hi = np.array([[_to_fraction(x) for x in ar.upper(ar.take(image[i], sel))]
+                   for i in range(n)], dtype=object).T.reshape(len(sel), n)
+    known[cells] = 1
+    escapes[cells] = _escapes(ar, context, task, cells, lo, hi)
+    for c, row_lo, row_hi in zip(cells, lo, hi):
+        for i, (a, b) in enumerate(context.window):
+            row_lo[i] = max(row_lo[i], a)
+            row_hi[i] = min(row_hi[i], b)
+        if any(x > y for x, y in zip(row_lo, row_hi)):
+            empty[c] = True
+            continue
+        grid_lo[c], grid_hi[c] = grid_bounds(context.window, context.grid_depth, row_lo, row_hi)
+    return {"image": known, "escapes": escapes, "empty": empty, "grid_lo": grid_lo,
+            "grid_hi": grid_hi}
+
+
+def grid_bounds(window, depth, lo, hi):
+    """A box inside the window in units of the grid of depth `depth`.
+
+    Returns
+    -------
+    first, last : ndarray of int, shape (n,)
+        The box meets the closed grid cell ``j`` of axis ``k`` (``j`` in units of
+        ``2^-depth`` of the side) exactly when ``first[k] <= j + 1`` and ``j <= last[k]``:
+        ``first = ceil(u_lo 2^depth)`` and ``last = floor(u_hi 2^depth)`` where ``u`` are
+        the box's sides relative to the window (in ``[0, 1]``).
+    """
+    scale = 1 << depth
+    first = [math.ceil((x - a) / (b - a) * scale) for x, (a, b) in zip(lo, window)]
+    last = [math.floor((x - a) / (b - a) * scale) for x, (a, b) in zip(hi, window)]
+    return np.array(first, np.int64), np.array(last, np.int64)
+
+
+def _escapes(ar, context, task, cells, lo, hi):
+    """Whether a part of each image outside the window may hold a trajectory in K.
+
+    A trajectory that stays within the limits can leave the window only through an
+    open face (a ``limit`` face violates a limit at every point, an ``inflow`` face
+    pushes back every point within the limits). If no a-priori box of the cell reaches
+    beyond an open face, no such trajectory left the window and the parts outside it
+    are harmless. Otherwise every part beyond a face must violate a limit (in one
+    dimension a trajectory beyond the window lies beyond the open face it left by, so
+    only open faces are checked there).
+    """
+    window = context.window
+    n = len(window)
+    out = np.zeros(len(cells), bool)
+    if not context.open_faces:
+        return out
+    rows = np.repeat(np.arange(len(task.cells)), task.n_steps)
+    tube_pokes = np.zeros(len(task.cells), bool)
+    for axis, side in context.open_faces:
+        a, b = window[axis]
+        if side == "lo":
+            beyond = _float_below(task.E[:, axis, 0], a)
+        else:
+            beyond = _float_above(task.E[:, axis, 1], b)
+        np.logical_or.at(tube_pokes, rows[beyond], True)
+    check = tube_pokes[cells]
+    if not check.any():
+        return out
+    faces = [(axis, side) for axis in range(n) for side in ("lo", "hi")]
+    if n == 1:
+        faces = list(context.open_faces)
+    for axis, side in faces:
+        a, b = window[axis]
+        if side == "lo":
+            pokes = check & np.array([row[axis] < a for row in lo], bool)
+        else:
+            pokes = check & np.array([row[axis] > b for row in hi], bool)
+        sel = np.flatnonzero(pokes)
+        if len(sel) == 0:
+            continue
+        slab_lo, slab_hi = lo[sel].copy(), hi[sel].copy()
+        if side == "lo":
+            slab_hi[:, axis] = a
+        else:
+            slab_lo[:, axis] = b
+        box = [ar.rationals(slab_lo[:, i], slab_hi[:, i]) for i in range(n)]
+        harmless = _limits_upper_negative(ar, context, box, len(sel))
+        out[sel[~harmless]] = True
+    return out
+
+
+def _float_below(x, a):
+    """Exact ``x < a`` for a float array `x` and a Fraction `a`."""
+    v = float(a)
+    if Fraction(v) == a:
+        return x < v
+    below = v if Fraction(v) < a else float(np.nextafter(v, -np.inf))
+    return x <= below
+
+
+def _float_above(x, b):
+    """Exact ``x > b`` for a float array `x` and a Fraction `b`."""
+    v = float(b)
+    if Fraction(v) == b:
+        return x > v
+    above = v if Fraction(v) > b else float(np.nextafter(v, np.inf))
+    return x >= above
+
+
+def face_pieces_proven(context, arithmetic, axis, side, lo, hi, need_limit):
+    """Which pieces of a window face are proven harmless.
+
+    Parameters
+    ----------
+    context : CheckContext
+    arithmetic : {"ball", "endpoint"}
+    axis : int
+    side : {"lo", "hi"}
+    lo, hi : object arrays of Fractions, shape (P, n)
+        The pieces (the face coordinate fixed at the window side).
+    need_limit : bool
+        Only a violated limit counts (for faces claimed ``limit``); otherwise strictly
+        inward flow counts too (``inflow``).
+
+    Returns
+    -------
+    ndarray of bool, shape (P,)
+    """
+    ar = ARITHMETICS[arithmetic]()
+    ar.enter()
+    n = context.programs.n
+    box = [ar.rationals(lo[:, i], hi[:, i]) for i in range(n)]
+    proven = _limits_upper_negative(ar, context, box, len(lo))
+    if not need_limit:
+        f = evaluate(context.programs.field, ar, box + _params(ar, context))[axis]
+        inward = ar.lower(f) > 0 if side == "lo" else ar.upper(f) < 0
+        proven |= _true(inward)
+    return proven

@@ -1,0 +1,311 @@
+"""The checker's own programs: Taylor coefficients re-derived with sympy, compiled to
+straight-line instruction lists that :mod:`certify._check_arith` evaluates.
+
+Nothing here is shared with the proof code. The derivation follows the recipe the
+certificate format documents (docs/certificate-format.md): parameters given as numbers
+are substituted as exact rationals before any derivative is taken; ``f^[0] = x`` and
+``f^[k+1] = (J(f^[k]) f) / (k + 1)`` with the Jacobian ``J`` taken by sympy; the rate of
+a limit ``g`` is ``sum_s diff(g, s) * f_s`` over the states in order.
+
+The instruction lists follow the evaluation rules of the format (they fix the order of
+operations, so that an endpoint evaluation in the checker encloses no more than the
+prover's own evaluation did):
+
+* ``Add``: terms in sympy's argument order, folded left; a term ``-c*u`` with a negative
+  number ``c`` is subtracted as ``c*u``.
+* ``Mul``: the numeric coefficient is split off; the other factors go to a numerator
+  (positive exponents) and a denominator (negative exponents, made positive), each folded
+  left in argument order; the result is ``num / den``, then the coefficient multiplies it
+  (``-1`` negates).
+* ``Pow``: an integer exponent ``n >= 2`` is one power operation, ``n <= -1`` is
+  ``1 / b^|n|``; ``1/2`` is ``sqrt``, ``-1/2`` is ``1 / sqrt``; other rational exponents
+  are one real-power operation; a symbolic exponent ``b^y`` is ``exp(y * log(b))``.
+
+Instructions are plain tuples, so they travel to worker processes by pickling.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from fractions import Fraction
+
+import sympy
+
+from .errors import CertificateError
+
+__all__ = ["Program", "CheckPrograms", "compile_expressions", "derive_programs"]
+
+_UNARY = {
+    sympy.exp: "exp", sympy.log: "log", sympy.sin: "sin", sympy.cos: "cos",
+    sympy.tan: "tan", sympy.atan: "atan", sympy.tanh: "tanh", sympy.sinh: "sinh",
+    sympy.cosh: "cosh", sympy.Abs: "iabs",
+}
+#: Constants that python-flint computes itself (everything else goes through sympy).
+_NAMED_CONSTANTS = {sympy.pi: "pi", sympy.E: "e", sympy.EulerGamma: "euler",
+                    sympy.Catalan: "catalan"}
+
+
+@dataclass(frozen=True)
+class Program:
+    """A straight-line program.
+
+    Attributes
+    ----------
+    n_inputs : int
+    instructions : tuple of tuple
+        ``(op, args, extra)``: ``args`` are earlier instruction numbers; ``extra`` holds
+        the input number, the constant, or the exponent.
+    outputs : tuple of int
+        Instruction numbers of the outputs.
+    release : tuple of tuple of int
+        Per instruction, the earlier values it reads for the last time (never an
+        output); lets the evaluator free them.
+    """
+
+    n_inputs: int
+    instructions: tuple
+    outputs: tuple
+    release: tuple
+
+    def __len__(self):
+        return len(self.instructions)
+
+
+class _Compiler:
+    def __init__(self, inputs):
+        self.instructions = []
+        self.slots = {}
+        for k, symbol in enumerate(inputs):
+            self.slots[symbol] = self._push("input", (), k)
+
+    def _push(self, op, args, extra=None):
+        self.instructions.append((op, tuple(args), extra))
+        return len(self.instructions) - 1
+
+    def constant(self, value):
+        key = ("const", value)
+        if key not in self.slots:
+            self.slots[key] = self._push("const", (), _constant_spec(value))
+        return self.slots[key]
+
+    def emit(self, expr):
+        if expr in self.slots:
+            return self.slots[expr]
+        if expr.is_Number or expr.is_NumberSymbol:
+            if not expr.is_real or expr.is_infinite or expr is sympy.nan:
+                raise CertificateError(f"cannot evaluate the constant {expr}")
+            return self.constant(expr)
+        if expr.is_Symbol:
+            raise CertificateError(f"unknown name {expr} in an expression")
+        if expr.is_Add:
+            slot = self._add(expr)
+        elif expr.is_Mul:
+            slot = self._mul(expr)
+        elif expr.is_Pow:
+            slot = self._pow(expr)
+        elif expr.func in _UNARY:
+            slot = self._push(_UNARY[expr.func], (self.emit(expr.args[0]),))
+        elif expr.func in (sympy.Min, sympy.Max):
+            name = "imin" if expr.func is sympy.Min else "imax"
+            slot = self._fold(name, expr.args)
+        else:
+            raise CertificateError(f"the operation {expr.func} cannot be checked")
+        self.slots[expr] = slot
+        return slot
+
+    def _fold(self, name, factors):
+        acc = self.emit(factors[0])
+        for factor in factors[1:]:
+            acc = self._push(name, (acc, self.emit(factor)))
+        return acc
+
+    def _add(self, expr):
+        terms = expr.args
+        acc = self.emit(terms[0])
+        for term in terms[1:]:
+            coeff, _ = term.as_coeff_Mul()
+            if coeff.is_Number and coeff < 0:
+                acc = self._push("sub", (acc, self.emit(-term)))
+            else:
+                acc = self._push("add", (acc, self.emit(term)))
+        return acc
+
+    def _mul(self, expr):
+        coeff, rest = expr.as_coeff_Mul()
+        if coeff != 1:
+            body = self.emit(rest)
+            if coeff == -1:
+                return self._push("neg", (body,))
+            return self._push("mul", (self.constant(coeff), body))
+        factors = rest.args if rest.is_Mul else (rest,)
+        num, den = [], []
+        for factor in factors:
+            if factor.is_Pow and factor.exp.is_Number and factor.exp < 0:
+                den.append(factor.base ** (-factor.exp))
+            else:
+                num.append(factor)
+        top = self._fold("mul", num) if num else self.constant(sympy.Integer(1))
+        return self._push("div", (top, self._fold("mul", den))) if den else top
+
+    def _pow(self, expr):
+        base, e = expr.base, expr.exp
+        if base is sympy.E:
+            return self._push("exp", (self.emit(e),))
+        if e.is_Integer:
+            n = int(e)
+            b = self.emit(base)
+            if n >= 2:
+                return self._push("pow_int", (b,), n)
+            if n == 1:
+                return b
+            p = b if n == -1 else self._push("pow_int", (b,), -n)
+            return self._push("div", (self.constant(sympy.Integer(1)), p))
+        if e == sympy.Rational(1, 2):
+            return self._push("sqrt", (self.emit(base),))
+        if e == sympy.Rational(-1, 2):
+            root = self._push("sqrt", (self.emit(base),))
+            return self._push("div", (self.constant(sympy.Integer(1)), root))
+        if e.is_Rational:
+            return self._push("pow_real", (self.emit(base),), Fraction(int(e.p), int(e.q)))
+        logb = self._push("log", (self.emit(base),))
+        return self._push("exp", (self._push("mul", (self.emit(e), logb)),))
+
+
+def _constant_spec(value):
+    """A picklable description of a real constant.
+
+    ``("q", p, q)`` is the exact rational ``p/q``; ``("named", name)`` a constant that
+    python-flint computes; ``("approx", text)`` a decimal with 80 significant digits that
+    the evaluator widens by a relative ``1e-70``.
+    """
+    if value.is_Rational:
+        return ("q", int(value.p), int(value.q))
+    if value.is_Float:
+        q = sympy.Rational(value)
+        return ("q", int(q.p), int(q.q))
+    if value in _NAMED_CONSTANTS:
+        return ("named", _NAMED_CONSTANTS[value])
+    return ("approx", str(sympy.N(value, 80)))
+
+
+def compile_expressions(exprs, inputs):
+    """Compile sympy expressions into one :class:`Program`.
+
+    Parameters
+    ----------
+    exprs : sequence of sympy.Expr
+    inputs : sequence of sympy.Symbol
+
+    Returns
+    -------
+    Program
+
+    Raises
+    ------
+    CertificateError
+        For a name that is not an input or an operation the checker cannot evaluate.
+    """
+    compiler = _Compiler(inputs)
+    outputs = tuple(compiler.emit(sympy.Integer(e) if isinstance(e, int) else e)
+                    for e in exprs)
+    n = len(compiler.instructions)
+    last = list(range(n))
+    for k, (_, args, _) in enumerate(compiler.instructions):
+        for a in args:
+            last[a] = k
+    for out in outputs:
+        last[out] = n
+    release = [[] for _ in range(n)]
+    for a, k in enumerate(last):
+        if k < n and k != a:
+            release[k].append(a)
+    return Program(n_inputs=len(inputs), instructions=tuple(compiler.instructions),
+                   outputs=outputs, release=tuple(tuple(r) for r in release))
+
+
+@dataclass(frozen=True)
+class CheckPrograms:
+    """Everything the checker evaluates for one model.
+
+    Inputs of every program are the states followed by the parameters.
+
+    Attributes
+    ----------
+    order : int
+        Taylor order ``q`` actually used (1 for models with ``abs``, ``min``, ``max``).
+    n : int
+        Number of states.
+    on_tube : Program
+        On an a-priori box: ``f`` (n outputs) and the limit rates (m outputs).
+    remainder : Program
+        ``f^[q]`` (n outputs).
+    coefficients : Program or None
+        At a point: ``f^[1..q-1]`` stacked (``n (q-1)`` outputs); None for ``q = 1``.
+    jacobians : tuple of Program
+        Row-major Jacobian of each of ``f^[1], ..., f^[q-1]`` (``n n`` outputs each).
+    limits : Program
+        The limits ``g_j`` (m outputs; satisfied where ``g_j >= 0``).
+    field : Program
+        ``f`` alone (for the window faces).
+    n_limits : int
+    """
+
+    order: int
+    n: int
+    on_tube: Program
+    remainder: Program
+    coefficients: Program | None
+    jacobians: tuple
+    limits: Program
+    field: Program
+    n_limits: int
+
+
+def taylor_coefficients(equations, states, order):
+    """``[f^[0], ..., f^[order]]`` as sympy column matrices (the recipe above)."""
+    x = sympy.Matrix(states)
+    f = sympy.Matrix(equations)
+    coefficients = [x, f]
+    for k in range(1, order):
+        coefficients.append((coefficients[-1].jacobian(x) * f) / (k + 1))
+    return coefficients[:order + 1]
+
+
+def derive_programs(model, order):
+    """Derive and compile the checker's programs for a model.
+
+    Parameters
+    ----------
+    model : certify.model.Model
+        With the parameter boxes the certificate states.
+    order : int
+        The Taylor order the certificate states (``method.order``).
+
+    Returns
+    -------
+    CheckPrograms
+    """
+    if model.uses_kinks:
+        order = 1
+    fixed = {p.symbol: sympy.Rational(p.lo.numerator, p.lo.denominator)
+             for p in model.parameters if not p.is_interval}
+    equations = tuple(e.xreplace(fixed) for e in model.equations)
+    limits = tuple(c.g.xreplace(fixed) for c in model.constraints)
+    states = tuple(model.state_symbols)
+    inputs = states + tuple(model.parameter_symbols)
+    x = sympy.Matrix(states)
+    coefficients = taylor_coefficients(equations, states, order)
+    rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
+             for g in limits]
+    middle = coefficients[1:order]
+    point = None
+    if middle:
+        point = compile_expressions([e for c in middle for e in c], inputs)
+    jac = tuple(compile_expressions(list(c.jacobian(x)), inputs) for c in middle)
+    on_tube = compile_expressions(list(equations) + rates, inputs)
+    remainder = compile_expressions(list(coefficients[order]), inputs)
+    return CheckPrograms(order=order, n=len(states), on_tube=on_tube, remainder=remainder,
+                         coefficients=point,
+                         jacobians=jac, limits=compile_expressions(list(limits), inputs),
+                         field=compile_expressions(list(equations), inputs),
+                         n_limits=len(limits))

@@ -1,0 +1,838 @@
+"""Independent re-verification of a certificate: ``check_certificate(path) -> CheckResult``.
+
+The checker trusts only the model parser, sympy's derivatives, python-flint's arb and
+its own short graph checks. It never imports the proof code: it reads the certificate
+file, re-derives the Taylor coefficients from the stored model text, recomputes every
+step of every cell whose claims need it (:mod:`certify._check_cells`), and checks each
+cell's claims locally against its own facts and its successors' claims
+(DESIGN.md section 5). When every local check holds, every claim holds by induction
+over ranks (doomed) and horizons (safe, survival bounds).
+
+Arithmetic: each cell is first recomputed with arb balls, vectorized over chunks of
+cells; a cell whose claims do not verify that way is recomputed with exact-endpoint
+arithmetic (:mod:`certify._check_arith`) before it is declared invalid.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+import multiprocessing
+import os
+import time
+from dataclasses import dataclass, field
+from fractions import Fraction
+
+import numpy as np
+
+from .certificate import decode_array, load_certificate_json
+from .errors import CertificateError, CertifyError
+from .model import load_model, parse_model
+from ._check_cells import CellTask, CheckContext, cell_facts, face_pieces_proven
+from ._check_programs import derive_programs
+
+__all__ = ["CheckResult", "check_certificate"]
+
+LABELS = ("safe", "doomed", "outside", "undecided")
+KINDS = ("limit", "inflow", "open")
+#: Faces are bisected at most this often along each of their axes.
+FACE_LEVELS = 10
+#: Largest number of face pieces examined per level.
+FACE_PIECES = 1 << 16
+#: Steps per chunk of work (cells are grouped by their number of steps).
+CHUNK_STEPS = 8000
+#: Time unit of the exact step-time sums: every double is a multiple of 2**-1074.
+TIME_SCALE = 1074
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    """Verdict of :func:`check_certificate`.
+
+    Attributes
+    ----------
+    status : int
+        0 every claim holds, 1 some claim does not hold.
+    message : str
+    valid : bool
+    cells_checked : int
+    failures : list of dict
+        ``{"cell": leaf number, "address": [depth, [i_1, ...]], "label": ..., "reason": ...}``;
+        problems of the whole certificate have ``cell``, ``address`` and ``label`` None.
+    seconds : float
+    fallback_cells : int
+        Cells whose claims did not verify with arb balls and were recomputed with
+        exact-endpoint arithmetic.
+    model : str or None
+        The revised model file for a regression check (``model=``), else None.
+    claims : dict or None
+        For a regression check: ``{"held": {label: count}, "failed": {label: count}}``
+        after propagating failures along the successors the claims rely on.
+    """
+
+    status: int
+    message: str
+    valid: bool
+    cells_checked: int
+    failures: list
+    seconds: float
+    fallback_cells: int = 0
+    model: str | None = None
+    claims: dict | None = field(default=None)
+
+
+# -- reading -----------------------------------------------------------------------------
+class _Reader:
+    """Structural reading of the raw certificate; errors name the file and the key."""
+
+    def __init__(self, path, data):
+        self.path = path
+        self.data = data
+
+    def fail(self, key, problem):
+        raise CertificateError(f"{self.path}: key '{key}': {problem}")
+
+    def get(self, obj, key, where, kind=None):
+        if not isinstance(obj, dict) or key not in obj:
+            self.fail(where, "missing")
+        value = obj[key]
+        if kind is not None and not isinstance(value, kind):
+            self.fail(where, f"expected {kind.__name__ if isinstance(kind, type) else 'a value'}"
+                             f" of another type, got {type(value).__name__}")
+        return value
+
+    def fraction(self, text, where):
+        if not isinstance(text, (str, int)) or isinstance(text, bool):
+            self.fail(where, "expected an exact number 'p/q'")
+        try:
+            return Fraction(text)
+        except (ValueError, ZeroDivisionError):
+            self.fail(where, f"{text!r} is not an exact number 'p/q'")
+
+    def array(self, obj, key, where, kind, shape):
+        raw = self.get(obj, key, where)
+        try:
+            a = decode_array(raw, where)
+        except CertificateError as exc:
+            self.fail(where, str(exc))
+        if a.dtype.kind != kind:
+            self.fail(where, f"expected {'integers' if kind == 'i' else 'floats'}")
+        if len(a.shape) != len(shape) or any(s is not None and s != t
+                                             for s, t in zip(shape, a.shape)):
+            self.fail(where, f"shape {list(a.shape)} does not fit (expected "
+                             f"{[s if s is not None else '*' for s in shape]})")
+        return a
+
+
+@dataclass
+class _Certificate:
+    path: str
+    model: object
+    sha_ok: bool
+    states: list
+    params: tuple
+    window: tuple
+    order: int
+    faces: list
+    n: int
+    L: int
+    depth: np.ndarray
+    index: np.ndarray
+    label: np.ndarray
+    rank: np.ndarray
+    crossing_upper: np.ndarray
+    survival_lower: np.ndarray
+    horizon: np.ndarray
+    image_known: np.ndarray
+    succ_start: np.ndarray
+    succ: np.ndarray
+    set0_m: np.ndarray
+    step_start: np.ndarray
+    h: np.ndarray
+    E: np.ndarray
+    m: np.ndarray
+    A: np.ndarray
+
+
+def _read(path):
+    data = load_certificate_json(path)
+    rd = _Reader(path, data)
+    model_obj = rd.get(data, "model", "model", dict)
+    text = rd.get(model_obj, "text", "model.text", str)
+    sha = rd.get(model_obj, "sha256", "model.sha256", str)
+    file = model_obj.get("file")
+    sha_ok = hashlib.sha256(text.encode("utf-8")).hexdigest() == sha
+    model = None
+    if sha_ok:
+        try:
+            model = parse_model(text, path=file if isinstance(file, str) else None)
+        except CertifyError as exc:
+            rd.fail("model.text", f"the stored model does not parse ({exc})")
+    states = rd.get(data, "states", "states", list)
+    if not states or not all(isinstance(s, str) for s in states):
+        rd.fail("states", "expected a list of state names")
+    n = len(states)
+    raw_params = rd.get(data, "parameters", "parameters", dict)
+    params = {}
+    for name, pair in raw_params.items():
+        where = f"parameters.{name}"
+        if not isinstance(pair, list) or len(pair) != 2:
+            rd.fail(where, "expected [lo, hi]")
+        lo, hi = (rd.fraction(v, where) for v in pair)
+        if lo > hi:
+            rd.fail(where, "lo is above hi")
+        params[name] = (lo, hi)
+    window_raw = rd.get(data, "window", "window", list)
+    if len(window_raw) != n:
+        rd.fail("window", f"expected {n} sides, one per state")
+    window = []
+    for k, side in enumerate(window_raw):
+        if not isinstance(side, list) or len(side) != 2:
+            rd.fail(f"window[{k}]", "expected [lo, hi]")
+        lo, hi = (rd.fraction(v, f"window[{k}]") for v in side)
+        if not lo < hi:
+            rd.fail(f"window[{k}]", "lo must be below hi")
+        window.append((lo, hi))
+    method = rd.get(data, "method", "method", dict)
+    order = rd.get(method, "order", "method.order")
+    if not isinstance(order, int) or isinstance(order, bool) or not 1 <= order <= 8:
+        rd.fail("method.order", "expected an integer from 1 to 8")
+    faces = _read_faces(rd, data, n)
+    cells = rd.get(data, "cells", "cells", dict)
+    L = rd.get(cells, "count", "cells.count", int)
+    if L < 1:
+        rd.fail("cells.count", "expected at least one cell")
+    arr = lambda key, kind, shape: rd.array(cells, key, f"cells.{key}", kind, shape)  # noqa: E731
+    depth = arr("depth", "i", (L,))
+    index = arr("index", "i", (L, n))
+    if np.any(depth < 0) or np.any(depth > 62):
+        rd.fail("cells.depth", "depths must be between 0 and 62")
+    if np.any(index < 0) or np.any(index >= (np.int64(1) << depth)[:, None]):
+        rd.fail("cells.index", "an index lies outside its depth's range 0 .. 2^depth - 1")
+    labels = rd.get(cells, "label", "cells.label", list)
+    if len(labels) != L or not all(x in LABELS for x in labels):
+        rd.fail("cells.label", f"expected {L} labels among {', '.join(LABELS)}")
+    rank = arr("rank", "i", (L,))
+    crossing = arr("crossing_upper", "f", (L,))
+    survival = arr("survival_lower", "f", (L,))
+    horizon = arr("horizon", "f", (L, 2))
+    known = rd.get(cells, "image_known", "cells.image_known", list)
+    if len(known) != L or not all(isinstance(x, bool) for x in known):
+        rd.fail("cells.image_known", f"expected {L} booleans")
+    succ_start = arr("successor_start", "i", (L + 1,))
+    succ = arr("successors", "i", (None,))
+    _check_offsets(rd, "cells.successor_start", succ_start, len(succ))
+    if np.any(succ < 0) or np.any(succ >= L):
+        rd.fail("cells.successors", "a successor is not a leaf number")
+    set0_m = arr("set0_m", "f", (L, n))
+    arr("set0_r", "f", (L, n, 2))
+    step_start = arr("step_start", "i", (L + 1,))
+    h = arr("step_h", "f", (None,))
+    S = len(h)
+    _check_offsets(rd, "cells.step_start", step_start, S)
+    E = arr("step_E", "f", (S, n, 2))
+    m = arr("step_m", "f", (S, n))
+    A = arr("step_A", "f", (S, n, n))
+    arr("step_r", "f", (S, n, 2))
+    for key, a in (("step_h", h), ("step_E", E), ("step_m", m), ("step_A", A),
+                   ("set0_m", set0_m)):
+        if not np.all(np.isfinite(a)):
+            rd.fail(f"cells.{key}", "holds a value that is not a finite number")
+    if np.any(h <= 0):
+        rd.fail("cells.step_h", "step sizes must be positive")
+    for key, a in (("crossing_upper", crossing), ("survival_lower", survival),
+                   ("horizon", horizon)):
+        if np.any(np.isnan(a)):
+            rd.fail(f"cells.{key}", "holds NaN")
+    return _Certificate(path=str(path), model=model, sha_ok=sha_ok, states=states,
+                        params=params, window=tuple(window), order=order, faces=faces, n=n,
+                        L=L, depth=depth, index=index, label=np.array(labels), rank=rank,
+                        crossing_upper=crossing, survival_lower=survival, horizon=horizon,
+                        image_known=np.array(known, bool), succ_start=succ_start, succ=succ,
+                        set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A)
+
+
+def _read_faces(rd, data, n):
+    faces = rd.get(data, "faces", "faces", list)
+    seen = {}
+    for k, face in enumerate(faces):
+        where = f"faces[{k}]"
+        axis = rd.get(face, "axis", f"{where}.axis")
+        side = rd.get(face, "side", f"{where}.side")
+        kind = rd.get(face, "kind", f"{where}.kind")
+        if not isinstance(axis, int) or isinstance(axis, bool) or not 0 <= axis < n:
+            rd.fail(f"{where}.axis", f"expected a state number from 0 to {n - 1}")
+        if side not in ("lo", "hi"):
+            rd.fail(f"{where}.side", "expected 'lo' or 'hi'")
+        if kind not in KINDS:
+            rd.fail(f"{where}.kind", f"expected one of {', '.join(KINDS)}")
+        if (axis, side) in seen:
+            rd.fail(where, "face listed twice")
+        seen[(axis, side)] = kind
+    if len(seen) != 2 * n:
+        rd.fail("faces", f"expected the {2 * n} faces of the window")
+    return [(axis, side, seen[(axis, side)]) for axis in range(n) for side in ("lo", "hi")]
+
+
+def _check_offsets(rd, where, offsets, total):
+    if offsets[0] != 0 or offsets[-1] != total or np.any(np.diff(offsets) < 0):
+        rd.fail(where, f"offsets must rise from 0 to {total}")
+
+
+# -- tiling ------------------------------------------------------------------------------
+@dataclass
+class _Tree:
+    depth: np.ndarray
+    index: np.ndarray
+    first_child: np.ndarray
+    leaf: np.ndarray
+    max_depth: int
+
+
+def _tile(cert):
+    """Verify exactly that the leaves tile the window; build the cell tree.
+
+    Returns
+    -------
+    tree : _Tree or None
+    problems : list of str
+    """
+    n = cert.n
+    keys = {}
+    problems = []
+    for j, (d, i) in enumerate(zip(cert.depth.tolist(), map(tuple, cert.index.tolist()))):
+        if (d, i) in keys:
+            problems.append(f"cells {keys[(d, i)]} and {j} have the same address")
+        keys[(d, i)] = j
+    max_depth = int(cert.depth.max())
+    offsets = list(itertools.product((0, 1), repeat=n))
+    node_depth, node_index, first_child, leaf = [0], [(0,) * n], [-1], [-1]
+    reached = np.zeros(cert.L, bool)
+    frontier = [0]
+    while frontier and not problems:
+        nxt = []
+        for node in frontier:
+            key = (node_depth[node], node_index[node])
+            if key in keys:
+                leaf[node] = keys[key]
+                reached[keys[key]] = True
+                continue
+            if key[0] >= max_depth:
+                problems.append(f"no cell covers the part of the window at depth {key[0]}, "
+                                f"index {list(key[1])} (a gap)")
+                break
+            first_child[node] = len(node_depth)
+            for off in offsets:
+                node_depth.append(key[0] + 1)
+                node_index.append(tuple(2 * a + b for a, b in zip(key[1], off)))
+                first_child.append(-1)
+                leaf.append(-1)
+                nxt.append(len(node_depth) - 1)
+        frontier = nxt
+    if not problems and not reached.all():
+        j = int(np.flatnonzero(~reached)[0])
+        problems.append(f"cell {j} lies inside another cell (an overlap)")
+    if problems:
+        return None, problems
+    tree = _Tree(depth=np.array(node_depth), index=np.array(node_index, np.int64).reshape(-1, n),
+                 first_child=np.array(first_child), leaf=np.array(leaf), max_depth=max_depth)
+    return tree, []
+
+
+def _leaves_meeting(tree, first, last):
+    """Pairs (query, leaf) where a leaf meets a query box given on the finest grid."""
+    q = np.arange(len(first))
+    node = np.zeros(len(first), int)
+    out_q, out_leaf = [], []
+    k = 1 << tree.index.shape[1]
+    while len(q):
+        shift = (tree.max_depth - tree.depth[node])[:, None]
+        lo = tree.index[node] << shift
+        hi = (tree.index[node] + 1) << shift
+        meet = np.all((lo <= last[q]) & (hi >= first[q]), axis=1)
+        q, node = q[meet], node[meet]
+        child = tree.first_child[node]
+        is_leaf = child < 0
+        out_q.append(q[is_leaf])
+        out_leaf.append(tree.leaf[node[is_leaf]])
+        q = np.repeat(q[~is_leaf], k)
+        node = (child[~is_leaf][:, None] + np.arange(k)[None]).reshape(-1)
+    return np.concatenate(out_q), np.concatenate(out_leaf)
+
+
+# -- faces -------------------------------------------------------------------------------
+def _confirm_face(context, window, axis, side, kind):
+    """Bisect a face until every piece is proven harmless (``limit``: a limit violated)."""
+    n = len(window)
+    a, b = window[axis]
+    fixed = a if side == "lo" else b
+    lo = np.array([[fixed if k == axis else window[k][0] for k in range(n)]], dtype=object)
+    hi = np.array([[fixed if k == axis else window[k][1] for k in range(n)]], dtype=object)
+    others = [k for k in range(n) if k != axis]
+    for level in range(FACE_LEVELS + 1):
+        todo = np.ones(len(lo), bool)
+        for arithmetic in ("ball", "endpoint"):
+            sel = np.flatnonzero(todo)
+            if len(sel):
+                todo[sel[face_pieces_proven(context, arithmetic, axis, side, lo[sel], hi[sel],
+                                            kind == "limit")]] = False
+        lo, hi = lo[todo], hi[todo]
+        if len(lo) == 0:
+            return True
+        if level == FACE_LEVELS or not others or len(lo) << len(others) > FACE_PIECES:
+            return False
+        for k in others:
+            mid = (lo[:, k] + hi[:, k]) / 2
+            left_hi, right_lo = hi.copy(), lo.copy()
+            left_hi[:, k] = mid
+            right_lo[:, k] = mid
+            lo, hi = np.concatenate([lo, right_lo]), np.concatenate([left_hi, hi])
+    return False
+
+
+# -- facts in parallel -------------------------------------------------------------------
+_WORKER = {}
+#: Forked workers inherit the modules already imported (and need no ``__main__`` guard
+#: in the caller's script); elsewhere fresh interpreters are spawned.
+_START_METHOD = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+
+
+def _init_worker(context):
+    _WORKER["context"] = context
+
+
+def _work(job):
+    number, arithmetic, task = job
+    return number, cell_facts(_WORKER["context"], task, arithmetic)
+
+
+def _tasks(cert, cells, n_steps):
+    """Chunks of cells with similar step counts."""
+    order = cells[np.argsort(-n_steps[cells], kind="stable")]
+    tasks, current, steps = [], [], 0
+    for c in order:
+        current.append(c)
+        steps += max(int(n_steps[c]), 1)
+        if steps >= CHUNK_STEPS:
+            tasks.append(np.array(current))
+            current, steps = [], 0
+    if current:
+        tasks.append(np.array(current))
+    return [_task(cert, np.sort(t), n_steps) for t in tasks]
+
+
+def _task(cert, cells, n_steps):
+    start = cert.step_start[cells]
+    K = n_steps[cells]
+    rows = np.concatenate([np.arange(s, s + k) for s, k in zip(start, K)]) if len(cells) \
+        else np.zeros(0, int)
+    rows = rows.astype(int)
+    return CellTask(cells=cells, depth=cert.depth[cells], index=cert.index[cells],
+                    n_steps=K, image_known=cert.image_known[cells], m0=cert.set0_m[cells],
+                    h=cert.h[rows], E=cert.E[rows], m=cert.m[rows], A=cert.A[rows])
+
+
+def _compute(context, tasks, arithmetic, jobs, progress):
+    """Run the tasks; returns per-cell fact arrays keyed by leaf number."""
+    results = []
+    jobs_list = [(k, arithmetic, t) for k, t in enumerate(tasks)]
+    if jobs <= 1 or len(tasks) <= 1:
+        for job in jobs_list:
+            results.append(_work_local(context, job))
+            if progress is not None:
+                progress(len(job[2].cells))
+    else:
+        mp = multiprocessing.get_context(_START_METHOD)
+        with mp.Pool(min(jobs, len(tasks)), initializer=_init_worker,
+                     initargs=(context,)) as pool:
+            for number, facts in pool.imap_unordered(_work, jobs_list):
+                results.append((number, facts))
+                if progress is not None:
+                    progress(len(tasks[number].cells))
+    return {number: facts for number, facts in results}
+
+
+def _work_local(context, job):
+    number, arithmetic, task = job
+    return number, cell_facts(context, task, arithmetic)
+
+
+class _Facts:
+    """Per-leaf facts gathered from the chunks."""
+
+    def __init__(self, L, n):
+        self.computed = np.zeros(L, bool)
+        self.outside = np.zeros(L, bool)
+        self.n_valid = np.zeros(L, int)
+        self.first_unkept = np.zeros(L, int)
+        self.crossing_step = np.full(L, -1)
+        self.image = np.zeros(L, int)
+        self.escapes = np.zeros(L, bool)
+        self.empty = np.zeros(L, bool)
+        self.grid_lo = np.zeros((L, n), np.int64)
+        self.grid_hi = np.full((L, n), -1, np.int64)
+
+    def store(self, cells, facts):
+        self.computed[cells] = True
+        for key in ("outside", "n_valid", "first_unkept", "image", "escapes", "empty",
+                    "grid_lo", "grid_hi"):
+            getattr(self, key)[cells] = facts[key]
+        self.crossing_step[cells] = facts["crossing_step"]
+
+
+# -- claims ------------------------------------------------------------------------------
+class _Judge:
+    """Local checks of each cell's claims (DESIGN.md section 5)."""
+
+    def __init__(self, cert, facts, tree, succ_missing):
+        self.cert = cert
+        self.facts = facts
+        self.tree = tree
+        self.missing = succ_missing
+        units = [0]
+        for x in cert.h.tolist():
+            p, q = x.as_integer_ratio()
+            units.append(units[-1] + (p << (TIME_SCALE - q.bit_length() + 1)))
+        self.units = units
+
+    def time(self, c, j):
+        """Exact time at the end of step ``j - 1`` of cell c (``j = 0``: 0)."""
+        s = int(self.cert.step_start[c])
+        return Fraction(self.units[s + j] - self.units[s], 1 << TIME_SCALE)
+
+    def steps(self, c):
+        return int(self.cert.step_start[c + 1] - self.cert.step_start[c])
+
+    def successors(self, c):
+        return self.cert.succ[self.cert.succ_start[c]:self.cert.succ_start[c + 1]]
+
+    def check(self, c):
+        """Reasons why the claims of cell c fail; each ``(reason, arithmetic)``."""
+        cert, f = self.cert, self.facts
+        label = cert.label[c]
+        out = []
+        if label == "outside":
+            if not f.outside[c]:
+                out.append(("no limit is proven violated on the whole cell", True))
+            if not cert.survival_lower[c] <= 0:
+                out.append(("an outside cell claims a survival time above 0", False))
+            if not cert.crossing_upper[c] >= 0:
+                out.append(("an outside cell claims a negative crossing time", False))
+            return out
+        K = self.steps(c)
+        T = self.time(c, K)
+        lo, hi = cert.horizon[c]
+        if not _at_most(lo, T) or not _at_most(T, hi):
+            out.append((f"the horizon [{lo!r}, {hi!r}] does not enclose the sum of the "
+                        f"step sizes", False))
+        if label in ("safe", "undecided") and cert.crossing_upper[c] != np.inf:
+            out.append((f"a {label} cell claims a crossing time bound", False))
+        if label == "safe":
+            out += self._safe(c, K)
+        elif label == "doomed":
+            out += self._doomed(c, K, T)
+        if label in ("doomed", "undecided"):
+            out += self._survival(c, K, T)
+        return out
+
+    def _image(self, c, K):
+        """Problems with using the image of cell c at its horizon."""
+        cert, f = self.cert, self.facts
+        if not cert.image_known[c]:
+            return [("its image at the horizon is not known", False)]
+        out = []
+        if f.n_valid[c] < K:
+            out.append((f"step {f.n_valid[c]} does not verify (Picard inclusion or "
+                        f"enclosure)", True))
+        elif not f.image[c]:
+            out.append(("its image is not finite", True))
+        elif f.escapes[c]:
+            out.append(("part of its image may leave the window where no limit is "
+                        "proven violated", True))
+        if c in self.missing:
+            out.append((f"its image meets cell {self.missing[c]}, which is not among its "
+                        f"successors", True))
+        return out
+
+    def _safe(self, c, K):
+        cert, f = self.cert, self.facts
+        out = self._image(c, K)
+        if f.first_unkept[c] < K:
+            out.append((f"limits are not proven kept on step {f.first_unkept[c]}", True))
+        for d in self.successors(c):
+            if cert.label[d] not in ("safe", "outside"):
+                out.append((f"successor {d} is {cert.label[d]}", False))
+                break
+        return out
+
+    def _doomed(self, c, K, T):
+        cert, f = self.cert, self.facts
+        rank = int(cert.rank[c])
+        bound = cert.crossing_upper[c]
+        if rank < 0:
+            return [("a doomed cell without a rank", False)]
+        if rank == 0:
+            if f.outside[c]:
+                evidence = Fraction(0)
+            elif f.crossing_step[c] >= 0:
+                evidence = self.time(c, int(f.crossing_step[c]) + 1)
+            else:
+                return [("rank 0 without a proven crossing (no step end box violates a "
+                         "limit)", True)]
+            if not (bound == np.inf or Fraction(bound) >= evidence):
+                return [(f"crossing bound {bound!r} is below the proven crossing time "
+                         f"{float(evidence)!r}", True)]
+            return []
+        out = self._image(c, K)
+        latest = Fraction(0)
+        for d in self.successors(c):
+            if cert.label[d] == "outside":
+                continue
+            if cert.label[d] != "doomed" or not 0 <= cert.rank[d] < rank:
+                out.append((f"successor {d} is {cert.label[d]} with rank {cert.rank[d]}, "
+                            f"not doomed with a rank below {rank}", False))
+                return out
+            if not np.isfinite(cert.crossing_upper[d]):
+                return out + [(f"successor {d} has no finite crossing bound", False)]
+            latest = max(latest, Fraction(cert.crossing_upper[d]))
+        if not (bound == np.inf or Fraction(bound) >= T + latest):
+            out.append((f"crossing bound {bound!r} is below the horizon plus the "
+                        f"successors' bounds ({float(T + latest)!r})", False))
+        return out
+
+    def _survival(self, c, K, T):
+        cert, f = self.cert, self.facts
+        claim = cert.survival_lower[c]
+        if claim <= 0:
+            return []
+        u = int(f.first_unkept[c])
+        if u < K:
+            limit = self.time(c, u)
+            if claim == np.inf or Fraction(claim) > limit:
+                return [(f"survival bound {claim!r} exceeds the start {float(limit)!r} of "
+                         f"step {u}, whose limits are not proven kept", True)]
+            return []
+        image = self._image(c, K)
+        if image:
+            if claim == np.inf or Fraction(claim) > T:
+                return [(f"survival bound {claim!r} exceeds the horizon {float(T)!r}, "
+                         f"and the image is not usable: {image[0][0]}", image[0][1])]
+            return []
+        for d in self.successors(c):
+            if cert.label[d] == "outside":
+                continue
+            other = cert.survival_lower[d]
+            if other != np.inf and (claim == np.inf or Fraction(claim) > T + Fraction(other)):
+                return [(f"survival bound {claim!r} exceeds the horizon plus successor "
+                         f"{d}'s bound ({float(T + Fraction(other))!r})", False)]
+        return []
+
+    def needs(self, c):
+        """Successors whose claims the claims of cell c rely on."""
+        cert = self.cert
+        label = cert.label[c]
+        if label == "outside" or (label == "doomed" and cert.rank[c] == 0):
+            return []
+        if label in ("safe", "doomed"):
+            return list(self.successors(c))
+        return [d for d in self.successors(c) if cert.label[d] != "outside"]
+
+
+# -- the check ---------------------------------------------------------------------------
+def _needs_steps(cert):
+    """Number of steps to recompute per cell (0: only the outside test)."""
+    K = np.diff(cert.step_start)
+    label = cert.label
+    claims = (label == "safe") | (label == "doomed") | \
+             ((label == "undecided") & (cert.survival_lower > 0))
+    return np.where(claims & (label != "outside"), K, 0)
+
+
+def _at_most(a, b):
+    """Exact ``a <= b`` for floats (possibly infinite) and Fractions."""
+    if isinstance(a, float) and np.isinf(a):
+        return a < 0
+    if isinstance(b, float) and np.isinf(b):
+        return b > 0
+    return Fraction(a) <= Fraction(b)
+
+
+def _record(cert, c, label, reason):
+    return {"cell": int(c), "address": [int(cert.depth[c]), [int(v) for v in cert.index[c]]],
+            "label": str(label), "reason": reason}
+
+
+def _global(reason):
+    return {"cell": None, "address": None, "label": None, "reason": reason}
+
+
+def check_certificate(path, model=None, jobs=None, progress=None):
+    """Re-verify every claim of a certificate.
+
+    Parameters
+    ----------
+    path : str or Path
+        A ``certificate.json.gz`` written by ``certify prove``.
+    model : str or Path, optional
+        A revised model file with the same states: check the certificate's claims
+        against it instead of the stored model (a regression check).
+    jobs : int, optional
+        Worker processes (default: all cores; 1 runs in this process).
+    progress : callable, optional
+        ``progress(n_cells)`` after each chunk of cells is recomputed;
+        ``progress.total(n)`` is called first when present.
+
+    Returns
+    -------
+    CheckResult
+
+    Raises
+    ------
+    CertificateError
+        When the file is unreadable or malformed (the message names the file and key).
+    ModelError
+        When the revised model file is malformed.
+    """
+    start = time.monotonic()
+    cert = _read(path)
+    failures = []
+    revised = None
+    if model is not None:
+        revised = load_model(model)
+        if [s.name for s in revised.states] != cert.states:
+            raise CertificateError(f"{model}: its states {[s.name for s in revised.states]} "
+                                   f"differ from the certificate's {cert.states}")
+        the_model = revised
+    else:
+        if not cert.sha_ok:
+            return _verdict(cert, [_global("the model text does not match its sha256 "
+                                           "(the model or the hash was changed)")],
+                            start, 0, 0)
+        the_model = _with_parameters(cert)
+        if [s.name for s in the_model.states] != cert.states:
+            raise CertificateError(f"{path}: key 'states': {cert.states} differ from the "
+                                   f"model's states")
+        if tuple(the_model.window) != cert.window:
+            failures.append(_global("the window differs from the model's state ranges"))
+    tree, problems = _tile(cert)
+    if problems:
+        return _verdict(cert, failures + [_global(f"the cells do not tile the window: {p}")
+                                          for p in problems], start, 0, 0, revised, model)
+    programs = derive_programs(the_model, cert.order)
+    params = tuple((p.lo, p.hi) for p in the_model.parameters)
+    open_faces = []
+    base = CheckContext(programs=programs, params=params, window=cert.window, open_faces=(),
+                        grid_depth=tree.max_depth)
+    for axis, side, kind in cert.faces:
+        if kind == "open":
+            open_faces.append((axis, side))
+        elif not _confirm_face(base, cert.window, axis, side, kind):
+            open_faces.append((axis, side))
+            failures.append(_global(f"face {cert.states[axis]} {side} is not proven to be of "
+                                    f"kind {kind!r}"))
+    context = CheckContext(programs=programs, params=params, window=cert.window,
+                           open_faces=tuple(open_faces), grid_depth=tree.max_depth)
+    jobs = (os.cpu_count() or 1) if jobs is None else max(1, int(jobs))
+    n_steps = _needs_steps(cert)
+    if progress is not None and hasattr(progress, "total"):
+        progress.total(cert.L)
+    facts = _Facts(cert.L, cert.n)
+    tasks = _tasks(cert, np.arange(cert.L), n_steps)
+    for number, result in _compute(context, tasks, "ball", jobs, progress).items():
+        facts.store(tasks[number].cells, result)
+    judge, local = _judge_all(cert, facts, tree, np.arange(cert.L))
+    retry = np.array(sorted(c for c, reasons in local.items()
+                            if any(arith for _, arith in reasons)), int)
+    if len(retry):
+        tasks = _tasks(cert, retry, n_steps)
+        for number, result in _compute(context, tasks, "endpoint", jobs, None).items():
+            facts.store(tasks[number].cells, result)
+        _, again = _judge_all(cert, facts, tree, retry)
+        for c in retry:
+            local.pop(c, None)
+            if c in again:
+                local[c] = again[c]
+    for c in sorted(local):
+        failures.append(_record(cert, c, cert.label[c], "; ".join(r for r, _ in local[c])))
+    claims = None
+    if revised is not None:
+        claims = _propagate(cert, judge, set(local))
+        failures += [_record(cert, c, cert.label[c], "a successor's claim does not hold")
+                     for c in claims.pop("inherited")]
+    return _verdict(cert, failures, start, cert.L, len(retry), revised, model, claims)
+
+
+def _with_parameters(cert):
+    model = cert.model
+    names = [p.name for p in model.parameters]
+    if sorted(names) != sorted(cert.params):
+        raise CertificateError(f"{cert.path}: key 'parameters': expected the model's "
+                               f"parameters {names}")
+    try:
+        return model.with_parameters(cert.params)
+    except CertifyError as exc:
+        raise CertificateError(f"{cert.path}: key 'parameters': {exc}") from None
+
+
+def _judge_all(cert, facts, tree, cells):
+    """Local checks of `cells`; returns the judge and ``{cell: [(reason, arithmetic)]}``."""
+    use = facts.image.astype(bool) & ~facts.empty
+    sel = np.asarray(cells)[use[cells]]
+    missing = {}
+    if len(sel):
+        q, leaf = _leaves_meeting(tree, facts.grid_lo[sel], facts.grid_hi[sel])
+        src = sel[q]
+        stored = cert.succ_start
+        owner = np.repeat(np.arange(cert.L), np.diff(stored))
+        known = set((owner * cert.L + cert.succ).tolist())
+        for s, d in zip(src.tolist(), leaf.tolist()):
+            if s * cert.L + d not in known and s not in missing:
+                missing[s] = d
+    judge = _Judge(cert, facts, tree, missing)
+    local = {}
+    for c in np.asarray(cells).tolist():
+        reasons = judge.check(c)
+        if reasons:
+            local[c] = reasons
+    return judge, local
+
+
+def _propagate(cert, judge, failed):
+    """Claims that still hold once failures spread to the cells relying on them."""
+    failed = set(failed)
+    users = {}
+    for c in range(cert.L):
+        for d in judge.needs(c):
+            users.setdefault(int(d), []).append(c)
+    stack = list(failed)
+    inherited = []
+    while stack:
+        d = stack.pop()
+        for c in users.get(d, ()):
+            if c not in failed:
+                failed.add(c)
+                inherited.append(c)
+                stack.append(c)
+    held = {k: 0 for k in LABELS}
+    lost = {k: 0 for k in LABELS}
+    for c in range(cert.L):
+        (lost if c in failed else held)[str(cert.label[c])] += 1
+    return {"held": held, "failed": lost, "inherited": sorted(inherited)}
+
+
+def _verdict(cert, failures, start, checked, fallback, revised=None, model=None, claims=None):
+    valid = not failures
+    if valid:
+        message = "every claim of the certificate holds"
+    else:
+        cells = len({f["cell"] for f in failures if f["cell"] is not None})
+        whole = [f["reason"] for f in failures if f["cell"] is None]
+        parts = whole + ([f"{cells} of {cert.L} cells have claims that do not hold"]
+                         if cells else [])
+        message = "; ".join(parts)
+    if revised is not None:
+        message += f" (claims checked against {model})"
+    return CheckResult(status=0 if valid else 1, message=message, valid=valid,
+                       cells_checked=checked, failures=failures,
+                       seconds=time.monotonic() - start, fallback_cells=fallback,
+                       model=str(model) if model is not None else None, claims=claims)

@@ -25,6 +25,7 @@ import numpy as np
 from .certificate import decode_array, read_certificate
 from .errors import CertificateError
 from .expr import format_expression, format_number
+from .prove import _eval_limits
 from .taylor import flow_programs
 from .volumes import axis_threshold
 
@@ -161,7 +162,7 @@ class _Limits:
     def __init__(self, cert):
         self.model = cert.model
         self.params = cert.data["_param_floats"]
-        self.program = flow_programs(cert.model, 1).limits
+        self.programs = flow_programs(cert.model, 1)
         states = cert.model.state_symbols
         self.thresholds = [axis_threshold(c.g, states) for c in cert.model.constraints]
 
@@ -171,11 +172,7 @@ class _Limits:
 
     def status(self, lo, hi):
         """Per box: 1 certainly within every limit, -1 certainly violating one, 0 unknown."""
-        cols_lo = list(lo.T) + [np.full(len(lo), p[0]) for p in self.params]
-        cols_hi = list(hi.T) + [np.full(len(lo), p[1]) for p in self.params]
-        out = self.program.interval_columns(cols_lo, cols_hi)
-        glo = np.stack([o[0] for o in out], -1)
-        ghi = np.stack([o[1] for o in out], -1)
+        glo, ghi = _eval_limits(self.programs, lo, hi, self.params)
         res = np.zeros(len(lo), int)
         res[np.all(glo >= 0, axis=1)] = 1
         res[np.any(ghi < 0, axis=1)] = -1
@@ -196,7 +193,7 @@ class _Limits:
         mid = [0.5 * (p[0] + p[1]) for p in self.params]
         inputs = np.concatenate([points, np.tile(mid, (len(points), 1))], 1) \
             if mid else points
-        return np.all(self.program.point(inputs) >= 0, axis=1)
+        return np.all(self.programs.limits.point(inputs) >= 0, axis=1)
 
 
 def _box_volume(lo, hi):

@@ -5,6 +5,7 @@ for the details.
 """
 
 from certify.certificate import Certificate, read_certificate
+from certify.checker import CheckResult, check_certificate
 from certify.errors import CertificateError, CertifyError, ModelError, UsageError
 from certify.model import Model, load_model, parse_model
 from certify.prove import Proof, prove
@@ -14,11 +15,13 @@ __all__ = [
     "Certificate",
     "CertificateError",
     "CertifyError",
+    "CheckResult",
     "Model",
     "ModelError",
     "Proof",
     "SweepResult",
     "UsageError",
+    "check_certificate",
     "load_model",
     "parse_model",
     "prove",

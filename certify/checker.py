@@ -20,6 +20,7 @@ import itertools
 import multiprocessing
 import os
 import time
+import zlib
 from dataclasses import dataclass, field
 from fractions import Fraction
 
@@ -96,9 +97,8 @@ class _Reader:
         if not isinstance(obj, dict) or key not in obj:
             self.fail(where, "missing")
         value = obj[key]
-        if kind is not None and not isinstance(value, kind):
-            self.fail(where, f"expected {kind.__name__ if isinstance(kind, type) else 'a value'}"
-                             f" of another type, got {type(value).__name__}")
+        if kind is not None and (not isinstance(value, kind) or isinstance(value, bool)):
+            self.fail(where, f"expected a {kind.__name__}, got {type(value).__name__}")
         return value
 
     def fraction(self, text, where):
@@ -155,7 +155,27 @@ class _Certificate:
 
 
 def _read(path):
-    data = load_certificate_json(path)
+    """Read and structurally validate a certificate.
+
+    Raises
+    ------
+    CertificateError
+        For anything unreadable or malformed (never another exception).
+    """
+    try:
+        data = load_certificate_json(path)
+    except zlib.error as exc:
+        raise CertificateError(f"{path}: not a readable certificate ({exc})") from None
+    try:
+        return _parse(path, data)
+    except CertificateError:
+        raise
+    except (KeyError, TypeError, ValueError, IndexError, OverflowError, AttributeError) as exc:
+        raise CertificateError(f"{path}: malformed certificate ({type(exc).__name__}: "
+                               f"{exc})") from None
+
+
+def _parse(path, data):
     rd = _Reader(path, data)
     model_obj = rd.get(data, "model", "model", dict)
     text = rd.get(model_obj, "text", "model.text", str)

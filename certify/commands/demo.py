@@ -24,4 +24,16 @@ def run(args):
         path = path.relative_to(Path.cwd())
     except ValueError:
         pass
-    return run_proof(str(path), args, default_out=Path("proofs_out") / "fermenter")
+    out = Path(args.out or Path("proofs_out") / "fermenter")
+    code = run_proof(str(path), args, default_out=out)
+    if code != 0:
+        return code
+    from certify.checker import check_certificate
+
+    cert = out / "certificate.json.gz"
+    result = check_certificate(cert)
+    if not args.json:
+        verdict = "VALID" if result.valid else "INVALID"
+        print(f"independent check: {verdict}: {result.message} ({result.cells_checked} cells, "
+              f"{result.seconds:.1f} s)")
+    return result.status

@@ -1,0 +1,90 @@
+"""``certify check CERT``: re-verify a certificate independently of the code that made it."""
+
+import json
+import sys
+
+from certify.errors import UsageError
+
+__all__ = ["HELP", "add_arguments", "run", "SHOWN_FAILURES"]
+
+HELP = "re-verify a certificate with independent arithmetic (exit 0 valid, 1 invalid)"
+
+#: Failures listed on the terminal (``--json`` lists all).
+SHOWN_FAILURES = 20
+
+
+def add_arguments(parser):
+    """Add the options of ``certify check`` to ``parser``."""
+    parser.add_argument("certificate", metavar="CERT", help="certificate file (certificate.json.gz)")
+    parser.add_argument("--model", metavar="MODEL.toml",
+                        help="check the claims against this revised model (same states) "
+                             "and report which still hold")
+    parser.add_argument("--jobs", type=int, metavar="N",
+                        help="worker processes (default: all cores)")
+    parser.add_argument("--json", action="store_true",
+                        help="print {valid, cells_checked, failures, seconds} as JSON")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+class _Progress:
+    """A tqdm bar on stderr counting recomputed cells (shown once checking starts)."""
+
+    def __init__(self):
+        self.bar = None
+
+    def total(self, n):
+        from tqdm import tqdm
+
+        tqdm.monitor_interval = 0
+        self.bar = tqdm(total=n, unit="cell", file=sys.stderr, leave=False, desc="checking")
+
+    def __call__(self, n):
+        if self.bar is not None:
+            self.bar.update(n)
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _describe(failure):
+    if failure["cell"] is None:
+        return f"  certificate: {failure['reason']}"
+    depth, index = failure["address"]
+    return (f"  cell {failure['cell']} (depth {depth}, index {index}, {failure['label']}): "
+            f"{failure['reason']}")
+
+
+def run(args):
+    """Check the certificate named by ``args.certificate``; returns 0 or 1."""
+    from certify.checker import check_certificate
+
+    if args.jobs is not None and args.jobs < 1:
+        raise UsageError("--jobs must be at least 1")
+    progress = None if args.quiet or args.json else _Progress()
+    try:
+        result = check_certificate(args.certificate, model=args.model, jobs=args.jobs,
+                                   progress=progress)
+    finally:
+        if progress is not None:
+            progress.close()
+    if args.json:
+        out = {"valid": result.valid, "cells_checked": result.cells_checked,
+               "failures": result.failures, "seconds": round(result.seconds, 3)}
+        if result.claims is not None:
+            out["claims"] = result.claims
+        print(json.dumps(out, indent=2))
+        return result.status
+    verdict = "VALID" if result.valid else "INVALID"
+    print(f"{verdict}: {args.certificate}: {result.message} "
+          f"({result.cells_checked} cells, {result.seconds:.1f} s)")
+    if result.claims is not None:
+        for key in ("held", "failed"):
+            counts = ", ".join(f"{n} {label}" for label, n in result.claims[key].items() if n)
+            print(f"claims that {'still hold' if key == 'held' else 'fail'}: {counts or 'none'}")
+    for failure in result.failures[:SHOWN_FAILURES]:
+        print(_describe(failure))
+    hidden = len(result.failures) - SHOWN_FAILURES
+    if hidden > 0:
+        print(f"  ... and {hidden} more (--json lists all)")
+    return result.status

@@ -22,13 +22,16 @@ guesses that the test then proves or rejects.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
+import sympy
 
 from . import interval as iv
+from .program import compile_program
 
-__all__ = ["RootSystem", "RootSearch", "find_roots", "krawczyk", "evaluate", "split_boxes", "merge_boxes"]
+__all__ = ["RootSystem", "RootSearch", "find_roots", "krawczyk", "evaluate", "split_boxes",
+           "merge_boxes", "pieces", "piece_levels"]
 
 #: Relative widening of a box before the Krawczyk test, so that a zero on a face is inside.
 INFLATION = 1.0 / 64
@@ -38,6 +41,12 @@ NEWTON_STEPS = 30
 INFLATION_ROUNDS = 12
 #: Rounds of growing a proven box (doubling) into a larger region of uniqueness.
 GROWTH_ROUNDS = 20
+#: Most pieces of the parameter box when a moving zero is proven piece by piece.
+MAX_PIECES = 64
+#: Most failed retries (symbolic preconditioning, pieces) in one search; each compiles.
+MAX_RETRIES = 8
+#: Most Newton guesses verified in one level (more only when zeros are not isolated).
+MAX_GUESSES = 64
 
 
 @dataclass(frozen=True)
@@ -58,6 +67,11 @@ class RootSystem:
         Float enclosures of the parameter boxes, in input order.
     interval_params : tuple of int
         Positions (in `params`) of the parameters that are intervals.
+    exprs : tuple of sympy.Expr
+        ``h`` as expressions (empty when unknown); with `inputs` they let a zero that the
+        plain test cannot prove be retried with the preconditioner applied symbolically.
+    inputs : tuple of sympy.Symbol
+        The program inputs: the unknowns, then the parameters.
     """
 
     values: object
@@ -65,6 +79,8 @@ class RootSystem:
     param_jacobian: object
     params: np.ndarray
     interval_params: tuple
+    exprs: tuple = ()
+    inputs: tuple = ()
 
     @property
     def n_params(self):
@@ -156,6 +172,36 @@ def _preconditioner(jlo, jhi):
     return np.linalg.pinv(mid)
 
 
+def pieces(lo, hi, params, interval_params, levels):
+    """Cut boxes and the interval parameters into equal pieces.
+
+    Parameters
+    ----------
+    lo, hi : ndarray, shape (N, n)
+    params : ndarray, shape (n_params, 2)
+    interval_params : sequence of int
+        Positions of the parameters that are cut too.
+    levels : int
+        Halvings of every cut side.
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (N * k, n)
+        The pieces, ``k = 2^(levels (n + len(interval_params)))`` consecutive per box.
+    params : ndarray, shape (N * k, n_params, 2)
+        The parameter boxes of each piece.
+    """
+    count, n = lo.shape
+    which = list(interval_params)
+    blo = np.concatenate([lo, np.tile(params[which, 0], (count, 1))], 1)
+    bhi = np.concatenate([hi, np.tile(params[which, 1], (count, 1))], 1)
+    for _ in range(levels):
+        blo, bhi = split_boxes(blo, bhi)
+    out = np.tile(params, (len(blo), 1, 1))
+    out[:, which, 0], out[:, which, 1] = blo[:, n:], bhi[:, n:]
+    return blo[:, :n], bhi[:, :n], out
+
+
 def _jacobian(system, lo, hi, levels):
     """Enclose ``J_x`` over boxes times the parameter box as the hull over pieces.
 
@@ -163,26 +209,24 @@ def _jacobian(system, lo, hi, levels):
     the hull of the enclosures over the pieces encloses the Jacobian over the whole box
     and is tighter than one evaluation (less dependency in each piece).
     """
-    count, n = lo.shape
-    which = list(system.interval_params)
+    count = len(lo)
     if levels == 0:
         return evaluate(system.jacobian, lo, hi, system.params)
-    blo = np.concatenate([lo, np.tile(system.params[which, 0], (count, 1))], 1)
-    bhi = np.concatenate([hi, np.tile(system.params[which, 1], (count, 1))], 1)
-    for _ in range(levels):
-        blo, bhi = split_boxes(blo, bhi)
-    params = np.tile(system.params, (len(blo), 1, 1))
-    params[:, which, 0], params[:, which, 1] = blo[:, n:], bhi[:, n:]
-    jlo, jhi = evaluate(system.jacobian, blo[:, :n], bhi[:, :n], params)
+    plo, phi, params = pieces(lo, hi, system.params, system.interval_params, levels)
+    jlo, jhi = evaluate(system.jacobian, plo, phi, params)
     jlo = jlo.reshape(count, -1, jlo.shape[1])
     jhi = jhi.reshape(count, -1, jhi.shape[1])
     return jlo.min(axis=1), jhi.max(axis=1)
 
 
-def _levels(system, n):
-    """Halvings for :func:`_jacobian` that keep the pieces per box at most 256."""
-    d = n + len(system.interval_params)
+def piece_levels(n, n_interval_params):
+    """Halvings for :func:`pieces` that keep the pieces per box at most 256."""
+    d = n + n_interval_params
     return 2 if d <= 4 else 1 if d <= 8 else 0
+
+
+def _levels(system, n):
+    return piece_levels(n, len(system.interval_params))
 
 
 def krawczyk(system, lo, hi, levels=0):
@@ -261,10 +305,15 @@ def _tighten(system, lo, hi, rounds=6):
 
 
 def _newton(system, x):
-    """Float Newton iterations from guesses ``x`` (N, n); returns points and a mask."""
+    """Float Newton iterations from guesses ``x`` (N, n).
+
+    Returns the points and a mask of those that converged to a zero with a
+    well-conditioned Jacobian (only those can pass the Krawczyk test).
+    """
     p = system.point_params()
     n = x.shape[1]
     step = np.full_like(x, np.inf)
+    good = np.ones(len(x), bool)
     for _ in range(NEWTON_STEPS):
         f = _point(system.values, x, p)
         jac = _point(system.jacobian, x, p).reshape(len(x), n, n)
@@ -276,48 +325,197 @@ def _newton(system, x):
         x = x - np.where(np.isfinite(step), step, 0.0)
         if not (np.abs(step) > 1e-13 * (np.abs(x) + 1.0)).any():
             break
-    return x, np.isfinite(x).all(1) & np.isfinite(step).all(1)
+    converged = (np.abs(step) <= 1e-9 * (np.abs(x) + 1.0)).all(1)
+    conditioned = good & (np.linalg.cond(jac) < 1e10)
+    return x, np.isfinite(x).all(1) & converged & conditioned
 
 
-def _verify(system, points, scale):
-    """Prove zeros near float guesses by epsilon-inflation (Rump 1983 (mem)).
+def _inflate_and_test(system, points, scale):
+    """Epsilon-inflation (Rump 1983 (mem)) around float guesses: ``X := K(X)`` widened.
 
     Returns
     -------
-    enc_lo, enc_hi, reg_lo, reg_hi : ndarray, shape (k, n)
-        Tight enclosures of proven zeros and larger boxes where each is the only zero.
+    done : ndarray of bool, shape (k,)
+        Rows where ``K(X)`` landed inside the interior of ``X``.
+    lo, hi : ndarray, shape (k, n)
+        The last boxes ``X`` (proven boxes where `done`).
     """
     tiny = 1e-10 * (np.abs(points) + scale)
     lo, hi = points - tiny, points + tiny
     live = np.ones(len(points), bool)
     done = np.zeros(len(points), bool)
+    levels = _levels(system, lo.shape[1])
     for _ in range(INFLATION_ROUNDS):
         todo = np.flatnonzero(live)
         if not len(todo):
             break
-        klo, khi = krawczyk(system, lo[todo], hi[todo], _levels(system, lo.shape[1]))
+        klo, khi = krawczyk(system, lo[todo], hi[todo], levels)
         ok = _proven_inside(klo, khi, lo[todo], hi[todo])
         done[todo[ok]] = True
         centre, radius = 0.5 * (klo + khi), 0.5 * (khi - klo)
         radius = 1.5 * radius + 1e-10 * (np.abs(centre) + scale)
         usable = np.isfinite(centre).all(1) & np.isfinite(radius).all(1)
         live[todo[ok | ~usable]] = False
-        moved = todo[~ok & usable]
-        lo[moved], hi[moved] = centre[~ok & usable] - radius[~ok & usable], \
-            centre[~ok & usable] + radius[~ok & usable]
-    enc_lo, enc_hi = _tighten(system, lo[done], hi[done])
-    reg_lo, reg_hi = _grow(system, lo[done], hi[done], scale)
-    return enc_lo, enc_hi, reg_lo, reg_hi
+        step = ~ok & usable
+        lo[todo[step]], hi[todo[step]] = centre[step] - radius[step], centre[step] + radius[step]
+    return done, lo, hi
+
+
+def _preconditioned(system, point):
+    """The system ``C h`` with ``C ~ J(point)^-1`` multiplied out symbolically.
+
+    Expanding ``C J`` (and ``C dh/dp``) lets terms cancel that interval evaluation of
+    ``J`` entry by entry keeps apart: e.g. ``x^2 - x^2`` across two entries, or a
+    parameter that drops out of a combination of rows. ``C`` enters as exact rationals
+    (the binary values of the floats), so ``C h`` has the same zeros as ``h`` whenever
+    ``C`` is invertible, which a successful Krawczyk test on ``C h`` proves.
+    """
+    n = len(point)
+    jac = _point(system.jacobian, point[None], system.point_params()).reshape(n, n)
+    c = np.linalg.pinv(jac)
+    inputs = system.inputs
+    matrix = sympy.Matrix(n, n, [sympy.Rational(float(v)) for v in c.ravel()])
+    rows = matrix * sympy.Matrix(system.exprs)
+    unknowns = sympy.Matrix(inputs[:n])
+    jac_exprs = [sympy.expand(e) for e in rows.jacobian(unknowns)]
+    param_jacobian = None
+    if system.interval_params:
+        wrt = sympy.Matrix([inputs[n + k] for k in system.interval_params])
+        param_jacobian = compile_program([sympy.expand(e) for e in rows.jacobian(wrt)], inputs)
+    return replace(system, values=compile_program(list(rows), inputs),
+                   jacobian=compile_program(jac_exprs, inputs), param_jacobian=param_jacobian)
+
+
+def _prove_one(system, point, scale):
+    """Prove one zero near `point`: plain test, then symbolically preconditioned.
+
+    Returns
+    -------
+    (RootSystem, ndarray, ndarray) or None
+        The system whose Krawczyk test succeeded and the proven box ``lo, hi`` (1, n).
+    """
+    ok, lo, hi = _inflate_and_test(system, point[None], scale)
+    if ok[0]:
+        return system, lo, hi
+    if not (system.exprs and system.interval_params):
+        return None
+    sub = _preconditioned(system, point)
+    ok, lo, hi = _inflate_and_test(sub, point[None], scale)
+    return (sub, lo, hi) if ok[0] else None
+
+
+def _prove_by_pieces(system, point, scale):
+    """Prove a zero that moves far as the interval parameters vary.
+
+    The parameter box is cut into pieces (2, 4, then 8 per interval parameter, at most
+    :data:`MAX_PIECES` in all); for each piece a zero is proven near the Newton guess
+    of that piece. The hull ``H`` of their boxes holds a zero for every parameter value,
+    and it is the only one when the Jacobian over ``H`` and the whole parameter box is
+    regular (:func:`_regular`): then the mean value theorem, row by row, makes ``h``
+    injective on ``H``.
+
+    Returns
+    -------
+    (RootSystem, ndarray, ndarray) or None
+        The system that proved regularity and the hull ``lo, hi`` (1, n).
+    """
+    which = list(system.interval_params)
+    for level in (1, 2, 3):
+        if 2 ** (level * len(which)) > MAX_PIECES:
+            break
+        plo, phi = system.params[which, 0][None], system.params[which, 1][None]
+        for _ in range(level):
+            plo, phi = split_boxes(plo, phi)
+        boxes = []
+        for a, b in zip(plo, phi):
+            params = system.params.copy()
+            params[which, 0], params[which, 1] = a, b
+            piece = replace(system, params=params)
+            guess, ok = _newton(piece, point[None])
+            proof = _prove_one(piece, guess[0], scale) if ok[0] else None
+            if proof is None:
+                break
+            boxes.append(np.concatenate(_tighten(*proof)))
+        else:
+            lo = np.min([b[:1] for b in boxes], axis=0)
+            hi = np.max([b[1:] for b in boxes], axis=0)
+            for candidate in (system, _preconditioned(system, 0.5 * (lo[0] + hi[0]))):
+                if _regular(candidate, lo, hi)[0]:
+                    return candidate, lo, hi
+    return None
+
+
+def _regular(system, lo, hi):
+    """Rows where every matrix of the interval Jacobian over the box is invertible.
+
+    With ``C`` an approximate inverse of the midpoint matrix and ``B`` the entrywise
+    magnitude bound of ``I - C J(X, P)``, a positive vector ``v`` with ``B v < v`` proves
+    the spectral radius of ``B`` below 1 (Collatz-Wielandt), hence ``C A`` invertible
+    for every ``A`` in the enclosure. ``v`` comes from float power iteration; the
+    inequality is checked with outward rounding.
+    """
+    count, n = lo.shape
+    jlo, jhi = _jacobian(system, lo, hi, _levels(system, n))
+    jlo, jhi = jlo.reshape(count, n, n), jhi.reshape(count, n, n)
+    c = _preconditioner(jlo, jhi)
+    cjlo, cjhi = _cp_product(c, jlo, jhi)
+    eye = np.eye(n)[None]
+    mlo, mhi = iv.sub(eye, eye, cjlo, cjhi)
+    mag = np.maximum(np.abs(mlo), np.abs(mhi))
+    usable = np.isfinite(mag).all(axis=(1, 2))
+    mag[~usable] = 0.0
+    v = np.ones((count, n))
+    for _ in range(40):
+        v = np.einsum("nij,nj->ni", mag, v) + 1e-3 * v.max(axis=1, keepdims=True)
+        v /= v.max(axis=1, keepdims=True)
+    _, bound = _sum_last(*iv.mul(mag, mag, v[:, None, :], v[:, None, :]))
+    return usable & (bound < v).all(1)
+
+
+def _verify(system, points, scale, registry):
+    """Prove zeros near float guesses.
+
+    Every guess is tried with the plain Krawczyk test. With interval parameters, guesses
+    that fail are retried one at a time with a symbolically preconditioned system
+    (:func:`_preconditioned`) and by pieces of the parameter box
+    (:func:`_prove_by_pieces`); guesses that still fail are remembered in `registry`
+    and not retried, and retries stop after :data:`MAX_RETRIES` failures.
+
+    Returns
+    -------
+    enc_lo, enc_hi, reg_lo, reg_hi : ndarray, shape (k, n)
+        Tight enclosures of proven zeros and larger boxes where each is the only zero.
+    """
+    done, lo, hi = _inflate_and_test(system, points, scale)
+    enc = [_tighten(system, lo[done], hi[done])]
+    reg = [_grow(system, lo[done], hi[done], scale)]
+    retry = np.flatnonzero(~done) if system.exprs and system.interval_params else []
+    for k in retry[:max(0, MAX_RETRIES - len(registry.failed))]:
+        proof = _prove_one(system, points[k], scale)
+        if proof is not None:
+            enc.append(_tighten(*proof))
+        else:
+            proof = _prove_by_pieces(system, points[k], scale)
+            if proof is not None:
+                enc.append(proof[1:])
+        if proof is None:
+            registry.failed.append(points[k])
+        else:
+            reg.append(_grow(*proof, scale))
+    return tuple(np.concatenate([part[i] for part in parts])
+                 for parts in (enc, reg) for i in (0, 1))
 
 
 def _grow(system, lo, hi, scale):
-    """Enlarge proven boxes while the Krawczyk test still passes.
+    """Enlarge boxes that hold one proven zero while the Jacobian stays regular.
 
-    Each round doubles every side, or failing that one side at a time, so that regions
-    stretch along the directions where the zero is well isolated.
+    A box whose interval Jacobian is regular (:func:`_regular`) holds at most one zero
+    for each parameter value, so a larger such box around a proven one still holds only
+    that zero. Each round doubles every side, or failing that one side at a time, so
+    that regions stretch along the directions where the zero is well isolated.
     """
+    lo, hi = lo.copy(), hi.copy()
     n = lo.shape[1]
-    levels = _levels(system, n)
     centre = 0.5 * (lo + hi)
     radius = np.maximum(0.5 * (hi - lo), 1e-4 * scale)
     growth = np.vstack([np.full(n, 2.0), 1.0 + np.eye(n)])
@@ -329,9 +527,9 @@ def _grow(system, lo, hi, scale):
             if not len(todo):
                 break
             wider = np.minimum(factor * radius[todo], scale)
-            tlo, thi = centre[todo] - wider, centre[todo] + wider
-            klo, khi = krawczyk(system, tlo, thi, levels)
-            ok = _proven_inside(klo, khi, tlo, thi) & (wider > radius[todo]).any(1)
+            tlo = np.minimum(centre[todo] - wider, lo[todo])
+            thi = np.maximum(centre[todo] + wider, hi[todo])
+            ok = _regular(system, tlo, thi) & (wider > radius[todo]).any(1)
             lo[todo[ok]], hi[todo[ok]] = tlo[ok], thi[ok]
             radius[todo[ok]] = wider[ok]
             waiting[todo[ok]] = False
@@ -364,6 +562,7 @@ class _Registry:
         self.reg_hi = np.empty((0, n))
         self.reg_root = np.empty(0, int)
         self.doubtful = []
+        self.failed = []
 
     def covers(self, lo, hi):
         """Boxes inside some region (any zero there is a known one)."""
@@ -510,7 +709,11 @@ def _krawczyk_round(system, registry, box_lo, box_hi, scale):
         _, first = np.unique(rounded, axis=0, return_index=True)
         guesses = guesses[np.sort(first)]
         guesses = guesses[~registry.covers(guesses, guesses)]
+    if len(guesses) and registry.failed:
+        failed = np.array(registry.failed)
+        close = (np.abs(guesses[:, None] - failed[None]) <= 1e-7 * scale).all(2).any(1)
+        guesses = guesses[~close]
     if len(guesses):
-        registry.add(*_verify(system, guesses, scale))
+        registry.add(*_verify(system, guesses[:MAX_GUESSES], scale, registry))
     keep = ~registry.covers(box_lo, box_hi)
     return box_lo[keep], box_hi[keep]

@@ -76,6 +76,8 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     from matplotlib.lines import Line2D
     from matplotlib import colormaps
 
+    from .plots_points import draw_points
+
     if ax is None:
         _, ax = plt.subplots(figsize=(7, 6))
     i, j = plane
@@ -101,6 +103,7 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
                                          facecolors=colours, edgecolors="none"))
     states = proof.model.states
     handles = _draw_limits(ax, proof, i, j, fixed)
+    draw_points(ax, proof, plane)  # equilibria, limit arcs, tangencies, curves (2D only)
     ax.set_xlim(tree.lo[0][i], tree.hi[0][i])
     ax.set_ylim(tree.lo[0][j], tree.hi[0][j])
     ax.set_xlabel(_axis_label(states[i]))

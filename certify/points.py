@@ -26,7 +26,8 @@ import numpy as np
 import sympy
 
 from . import interval as iv
-from .krawczyk import RootSystem, evaluate, find_roots, merge_boxes, split_boxes
+from .krawczyk import (RootSystem, evaluate, find_roots, merge_boxes, piece_levels, pieces,
+                       split_boxes)
 from .program import compile_program
 from .prove import _param_floats
 
@@ -45,6 +46,7 @@ TANGENCY_KINDS = ("returns", "leaves", "undetermined")
 @dataclass(frozen=True)
 class _LimitPrograms:
     rate: object          # (g, dg/dt)
+    rate_exprs: tuple
     tangency_jacobian: object
     tangency_param_jacobian: object
     curvature: object     # d2g/dt2, or None without derivatives of f
@@ -52,6 +54,8 @@ class _LimitPrograms:
 
 @dataclass(frozen=True)
 class _Programs:
+    inputs: tuple
+    field_exprs: tuple
     field: object
     jacobian: object
     param_jacobian: object
@@ -87,11 +91,12 @@ def _compile(equations, states, parameters, limits, fixed, interval_symbols, smo
                 [sum((sympy.diff(rate, s) * fs for s, fs in zip(states, f)), sympy.Integer(0))],
                 inputs)
         limit_programs.append(_LimitPrograms(
-            rate=compile_program([g, rate], inputs),
+            rate=compile_program([g, rate], inputs), rate_exprs=(g, rate),
             tangency_jacobian=jac(pair, x) if square else None,
             tangency_param_jacobian=jac(pair, p) if square else None,
             curvature=curvature))
-    return _Programs(field=compile_program(f, inputs), jacobian=jac(field, x),
+    return _Programs(inputs=inputs, field_exprs=tuple(f),
+                     field=compile_program(f, inputs), jacobian=jac(field, x),
                      param_jacobian=jac(field, p), margins=compile_program(gs, inputs),
                      limits=tuple(limit_programs))
 
@@ -188,6 +193,24 @@ def _has_right_root(coeffs):
     return np.any(hits, axis=0)
 
 
+def _stability_flags(jlo, jhi):
+    """Per matrix: (all roots certainly left, some root certainly right, some certainly left)."""
+    coeffs = _characteristic(jlo, jhi)
+    stable = np.all([lo > 0 for lo, _ in _hurwitz(coeffs)], axis=0)
+    right = _has_right_root(coeffs)
+    mirrored = [c if k % 2 == 0 else iv.neg(*c) for k, c in enumerate(coeffs, start=1)]
+    left = _has_right_root(mirrored)
+    return stable, right, left
+
+
+def _stability_words(stable, right, left):
+    out = np.full(len(stable), "undetermined", dtype=object)
+    out[right] = "unstable"
+    out[right & left] = "saddle"
+    out[stable] = "stable"
+    return out
+
+
 def classify_stability(jlo, jhi):
     """Stability of equilibria from interval Jacobians (Routh-Hurwitz).
 
@@ -211,17 +234,25 @@ def classify_stability(jlo, jhi):
     Routh 1877, Hurwitz 1895 (mem): a real monic polynomial has all roots in the open
     left half plane iff the leading principal minors of its Hurwitz matrix
     ``H_ij = a_(2i-j)`` are positive. NaN bounds make every test fail (undetermined).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> j = np.array([[[0.0, 1.0], [-2.0, -3.0]], [[0.0, 1.0], [1.0, 0.0]]])
+    >>> classify_stability(j, j).tolist()
+    ['stable', 'saddle']
     """
-    coeffs = _characteristic(jlo, jhi)
-    stable = np.all([lo > 0 for lo, _ in _hurwitz(coeffs)], axis=0)
-    right = _has_right_root(coeffs)
-    mirrored = [c if k % 2 == 0 else iv.neg(*c) for k, c in enumerate(coeffs, start=1)]
-    left = _has_right_root(mirrored)
-    out = np.full(len(jlo), "undetermined", dtype=object)
-    out[right] = "unstable"
-    out[right & left] = "saddle"
-    out[stable] = "stable"
-    return out
+    return _stability_words(*_stability_flags(jlo, jhi))
+
+
+def _box_stability(jacobian, lo, hi, params, interval_params):
+    """Stability over each box, decided piece by piece (all pieces must agree)."""
+    count, n = lo.shape
+    levels = piece_levels(n, len(interval_params))
+    plo, phi, pparams = pieces(lo, hi, params, interval_params, levels)
+    jlo, jhi = evaluate(jacobian, plo, phi, pparams)
+    flags = _stability_flags(jlo.reshape(-1, n, n), jhi.reshape(-1, n, n))
+    return _stability_words(*(f.reshape(count, -1).all(axis=1) for f in flags))
 
 
 # ---------------------------------------------------------------------------- equilibria
@@ -330,14 +361,15 @@ def find_equilibria(model, *, max_depth=12, max_boxes=20_000):
     params = _params(model)
     system = RootSystem(values=programs.field, jacobian=programs.jacobian,
                         param_jacobian=programs.param_jacobian, params=params,
-                        interval_params=_interval_positions(model))
+                        interval_params=_interval_positions(model),
+                        exprs=programs.field_exprs if programs.jacobian else (),
+                        inputs=programs.inputs)
     lo, hi = _window(model)
     with np.errstate(all="ignore"):
         search = find_roots(system, lo, hi, max_depth=max_depth, max_boxes=max_boxes)
-        n = len(lo)
         if len(search.lo) and programs.jacobian is not None:
-            jlo, jhi = evaluate(programs.jacobian, search.lo, search.hi, params)
-            stability = classify_stability(jlo.reshape(-1, n, n), jhi.reshape(-1, n, n))
+            stability = _box_stability(programs.jacobian, search.lo, search.hi, params,
+                                       system.interval_params)
         else:
             stability = np.full(len(search.lo), "undetermined", dtype=object)
         position = _limit_position(model, search.lo, search.hi)
@@ -466,7 +498,9 @@ def analyse_limits(model, *, arc_depth=8, tangency_depth=12, cover_depth=6, max_
             arcs = _arcs(prog.rate, lo, hi, params, arc_depth, max_boxes)
             system = RootSystem(values=prog.rate, jacobian=prog.tangency_jacobian,
                                 param_jacobian=prog.tangency_param_jacobian, params=params,
-                                interval_params=positions)
+                                interval_params=positions,
+                                exprs=prog.rate_exprs if prog.tangency_jacobian else (),
+                                inputs=programs.inputs)
             depth = tangency_depth if system.jacobian is not None else cover_depth
             search = find_roots(system, lo, hi, max_depth=depth, max_boxes=max_boxes)
             tangencies = []
@@ -614,7 +648,10 @@ def _margin_function(model):
 
 
 def _trace(field, margin, start, t_max, direction, scale):
-    """Integrate from `start` (forwards for direction +1) until leaving the limits or the window."""
+    """Integrate from `start` (forwards for direction +1) until leaving the limits or the window.
+
+    Returns the points and whether the curve stayed within the limits and the window.
+    """
     from scipy.integrate import solve_ivp
 
     def leaves(t, x):
@@ -630,14 +667,17 @@ def _trace(field, margin, start, t_max, direction, scale):
                     events=(leaves, settles), rtol=1e-9, atol=1e-12 * scale, dense_output=True)
     t_end = sol.t[-1]
     times = np.linspace(0.0, t_end, 400)
-    return sol.sol(times).T if t_end > 0 else start[None]
+    stays = len(sol.t_events[0]) == 0
+    return (sol.sol(times).T if t_end > 0 else start[None]), stays
 
 
 def explaining_curves(model, result, *, t_max=200.0, offset=1e-5):
     """Stable manifolds of saddles and trajectories through ``returns`` tangencies (2D).
 
     These are float estimates (scipy ``solve_ivp``), labelled as such wherever they are
-    shown: the boundary of the safe set is usually made of them.
+    shown: the boundary of the safe set is usually made of them. A trajectory through a
+    tangency point is kept only when its forward part stays within the limits; otherwise
+    starts on both sides of it cross a limit and it bounds nothing.
 
     Parameters
     ----------
@@ -672,14 +712,16 @@ def explaining_curves(model, result, *, t_max=200.0, offset=1e-5):
             for sign in (1.0, -1.0):
                 if margin(c + sign * step) < 0:
                     continue
-                branch = _trace(field, margin, c + sign * step, t_max, -1.0, scale)
+                branch, _ = _trace(field, margin, c + sign * step, t_max, -1.0, scale)
                 curves.append(Curve("stable manifold", np.vstack([c[None], branch]), c))
         for limit in result.limits:
             for tangency in limit.tangencies:
                 if tangency.kind != "returns" or not tangency.unique:
                     continue
                 c = 0.5 * (tangency.box[:, 0] + tangency.box[:, 1])
-                back = _trace(field, margin, c, t_max, -1.0, scale)
-                ahead = _trace(field, margin, c, t_max, 1.0, scale)
+                ahead, stays = _trace(field, margin, c, t_max, 1.0, scale)
+                if not stays:
+                    continue
+                back, _ = _trace(field, margin, c, t_max, -1.0, scale)
                 curves.append(Curve("tangent trajectory", np.vstack([back[::-1], ahead[1:]]), c))
     return tuple(curves)

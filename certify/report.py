@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .points import points_summary
+
 __all__ = ["proof_summary", "summary_table", "SAFETY_NOTE"]
 
 SAFETY_NOTE = ("This certificate is a theorem about the model, not about the plant. Real "
@@ -47,6 +49,7 @@ def proof_summary(proof, certificate_path=None):
         "seconds": round(proof.seconds, 3),
         "certificate": certificate_path,
         "note": SAFETY_NOTE,
+        **points_summary(model),  # equilibria, complete, unresolved, limits
     }
 
 

@@ -531,7 +531,7 @@ def check_claim(model, region, expect, until=None, *, max_depth=None, time_limit
                   f"{counterexample['reason']}"
         unsettled = []
     elif not unsettled:
-        verdict, message = "proven", f"proven over {len(pieces)} cells"
+        verdict, message = "proven", _proof_message(expect, T, pieces)
     else:
         verdict = "inconclusive"
         message = (f"inconclusive: {len(unsettled)} parts of the region are not settled "
@@ -541,6 +541,21 @@ def check_claim(model, region, expect, until=None, *, max_depth=None, time_limit
     return ClaimResult(verdict=verdict, message=message, expect=expect, region=full,
                        until=T, counterexample=counterexample, undecided_boxes=boxes,
                        undecided_volume=volume, proof=proof)
+
+
+def _proof_message(expect, T, pieces):
+    """One line saying what the cells meeting the region prove."""
+    n = len(pieces)
+    if expect == "safe":
+        return f"proven: the region satisfies the limits and lies in {n} cells proven safe"
+    if expect == "stays":
+        low = min(p.lower for p in pieces)
+        return (f"proven: the {n} cells meeting the region stay within the limits at least "
+                f"up to t = {low:.6g}" if math.isfinite(low) else
+                f"proven: the region satisfies the limits and lies in {n} cells proven safe")
+    high = max((p.upper for p in pieces if math.isfinite(p.upper)), default=0.0)
+    return (f"proven: every start of the region in K lies in one of {n} cells proven to "
+            f"cross a limit by t = {high:.6g}")
 
 
 def _fmt(point):

@@ -70,8 +70,11 @@ def run(args):
 
 def _text(result):
     region = ", ".join(f"{k}={float(lo):g}:{float(hi):g}" for k, (lo, hi) in result.region.items())
-    claim = result.expect + ("" if result.until is None else f" until {float(result.until):g}")
-    lines = [f"{result.verdict.upper()}  claim: every start in {region} is {claim}",
+    until = None if result.until is None else f"t = {float(result.until):g}"
+    claim = {"safe": "stays within the limits for all time",
+             "stays": f"stays within the limits up to {until}",
+             "doomed": "crosses a limit" + (f" by {until}" if until else "")}[result.expect]
+    lines = [f"{result.verdict.upper()}  claim: every start in {region} {claim}",
              result.message]
     c = result.counterexample
     if c is not None:

@@ -538,12 +538,24 @@ def _grow(system, lo, hi, scale):
 
 
 def _inflate(lo, hi):
+    """Widen boxes by :data:`INFLATION` of their width (and a little absolute room)."""
     pad = INFLATION * (hi - lo) + 1e-12 * (np.abs(lo) + np.abs(hi)) + 1e-300
     return lo - pad, hi + pad
 
 
 def split_boxes(lo, hi):
-    """Halve every side: ``2^n`` children per box."""
+    """Halve every side of each box.
+
+    Parameters
+    ----------
+    lo, hi : ndarray, shape (N, n)
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (N * 2^n, n)
+        The children, ``2^n`` consecutive per box; they cover the box (the shared
+        midpoint is the same float on both sides).
+    """
     n = lo.shape[1]
     mid = 0.5 * lo + 0.5 * hi
     corners = np.array(np.meshgrid(*[[0, 1]] * n, indexing="ij")).reshape(n, -1).T
@@ -601,7 +613,18 @@ class _Registry:
 
 
 def merge_boxes(lo, hi):
-    """Join boxes whose union is a box (same sides but one, touching along it)."""
+    """Join boxes whose union is a box: equal sides but one, touching along that one.
+
+    Parameters
+    ----------
+    lo, hi : ndarray, shape (N, n)
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (M, n)
+        ``M <= N`` boxes with exactly the same union (so any property proven on each
+        input box holds on each output box).
+    """
     n = lo.shape[1]
     for axis in range(n):
         if len(lo) < 2:

@@ -632,7 +632,7 @@ class Curve:
 def _margin_function(model):
     """Float margin: negative once a point is outside the limits or the window."""
     programs = _programs(model)
-    p = 0.5 * (_params(model)[:, 0] + _params(model)[:, 1])
+    p = _params(model).mean(axis=1)
     lo, hi = _window(model)
     scale = hi - lo
 

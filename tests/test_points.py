@@ -18,6 +18,8 @@ from scipy.optimize import root
 from certify.cli import main
 from certify.model import load_model, parse_model
 from certify.points import (
+    STABILITIES,
+    TANGENCY_KINDS,
     analyse_limits,
     analyse_points,
     classify_stability,
@@ -433,13 +435,13 @@ def test_cli_json_has_the_structure_of_the_issue(capsys):
     assert set(data) == {"equilibria", "complete", "unresolved", "limits"}
     assert data["complete"] is True and data["unresolved"] == []
     for e in data["equilibria"]:
-        assert set(e) == {"box", "stability", "limits"}
+        assert set(e) == {"box", "stability", "limits"} and e["stability"] in STABILITIES
         assert len(e["box"]) == 2 and all(len(side) == 2 for side in e["box"])
     assert set(data["limits"]) == {"biomass_floor", "aeration_cap", "discharge_limit"}
     for entry in data["limits"].values():
         assert set(entry) == {"leaves", "returns", "tangencies"}
         for t in entry["tangencies"]:
-            assert set(t) == {"box", "kind"} and t["kind"] in ("returns", "leaves", "undetermined")
+            assert set(t) == {"box", "kind"} and t["kind"] in TANGENCY_KINDS
 
 
 def test_cli_table_and_parameter_override(capsys):

@@ -45,7 +45,7 @@ def _fmt_box(box):
 
 def _fmt_interval(lo, hi):
     if hi - lo < 1e-9 * max(1.0, abs(lo)):
-        return f"{0.5 * (lo + hi):.10g}"
+        return "0" if lo <= 0 <= hi else f"{0.5 * (lo + hi):.10g}"
     return f"[{lo:.6g}, {hi:.6g}]"
 
 

@@ -235,13 +235,11 @@ class _Piece:
     """The part of the region inside one leaf."""
 
     leaf: int
-    node: int
     box: list            # exact (lo, hi) per state
     label: str
     lower: float          # certified survival lower bound of the leaf
     upper: float          # certified crossing upper bound of the leaf
     good: bool = False
-    refutes: dict | None = None
 
 
 class _Auditor:
@@ -259,11 +257,13 @@ class _Auditor:
         self.thick = [a < b for a, b in self.region]
 
     # -- pieces -----------------------------------------------------------------------
-    def pieces(self, tree, leaves, labelling):
-        """The region's parts in the leaves (only full-dimensional parts: every point of
-        the region lies in one of them)."""
+    def assess(self, tree, leaves, labelling):
+        """The region's parts in the leaves, each judged, and one counterexample or None.
+
+        Only full-dimensional parts are kept: every point of the region lies in one.
+        """
         _, nodes = tree.leaves_meeting(self.lo[None], self.hi[None])
-        out = []
+        pieces = []
         for node in nodes:
             box = []
             for (a, b), (c, d) in zip(self.region, tree.exact_box(node)):
@@ -272,38 +272,48 @@ class _Auditor:
                    for (lo, hi), thick in zip(box, self.thick)):
                 continue
             leaf = int(np.searchsorted(leaves, node))
-            out.append(_Piece(leaf=leaf, node=int(node), box=box,
-                              label=str(labelling.label[leaf]),
-                              lower=float(labelling.survival_lower[leaf]),
-                              upper=float(labelling.crossing_upper[leaf])))
-        self._judge(out)
-        return out
+            pieces.append(_Piece(leaf=leaf, box=box, label=str(labelling.label[leaf]),
+                                 lower=float(labelling.survival_lower[leaf]),
+                                 upper=float(labelling.crossing_upper[leaf])))
+        return pieces, self._judge(pieces)
 
     def _limits(self, lo, hi):
         return _eval_limits(self.programs, lo, hi, self.params)
 
     def _judge(self, pieces):
+        """Mark the pieces that settle the claim; return one counterexample or None.
+
+        A crossing from within the limits is looked for first: it says more than a point
+        that already violates a limit.
+        """
         if not pieces:
-            return
+            return None
         blo = np.array([[iv.enclose_fraction(a)[0] for a, _ in p.box] for p in pieces])
         bhi = np.array([[iv.enclose_fraction(b)[1] for _, b in p.box] for p in pieces])
         glo, ghi = self._limits(blo, bhi)
         inside = np.all(glo >= 0, axis=1)
         outside = np.any(ghi < 0, axis=1)
         T = self.until
+        searches = []
         for p, p_in, p_out in zip(pieces, inside, outside):
             if self.expect == "doomed":
                 p.good = bool(p_out) or _at_most(p.upper, T)
                 if _at_least(p.lower, T):
                     reason = ("lies in a proven safe cell" if p.label == "safe" else
                               f"is proven within the limits up to t = {p.lower:.6g}")
-                    p.refutes = self._find(p, "in", reason)
+                    searches.append((0, p, "in", reason))
             else:
                 p.good = bool(p_in) and _at_least(p.lower, T)
+                if _at_most(p.upper, T) and not p_out:
+                    searches.append((0, p, "in", f"lies in a proven {p.label} cell"))
                 if not p_in:
-                    p.refutes = self._find(p, "out", "violates a limit at t = 0")
-                if p.refutes is None and _at_most(p.upper, T):
-                    p.refutes = self._find(p, "in", f"lies in a proven {p.label} cell")
+                    searches.append((1, p, "out", "violates a limit at t = 0"))
+        searches.sort(key=lambda s: (s[0], s[1].upper))
+        for _, p, want, reason in searches:
+            found = self._find(p, want, reason)
+            if found is not None:
+                return found
+        return None
 
     def _find(self, piece, want, reason):
         """A float point of the piece (exactly inside it) that certainly satisfies every
@@ -324,24 +334,14 @@ class _Auditor:
             return {"point": points[k].tolist(), "limit": limit, "crossing_time": [0.0, 0.0],
                     "reason": reason}
         return {"point": points[k].tolist(), "limit": None,
-                "crossing_time": [_bound(max(piece.lower, 0.0)), _bound(piece.upper)], "reason": reason}
+                "crossing_time": [_bound(max(piece.lower, 0.0)), _bound(piece.upper)],
+                "reason": reason}
 
     # -- the claim as a whole ---------------------------------------------------------
-    def refutation(self, pieces):
-        """The most telling counterexample among the pieces, or None."""
-        found = [p.refutes for p in pieces if p.refutes is not None]
-        if not found:
-            return None
-        # a crossing from within the limits says more than a point already outside
-        found.sort(key=lambda c: (c["crossing_time"][1] == 0.0,
-                                  math.inf if c["crossing_time"][1] is None
-                                  else c["crossing_time"][1]))
-        return found[0]
-
     def wanted(self, tree, leaves, labelling, facts):
         """Leaves to split next (the ``focus`` callable of :func:`certify.prove.prove`)."""
-        pieces = self.pieces(tree, leaves, labelling)
-        if self.refutation(pieces) is not None:
+        pieces, counterexample = self.assess(tree, leaves, labelling)
+        if counterexample is not None:
             return np.zeros(0, int)
         label = labelling.label
         # time bounds of doomed cells improve when cut finer; plain labels do not
@@ -518,8 +518,7 @@ def check_claim(model, region, expect, until=None, *, max_depth=None, time_limit
     auditor = _Auditor(model, full, expect, T, params, flow_programs(model, 1))
     proof = prove(model, focus=auditor.wanted, max_depth=max_depth, time_limit=time_limit,
                   progress=progress, **options)
-    pieces = auditor.pieces(proof.tree, proof.leaves, proof.labelling)
-    counterexample = auditor.refutation(pieces)
+    pieces, counterexample = auditor.assess(proof.tree, proof.leaves, proof.labelling)
     if counterexample is not None:
         counterexample = _name_limit(auditor, proof, counterexample)
     else:

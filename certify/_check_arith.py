@@ -142,6 +142,14 @@ class BallArith:
         """Rows `index` of an interval array (scalars pass through)."""
         return a[index] if np.ndim(a) else a
 
+    def put(self, a, index, b):
+        """A copy of `a` with rows `index` replaced by `b` (scalars stay scalars)."""
+        if not np.ndim(a):
+            return a
+        out = a.copy()
+        out[index] = b
+        return out
+
     # -- bounds and predicates -----------------------------------------------------------
     def lower(self, a):
         """Exact lower bounds (object array of arb)."""
@@ -154,6 +162,14 @@ class BallArith:
     def finite(self, a):
         """Bool array: the interval is usable (finite)."""
         return _bool(_finite(a))
+
+    def sum_lower(self, a, b):
+        """Exact lower bounds of the sums of exact numbers."""
+        return _lower(a + b)
+
+    def sum_upper(self, a, b):
+        """Exact upper bounds of the sums of exact numbers."""
+        return _upper(a + b)
 
     # -- operations ----------------------------------------------------------------------
     def add(self, a, b):
@@ -192,10 +208,6 @@ class BallArith:
 
     def function(self, name, a):
         return _FUNCTIONS[name](a)
-
-    def timebox(self, h, a):
-        """``[0, h] * a`` for point intervals ``h > 0``: the hull of 0 and ``h a``."""
-        return _union(self.zero, h * a)
 
     def cover(self, box, pieces=4):
         """Sub-boxes covering a box (a list of interval arrays, one per axis).
@@ -336,6 +348,13 @@ class EndpointArith:
         lo, hi = a
         return lo[index] if np.ndim(lo) else lo, hi[index] if np.ndim(hi) else hi
 
+    def put(self, a, index, b):
+        if not np.ndim(a[0]):
+            return a
+        lo, hi = a[0].copy(), a[1].copy()
+        lo[index], hi[index] = b
+        return lo, hi
+
     # -- bounds and predicates -----------------------------------------------------------
     def lower(self, a):
         return a[0]
@@ -345,6 +364,12 @@ class EndpointArith:
 
     def finite(self, a):
         return _bool(_finite(a[0])) & _bool(_finite(a[1]))
+
+    def sum_lower(self, a, b):
+        return self._down(a + b)
+
+    def sum_upper(self, a, b):
+        return self._up(a + b)
 
     # -- operations ----------------------------------------------------------------------
     def add(self, a, b):
@@ -452,11 +477,6 @@ class EndpointArith:
     def cover(self, box, pieces=4):
         """The box itself: the exact path follows the prover's evaluation."""
         return [box]
-
-    def timebox(self, h, a):
-        lo = np.minimum(self._down(h[0] * a[0]), self.zero)
-        hi = np.maximum(self._up(h[1] * a[1]), self.zero)
-        return _keep_nan(lo, a[0]), _keep_nan(hi, a[0])
 
     def hull(self, a, b):
         return (_keep_nan(np.minimum(a[0], b[0]), a[0], b[0]),

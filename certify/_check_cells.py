@@ -35,6 +35,8 @@ __all__ = ["CheckContext", "CellTask", "cell_facts", "face_pieces_proven", "exac
 TUBE_PIECES = 4
 #: Pieces of the mean-value box for the Jacobians (ball arithmetic).
 JACOBIAN_PIECES = (4, 1, 1)
+#: Pieces of the a-priori box for the Taylor remainder (ball arithmetic).
+REMAINDER_PIECES = 2
 
 
 @dataclass(frozen=True)
@@ -139,21 +141,33 @@ def _matvec(ar, P, v):
     return [row[0] for row in _matmul(ar, P, [[x] for x in v])]
 
 
-def _step(ar, context, X, m, A, r, h, E_bounds, m_next, A_next):
-    """One step for the active cells; returns the new box, coordinates and facts."""
+def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
+    """One step for the active cells; returns the new box, coordinates and facts.
+
+    `X_bounds` are exact lower and upper bounds of the box ``X`` (per axis), which the
+    Picard test uses: a ball's own bounds may be a little wider.
+    """
     progs = context.programs
     n, q = progs.n, progs.order
     params = _params(ar, context)
     hh = ar.exact(h)
-    E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
-    tube = _joined(ar, progs.on_tube, ar.cover(E, TUBE_PIECES), params)
+    tube, ok, spans = _picard(ar, progs, params, hh, X_bounds, E_bounds)
+    E_used = E_bounds.copy()
+    retry = np.flatnonzero(~ok)
+    if len(retry):
+        # the checker's own box X may be a hair wider than the prover's, which matters
+        # where the stored box has no slack: try the stored box widened once
+        sub = ([ar.take(b, retry) for b in X_bounds[0]], [ar.take(b, retry) for b in X_bounds[1]])
+        wide = _widened(E_bounds[retry], [(ar.take(lo, retry), ar.take(hi, retry))
+                                          for lo, hi in spans])
+        tube2, ok2, _ = _picard(ar, progs, params, ar.take(hh, retry), sub, wide)
+        good = retry[ok2]
+        ok[good] = True
+        E_used[good] = wide[ok2]
+        tube = [ar.put(a, good, ar.take(b, np.flatnonzero(ok2))) for a, b in zip(tube, tube2)]
     field, rates = tube[:n], tube[n:]
-    remainder = evaluate(progs.remainder, ar, E + params)
-    ok = np.ones(len(h), bool)
-    for k in range(n):
-        N = ar.add(X[k], ar.timebox(hh, field[k]))
-        ok &= _true(ar.lower(N) >= ar.lower(ar.exact(E_bounds[:, k, 0])))
-        ok &= _true(ar.upper(N) <= ar.upper(ar.exact(E_bounds[:, k, 1])))
+    E = [ar.box(E_used[:, k, 0], E_used[:, k, 1]) for k in range(n)]
+    remainder = _joined(ar, progs.remainder, ar.cover(E, REMAINDER_PIECES), params)
     powers = [None, hh] + [ar.pow_int(hh, k) for k in range(2, q + 1)]
     # T(m) + h^q f^[q](E)
     point = [ar.exact(m[:, k]) for k in range(n)]
@@ -193,10 +207,57 @@ def _step(ar, context, X, m, A, r, h, E_bounds, m_next, A_next):
     g = evaluate(progs.limits, ar, list(X) + params)
     kept = np.ones(len(h), bool)
     for j in range(progs.n_limits):
-        integral = ar.lower(ar.add(g[j], ar.timebox(hh, rates[j])))
+        integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return ok, kept, crossed, X_next, new_r, E
+    return ok, kept, crossed, X_next, new_r, E, E_used
+
+
+def _picard(ar, progs, params, hh, X_bounds, E_bounds):
+    """Field and limit rates on the boxes, and whether ``X + [0, h] f(E) ⊆ E``.
+
+    Returns
+    -------
+    tube : list of intervals
+        ``f`` then the limit rates on ``E``.
+    ok : ndarray of bool
+    spans : list of (lo, hi)
+        Exact bounds of ``X + [0, h] f(E)`` per axis.
+    """
+    n = progs.n
+    E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
+    tube = _joined(ar, progs.on_tube, ar.cover(E, TUBE_PIECES), params)
+    ok = np.ones(len(E_bounds), bool)
+    spans = []
+    for k in range(n):
+        move_lo, move_hi = _span(ar, hh, tube[k])
+        low = ar.sum_lower(X_bounds[0][k], move_lo)
+        high = ar.sum_upper(X_bounds[1][k], move_hi)
+        ok &= _true(low >= ar.lower(ar.exact(E_bounds[:, k, 0])))
+        ok &= _true(high <= ar.upper(ar.exact(E_bounds[:, k, 1])))
+        spans.append((low, high))
+    return tube, ok, spans
+
+
+def _widened(E_bounds, spans):
+    """The stored boxes joined with ``X + [0, h] f(E)`` and widened a little.
+
+    Plain floats suffice: the result is only a candidate that the Picard test checks.
+    """
+    out = E_bounds.copy()
+    for k, (low, high) in enumerate(spans):
+        lo = np.minimum(out[:, k, 0], np.array([float(v) for v in low]))
+        hi = np.maximum(out[:, k, 1], np.array([float(v) for v in high]))
+        pad = 2.0 ** -20 * (hi - lo) + 2.0 ** -40 * np.maximum(np.abs(lo), np.abs(hi)) + 1e-300
+        out[:, k, 0], out[:, k, 1] = lo - pad, hi + pad
+    return out
+
+
+def _span(ar, h, a):
+    """Exact bounds of ``[0, h] a`` for point intervals ``h > 0`` (NaN stays NaN)."""
+    p = ar.mul(h, a)
+    lo, hi = ar.lower(p), ar.upper(p)
+    return np.minimum(lo, 0) + (lo - lo), np.maximum(hi, 0) + (hi - hi)
 
 
 def _joined(ar, program, pieces, params):
@@ -247,11 +308,14 @@ def cell_facts(context, task, arithmetic):
     outside = _limits_upper_negative(ar, context, cell, N)
     K = task.n_steps
     start = np.concatenate([[0], np.cumsum(K)]).astype(int)
+    tube_boxes = task.E.copy()
     n_valid = np.zeros(N, int)
     first_unkept = np.full(N, -1)
     crossing = np.full(N, -1)
     ids = np.flatnonzero(K > 0)
     X = [ar.take(x, ids) for x in cell]
+    X_bounds = ([ar.lower(ar.rationals(lo_q[ids, k], lo_q[ids, k])) for k in range(n)],
+                [ar.upper(ar.rationals(hi_q[ids, k], hi_q[ids, k])) for k in range(n)])
     m = task.m0[ids]
     A = np.broadcast_to(np.eye(n), (len(ids), n, n))
     m_q = [np.array([Fraction(float(v)) for v in m[:, k]], dtype=object) for k in range(n)]
@@ -261,8 +325,9 @@ def cell_facts(context, task, arithmetic):
     k = 0
     while len(ids):
         s = start[ids] + k
-        ok, kept, crossed, X_next, r_next, E = _step(
-            ar, context, X, m, A, r, task.h[s], task.E[s], task.m[s], task.A[s])
+        ok, kept, crossed, X_next, r_next, E, E_used = _step(
+            ar, context, X, X_bounds, m, A, r, task.h[s], tube_boxes[s], task.m[s], task.A[s])
+        tube_boxes[s] = E_used
         n_valid[ids[ok]] = k + 1
         unkept = ok & ~kept & (first_unkept[ids] < 0)
         first_unkept[ids[unkept]] = k
@@ -279,6 +344,7 @@ def cell_facts(context, task, arithmetic):
         go = ok & (K[ids] > k + 1)
         keep = np.flatnonzero(go)
         X = [ar.take(x, keep) for x in X_next]
+        X_bounds = ([ar.lower(x) for x in X], [ar.upper(x) for x in X])
         r = [ar.take(x, keep) for x in r_next]
         m, A = task.m[s[keep]], task.A[s[keep]]
         ids = ids[keep]
@@ -286,7 +352,7 @@ def cell_facts(context, task, arithmetic):
     first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
     facts = {"outside": outside, "n_valid": n_valid, "first_unkept": first_unkept,
              "crossing_step": crossing}
-    facts.update(_images(ar, context, task, image, image_cells))
+    facts.update(_images(ar, context, task, tube_boxes, image, image_cells))
     return facts
 
 
@@ -296,7 +362,7 @@ def _concat(ar, a, b):
     return np.concatenate([a, b])
 
 
-def _images(ar, context, task, image, image_cells):
+def _images(ar, context, task, tube_boxes, image, image_cells):
     """Clip the images at the window, decide escapes, express them on the grid."""
     n = context.programs.n
     N = len(task.cells)
@@ -319,7 +385,7 @@ def _images(ar, context, task, image, image_cells):
     hi = np.array([[_to_fraction(x) for x in ar.upper(ar.take(image[i], sel))]
                    for i in range(n)], dtype=object).T.reshape(len(sel), n)
     known[cells] = 1
-    escapes[cells] = _escapes(ar, context, task, cells, lo, hi)
+    escapes[cells] = _escapes(ar, context, task, tube_boxes, cells, lo, hi)
     for c, row_lo, row_hi in zip(cells, lo, hi):
         for i, (a, b) in enumerate(context.window):
             row_lo[i] = max(row_lo[i], a)
@@ -349,7 +415,7 @@ def grid_bounds(window, depth, lo, hi):
     return np.array(first, np.int64), np.array(last, np.int64)
 
 
-def _escapes(ar, context, task, cells, lo, hi):
+def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
     """Whether a part of each image outside the window may hold a trajectory in K.
 
     A trajectory that stays within the limits can leave the window only through an
@@ -370,9 +436,9 @@ def _escapes(ar, context, task, cells, lo, hi):
     for axis, side in context.open_faces:
         a, b = window[axis]
         if side == "lo":
-            beyond = _float_below(task.E[:, axis, 0], a)
+            beyond = _float_below(tube_boxes[:, axis, 0], a)
         else:
-            beyond = _float_above(task.E[:, axis, 1], b)
+            beyond = _float_above(tube_boxes[:, axis, 1], b)
         np.logical_or.at(tube_pokes, rows[beyond], True)
     check = tube_pokes[cells]
     if not check.any():

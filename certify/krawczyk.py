@@ -31,7 +31,7 @@ from . import interval as iv
 from .program import compile_program
 
 __all__ = ["RootSystem", "RootSearch", "find_roots", "krawczyk", "evaluate", "split_boxes",
-           "merge_boxes", "pieces", "piece_levels"]
+           "merge_boxes"]
 
 #: Relative widening of a box before the Krawczyk test, so that a zero on a face is inside.
 INFLATION = 1.0 / 64
@@ -172,7 +172,7 @@ def _preconditioner(jlo, jhi):
     return np.linalg.pinv(mid)
 
 
-def pieces(lo, hi, params, interval_params, levels):
+def _pieces(lo, hi, params, interval_params, levels):
     """Cut boxes and the interval parameters into equal pieces.
 
     Parameters
@@ -212,21 +212,17 @@ def _jacobian(system, lo, hi, levels):
     count = len(lo)
     if levels == 0:
         return evaluate(system.jacobian, lo, hi, system.params)
-    plo, phi, params = pieces(lo, hi, system.params, system.interval_params, levels)
+    plo, phi, params = _pieces(lo, hi, system.params, system.interval_params, levels)
     jlo, jhi = evaluate(system.jacobian, plo, phi, params)
     jlo = jlo.reshape(count, -1, jlo.shape[1])
     jhi = jhi.reshape(count, -1, jhi.shape[1])
     return jlo.min(axis=1), jhi.max(axis=1)
 
 
-def piece_levels(n, n_interval_params):
-    """Halvings for :func:`pieces` that keep the pieces per box at most 256."""
-    d = n + n_interval_params
-    return 2 if d <= 4 else 1 if d <= 8 else 0
-
-
 def _levels(system, n):
-    return piece_levels(n, len(system.interval_params))
+    """Halvings for :func:`_pieces` that keep the pieces per box at most 256."""
+    d = n + len(system.interval_params)
+    return 2 if d <= 4 else 1 if d <= 8 else 0
 
 
 def krawczyk(system, lo, hi, levels=0):

@@ -20,14 +20,13 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import lru_cache
-from itertools import combinations, permutations
+from itertools import combinations
 
 import numpy as np
 import sympy
 
 from . import interval as iv
-from .krawczyk import (RootSystem, evaluate, find_roots, merge_boxes, piece_levels, pieces,
-                       split_boxes)
+from .krawczyk import RootSystem, evaluate, find_roots, merge_boxes, split_boxes
 from .program import compile_program
 from .prove import _param_floats
 
@@ -132,22 +131,37 @@ def _boxes(lo, hi):
 # ----------------------------------------------------------------------------- stability
 
 
-def _interval_det(entries):
-    """Interval determinant of a square nested list of ``(lo, hi)`` pairs (Leibniz)."""
-    k = len(entries)
-    total = None
-    for perm in permutations(range(k)):
-        lo, hi = entries[0][perm[0]]
-        for row in range(1, k):
-            lo, hi = iv.mul(lo, hi, *entries[row][perm[row]])
-        inversions = sum(perm[a] > perm[b] for a in range(k) for b in range(a + 1, k))
-        if total is None:
-            total = (lo, hi) if inversions % 2 == 0 else iv.neg(lo, hi)
-        elif inversions % 2 == 0:
-            total = iv.add(*total, lo, hi)
-        else:
-            total = iv.sub(*total, lo, hi)
-    return total
+class _Minors:
+    """Interval determinants of square submatrices (Laplace along the first row, memoized).
+
+    ``entry(r, c)`` returns the ``(lo, hi)`` arrays of an entry, or None for an entry that
+    is exactly zero (its terms are skipped). A determinant that is exactly zero is None.
+    """
+
+    def __init__(self, entry, shape):
+        self.entry = entry
+        self.one = (np.ones(shape), np.ones(shape))
+        self.memo = {}
+
+    def det(self, rows, cols):
+        """Determinant of the submatrix ``rows x cols`` (tuples of equal length)."""
+        if not rows:
+            return self.one
+        key = (rows, cols)
+        if key not in self.memo:
+            total = None
+            for k, c in enumerate(cols):
+                e = self.entry(rows[0], c)
+                sub = None if e is None else self.det(rows[1:], cols[:k] + cols[k + 1:])
+                if sub is None:
+                    continue
+                term = iv.mul(*e, *sub)
+                if total is None:
+                    total = term if k % 2 == 0 else iv.neg(*term)
+                else:
+                    total = iv.add(*total, *term) if k % 2 == 0 else iv.sub(*total, *term)
+            self.memo[key] = total
+        return self.memo[key]
 
 
 def _characteristic(jlo, jhi):
@@ -155,13 +169,16 @@ def _characteristic(jlo, jhi):
 
     ``a_k = (-1)^k`` times the sum of the principal minors of order ``k``.
     """
-    n = jlo.shape[1]
+    count, n = jlo.shape[:2]
+    zero = (jlo == 0).all(axis=0) & (jhi == 0).all(axis=0)
+    minors = _Minors(lambda r, c: None if zero[r, c] else (jlo[:, r, c], jhi[:, r, c]), count)
     coeffs = []
     for k in range(1, n + 1):
-        total = None
+        total = (np.zeros(count), np.zeros(count))
         for rows in combinations(range(n), k):
-            minor = _interval_det([[(jlo[:, r, c], jhi[:, r, c]) for c in rows] for r in rows])
-            total = minor if total is None else iv.add(*total, *minor)
+            minor = minors.det(rows, rows)
+            if minor is not None:
+                total = iv.add(*total, *minor)
         coeffs.append(total if k % 2 == 0 else iv.neg(*total))
     return coeffs
 
@@ -170,15 +187,19 @@ def _hurwitz(coeffs):
     """Leading principal minors ``Delta_1..Delta_n`` of the Hurwitz matrix of a monic polynomial."""
     n = len(coeffs)
     shape = np.shape(coeffs[0][0])
-    one, zero = (np.ones(shape), np.ones(shape)), (np.zeros(shape), np.zeros(shape))
-    a = [one] + list(coeffs)
+    a = [(np.ones(shape), np.ones(shape))] + list(coeffs)
 
-    def entry(i, j):  # 1-based: H_ij = a_(2i - j)
-        k = 2 * i - j
-        return a[k] if 0 <= k <= n else zero
+    def entry(i, j):  # 0-based rows and columns: H_ij = a_(2i - j + 1)
+        k = 2 * i - j + 1
+        return a[k] if 0 <= k <= n else None
 
-    return [_interval_det([[entry(i, j) for j in range(1, k + 1)] for i in range(1, k + 1)])
-            for k in range(1, n + 1)]
+    minors = _Minors(entry, shape)
+    zero = (np.zeros(shape), np.zeros(shape))
+    out = []
+    for k in range(1, n + 1):
+        d = minors.det(tuple(range(k)), tuple(range(k)))
+        out.append(zero if d is None else d)
+    return out
 
 
 def _has_right_root(coeffs):
@@ -245,14 +266,40 @@ def classify_stability(jlo, jhi):
     return _stability_words(*_stability_flags(jlo, jhi))
 
 
-def _box_stability(jacobian, lo, hi, params, interval_params):
-    """Stability over each box, decided piece by piece (all pieces must agree)."""
-    count, n = lo.shape
-    levels = piece_levels(n, len(interval_params))
-    plo, phi, pparams = pieces(lo, hi, params, interval_params, levels)
-    jlo, jhi = evaluate(jacobian, plo, phi, pparams)
-    flags = _stability_flags(jlo.reshape(-1, n, n), jhi.reshape(-1, n, n))
-    return _stability_words(*(f.reshape(count, -1).all(axis=1) for f in flags))
+def _box_stability(jacobian, lo, hi, params, interval_params, scale, max_pieces=4096):
+    """Stability over each box and parameter box, decided piece by piece.
+
+    The sides wider than ``1e-9`` of their scale (the window side for states, the
+    parameter's size for interval parameters; a moving equilibrium's box is wide) are
+    halved level by level until the pieces agree on a word or there would be more than
+    `max_pieces`; every piece must then carry the same flag.
+    """
+    n = lo.shape[1]
+    which = list(interval_params)
+    sizes = np.concatenate([scale, np.abs(params[which]).max(axis=1)])
+    words = []
+    for box_lo, box_hi in zip(lo, hi):
+        full_lo = np.concatenate([box_lo, params[which, 0]])
+        full_hi = np.concatenate([box_hi, params[which, 1]])
+        wide = np.flatnonzero(full_hi - full_lo > 1e-9 * sizes)
+        word = "undetermined"
+        level = 0
+        while 2 ** (level * len(wide)) <= max_pieces:
+            cut_lo, cut_hi = full_lo[None, wide], full_hi[None, wide]
+            for _ in range(level):
+                cut_lo, cut_hi = split_boxes(cut_lo, cut_hi)
+            plo, phi = np.tile(full_lo, (len(cut_lo), 1)), np.tile(full_hi, (len(cut_lo), 1))
+            plo[:, wide], phi[:, wide] = cut_lo, cut_hi
+            pparams = np.tile(params, (len(plo), 1, 1))
+            pparams[:, which, 0], pparams[:, which, 1] = plo[:, n:], phi[:, n:]
+            jlo, jhi = evaluate(jacobian, plo[:, :n], phi[:, :n], pparams)
+            flags = _stability_flags(jlo.reshape(-1, n, n), jhi.reshape(-1, n, n))
+            word = _stability_words(*(np.array([f.all()]) for f in flags))[0]
+            if word != "undetermined" or not len(wide):
+                break
+            level += 1
+        words.append(word)
+    return np.array(words, dtype=object)
 
 
 # ---------------------------------------------------------------------------- equilibria
@@ -369,7 +416,7 @@ def find_equilibria(model, *, max_depth=12, max_boxes=20_000):
         search = find_roots(system, lo, hi, max_depth=max_depth, max_boxes=max_boxes)
         if len(search.lo) and programs.jacobian is not None:
             stability = _box_stability(programs.jacobian, search.lo, search.hi, params,
-                                       system.interval_params)
+                                       system.interval_params, hi - lo)
         else:
             stability = np.full(len(search.lo), "undetermined", dtype=object)
         position = _limit_position(model, search.lo, search.hi)

@@ -115,7 +115,17 @@ class DiffResult:
                 "exact": self.exact, "changed_volume": self.changed_volume,
                 "proven_loss_volume": self.proven_loss,
                 "unproven_loss_volume": self.unproven_loss,
+                "proven_loss_boxes": self.boxes("safe", ("doomed", "outside")),
+                "unproven_loss_boxes": self.boxes("safe", ("undecided",)),
                 "model_changes": self.model_changes}
+
+    def boxes(self, old_label, new_labels):
+        """Float boxes (``[lo, hi]`` per state) of the pieces labelled `old_label` in OLD
+        and one of `new_labels` in NEW (straddling pieces by their cells' labels)."""
+        a, b = self.pieces["old"], self.pieces["new"]
+        sel = (a == LABELS.index(old_label)) & np.isin(b, [LABELS.index(k) for k in new_labels])
+        lo, hi = self.pieces["lo"][sel], self.pieces["hi"][sel]
+        return np.stack([lo, hi], -1).tolist()
 
 
 def _certificate_path(path):

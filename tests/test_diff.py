@@ -93,6 +93,15 @@ def test_higher_dilution_rate_loses_every_safe_start(certs, old_new, capsys):
     assert out["failed"] is (code == 1)
     assert out["proven_loss_volume"] == result.proven_loss
     assert out["unproven_loss_volume"] == result.unproven_loss
+    # the listed loss boxes, cut to the demo limits (s <= 9, 1 <= x <= 9), add up to the
+    # loss volumes
+    for key, volume in (("proven_loss_boxes", result.proven_loss),
+                        ("unproven_loss_boxes", result.unproven_loss)):
+        boxes = np.array(out[key]).reshape(-1, 2, 2)
+        s_hi = np.minimum(boxes[:, 0, 1], 9)
+        x_lo, x_hi = np.maximum(boxes[:, 1, 0], 1), np.minimum(boxes[:, 1, 1], 9)
+        inside = np.clip(s_hi - boxes[:, 0, 0], 0, None) * np.clip(x_hi - x_lo, 0, None)
+        assert inside.sum() == pytest.approx(volume, rel=1e-9, abs=1e-12)
     assert Path(out["plot"]).stat().st_size > 0
     assert json.loads((certs["root"] / "out" / "diff.json").read_text())["table"] == t.tolist()
     assert result.fails("any-change")

@@ -151,22 +151,9 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     n, q = progs.n, progs.order
     params = _params(ar, context)
     hh = ar.exact(h)
-    tube, ok, spans = _picard(ar, progs, params, hh, X_bounds, E_bounds)
-    E_used = E_bounds.copy()
-    retry = np.flatnonzero(~ok)
-    if len(retry):
-        # the checker's own box X may be a hair wider than the prover's, which matters
-        # where the stored box has no slack: try the stored box widened once
-        sub = ([ar.take(b, retry) for b in X_bounds[0]], [ar.take(b, retry) for b in X_bounds[1]])
-        wide = _widened(E_bounds[retry], [(ar.take(lo, retry), ar.take(hi, retry))
-                                          for lo, hi in spans])
-        tube2, ok2, _ = _picard(ar, progs, params, ar.take(hh, retry), sub, wide)
-        good = retry[ok2]
-        ok[good] = True
-        E_used[good] = wide[ok2]
-        tube = [ar.put(a, good, ar.take(b, np.flatnonzero(ok2))) for a, b in zip(tube, tube2)]
+    tube, ok = _picard(ar, progs, params, hh, X_bounds, E_bounds)
     field, rates = tube[:n], tube[n:]
-    E = [ar.box(E_used[:, k, 0], E_used[:, k, 1]) for k in range(n)]
+    E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
     remainder = _joined(ar, progs.remainder, ar.cover(E, REMAINDER_PIECES), params)
     powers = [None, hh] + [ar.pow_int(hh, k) for k in range(2, q + 1)]
     # T(m) + h^q f^[q](E)
@@ -210,7 +197,7 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return ok, kept, crossed, X_next, new_r, E, E_used
+    return ok, kept, crossed, X_next, new_r, E
 
 
 def _picard(ar, progs, params, hh, X_bounds, E_bounds):
@@ -221,36 +208,18 @@ def _picard(ar, progs, params, hh, X_bounds, E_bounds):
     tube : list of intervals
         ``f`` then the limit rates on ``E``.
     ok : ndarray of bool
-    spans : list of (lo, hi)
-        Exact bounds of ``X + [0, h] f(E)`` per axis.
     """
     n = progs.n
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
     tube = _joined(ar, progs.on_tube, ar.cover(E, TUBE_PIECES), params)
     ok = np.ones(len(E_bounds), bool)
-    spans = []
     for k in range(n):
         move_lo, move_hi = _span(ar, hh, tube[k])
         low = ar.sum_lower(X_bounds[0][k], move_lo)
         high = ar.sum_upper(X_bounds[1][k], move_hi)
         ok &= _true(low >= ar.lower(ar.exact(E_bounds[:, k, 0])))
         ok &= _true(high <= ar.upper(ar.exact(E_bounds[:, k, 1])))
-        spans.append((low, high))
-    return tube, ok, spans
-
-
-def _widened(E_bounds, spans):
-    """The stored boxes joined with ``X + [0, h] f(E)`` and widened a little.
-
-    Plain floats suffice: the result is only a candidate that the Picard test checks.
-    """
-    out = E_bounds.copy()
-    for k, (low, high) in enumerate(spans):
-        lo = np.minimum(out[:, k, 0], np.array([float(v) for v in low]))
-        hi = np.maximum(out[:, k, 1], np.array([float(v) for v in high]))
-        pad = 2.0 ** -20 * (hi - lo) + 2.0 ** -40 * np.maximum(np.abs(lo), np.abs(hi)) + 1e-300
-        out[:, k, 0], out[:, k, 1] = lo - pad, hi + pad
-    return out
+    return tube, ok
 
 
 def _span(ar, h, a):
@@ -308,7 +277,6 @@ def cell_facts(context, task, arithmetic):
     outside = _limits_upper_negative(ar, context, cell, N)
     K = task.n_steps
     start = np.concatenate([[0], np.cumsum(K)]).astype(int)
-    tube_boxes = task.E.copy()
     n_valid = np.zeros(N, int)
     first_unkept = np.full(N, -1)
     crossing = np.full(N, -1)
@@ -325,9 +293,8 @@ def cell_facts(context, task, arithmetic):
     k = 0
     while len(ids):
         s = start[ids] + k
-        ok, kept, crossed, X_next, r_next, E, E_used = _step(
-            ar, context, X, X_bounds, m, A, r, task.h[s], tube_boxes[s], task.m[s], task.A[s])
-        tube_boxes[s] = E_used
+        ok, kept, crossed, X_next, r_next, E = _step(
+            ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], task.m[s], task.A[s])
         n_valid[ids[ok]] = k + 1
         unkept = ok & ~kept & (first_unkept[ids] < 0)
         first_unkept[ids[unkept]] = k
@@ -352,7 +319,7 @@ def cell_facts(context, task, arithmetic):
     first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
     facts = {"outside": outside, "n_valid": n_valid, "first_unkept": first_unkept,
              "crossing_step": crossing}
-    facts.update(_images(ar, context, task, tube_boxes, image, image_cells))
+    facts.update(_images(ar, context, task, image, image_cells))
     return facts
 
 
@@ -362,7 +329,7 @@ def _concat(ar, a, b):
     return np.concatenate([a, b])
 
 
-def _images(ar, context, task, tube_boxes, image, image_cells):
+def _images(ar, context, task, image, image_cells):
     """Clip the images at the window, decide escapes, express them on the grid."""
     n = context.programs.n
     N = len(task.cells)
@@ -385,7 +352,7 @@ def _images(ar, context, task, tube_boxes, image, image_cells):
     hi = np.array([[_to_fraction(x) for x in ar.upper(ar.take(image[i], sel))]
                    for i in range(n)], dtype=object).T.reshape(len(sel), n)
     known[cells] = 1
-    escapes[cells] = _escapes(ar, context, task, tube_boxes, cells, lo, hi)
+    escapes[cells] = _escapes(ar, context, task, cells, lo, hi)
     for c, row_lo, row_hi in zip(cells, lo, hi):
         for i, (a, b) in enumerate(context.window):
             row_lo[i] = max(row_lo[i], a)
@@ -415,7 +382,7 @@ def grid_bounds(window, depth, lo, hi):
     return np.array(first, np.int64), np.array(last, np.int64)
 
 
-def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
+def _escapes(ar, context, task, cells, lo, hi):
     """Whether a part of each image outside the window may hold a trajectory in K.
 
     A trajectory that stays within the limits can leave the window only through an
@@ -436,9 +403,9 @@ def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
     for axis, side in context.open_faces:
         a, b = window[axis]
         if side == "lo":
-            beyond = _float_below(tube_boxes[:, axis, 0], a)
+            beyond = _float_below(task.E[:, axis, 0], a)
         else:
-            beyond = _float_above(tube_boxes[:, axis, 1], b)
+            beyond = _float_above(task.E[:, axis, 1], b)
         np.logical_or.at(tube_pokes, rows[beyond], True)
     check = tube_pokes[cells]
     if not check.any():

@@ -67,9 +67,6 @@ class Program:
     outputs: tuple
     release: tuple
 
-    def __len__(self):
-        return len(self.instructions)
-
 
 class _Compiler:
     def __init__(self, inputs):

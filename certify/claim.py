@@ -41,6 +41,7 @@ import numpy as np
 
 from . import interval as iv
 from .errors import UsageError
+from .expr import format_number
 from .labels import _reachable
 from .prove import Method, _eval_limits, _param_floats, prove
 from .taylor import flow_programs
@@ -191,8 +192,9 @@ def _full_region(model, region):
         if lo > hi:
             raise UsageError(f"region: LO is above HI for {state.name}")
         if lo < state.lo or hi > state.hi:
-            raise UsageError(f"region: {state.name}={lo}:{hi} is not inside the window "
-                             f"[{state.lo}, {state.hi}] of {state.name}")
+            raise UsageError(f"region: {state.name}={format_number(lo)}:{format_number(hi)} "
+                             f"is not inside the window [{format_number(state.lo)}, "
+                             f"{format_number(state.hi)}] of {state.name}")
         full[state.name] = (lo, hi)
     return full
 

@@ -430,7 +430,8 @@ def plot_diff(result, ax=None, plane=(0, 1)):
         title += " (slice " + ", ".join(f"{result.states[k]} = {centre[k]:.3g}"
                                         for k in others) + ")"
     ax.set_title(title, fontsize=10)
-    ax.legend(handles=legend, loc="upper right", fontsize=7, framealpha=0.9)
+    ax.legend(handles=legend, loc="upper left", bbox_to_anchor=(1.02, 1), fontsize=8,
+              frameon=False)
     return ax
 
 

@@ -102,7 +102,7 @@ def run_sweeps(n, depth, worker_counts):
     return rows, all(out == outputs[0] for out in outputs), summary
 
 
-def section_text(n, depth, rows, same, summary):
+def section_text(n, depth, rows, same, summary, commit):
     """The markdown of the section (heading included)."""
     base = rows[0]["seconds"]
     lines = [
@@ -115,7 +115,7 @@ def section_text(n, depth, rows, same, summary):
         "",
         f"- machine: {_cpu_name()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
         f"{platform.system()}",
-        f"- date: {datetime.date.today().isoformat()}, commit {_commit()}",
+        f"- date: {datetime.date.today().isoformat()}, commit {commit}",
         "",
         "| workers | wall time [s] | speed-up | load average before the run |",
         "| --- | --- | --- | --- |",
@@ -171,8 +171,9 @@ def main(argv=None):
     parser.add_argument("--workers", type=int, nargs="+", default=[1, 2],
                         help="worker counts to time (default: 1 2)")
     args = parser.parse_args(argv)
+    commit = _commit()
     rows, same, summary = run_sweeps(args.boxes, args.max_depth, args.workers)
-    write_section(section_text(args.boxes, args.max_depth, rows, same, summary))
+    write_section(section_text(args.boxes, args.max_depth, rows, same, summary, commit))
     print(f"wrote the section '{SECTION}' of {RESULTS}", file=sys.stderr)
     return 0
 

@@ -32,11 +32,11 @@ __all__ = ["CheckContext", "CellTask", "cell_facts", "face_pieces_proven", "exac
            "grid_bounds"]
 
 #: Pieces of the a-priori box for the field and the limit rates (ball arithmetic).
-TUBE_PIECES = 4
+TUBE_PIECES = 1
 #: Pieces of the mean-value box for the Jacobians (ball arithmetic).
-JACOBIAN_PIECES = (4, 1, 1)
+JACOBIAN_PIECES = (1, 1, 1)
 #: Pieces of the a-priori box for the Taylor remainder (ball arithmetic).
-REMAINDER_PIECES = 2
+REMAINDER_PIECES = 1
 
 
 @dataclass(frozen=True)
@@ -154,7 +154,7 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     tube, ok = _picard(ar, progs, params, hh, X_bounds, E_bounds)
     field, rates = tube[:n], tube[n:]
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
-    remainder = _joined(ar, progs.remainder, ar.cover(E, REMAINDER_PIECES), params)
+    remainder = _joined(ar, progs.remainder, ar.cover(E, ar.pieces.remainder), params)
     powers = [None, hh] + [ar.pow_int(hh, k) for k in range(2, q + 1)]
     # T(m) + h^q f^[q](E)
     point = [ar.exact(m[:, k]) for k in range(n)]
@@ -170,7 +170,7 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     if q > 1:
         J = [ar.hull(X[k], point[k]) for k in range(n)]
         for k in range(1, q):
-            pieces = ar.cover(J, JACOBIAN_PIECES[min(k, len(JACOBIAN_PIECES)) - 1])
+            pieces = ar.cover(J, ar.pieces.jacobian(k))
             jac = _joined(ar, progs.jacobians[k - 1], pieces, params)
             for i in range(n):
                 for j in range(n):
@@ -211,7 +211,7 @@ def _picard(ar, progs, params, hh, X_bounds, E_bounds):
     """
     n = progs.n
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
-    tube = _joined(ar, progs.on_tube, ar.cover(E, TUBE_PIECES), params)
+    tube = _joined(ar, progs.on_tube, ar.cover(E, ar.pieces.tube), params)
     ok = np.ones(len(E_bounds), bool)
     for k in range(n):
         move_lo, move_hi = _span(ar, hh, tube[k])
@@ -256,7 +256,8 @@ def cell_facts(context, task, arithmetic):
     ----------
     context : CheckContext
     task : CellTask
-    arithmetic : {"ball", "endpoint"}
+    arithmetic : {"ball", "fine", "endpoint"}
+        A key of :data:`certify._check_arith.ARITHMETICS`.
 
     Returns
     -------
@@ -457,7 +458,7 @@ def face_pieces_proven(context, arithmetic, axis, side, lo, hi, need_limit):
     Parameters
     ----------
     context : CheckContext
-    arithmetic : {"ball", "endpoint"}
+    arithmetic : {"ball", "fine", "endpoint"}
     axis : int
     side : {"lo", "hi"}
     lo, hi : object arrays of Fractions, shape (P, n)

@@ -9,8 +9,9 @@ cell's claims locally against its own facts and its successors' claims
 over ranks (doomed) and horizons (safe, survival bounds).
 
 Arithmetic: each cell is first recomputed with arb balls, vectorized over chunks of
-cells; a cell whose claims do not verify that way is recomputed with exact-endpoint
-arithmetic (:mod:`certify._check_arith`) before it is declared invalid.
+cells and evaluating wide boxes in pieces; a cell whose claims do not verify that way is
+recomputed with finer pieces, then with exact-endpoint arithmetic
+(:mod:`certify._check_arith`), before it is declared invalid.
 """
 
 from __future__ import annotations
@@ -61,8 +62,11 @@ class CheckResult:
         ``{"cell": leaf number, "address": [depth, [i_1, ...]], "label": ..., "reason": ...}``;
         problems of the whole certificate have ``cell``, ``address`` and ``label`` None.
     seconds : float
+    refined_cells : int
+        Cells whose claims did not verify in the first pass (arb balls) and were
+        recomputed with finer pieces.
     fallback_cells : int
-        Cells whose claims did not verify with arb balls and were recomputed with
+        Cells whose claims did not verify with arb balls at all and were recomputed with
         exact-endpoint arithmetic.
     model : str or None
         The revised model file for a regression check (``model=``), else None.
@@ -77,6 +81,7 @@ class CheckResult:
     cells_checked: int
     failures: list
     seconds: float
+    refined_cells: int = 0
     fallback_cells: int = 0
     model: str | None = None
     claims: dict | None = field(default=None)
@@ -727,7 +732,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
         if not cert.sha_ok:
             return _verdict(cert, [_global("the model text does not match its sha256 "
                                            "(the model or the hash was changed)")],
-                            start, 0, 0)
+                            start, 0, {})
         the_model = _with_parameters(cert)
         if [s.name for s in the_model.states] != cert.states:
             raise CertificateError(f"{path}: key 'states': {cert.states} differ from the "
@@ -737,7 +742,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     tree, problems = _tile(cert)
     if problems:
         return _verdict(cert, failures + [_global(f"the cells do not tile the window: {p}")
-                                          for p in problems], start, 0, 0, revised, model)
+                                          for p in problems], start, 0, {}, revised, model)
     programs = derive_programs(the_model, cert.order)
     params = tuple((p.lo, p.hi) for p in the_model.parameters)
     open_faces = []
@@ -761,11 +766,15 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     for number, result in _compute(context, tasks, "ball", jobs, progress).items():
         facts.store(tasks[number].cells, result)
     judge, local = _judge_all(cert, facts, tree, np.arange(cert.L))
-    retry = np.array(sorted(c for c, reasons in local.items()
-                            if any(arith for _, arith in reasons)), int)
-    if len(retry):
+    recomputed = {}
+    for arithmetic in ("fine", "endpoint"):
+        retry = np.array(sorted(c for c, reasons in local.items()
+                                if any(arith for _, arith in reasons)), int)
+        recomputed[arithmetic] = len(retry)
+        if len(retry) == 0:
+            break
         tasks = _tasks(cert, retry, n_steps)
-        for number, result in _compute(context, tasks, "endpoint", jobs, None).items():
+        for number, result in _compute(context, tasks, arithmetic, jobs, None).items():
             facts.store(tasks[number].cells, result)
         _, again = _judge_all(cert, facts, tree, retry)
         for c in retry:
@@ -779,7 +788,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
         claims = _propagate(cert, judge, set(local))
         failures += [_record(cert, c, cert.label[c], "a successor's claim does not hold")
                      for c in claims.pop("inherited")]
-    return _verdict(cert, failures, start, cert.L, len(retry), revised, model, claims)
+    return _verdict(cert, failures, start, cert.L, recomputed, revised, model, claims)
 
 
 def _with_parameters(cert):
@@ -840,7 +849,8 @@ def _propagate(cert, judge, failed):
     return {"held": held, "failed": lost, "inherited": sorted(inherited)}
 
 
-def _verdict(cert, failures, start, checked, fallback, revised=None, model=None, claims=None):
+def _verdict(cert, failures, start, checked, recomputed, revised=None, model=None,
+             claims=None):
     valid = not failures
     if valid:
         message = "every claim of the certificate holds"
@@ -854,5 +864,7 @@ def _verdict(cert, failures, start, checked, fallback, revised=None, model=None,
         message += f" (claims checked against {model})"
     return CheckResult(status=0 if valid else 1, message=message, valid=valid,
                        cells_checked=checked, failures=failures,
-                       seconds=time.monotonic() - start, fallback_cells=fallback,
+                       seconds=time.monotonic() - start,
+                       refined_cells=recomputed.get("fine", 0),
+                       fallback_cells=recomputed.get("endpoint", 0),
                        model=str(model) if model is not None else None, claims=claims)

@@ -24,63 +24,10 @@ from certify.cli import main
 from certify.errors import UsageError
 from certify.model import parse_model
 
-SIR = """
-[model]
-name = "SIR against a capacity (R5)"
-time_unit = "d"
-
-[states]
-S = [0, 1]
-I = [0, 0.1]
-
-[parameters]
-beta = 2
-gamma = 1
-
-[equations]
-S = "-beta*S*I"
-I = "beta*S*I - gamma*I"
-
-[constraints]
-capacity = "I <= 0.1"
-"""
-
-OVERDAMPED = """
-[model]
-name = "Overdamped linear oscillator (R4)"
-
-[states]
-p = [-1, 1]
-q = [-3, 6]
-
-[equations]
-p = "q"
-q = "-2*p - 3*q"
-
-[constraints]
-right = "p <= 1"
-left = "p >= -10"
-top = "q <= 10"
-bottom = "q >= -10"
-"""
-
-DECAY = """
-[model]
-name = "Exponential decay (R1)"
-
-[states]
-x = [1, 4]
-
-[parameters]
-k = 0.5
-
-[equations]
-x = "-k*x"
-
-[constraints]
-floor = "x >= 0.5"
-cap = "x <= 10"
-"""
+DATA = Path(__file__).resolve().parent / "data"
+SIR = (DATA / "prove_sir_cap.toml").read_text()                 # R5
+OVERDAMPED = (DATA / "prove_overdamped.toml").read_text()       # R4
+DECAY = (DATA / "prove_decay.toml").read_text()                 # R1
 
 RHO = 0.5
 FERMENTER = str(Path(__file__).resolve().parent.parent / "models" / "fermenter.toml")
@@ -104,13 +51,10 @@ def decay_crossing(x0):
 
 
 @pytest.fixture
-def files(tmp_path):
-    out = {}
-    for name, text in (("sir", SIR), ("overdamped", OVERDAMPED), ("decay", DECAY)):
-        path = tmp_path / f"{name}.toml"
-        path.write_text(text)
-        out[name] = str(path)
-    return out
+def files():
+    return {name: str(DATA / f"prove_{stem}.toml")
+            for name, stem in (("sir", "sir_cap"), ("overdamped", "overdamped"),
+                               ("decay", "decay"))}
 
 
 def run_claim(capsys, argv):
@@ -134,7 +78,7 @@ def test_sir_region_with_peaks_above_the_cap_is_refuted(files, tmp_path, capsys)
     assert in_region(c["point"], region)
     # Kermack & McKendrick 1927: the exact peak of this start exceeds the cap
     assert sir_peak(*c["point"]) > 0.1
-    assert c["limit"] == "capacity"
+    assert c["limit"] == "infected_cap"
     # the first crossing time, from a tight scipy solution, lies in the proven bounds
     event = lambda t, y: y[1] - 0.1
     event.terminal = True
@@ -167,7 +111,7 @@ def test_overdamped_region_inside_the_safe_set_is_proven(files, tmp_path, capsys
     # q <= 1 < q*(0.5) = 2.414 on the region: every start keeps x1 <= 1 (R4, exact)
     assert q_star(0.5) > 1
     out_dir = tmp_path / "od"
-    code, out = run_claim(capsys, [files["overdamped"], "--region", "p=-0.5:0.5, q=-2:1",
+    code, out = run_claim(capsys, [files["overdamped"], "--region", "x1=-0.5:0.5, x2=-2:1",
                                    "--expect", "safe", "--max-depth", "6",
                                    "--out", str(out_dir)])
     assert (code, out["verdict"]) == (0, "proven")
@@ -175,7 +119,7 @@ def test_overdamped_region_inside_the_safe_set_is_proven(files, tmp_path, capsys
     from certify.certificate import load_certificate_json, read_certificate
     data = load_certificate_json(out["certificate"])
     assert data["claim"]["verdict"] == "proven"
-    assert data["claim"]["region"] == {"p": ["-1/2", "1/2"], "q": ["-2", "1"]}
+    assert data["claim"]["region"] == {"x1": ["-1/2", "1/2"], "x2": ["-2", "1"]}
     # the verdict is re-derived from the certified labels: every grid point is safe
     # (points off the cell faces, which may take an undecided neighbour's label)
     cert = read_certificate(out["certificate"])
@@ -184,7 +128,7 @@ def test_overdamped_region_inside_the_safe_set_is_proven(files, tmp_path, capsys
 
 
 def test_overdamped_doomed_claim_on_safe_starts_is_refuted(files, tmp_path, capsys):
-    code, out = run_claim(capsys, [files["overdamped"], "--region", "p=-0.5:0.5, q=-2:1",
+    code, out = run_claim(capsys, [files["overdamped"], "--region", "x1=-0.5:0.5, x2=-2:1",
                                    "--expect", "doomed", "--max-depth", "6",
                                    "--out", str(tmp_path / "od")])
     assert (code, out["verdict"]) == (1, "refuted")
@@ -197,10 +141,10 @@ def test_overdamped_doomed_claim_on_safe_starts_is_refuted(files, tmp_path, caps
 def test_overdamped_region_beyond_the_boundary_is_doomed(files):
     # q >= 4.5 > q*(p) for p in [0, 0.5] (q*(0) = 4): every start crosses x1 = 1 (R4)
     assert q_star(0.0) < 4.5
-    result = check_claim(parse_model(OVERDAMPED), {"p": (0, 0.5), "q": (4.5, 6)}, "doomed",
+    result = check_claim(parse_model(OVERDAMPED), {"x1": (0, 0.5), "x2": (4.5, 6)}, "doomed",
                          max_depth=6)
     assert result.verdict == "proven"
-    refuted = check_claim(parse_model(OVERDAMPED), {"p": (0, 0.5), "q": (4.5, 6)}, "safe",
+    refuted = check_claim(parse_model(OVERDAMPED), {"x1": (0, 0.5), "x2": (4.5, 6)}, "safe",
                           max_depth=6)
     assert refuted.verdict == "refuted"
     p, q = refuted.counterexample["point"]

@@ -83,7 +83,8 @@ class ClaimResult:
     undecided_boxes : list
         The unsettled parts of the region, each a list of ``[lo, hi]`` per state.
     undecided_volume : float
-        Their total volume (in the units of the states).
+        Their total volume (in the units of the states; over the region's axes of
+        positive width when the region fixes some state at one value).
     proof : certify.prove.Proof
         The map the verdict is read from.
     certificate : str or None

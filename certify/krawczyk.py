@@ -561,9 +561,14 @@ def split_boxes(lo, hi):
 
 
 class _Registry:
-    """Proven zeros: tight enclosures and the regions where each is the only zero."""
+    """Proven zeros: tight enclosures and the regions where each is the only zero.
 
-    def __init__(self, n):
+    ``unique(lo, hi)`` tells, per box, whether it can hold at most one zero (used to
+    merge two proven zeros whose enclosures overlap).
+    """
+
+    def __init__(self, n, unique):
+        self.unique = unique
         self.enc_lo = np.empty((0, n))
         self.enc_hi = np.empty((0, n))
         self.reg_lo = np.empty((0, n))
@@ -587,12 +592,13 @@ class _Registry:
             for r in np.flatnonzero(meets):
                 in_old = ((elo >= self.reg_lo) & (ehi <= self.reg_hi)).all(1) & (self.reg_root == r)
                 old_in_new = (self.enc_lo[r] >= rlo).all() and (self.enc_hi[r] <= rhi).all()
-                if in_old.any() or old_in_new:
+                hull_lo = np.minimum(elo, self.enc_lo[r])
+                hull_hi = np.maximum(ehi, self.enc_hi[r])
+                if in_old.any() or old_in_new or self.unique(hull_lo[None], hull_hi[None])[0]:
                     target = r
                 else:
                     # overlapping enclosures of zeros not proven equal: claim neither
-                    self.doubtful.append((np.minimum(elo, self.enc_lo[r]),
-                                          np.maximum(ehi, self.enc_hi[r])))
+                    self.doubtful.append((hull_lo, hull_hi))
                     self.enc_lo[r], self.enc_hi[r] = np.nan, np.nan
                     target = -1
                 break
@@ -676,7 +682,7 @@ def find_roots(system, lo, hi, *, max_depth=12, max_boxes=20_000):
     n = len(lo)
     scale = np.maximum(hi - lo, 1e-300)
     square = system.jacobian is not None and system.values.n_outputs == n
-    registry = _Registry(n)
+    registry = _Registry(n, lambda a, b: _regular(system, a, b))
     box_lo, box_hi = lo[None].copy(), hi[None].copy()
     leftover_lo, leftover_hi = np.empty((0, n)), np.empty((0, n))
     n_boxes = 0

@@ -55,8 +55,8 @@ def _zero_lines(program, params, lo, hi, k, resolution=400):
     X, Y = np.meshgrid(xs, ys)
     pts = np.stack([X.ravel(), Y.ravel()], 1)
     inputs = np.concatenate([pts, np.tile(params, (len(pts), 1))], 1)
-    G = program.point(inputs)[:, k].reshape(X.shape)
-    if not (np.nanmin(G) <= 0 <= np.nanmax(G)):
+    G = np.ma.masked_invalid(program.point(inputs)[:, k].reshape(X.shape))
+    if G.count() == 0 or not (G.min() <= 0 <= G.max()):
         return []
     return contourpy.contour_generator(X, Y, G).lines(0.0)
 

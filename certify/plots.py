@@ -53,6 +53,29 @@ def _draw_limits(ax, proof, i, j, fixed):
     return handles
 
 
+def _slice(proof, plane, fixed):
+    """Leaf boxes, the cells crossing the slice through `fixed`, and the slice point."""
+    tree, leaves = proof.tree, proof.leaves
+    lo, hi = tree.lo[leaves], tree.hi[leaves]
+    if fixed is None:
+        fixed = 0.5 * (tree.lo[0] + tree.hi[0])
+    others = [k for k in range(tree.n) if k not in plane]
+    on_slice = np.ones(len(leaves), bool)
+    for k in others:
+        on_slice &= (lo[:, k] <= fixed[k]) & (hi[:, k] >= fixed[k])
+    return lo, hi, on_slice, fixed, others
+
+
+def _frame(ax, proof, plane):
+    """Axis limits and labels of a map panel."""
+    tree, states = proof.tree, proof.model.states
+    i, j = plane
+    ax.set_xlim(tree.lo[0][i], tree.hi[0][i])
+    ax.set_ylim(tree.lo[0][j], tree.hi[0][j])
+    ax.set_xlabel(_axis_label(states[i]))
+    ax.set_ylabel(_axis_label(states[j]))
+
+
 def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     """Draw the proven map of fates of a 2D model (or a 2D slice of a larger one).
 
@@ -81,13 +104,8 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     if ax is None:
         _, ax = plt.subplots(figsize=(7, 6))
     i, j = plane
-    tree, leaves, lab = proof.tree, proof.leaves, proof.labelling
-    lo, hi = tree.lo[leaves], tree.hi[leaves]
-    if fixed is None:
-        fixed = 0.5 * (tree.lo[0] + tree.hi[0])
-    others = [k for k in range(tree.n) if k not in plane]
-    on_slice = np.all([(lo[:, k] <= fixed[k]) & (hi[:, k] >= fixed[k]) for k in others], axis=0) \
-        if others else np.ones(len(leaves), bool)
+    lab = proof.labelling
+    lo, hi, on_slice, fixed, others = _slice(proof, plane, fixed)
     labels = lab.label
     for name in ("outside", "undecided", "safe"):
         sel = on_slice & (labels == name)
@@ -104,10 +122,7 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     states = proof.model.states
     handles = _draw_limits(ax, proof, i, j, fixed)
     draw_points(ax, proof, plane)  # equilibria, limit arcs, tangencies, curves (2D only)
-    ax.set_xlim(tree.lo[0][i], tree.hi[0][i])
-    ax.set_ylim(tree.lo[0][j], tree.hi[0][j])
-    ax.set_xlabel(_axis_label(states[i]))
-    ax.set_ylabel(_axis_label(states[j]))
+    _frame(ax, proof, plane)
     frac = proof.fractions
     legend = [Patch(color=LABEL_COLOURS[k], label=f"{k} {100 * frac[k]:.2f} %")
               for k in ("safe", "doomed", "outside", "undecided")]
@@ -140,13 +155,7 @@ def plot_survival(proof, ax=None, plane=(0, 1), fixed=None):
     if ax is None:
         _, ax = plt.subplots(figsize=(7, 6))
     i, j = plane
-    tree, leaves = proof.tree, proof.leaves
-    lo, hi = tree.lo[leaves], tree.hi[leaves]
-    if fixed is None:
-        fixed = 0.5 * (tree.lo[0] + tree.hi[0])
-    others = [k for k in range(tree.n) if k not in plane]
-    on_slice = np.all([(lo[:, k] <= fixed[k]) & (hi[:, k] >= fixed[k]) for k in others], axis=0) \
-        if others else np.ones(len(leaves), bool)
+    lo, hi, on_slice, fixed, _ = _slice(proof, plane, fixed)
     t = proof.labelling.survival_lower
     finite = on_slice & np.isfinite(t)
     tmax = max(float(np.max(t[finite], initial=1.0)), 1e-9)
@@ -161,11 +170,7 @@ def plot_survival(proof, ax=None, plane=(0, 1), fixed=None):
     sm = plt.cm.ScalarMappable(norm=norm, cmap=cmap)
     plt.colorbar(sm, ax=ax, label=f"proven time within the limits at least "
                  f"[{proof.model.time_unit}] (blue: forever)")
-    states = proof.model.states
-    ax.set_xlim(tree.lo[0][i], tree.hi[0][i])
-    ax.set_ylim(tree.lo[0][j], tree.hi[0][j])
-    ax.set_xlabel(_axis_label(states[i]))
-    ax.set_ylabel(_axis_label(states[j]))
+    _frame(ax, proof, plane)
     ax.set_title(f"{proof.model.name}: survival-time lower bounds", fontsize=10)
     return ax
 

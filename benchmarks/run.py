@@ -9,13 +9,14 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import prove_bench  # noqa: E402  (the folder above is not a package)
+import library_bench  # noqa: E402  (the folder above is not a package)
+import prove_bench  # noqa: E402
 import sweep_bench  # noqa: E402
 
 
 def main():
     """Run the benchmarks in turn; return the largest exit code."""
-    return max(bench.main([]) for bench in (sweep_bench, prove_bench))
+    return max(bench.main([]) for bench in (sweep_bench, prove_bench, library_bench))
 
 
 if __name__ == "__main__":

@@ -43,7 +43,8 @@ from . import interval as iv
 from .errors import UsageError
 from .expr import format_number
 from .labels import _reachable
-from .prove import Method, _eval_limits, _param_floats, prove
+from .evaluate import evaluate_limits, parameter_enclosures
+from .prove import Method, prove
 from .taylor import flow_programs
 
 __all__ = ["EXPECTATIONS", "VERDICTS", "ClaimResult", "parse_region", "check_claim",
@@ -281,7 +282,7 @@ class _Auditor:
         return pieces, self._judge(pieces)
 
     def _limits(self, lo, hi):
-        return _eval_limits(self.programs, lo, hi, self.params)
+        return evaluate_limits(self.programs, lo, hi, self.params)
 
     def _judge(self, pieces):
         """Mark the pieces that settle the claim; return one counterexample or None.
@@ -510,7 +511,7 @@ def check_claim(model, region, expect, until=None, *, max_depth=None, time_limit
     """
     T = _check_expect(expect, until)
     full = _full_region(model, {k: tuple(v) for k, v in region.items()})
-    params = _param_floats(model)
+    params = parameter_enclosures(model)
     options = {}
     if T is not None:
         settings = model.settings

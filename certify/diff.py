@@ -25,7 +25,7 @@ import numpy as np
 from .certificate import decode_array, read_certificate
 from .errors import CertificateError
 from .expr import format_expression, format_number
-from .prove import _eval_limits
+from .evaluate import evaluate_limits
 from .taylor import flow_programs
 from .volumes import axis_threshold
 
@@ -182,7 +182,7 @@ class _Limits:
 
     def status(self, lo, hi):
         """Per box: 1 certainly within every limit, -1 certainly violating one, 0 unknown."""
-        glo, ghi = _eval_limits(self.programs, lo, hi, self.params)
+        glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
         res = np.zeros(len(lo), int)
         res[np.all(glo >= 0, axis=1)] = 1
         res[np.any(ghi < 0, axis=1)] = -1

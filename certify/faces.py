@@ -19,18 +19,13 @@ from __future__ import annotations
 
 import numpy as np
 
+from .evaluate import evaluate_boxes
+
 __all__ = ["analyse_faces", "HARMLESS", "FACE_DEPTH"]
 
 HARMLESS = ("limit", "inflow")
 FACE_DEPTH = 6
 LIMIT, INFLOW = 1, 2
-
-
-def _evaluate(program, lo, hi, params):
-    cols_lo = list(lo.T) + [np.full(len(lo), p[0]) for p in params]
-    cols_hi = list(hi.T) + [np.full(len(lo), p[1]) for p in params]
-    out = program.interval_columns(cols_lo, cols_hi)
-    return np.stack([o[0] for o in out], -1), np.stack([o[1] for o in out], -1)
 
 
 def _cover_face(programs, lo, hi, k, side, params, depth):
@@ -39,8 +34,8 @@ def _cover_face(programs, lo, hi, k, side, params, depth):
     pieces_lo, pieces_hi, reasons = [], [], []
     lo, hi = lo[None], hi[None]
     for level in range(depth + 1):
-        _, ghi = _evaluate(programs.limits, lo, hi, params)
-        flo, fhi = _evaluate(programs.field, lo, hi, params)
+        _, ghi = evaluate_boxes(programs.limits, lo, hi, params)
+        flo, fhi = evaluate_boxes(programs.field, lo, hi, params)
         inward_lo = flo[:, k] if side == "lo" else -fhi[:, k]
         limit = np.any(ghi < 0, axis=1)
         inflow = ~limit & (inward_lo > 0)

@@ -28,7 +28,7 @@ import sympy
 from . import interval as iv
 from .krawczyk import RootSystem, evaluate, find_roots, merge_boxes, split_boxes
 from .program import compile_program
-from .prove import _param_floats
+from .evaluate import parameter_enclosures
 
 __all__ = [
     "Equilibrium", "EquilibriumResult", "Tangency", "LimitResult", "PointsResult", "Curve",
@@ -110,7 +110,7 @@ def _programs(model):
 
 
 def _params(model):
-    return np.array(_param_floats(model), float).reshape(-1, 2)
+    return np.array(parameter_enclosures(model), float).reshape(-1, 2)
 
 
 def _interval_positions(model):

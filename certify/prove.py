@@ -21,6 +21,7 @@ from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .taylor import flow_programs
 from .faces import analyse_faces, HARMLESS
 from .volumes import label_fractions
+from .evaluate import evaluate_limits, parameter_enclosures
 
 __all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 
@@ -125,32 +126,13 @@ class Proof:
         return int(self.tree.depth[self.leaves].max())
 
 
-def _param_floats(model):
-    out = []
-    for p in model.parameters:
-        lo, _ = iv.enclose_fraction(p.lo)
-        _, hi = iv.enclose_fraction(p.hi)
-        out.append((lo, hi))
-    return out
-
-
-def _eval_limits(programs, lo, hi, params, rates=False):
-    prog = programs.limit_rates if rates else programs.limits
-    cols_lo = list(lo.T) + [np.full(len(lo), p[0]) for p in params]
-    cols_hi = list(hi.T) + [np.full(len(lo), p[1]) for p in params]
-    out = prog.interval_columns(cols_lo, cols_hi)
-    if not out:
-        return np.zeros((len(lo), 0)), np.zeros((len(lo), 0))
-    return np.stack([o[0] for o in out], -1), np.stack([o[1] for o in out], -1)
-
-
 class _Prover:
     def __init__(self, model, method, budget, progress):
         self.model = model
         self.method = method
         self.budget = budget
         self.progress = progress
-        self.params = _param_floats(model)
+        self.params = parameter_enclosures(model)
         self.programs = flow_programs(model, method.order)
         self.limits_programs = self.programs
         self.tree = CellTree(model.window)
@@ -192,7 +174,7 @@ class _Prover:
         """Compute the facts of new leaves."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
-        glo, ghi = _eval_limits(self.programs, lo, hi, self.params)
+        glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
         outside = np.any(ghi < 0, axis=1)
         self.outside[nodes] = outside
         self.first_unkept[nodes[outside]] = 0.0
@@ -208,7 +190,7 @@ class _Prover:
             left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
             # an image inside its own cell closes a self-loop: longer flows add nothing
             inside = np.all((end_lo >= cell_lo[ids]) & (end_hi <= cell_hi[ids]), axis=1)
-            _, gh = _eval_limits(self.programs, end_lo, end_hi, self.params)
+            _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
             crossed = np.any(gh < 0, axis=1)
             too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
             return ((left | inside) & (t_lo >= min_horizon)) | crossed | too_wide
@@ -226,8 +208,8 @@ class _Prover:
     def _tube_facts(self, todo, result):
         S = len(result.h)
         box_of_step = np.repeat(np.arange(len(todo)), result.n_steps)
-        glo, _ = _eval_limits(self.programs, result.x_lo, result.x_hi, self.params)
-        rlo, rhi = _eval_limits(self.programs, result.e_lo, result.e_hi, self.params, rates=True)
+        glo, _ = evaluate_limits(self.programs, result.x_lo, result.x_hi, self.params)
+        rlo, rhi = evaluate_limits(self.programs, result.e_lo, result.e_hi, self.params, rates=True)
         h = result.h[:, None]
         dlo = np.minimum(iv.mul(h, h, rlo, rlo)[0], 0.0)
         lower, _ = iv.add(glo, glo, dlo, dlo)
@@ -238,7 +220,7 @@ class _Prover:
         first_unkept = np.full(len(todo), np.inf)
         np.minimum.at(first_unkept, box_of_step, unkept_time)
         # rank-0 crossings: a step end box wholly violating one limit
-        _, ghi_end = _eval_limits(self.programs, result.end_lo, result.end_hi, self.params)
+        _, ghi_end = evaluate_limits(self.programs, result.end_lo, result.end_hi, self.params)
         crossed = np.any(ghi_end < 0, axis=1) if S else np.zeros(0, bool)
         _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
         crossing = np.full(len(todo), np.inf)
@@ -289,7 +271,7 @@ class _Prover:
                 shi[:, k] = lo_hi[k]
             else:
                 slo[:, k] = hi_lo[k]
-            _, gh = _eval_limits(self.programs, slo, shi, self.params)
+            _, gh = evaluate_limits(self.programs, slo, shi, self.params)
             harmless = np.any(gh < 0, axis=1)
             idx = np.flatnonzero(pokes)
             escapes[idx[~harmless]] = True

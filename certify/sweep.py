@@ -367,13 +367,13 @@ def _parsed_model(text, path):
 
 def _box_facts(proof):
     """Fractions, proven safe bounds and flags of one box's proof."""
-    from certify.prove import _eval_limits
+    from certify.evaluate import evaluate_limits
     from certify.taylor import flow_programs
 
     fractions = {k: float(v) for k, v in proof.fractions.items()}
     counts = proof.counts
     tree, leaves, label = proof.tree, proof.leaves, proof.labelling.label
-    glo, _ = _eval_limits(flow_programs(proof.model, 1), tree.lo[leaves], tree.hi[leaves],
+    glo, _ = evaluate_limits(flow_programs(proof.model, 1), tree.lo[leaves], tree.hi[leaves],
                           proof.params)
     wholly_inside = np.all(glo >= 0, axis=1)
     safe = label == "safe"

@@ -44,7 +44,7 @@ def _inside_fraction_exact(lo, hi, thresholds):
 
 
 def _inside_fraction_estimate(proof, lo, hi):
-    from .prove import _eval_limits
+    from .evaluate import evaluate_limits
 
     n = lo.shape[1]
     grid = np.array(np.meshgrid(*[np.arange(SUBGRID)] * n, indexing="ij")).reshape(n, -1).T
@@ -54,7 +54,7 @@ def _inside_fraction_estimate(proof, lo, hi):
         w = (hi[i] - lo[i]) / SUBGRID
         slo = lo[i] + grid * w
         shi = slo + w
-        glo, ghi = _eval_limits(programs, slo, shi, proof.params)
+        glo, ghi = evaluate_limits(programs, slo, shi, proof.params)
         certain = np.all(glo >= 0, axis=1).sum()
         possible = (~np.any(ghi < 0, axis=1)).sum()
         out[i] = 0.5 * (certain + possible) / len(grid)
@@ -75,13 +75,13 @@ def label_fractions(proof):
     exact : bool
         False when a straddling cell's split was estimated.
     """
-    from .prove import _eval_limits
+    from .evaluate import evaluate_limits
 
     tree, leaves = proof.tree, proof.leaves
     labels = proof.labelling.label
     vol = tree.volume_fraction(leaves)
     lo, hi = tree.lo[leaves], tree.hi[leaves]
-    glo, ghi = _eval_limits(_programs(proof), lo, hi, proof.params)
+    glo, ghi = evaluate_limits(_programs(proof), lo, hi, proof.params)
     inside_all = np.all(glo >= 0, axis=1)
     straddle = ~inside_all & (labels != "outside")
     frac_in = np.where(labels == "outside", 0.0, 1.0)

@@ -330,6 +330,12 @@ def _tile(cert):
             problems.append(f"cells {keys[(d, i)]} and {j} have the same address")
         keys[(d, i)] = j
     max_depth = int(cert.depth.max())
+    # every node the descent expands is an ancestor of a leaf: a node that is neither a
+    # leaf nor an ancestor is a gap, found without descending into it
+    inner = set()
+    for d, i in keys:
+        for up in range(1, d + 1):
+            inner.add((d - up, tuple(v >> up for v in i)))
     offsets = list(itertools.product((0, 1), repeat=n))
     node_depth, node_index, first_child, leaf = [0], [(0,) * n], [-1], [-1]
     reached = np.zeros(cert.L, bool)
@@ -342,7 +348,7 @@ def _tile(cert):
                 leaf[node] = keys[key]
                 reached[keys[key]] = True
                 continue
-            if key[0] >= max_depth:
+            if key not in inner:
                 problems.append(f"no cell covers the part of the window at depth {key[0]}, "
                                 f"index {list(key[1])} (a gap)")
                 break

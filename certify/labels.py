@@ -146,7 +146,8 @@ def _survival(facts, L, label):
     g = sp.csr_matrix((w, (rows, cols)), shape=(L + 1, L + 1))
     dist = dijkstra(g, directed=True, indices=super_node)[:L] - 1.0
     # float sums may round up: scale down so every bound stays a lower bound
-    dist = np.where(np.isfinite(dist), iv.round_down(np.maximum(dist, 0.0) * (1 - 1e-9)), np.inf)
+    dist = np.where(np.isfinite(dist),
+                    np.maximum(iv.round_down(np.maximum(dist, 0.0) * (1 - 1e-9)), 0.0), np.inf)
     dist = np.minimum(dist, source)
     dist[label == SAFE] = np.inf
     dist[facts.outside] = 0.0

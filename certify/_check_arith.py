@@ -138,6 +138,7 @@ class BallArith:
 
     def __init__(self, pieces=Pieces()):
         self.pieces = pieces
+        self.plans = {}
         self._constants = {}
         self.zero = arb(0)
         self.unit = arb(0, 1)
@@ -323,6 +324,7 @@ class EndpointArith:
     pieces = Pieces()
 
     def __init__(self):
+        self.plans = {}
         self._constants = {}
         self.zero = arb(0)
         self.nan = _nan()
@@ -592,6 +594,29 @@ ARITHMETICS = {
 }
 
 
+def _plan(program, ar):
+    """The program as ``(kind, function, args, extra, release)`` rows bound to `ar`.
+
+    Kinds: 0 input, 1 constant (its interval in ``extra``), 2 power, 3 unary operation,
+    4 binary operation, 5 elementary function (its name in ``extra``).
+    """
+    rows = []
+    for (op, args, extra), release in zip(program.instructions, program.release):
+        if op == "input":
+            rows.append((0, None, args, extra, release))
+        elif op == "const":
+            rows.append((1, None, args, ar.constant(extra), release))
+        elif op in ("pow_int", "pow_real"):
+            rows.append((2, getattr(ar, op), args, extra, release))
+        elif op in _FUNCTIONS:
+            rows.append((5, ar.function, args, op, release))
+        elif len(args) == 1:
+            rows.append((3, getattr(ar, op), args, extra, release))
+        else:
+            rows.append((4, getattr(ar, op), args, extra, release))
+    return rows
+
+
 def evaluate(program, ar, inputs):
     """Run a program of :mod:`certify._check_programs` on intervals.
 
@@ -606,19 +631,23 @@ def evaluate(program, ar, inputs):
     -------
     list of intervals, one per output
     """
-    values = [None] * len(program.instructions)
-    for k, (op, args, extra) in enumerate(program.instructions):
-        if op == "input":
-            v = inputs[extra]
-        elif op == "const":
-            v = ar.constant(extra)
-        elif op in ("pow_int", "pow_real"):
-            v = getattr(ar, op)(values[args[0]], extra)
-        elif op in _FUNCTIONS:
-            v = ar.function(op, values[args[0]])
+    plan = ar.plans.get(id(program))
+    if plan is None:
+        plan = ar.plans[id(program)] = _plan(program, ar)
+    values = [None] * len(plan)
+    for k, (kind, function, args, extra, release) in enumerate(plan):
+        if kind == 0:
+            values[k] = inputs[extra]
+        elif kind == 1:
+            values[k] = extra
+        elif kind == 2:
+            values[k] = function(values[args[0]], extra)
+        elif kind == 5:
+            values[k] = function(extra, values[args[0]])
+        elif kind == 3:
+            values[k] = function(values[args[0]])
         else:
-            v = getattr(ar, op)(*[values[a] for a in args])
-        values[k] = v
-        for a in program.release[k]:
+            values[k] = function(values[args[0]], values[args[1]])
+        for a in release:
             values[a] = None
     return [values[o] for o in program.outputs]

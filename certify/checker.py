@@ -335,7 +335,10 @@ def _tile(cert):
     inner = set()
     for d, i in keys:
         for up in range(1, d + 1):
-            inner.add((d - up, tuple(v >> up for v in i)))
+            parent = (d - up, tuple(v >> up for v in i))
+            if parent in inner:
+                break
+            inner.add(parent)
     offsets = list(itertools.product((0, 1), repeat=n))
     node_depth, node_index, first_child, leaf = [0], [(0,) * n], [-1], [-1]
     reached = np.zeros(cert.L, bool)
@@ -554,8 +557,8 @@ class _Judge:
         T = self.time(c, K)
         lo, hi = cert.horizon[c]
         if not _at_most(lo, T) or not _at_most(T, hi):
-            out.append((f"the horizon [{lo!r}, {hi!r}] does not enclose the sum of the "
-                        f"step sizes", False))
+            out.append((f"the horizon [{_num(lo)}, {_num(hi)}] does not enclose the sum "
+                        f"of the step sizes", False))
         if label in ("safe", "undecided") and cert.crossing_upper[c] != np.inf:
             out.append((f"a {label} cell claims a crossing time bound", False))
         if label == "safe":
@@ -610,9 +613,9 @@ class _Judge:
             else:
                 return [("rank 0 without a proven crossing (no step end box violates a "
                          "limit)", True)]
-            if not (bound == np.inf or Fraction(bound) >= evidence):
-                return [(f"crossing bound {bound!r} is below the proven crossing time "
-                         f"{float(evidence)!r}", True)]
+            if not _at_most(evidence, bound):
+                return [(f"crossing bound {_num(bound)} is below the proven crossing time "
+                         f"{_num(evidence)}", True)]
             return []
         out = self._image(c, K)
         latest = Fraction(0)
@@ -626,9 +629,9 @@ class _Judge:
             if not np.isfinite(cert.crossing_upper[d]):
                 return out + [(f"successor {d} has no finite crossing bound", False)]
             latest = max(latest, Fraction(cert.crossing_upper[d]))
-        if not (bound == np.inf or Fraction(bound) >= T + latest):
-            out.append((f"crossing bound {bound!r} is below the horizon plus the "
-                        f"successors' bounds ({float(T + latest)!r})", False))
+        if not _at_most(T + latest, bound):
+            out.append((f"crossing bound {_num(bound)} is below the horizon plus the "
+                        f"successors' bounds ({_num(T + latest)})", False))
         return out
 
     def _survival(self, c, K, T):
@@ -639,23 +642,25 @@ class _Judge:
         u = int(f.first_unkept[c])
         if u < K:
             limit = self.time(c, u)
-            if claim == np.inf or Fraction(claim) > limit:
-                return [(f"survival bound {claim!r} exceeds the start {float(limit)!r} of "
+            if not _at_most(claim, limit):
+                return [(f"survival bound {_num(claim)} exceeds the start {_num(limit)} of "
                          f"step {u}, whose limits are not proven kept", True)]
             return []
         image = self._image(c, K)
         if image:
-            if claim == np.inf or Fraction(claim) > T:
-                return [(f"survival bound {claim!r} exceeds the horizon {float(T)!r}, "
+            if not _at_most(claim, T):
+                return [(f"survival bound {_num(claim)} exceeds the horizon {_num(T)}, "
                          f"and the image is not usable: {image[0][0]}", image[0][1])]
             return []
         for d in self.successors(c):
             if cert.label[d] == "outside":
                 continue
-            other = cert.survival_lower[d]
-            if other != np.inf and (claim == np.inf or Fraction(claim) > T + Fraction(other)):
-                return [(f"survival bound {claim!r} exceeds the horizon plus successor "
-                         f"{d}'s bound ({float(T + Fraction(other))!r})", False)]
+            other = float(cert.survival_lower[d])
+            if other == np.inf:
+                continue
+            if other == -np.inf or not _at_most(claim, T + Fraction(other)):
+                return [(f"survival bound {_num(claim)} exceeds the horizon plus successor "
+                         f"{d}'s bound", False)]
         return []
 
     def needs(self, c):
@@ -686,6 +691,11 @@ def _at_most(a, b):
     if isinstance(b, float) and np.isinf(b):
         return b > 0
     return Fraction(a) <= Fraction(b)
+
+
+def _num(x):
+    """A number for a message."""
+    return repr(float(x))
 
 
 def _record(cert, c, label, reason):

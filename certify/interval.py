@@ -73,32 +73,34 @@ def round_up(x):
     return x + d
 
 
-def _sum_bounds(a, b):
-    """Sum of float arrays rounded down and up; exact sums stay exact (TwoSum)."""
+def _sum_error(a, b):
+    """The float sum and the sign-carrying error of TwoSum (NaN when not finite)."""
     s = a + b
     bb = s - a
-    err = (a - (s - bb)) + (b - bb)
-    # err is NaN when s overflowed or is infinite: widen both ways, which is sound.
-    d = np.abs(s)
-    d *= _ULP
-    d += _TINY
-    lo = s - np.where(err >= 0, 0.0, d)
-    hi = s + np.where(err <= 0, 0.0, d)
-    return lo, hi
+    return s, (a - (s - bb)) + (b - bb)
+
+
+def _sum_down(a, b):
+    """``a + b`` rounded down; exact sums stay exact (TwoSum)."""
+    s, err = _sum_error(a, b)
+    # err is NaN when s overflowed or is infinite: then widen, which is sound
+    return np.where(err >= 0, s, round_down(s))
+
+
+def _sum_up(a, b):
+    """``a + b`` rounded up; exact sums stay exact (TwoSum)."""
+    s, err = _sum_error(a, b)
+    return np.where(err <= 0, s, round_up(s))
 
 
 def add(alo, ahi, blo, bhi):
     """Interval sum ``[a] + [b]``."""
-    lo, _ = _sum_bounds(alo, blo)
-    _, hi = _sum_bounds(ahi, bhi)
-    return lo, hi
+    return _sum_down(alo, blo), _sum_up(ahi, bhi)
 
 
 def sub(alo, ahi, blo, bhi):
     """Interval difference ``[a] - [b]``."""
-    lo, _ = _sum_bounds(alo, -bhi)
-    _, hi = _sum_bounds(ahi, -blo)
-    return lo, hi
+    return _sum_down(alo, -bhi), _sum_up(ahi, -blo)
 
 
 def neg(alo, ahi):
@@ -108,9 +110,7 @@ def neg(alo, ahi):
 
 def shift(alo, ahi, c):
     """Sum of an interval and an exactly representable float `c`."""
-    lo, _ = _sum_bounds(alo, c)
-    _, hi = _sum_bounds(ahi, c)
-    return lo, hi
+    return _sum_down(alo, c), _sum_up(ahi, c)
 
 
 def _outward(lo, hi, neg_possible, pos_possible):
@@ -118,11 +118,22 @@ def _outward(lo, hi, neg_possible, pos_possible):
 
     A bound that came out exactly 0 stays 0 when no result of the other sign is
     possible: then 0 is either exact (a zero factor) or a valid bound of a value that
-    underflowed towards 0 from the right side.
+    underflowed towards 0 from the right side. The sign tests run only on the (rare)
+    entries that came out 0; ``neg_possible()`` and ``pos_possible()`` return masks.
     """
-    lo = np.where((lo == 0) & ~neg_possible, 0.0, round_down(lo))
-    hi = np.where((hi == 0) & ~pos_possible, 0.0, round_up(hi))
-    return lo, hi
+    out_lo = np.array(round_down(lo), dtype=float, ndmin=1)
+    out_hi = np.array(round_up(hi), dtype=float, ndmin=1)
+    zero_lo = np.broadcast_to(lo == 0, out_lo.shape)
+    if zero_lo.any():
+        keep = zero_lo & ~np.broadcast_to(neg_possible(), out_lo.shape)
+        out_lo[keep] = 0.0
+    zero_hi = np.broadcast_to(hi == 0, out_hi.shape)
+    if zero_hi.any():
+        keep = zero_hi & ~np.broadcast_to(pos_possible(), out_hi.shape)
+        out_hi[keep] = 0.0
+    if np.ndim(lo) == 0:
+        return out_lo[0], out_hi[0]
+    return out_lo, out_hi
 
 
 def mul(alo, ahi, blo, bhi):
@@ -133,9 +144,9 @@ def mul(alo, ahi, blo, bhi):
     p4 = ahi * bhi
     lo = np.minimum(np.minimum(p1, p2), np.minimum(p3, p4))
     hi = np.maximum(np.maximum(p1, p2), np.maximum(p3, p4))
-    neg = ((alo < 0) & (bhi > 0)) | ((ahi > 0) & (blo < 0))
-    pos = ((alo < 0) & (blo < 0)) | ((ahi > 0) & (bhi > 0))
-    return _outward(lo, hi, neg, pos)
+    return _outward(lo, hi,
+                    lambda: ((alo < 0) & (bhi > 0)) | ((ahi > 0) & (blo < 0)),
+                    lambda: ((alo < 0) & (blo < 0)) | ((ahi > 0) & (bhi > 0)))
 
 
 def scale(alo, ahi, c):
@@ -165,9 +176,9 @@ def div(alo, ahi, blo, bhi):
     lo = np.minimum(np.minimum(q1, q2), np.minimum(q3, q4))
     hi = np.maximum(np.maximum(q1, q2), np.maximum(q3, q4))
     # the divisor has one strict sign where it is usable
-    neg = ((alo < 0) & (blo > 0)) | ((ahi > 0) & (bhi < 0))
-    pos = ((alo < 0) & (bhi < 0)) | ((ahi > 0) & (blo > 0))
-    lo, hi = _outward(lo, hi, neg, pos)
+    lo, hi = _outward(lo, hi,
+                      lambda: ((alo < 0) & (blo > 0)) | ((ahi > 0) & (bhi < 0)),
+                      lambda: ((alo < 0) & (bhi < 0)) | ((ahi > 0) & (blo > 0)))
     return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)
 
 

@@ -29,9 +29,15 @@ def run(args):
     if code != 0:
         return code
     from certify.checker import check_certificate
+    from certify.commands.check import _Progress
 
     cert = out / "certificate.json.gz"
-    result = check_certificate(cert)
+    progress = None if args.quiet or args.json else _Progress()
+    try:
+        result = check_certificate(cert, progress=progress)
+    finally:
+        if progress is not None:
+            progress.close()
     if not args.json:
         verdict = "VALID" if result.valid else "INVALID"
         print(f"independent check: {verdict}: {result.message} ({result.cells_checked} cells, "

@@ -2,7 +2,7 @@
 
 Run from the repository root::
 
-    .venv/bin/python benchmarks/library_bench.py [--depths 8 9] [--depth-3d 5]
+    .venv/bin/python benchmarks/library_bench.py [--depths 8 9] [--depth-3d 6]
 
 For each 2D model of the library and each maximum depth D (cells of 1/2^D of each
 window side) it runs ``certify.prove`` from scratch with the model's own method
@@ -50,7 +50,7 @@ ROOT = Path(__file__).resolve().parent.parent
 RESULTS = ROOT / "benchmarks" / "results.md"
 SECTION = "Model library"
 DEPTHS = (8, 9)
-DEPTH_3D = 5
+DEPTH_3D = 6
 SIM_STEPS = 100
 
 
@@ -235,7 +235,7 @@ def main(argv=None):
     Parameters
     ----------
     argv : list of str, optional
-        ``--depths D ...`` for the 2D models (default 8 9), ``--depth-3d D`` (default 5),
+        ``--depths D ...`` for the 2D models (default 8 9), ``--depth-3d D`` (default 6),
         ``--time-limit S`` per proof (default 900 s).
 
     Returns

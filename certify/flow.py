@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import interval as iv
+from .evaluate import evaluate_boxes
 
 __all__ = ["FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set"]
 
@@ -173,17 +174,6 @@ class FlowResult:
         return slice(self.step_start[b], self.step_start[b] + self.n_steps[b])
 
 
-def _params_columns(params, n_rows):
-    lo = [np.full(n_rows, p[0]) for p in params]
-    hi = [np.full(n_rows, p[1]) for p in params]
-    return lo, hi
-
-
-def _eval(program, xlo, xhi, plo, phi):
-    out = program.interval_columns(list(xlo.T) + plo, list(xhi.T) + phi)
-    return np.stack([o[0] for o in out], -1), np.stack([o[1] for o in out], -1)
-
-
 def _time_box(h, flo, fhi):
     """``[0, h] * [f]``: exact zero end, other end rounded outward."""
     _, up = iv.mul(h, h, fhi, fhi)
@@ -191,10 +181,10 @@ def _time_box(h, flo, fhi):
     return np.minimum(down, 0.0), np.maximum(up, 0.0)
 
 
-def _apriori(programs, xlo, xhi, h, plo, phi, iterations=4):
+def _apriori(programs, xlo, xhi, h, params, iterations=4):
     """Find E with X + [0,h] f(E) ⊆ E; returns (elo, ehi, ok)."""
     hh = h[:, None]
-    flo, fhi = _eval(programs.field, xlo, xhi, plo, phi)
+    flo, fhi = evaluate_boxes(programs.field, xlo, xhi, params)
     dlo, dhi = _time_box(hh, flo, fhi)
     elo, ehi = iv.add(xlo, xhi, dlo, dhi)
     ok = np.zeros(len(h), bool)
@@ -203,7 +193,7 @@ def _apriori(programs, xlo, xhi, h, plo, phi, iterations=4):
         w = ehi - elo
         pad = 0.1 * w + 1e-12 * np.abs(elo) + 1e-300
         elo, ehi = iv.round_down(elo - pad), iv.round_up(ehi + pad)
-        flo, fhi = _eval(programs.field, elo, ehi, plo, phi)
+        flo, fhi = evaluate_boxes(programs.field, elo, ehi, params)
         dlo, dhi = _time_box(hh, flo, fhi)
         nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
         inside = np.all((nlo >= elo) & (nhi <= ehi), axis=1) & ~ok
@@ -213,10 +203,10 @@ def _apriori(programs, xlo, xhi, h, plo, phi, iterations=4):
             break
         elo, ehi = nlo, nhi
     # tighten: E' = X + [0,h] f(E) is usually an a-priori box too, and a smaller one
-    flo, fhi = _eval(programs.field, out_lo, out_hi, plo, phi)
+    flo, fhi = evaluate_boxes(programs.field, out_lo, out_hi, params)
     dlo, dhi = _time_box(hh, flo, fhi)
     tlo, thi = iv.add(xlo, xhi, dlo, dhi)
-    flo, fhi = _eval(programs.field, tlo, thi, plo, phi)
+    flo, fhi = evaluate_boxes(programs.field, tlo, thi, params)
     dlo, dhi = _time_box(hh, flo, fhi)
     nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
     tight = ok & np.all((nlo >= tlo) & (nhi <= thi), axis=1)
@@ -224,7 +214,7 @@ def _apriori(programs, xlo, xhi, h, plo, phi, iterations=4):
     return out_lo, out_hi, ok
 
 
-def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi):
+def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
     """One mean-value Taylor step; returns the new set, its box and a usable flag."""
     N, n = m.shape
     q = programs.order
@@ -232,13 +222,13 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi):
     # T(m)
     tlo, thi = m.copy(), m.copy()
     if q > 1:
-        clo, chi = _eval(programs.coefficients, m, m, plo, phi)
+        clo, chi = evaluate_boxes(programs.coefficients, m, m, params)
         for k in range(1, q):
             c_lo, c_hi = clo[:, (k - 1) * n:k * n], chi[:, (k - 1) * n:k * n]
             plo_, phi_ = iv.mul(hk[k][0][:, None], hk[k][1][:, None], c_lo, c_hi)
             tlo, thi = iv.add(tlo, thi, plo_, phi_)
     # remainder h^q f^[q](E)
-    flo, fhi = _eval(programs.remainder, elo, ehi, plo, phi)
+    flo, fhi = evaluate_boxes(programs.remainder, elo, ehi, params)
     Rlo, Rhi = iv.mul(hk[q][0][:, None], hk[q][1][:, None], flo, fhi)
     ylo, yhi = iv.add(tlo, thi, Rlo, Rhi)
     # DT(J) = I + sum h^k Df^[k](J)
@@ -246,7 +236,7 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi):
     dlo, dhi = eye.copy(), eye.copy()
     if q > 1:
         jlo, jhi = np.minimum(xlo, m), np.maximum(xhi, m)
-        glo, ghi = _eval(programs.jacobians, jlo, jhi, plo, phi)
+        glo, ghi = evaluate_boxes(programs.jacobians, jlo, jhi, params)
         for k in range(1, q):
             g_lo = glo[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
             g_hi = ghi[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
@@ -342,20 +332,18 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     for _ in range(max_steps):
         if len(ids) == 0:
             break
-        plo, phi = _params_columns(params, len(ids))
-        elo, ehi, ok = _apriori(programs, xlo, xhi, h, plo, phi)
+        elo, ehi, ok = _apriori(programs, xlo, xhi, h, params)
         clean = ok.copy()
         while not ok.all():
             retry = ~ok & (h >= 2 * min_step)
             if not retry.any():
                 break
             h = np.where(retry, h / 2, h)
-            sub_p = [p[retry] for p in plo], [p[retry] for p in phi]
-            a_lo, a_hi, a_ok = _apriori(programs, xlo[retry], xhi[retry], h[retry], *sub_p)
+            a_lo, a_hi, a_ok = _apriori(programs, xlo[retry], xhi[retry], h[retry], params)
             elo[retry], ehi[retry] = a_lo, a_hi
             ok[retry] = a_ok
         failed = ~ok
-        new = _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, plo, phi)
+        new = _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params)
         new_m, new_A, nrlo, nrhi, endlo, endhi, usable, growth = new
         bad = failed | ~usable
         status[ids[failed]] = NO_ENCLOSURE

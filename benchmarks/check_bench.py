@@ -106,6 +106,7 @@ def render(rows, jobs, info, load_end):
         f"({last['check_cpu'] / last['prove_cpu']:.2f}x). Later goal (less than the proving "
         f"time): {word[last['check_wall'] < last['prove_wall']]} in wall time.",
         "",
+        "",
     ]
     return "\n".join(lines)
 

@@ -10,8 +10,6 @@ from __future__ import annotations
 import base64
 import gzip
 import json
-import os
-import tempfile
 from dataclasses import dataclass
 from fractions import Fraction
 from pathlib import Path
@@ -19,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import CertificateError
+from .files import write_atomic
 
 __all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write_certificate",
            "load_certificate_json", "read_certificate", "Certificate"]
@@ -69,19 +68,8 @@ def write_certificate(path, data):
     data : dict
         JSON-serialisable content (arrays already encoded).
     """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".certificate-", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as raw, gzip.GzipFile(fileobj=raw, mode="wb",
-                                                       compresslevel=6, mtime=0) as gz:
-            gz.write(json.dumps(data, separators=(",", ":")).encode("utf-8"))
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    text = json.dumps(data, separators=(",", ":")).encode("utf-8")
+    write_atomic(path, gzip.compress(text, compresslevel=6, mtime=0))
 
 
 def load_certificate_json(path):

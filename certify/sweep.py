@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from certify.errors import UsageError
+from certify.files import write_atomic
 from certify.expr import format_number
 
 __all__ = [
@@ -500,7 +501,7 @@ def _save_box(out, box, answer):
 
     folder = out / "boxes"
     for name, data in answer["files"].items():
-        _write_bytes(folder / box.key / name, data)
+        write_atomic(folder / box.key / name, data)
     entry = {
         "key": box.key,
         "index": list(box.index),
@@ -536,20 +537,6 @@ def _read_json(path):
 
 
 def _write_json(path, data):
-    _write_bytes(path, (json.dumps(data, indent=1) + "\n").encode("utf-8"))
+    write_atomic(path, (json.dumps(data, indent=1) + "\n").encode("utf-8"))
 
 
-def _write_bytes(path, data):
-    """Write a file atomically: a temporary file in the same folder, then a rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}-", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise

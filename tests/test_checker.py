@@ -8,13 +8,13 @@ References named beside the checks:
   (mem)) has its equilibria at ``(1 -+ sqrt(1 - 4 q)) / 2``, i.e. 0.2 (unstable) and 0.8
   (stable) for ``q = 0.16``: starts above 0.2 stay between 0.2 and 1.2, starts below it
   decline and cross 0.1;
-* the endpoint arithmetic against exact rationals (python-flint ``fmpq``).
+* the endpoint arithmetic against exact rationals (``fractions.Fraction``), the ball and
+  endpoint elementary functions against python-flint arb at 200 bits.
 
 Every certificate produced here must pass; every tampered one must be rejected with exit
 code 1 (a claim fails) or 2 (a malformed file), never with a traceback.
 """
 
-import copy
 import gzip
 import json
 import math

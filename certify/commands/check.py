@@ -15,7 +15,8 @@ SHOWN_FAILURES = 20
 
 def add_arguments(parser):
     """Add the options of ``certify check`` to ``parser``."""
-    parser.add_argument("certificate", metavar="CERT", help="certificate file (certificate.json.gz)")
+    parser.add_argument("certificate", metavar="CERT",
+                        help="certificate file (certificate.json.gz)")
     parser.add_argument("--model", metavar="MODEL.toml",
                         help="check the claims against this revised model (same states) "
                              "and report which still hold")

@@ -53,7 +53,7 @@ def test_decimal_literal_is_not_the_nearest_double():
     assert Fraction(0.1) == Fraction(3602879701896397, 2**55)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=60, deadline=None, derandomize=True, database=None)
 @given(st.decimals(min_value=Decimal("-1e12"), max_value=Decimal("1e12"), allow_nan=False, places=6))
 def test_every_decimal_text_parses_to_its_exact_value(value):
     # Source: Python's decimal module, which keeps decimal text exactly.
@@ -255,7 +255,7 @@ def _expressions():
     return st.recursive(_ATOMS, extend, max_leaves=8)
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=80, deadline=None, derandomize=True, database=None)
 @given(_expressions())
 def test_printed_expressions_read_back_to_the_same_expression(text):
     try:

@@ -526,6 +526,16 @@ class _TidyPrinter(StrPrinter):
     def _print_Max(self, expr):
         return "max(" + ", ".join(self._print(arg) for arg in expr.args) + ")"
 
+    def _print_Mul(self, expr):
+        # sympy folds a number into a denominator ("1/(2*(x + y))"), which reads back
+        # as 1/(2*x + 2*y): print such a number as a separate factor instead
+        coeff, rest = expr.as_coeff_Mul()
+        if coeff.is_Rational and abs(coeff) != 1 and any(
+                f.is_Pow and f.exp.is_negative for f in sympy.Mul.make_args(rest)):
+            sign = "-" if coeff < 0 else ""
+            return f"{sign}{self._print(abs(coeff))}*({self._print(rest)})"
+        return super()._print_Mul(expr)
+
 
 def format_expression(expr):
     """Print a sympy expression in the model-file grammar (``^`` for powers).

@@ -21,10 +21,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from certify import parse_model, prove, read_certificate
+from certify.points import find_equilibria
 from certify.prove import write_proof
 
 __all__ = ["Certified", "certify_text", "cell_sample_points", "contradictions",
-           "far_points_coverage", "NO_TIME_LIMIT"]
+           "far_points_coverage", "equilibria_enclose", "NO_TIME_LIMIT"]
 
 #: A time limit no reference proof reaches: the depth decides where a proof stops.
 NO_TIME_LIMIT = 1e9
@@ -177,3 +178,36 @@ def far_points_coverage(cert, exact, region, n_per_axis, margin, stencil=5):
     decided = float(np.mean(labels != "undecided")) if far.any() else 0.0
     agree = float(np.mean(labels == fates[far, 0])) if far.any() else 0.0
     return decided, agree, int(far.sum())
+
+
+def equilibria_enclose(text, expected):
+    """Prove the equilibria of a model and match them with known exact points.
+
+    Parameters
+    ----------
+    text : str
+        The model file.
+    expected : list of (sequence of float, str)
+        Exact equilibria in the window with their stability (``stable``, ``unstable``,
+        ``saddle``, or ``None`` when the reference gives none the tool could prove).
+
+    Returns
+    -------
+    list of str
+        One message per mismatch (empty when every expected point lies in exactly one
+        proven box with the expected stability, no other box was found, and the search
+        covered the window).
+    """
+    result = find_equilibria(parse_model(text))
+    problems = [] if result.complete else ["the search left boxes unresolved"]
+    if len(result.equilibria) != len(expected):
+        problems.append(f"{len(result.equilibria)} equilibria proven, {len(expected)} expected")
+    for point, stability in expected:
+        point = np.asarray(point, float)
+        holders = [e for e in result.equilibria
+                   if np.all((e.box[:, 0] <= point) & (point <= e.box[:, 1]))]
+        if len(holders) != 1:
+            problems.append(f"{point} lies in {len(holders)} proven boxes")
+        elif stability is not None and holders[0].stability != stability:
+            problems.append(f"{point} proven {holders[0].stability}, expected {stability}")
+    return problems

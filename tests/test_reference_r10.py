@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from reference_checks import certify_text, contradictions
+from reference_checks import certify_text, contradictions, equilibria_enclose
 
 MODEL = """
 [model]
@@ -110,6 +110,12 @@ def test_the_safe_grid_is_certified_safe(r10):
     labels = r10.cert.label_at(points)
     assert not np.any(labels == "doomed")  # all safe (REFERENCES.md R10a, num)
     assert np.mean(labels == "safe") >= COVERAGE  # stated level
+
+
+def test_equilibrium_is_enclosed():
+    # (a, b/a) = (1, 1.5), stable (eigenvalues -0.25 +- 0.968246i) (REFERENCES.md R10a;
+    # Prigogine & Lefever 1968)
+    assert equilibria_enclose(MODEL, [([1.0, 1.5], "stable")]) == []
 
 
 def test_crossing_time_lies_in_the_proven_bounds(r10):

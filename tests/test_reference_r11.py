@@ -25,7 +25,7 @@ import math
 import numpy as np
 import pytest
 
-from reference_checks import certify_text, contradictions
+from reference_checks import certify_text, contradictions, equilibria_enclose
 
 MODEL = """
 [model]
@@ -90,6 +90,13 @@ def test_a_crossing_time_lies_in_the_proven_bounds(r11a):
     lower, upper = r11a.cert.crossing_time_bounds(np.array([[0.0, 0.35]]))
     assert lower[0] <= t_ref <= upper[0]
     assert np.isfinite(upper[0])
+
+
+def test_a_equilibrium_is_enclosed():
+    # (lambda, S0 - lambda) = (1/3, 2/3), stable (eigenvalues -0.75, -0.5); the washout
+    # state (1, 0) lies below the window (REFERENCES.md R11a, Smith & Waltman 1995 (mem))
+    text = MODEL.format(x_lo=0.25, x_hi=2.0625, D=0.5, limits=LIMITS_A)
+    assert equilibria_enclose(text, [([1 / 3, 2 / 3], "stable")]) == []
 
 
 def fate_b(points, tol=1e-9):

@@ -13,7 +13,8 @@ A coarse depth (cells of 1/16 of the window side) keeps this 3D case quick; the 
 checks that no certified cell contradicts the inner safe set, that most of the inner
 set, away from its boundary, is certified safe, and that the few doomed cells are
 doomed indeed (scipy's DOP853 from points inside them crosses a limit within the
-proven bounds) and fill a volume that a sample of 2000 starts would likely miss. The window is [-1.125, 1.125]^3: every side violates a limit.
+proven bounds) and fill a volume that a sample of 2000 starts would likely miss.
+The window is [-1.125, 1.125]^3: every side violates a limit.
 """
 
 import numpy as np

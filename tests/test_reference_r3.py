@@ -16,7 +16,8 @@ import math
 import numpy as np
 import pytest
 
-from reference_checks import certify_text, contradictions, far_points_coverage
+from reference_checks import (certify_text, contradictions, equilibria_enclose,
+                              far_points_coverage)
 
 MODEL = """
 [model]
@@ -60,6 +61,12 @@ def test_coverage_away_from_the_boundary(r3):
     assert n_far > 1900
     assert agree == decided  # decided far points have the exact fate (R3, exact)
     assert decided >= COVERAGE  # stated level; exact boundary x = 2 (REFERENCES.md R3)
+
+
+def test_equilibria_are_enclosed():
+    # 2 unstable (f' = +1), 3 stable (f' = -2); 1 lies outside the window
+    # (REFERENCES.md R3, exact; Schlogl 1972)
+    assert equilibria_enclose(MODEL, [([2.0], "unstable"), ([3.0], "stable")]) == []
 
 
 @pytest.mark.parametrize("x0, t_exact", [

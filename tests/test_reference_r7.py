@@ -24,7 +24,8 @@ import math
 import numpy as np
 import pytest
 
-from reference_checks import certify_text, contradictions, far_points_coverage
+from reference_checks import (certify_text, contradictions, equilibria_enclose,
+                              far_points_coverage)
 
 MODEL = """
 [model]
@@ -103,6 +104,13 @@ def test_doomed_side_coverage_away_from_the_boundary(r7):
     assert n_far > 5000
     assert agree == decided  # decided far doomed points are doomed (R7, Kundur 1994)
     assert decided >= DOOMED_COVERAGE  # stated level on the doomed side (R7)
+
+
+def test_equilibria_are_enclosed():
+    # delta_s = pi/6 (a centre: no stability can be proven without damping) and the
+    # saddle delta_u = 5 pi/6 (REFERENCES.md R7; Kundur 1994, §13.1)
+    expected = [([math.pi / 6, 0.0], None), ([DELTA_U, 0.0], "saddle")]
+    assert equilibria_enclose(MODEL, expected) == []
 
 
 @pytest.mark.parametrize("dt, fate", [(-1e-3, "safe"), (1e-3, "doomed")])

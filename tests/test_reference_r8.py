@@ -14,7 +14,8 @@ The window is [-2.75, 2.75] x [-3.75, 3.75]: every side violates a limit.
 import numpy as np
 import pytest
 
-from reference_checks import certify_text, contradictions, far_points_coverage
+from reference_checks import (certify_text, contradictions, equilibria_enclose,
+                              far_points_coverage)
 
 MODEL = """
 [model]
@@ -94,6 +95,12 @@ def test_inner_safe_set_coverage(r8):
     assert n_far > 5000
     assert agree == decided  # decided points of the inner set are safe (R8, exact)
     assert decided >= COVERAGE  # stated level inside the Lyapunov set (R8)
+
+
+def test_equilibria_are_enclosed():
+    # (0, 0) stable focus, (+-pi, 0) saddles (REFERENCES.md R8; Strogatz §6.7)
+    expected = [([0.0, 0.0], "stable")]
+    assert equilibria_enclose(MODEL, expected) == []  # (+-pi, 0) lie outside the window
 
 
 def test_crossing_time_lies_in_the_proven_bounds(r8):

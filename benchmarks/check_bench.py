@@ -18,13 +18,13 @@ from __future__ import annotations
 
 import argparse
 import os
-import re
 import resource
 import sys
 import tempfile
 import time
 from pathlib import Path
 
+from results_file import write_section
 from flow_bench import machine
 
 from certify import check_certificate, load_model, prove
@@ -111,17 +111,6 @@ def render(rows, jobs, info, load_end):
     return "\n".join(lines)
 
 
-def write_section(text):
-    """Replace the section in results.md (or append it), keeping the others."""
-    old = RESULTS.read_text() if RESULTS.exists() else "# Benchmark results\n"
-    pattern = re.compile(rf"^## {re.escape(SECTION)}\n.*?(?=^## |\Z)", re.S | re.M)
-    if pattern.search(old):
-        new = pattern.sub(lambda _: text, old)
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new)
-
-
 def main(argv=None):
     """Run the benchmark and write its section of ``benchmarks/results.md``.
 
@@ -141,7 +130,7 @@ def main(argv=None):
             rows.append(measure(depth, args.jobs, folder))
             print(rows[-1], flush=True)
     load_end = ", ".join(f"{v:.1f}" for v in os.getloadavg())
-    write_section(render(rows, args.jobs, info, load_end))
+    write_section(SECTION, render(rows, args.jobs, info, load_end))
     print(f"wrote section '{SECTION}' of {RESULTS.relative_to(ROOT)}")
     return 0 if all(r["valid"] for r in rows) else 1
 

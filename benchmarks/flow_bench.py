@@ -21,13 +21,13 @@ import argparse
 import datetime
 import os
 import platform
-import re
 import resource
 import subprocess
 import sys
 import time
 from pathlib import Path
 
+from results_file import write_section
 import numpy as np
 
 from certify import interval as iv
@@ -173,17 +173,6 @@ def render(rows, info):
     return "\n".join(lines) + "\n"
 
 
-def write_section(text):
-    """Replace the section in results.md (or append it)."""
-    old = RESULTS.read_text() if RESULTS.exists() else "# Benchmark results\n"
-    pattern = re.compile(rf"^## {re.escape(SECTION)}\n.*?(?=^## |\Z)", re.S | re.M)
-    if pattern.search(old):
-        new = pattern.sub(lambda _: text + "\n", old).rstrip("\n") + "\n"
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new)
-
-
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true",
@@ -194,7 +183,7 @@ def main(argv=None):
         measure((2, 4), (1_000, 10_000))
         return 0
     rows = measure(ORDERS, BATCHES)
-    write_section(render(rows, info))
+    write_section(SECTION, render(rows, info))
     print(f"wrote section '{SECTION}' of {RESULTS.relative_to(ROOT)}")
     return 0
 

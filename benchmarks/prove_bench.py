@@ -21,11 +21,11 @@ from __future__ import annotations
 
 import argparse
 import os
-import re
 import sys
 import time
 from pathlib import Path
 
+from results_file import write_section
 import numpy as np
 
 from flow_bench import machine, parameter_bounds
@@ -165,15 +165,6 @@ def render(rows, check, info, load_end):
     return "\n".join(lines) + "\n"
 
 
-def write_section(text):
-    """Replace the section in results.md (or append it), keeping the others."""
-    old = RESULTS.read_text() if RESULTS.exists() else "# Benchmark results\n"
-    pattern = re.compile(rf"^## {re.escape(SECTION)}\n.*?(?=^## |\Z)", re.S | re.M)
-    new = pattern.sub(lambda _: text + "\n", old) if pattern.search(old) \
-        else old.rstrip("\n") + "\n\n" + text
-    RESULTS.write_text(new.rstrip("\n") + "\n")
-
-
 def main(argv=None):
     """Run the benchmark and write its section of ``benchmarks/results.md``.
 
@@ -194,7 +185,7 @@ def main(argv=None):
     info = machine()
     rows, check = measure(args.depths)
     load_end = ", ".join(f"{v:.1f}" for v in os.getloadavg())
-    write_section(render(rows, check, info, load_end))
+    write_section(SECTION, render(rows, check, info, load_end))
     print(f"wrote section '{SECTION}' of {RESULTS.relative_to(ROOT)}")
     return 0
 

@@ -15,12 +15,13 @@ import datetime
 import json
 import os
 import platform
-import re
 import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+from results_file import write_section
 
 ROOT = Path(__file__).resolve().parent.parent
 RESULTS = ROOT / "benchmarks" / "results.md"
@@ -139,18 +140,6 @@ def section_text(n, depth, rows, same, summary, commit):
     return "\n".join(lines)
 
 
-def write_section(text, path=RESULTS):
-    """Replace (or append) the section in ``path``, keeping every other section."""
-    path = Path(path)
-    old = path.read_text() if path.exists() else "# Benchmark results\n\n"
-    pattern = re.compile(rf"^## {re.escape(SECTION)}\n.*?(?=^## |\Z)", re.M | re.S)
-    if pattern.search(old):
-        new = pattern.sub(lambda _: text, old)
-    else:
-        new = old.rstrip("\n") + "\n\n" + text
-    path.write_text(new)
-
-
 def main(argv=None):
     """Run the benchmark and write its section of ``benchmarks/results.md``.
 
@@ -173,7 +162,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
     commit = _commit()
     rows, same, summary = run_sweeps(args.boxes, args.max_depth, args.workers)
-    write_section(section_text(args.boxes, args.max_depth, rows, same, summary, commit))
+    write_section(SECTION, section_text(args.boxes, args.max_depth, rows, same, summary, commit))
     print(f"wrote the section '{SECTION}' of {RESULTS}", file=sys.stderr)
     return 0
 

@@ -110,20 +110,16 @@ class Pieces:
     ----------
     tube : int
         Pieces of the a-priori box for the field and the limit rates.
-    jacobians : tuple of int
-        Pieces of the mean-value box for the Jacobians of ``f^[1], f^[2], ...`` (the last
-        entry serves the higher orders).
+    jacobians : (int, int)
+        Pieces of the mean-value box for the Jacobian of ``f^[1]`` and for those of
+        ``f^[2], f^[3], ...``.
     remainder : int
         Pieces of the a-priori box for the Taylor remainder.
     """
 
     tube: int = 1
-    jacobians: tuple = (1,)
+    jacobians: tuple = (1, 1)
     remainder: int = 1
-
-    def jacobian(self, k):
-        """Pieces for the Jacobian of ``f^[k]``, ``k >= 1``."""
-        return self.jacobians[min(k, len(self.jacobians)) - 1]
 
 
 class BallArith:

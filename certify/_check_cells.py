@@ -169,12 +169,15 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     D = [[ar.exact(np.full(len(h), float(i == j))) for j in range(n)] for i in range(n)]
     if q > 1:
         J = [ar.hull(X[k], point[k]) for k in range(n)]
+        jac = _joined(ar, progs.jacobian, ar.cover(J, ar.pieces.jacobians[0]), params)
+        if q > 2:
+            jac = jac + _joined(ar, progs.higher_jacobians,
+                                ar.cover(J, ar.pieces.jacobians[-1]), params)
         for k in range(1, q):
-            pieces = ar.cover(J, ar.pieces.jacobian(k))
-            jac = _joined(ar, progs.jacobians[k - 1], pieces, params)
             for i in range(n):
                 for j in range(n):
-                    D[i][j] = ar.add(D[i][j], ar.mul(powers[k], jac[i * n + j]))
+                    term = ar.mul(powers[k], jac[(k - 1) * n * n + i * n + j])
+                    D[i][j] = ar.add(D[i][j], term)
     Ae = [[ar.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
     M = _matmul(ar, D, Ae)
     V = _matvec(ar, M, r)

@@ -238,8 +238,11 @@ class CheckPrograms:
         ``f^[q]`` (n outputs).
     coefficients : Program or None
         At a point: ``f^[1..q-1]`` stacked (``n (q-1)`` outputs); None for ``q = 1``.
-    jacobians : tuple of Program
-        Row-major Jacobian of each of ``f^[1], ..., f^[q-1]`` (``n n`` outputs each).
+    jacobian : Program or None
+        Row-major Jacobian of ``f^[1] = f`` (``n n`` outputs); None for ``q = 1``.
+    higher_jacobians : Program or None
+        Row-major Jacobians of ``f^[2], ..., f^[q-1]`` stacked (``n n (q-2)`` outputs; the
+        last one contains the others as subexpressions); None for ``q <= 2``.
     limits : Program
         The limits ``g_j`` (m outputs; satisfied where ``g_j >= 0``).
     field : Program
@@ -252,7 +255,8 @@ class CheckPrograms:
     on_tube: Program
     remainder: Program
     coefficients: Program | None
-    jacobians: tuple
+    jacobian: Program | None
+    higher_jacobians: Program | None
     limits: Program
     field: Program
     n_limits: int
@@ -295,14 +299,16 @@ def derive_programs(model, order):
     rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
              for g in limits]
     middle = coefficients[1:order]
-    point = None
+    point = jac = higher = None
     if middle:
         point = compile_expressions([e for c in middle for e in c], inputs)
-    jac = tuple(compile_expressions(list(c.jacobian(x)), inputs) for c in middle)
+        jac = compile_expressions(list(middle[0].jacobian(x)), inputs)
+    if len(middle) > 1:
+        higher = compile_expressions([e for c in middle[1:] for e in c.jacobian(x)], inputs)
     on_tube = compile_expressions(list(equations) + rates, inputs)
     remainder = compile_expressions(list(coefficients[order]), inputs)
     return CheckPrograms(order=order, n=len(states), on_tube=on_tube, remainder=remainder,
-                         coefficients=point,
-                         jacobians=jac, limits=compile_expressions(list(limits), inputs),
+                         coefficients=point, jacobian=jac, higher_jacobians=higher,
+                         limits=compile_expressions(list(limits), inputs),
                          field=compile_expressions(list(equations), inputs),
                          n_limits=len(limits))

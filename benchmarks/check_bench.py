@@ -106,13 +106,13 @@ def render(rows, jobs, info, load_end):
         f"({last['check_cpu'] / last['prove_cpu']:.2f}x). Later goal (less than the proving "
         f"time): {word[last['check_wall'] < last['prove_wall']]} in wall time.",
         "",
-        "Where the time goes: the first pass evaluates about 1,150 arb operations per "
+        "Where the time goes: the first pass evaluates about 1,050 arb operations per "
         "cell-step for this order-4 model (the Taylor remainder over the tube and the "
         "Jacobians of f^[1..3] over the mean-value box are about three quarters of them), "
         "each a Python object created per element, about 0.2 us; the prover does the same "
         "work with numpy float kernels. Checking runs in worker processes and proving in "
         "one, so on an idle machine the wall ratio is about the CPU ratio divided by the "
-        "number of workers; with other jobs on the two cores, as here, it is not.",
+        "number of workers (less when other jobs share the cores).",
         "",
         "",
     ]

@@ -170,6 +170,14 @@ class BallArith:
         """Rows `index` of an interval array (scalars pass through)."""
         return a[index] if np.ndim(a) else a
 
+    def put(self, a, index, b):
+        """A copy of `a` with rows `index` replaced by `b` (scalars stay scalars)."""
+        if not np.ndim(a):
+            return a
+        out = a.copy()
+        out[index] = b
+        return out
+
     # -- bounds and predicates -----------------------------------------------------------
     def lower(self, a):
         """Exact lower bounds (object array of arb)."""
@@ -370,6 +378,13 @@ class EndpointArith:
     def take(self, a, index):
         lo, hi = a
         return lo[index] if np.ndim(lo) else lo, hi[index] if np.ndim(hi) else hi
+
+    def put(self, a, index, b):
+        if not np.ndim(a[0]):
+            return a
+        lo, hi = a[0].copy(), a[1].copy()
+        lo[index], hi[index] = b
+        return lo, hi
 
     # -- bounds and predicates -----------------------------------------------------------
     def lower(self, a):

@@ -31,6 +31,9 @@ from ._check_arith import ARITHMETICS, evaluate
 __all__ = ["CheckContext", "CellTask", "cell_facts", "face_pieces_proven", "exact_cells",
            "grid_bounds"]
 
+#: Tries at a passing a-priori box per step in a regression check (``search_tubes``).
+TUBE_TRIES = 4
+
 #: Pieces of the a-priori box for the field and the limit rates (ball arithmetic).
 TUBE_PIECES = 1
 #: Pieces of the mean-value box for the Jacobians (ball arithmetic).
@@ -52,6 +55,10 @@ class CheckContext:
         ``(axis, side)`` of the faces the checker treats as open.
     grid_depth : int
         Depth of the finest grid used for exact successor lookups.
+    search_tubes : bool
+        Where a stored a-priori box fails the Picard inclusion, look for one from it (a
+        regression check against a revised model: the stored boxes were made for the
+        old one). Off for a certificate's own model, whose boxes must hold as stored.
     """
 
     programs: object
@@ -59,6 +66,7 @@ class CheckContext:
     window: tuple
     open_faces: tuple
     grid_depth: int
+    search_tubes: bool = False
 
 
 @dataclass
@@ -151,7 +159,10 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     n, q = progs.n, progs.order
     params = _params(ar, context)
     hh = ar.exact(h)
-    tube, ok = _picard(ar, progs, params, hh, X_bounds, E_bounds)
+    tube, ok, reach = _picard(ar, progs, params, hh, X_bounds, E_bounds)
+    if context.search_tubes and not ok.all():
+        E_bounds, tube = _search_tubes(ar, progs, params, hh, X_bounds, E_bounds, tube, ok,
+                                       reach)
     field, rates = tube[:n], tube[n:]
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
     remainder = _joined(ar, progs.remainder, ar.cover(E, ar.pieces.remainder), params)
@@ -200,7 +211,7 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return ok, kept, crossed, X_next, new_r, E
+    return ok, kept, crossed, X_next, new_r, E, E_bounds
 
 
 def _picard(ar, progs, params, hh, X_bounds, E_bounds):
@@ -211,18 +222,59 @@ def _picard(ar, progs, params, hh, X_bounds, E_bounds):
     tube : list of intervals
         ``f`` then the limit rates on ``E``.
     ok : ndarray of bool
+    reach : list of (lo, hi)
+        Exact bounds of ``X + [0, h] f(E)`` per axis.
     """
     n = progs.n
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
     tube = _joined(ar, progs.on_tube, ar.cover(E, ar.pieces.tube), params)
     ok = np.ones(len(E_bounds), bool)
+    reach = []
     for k in range(n):
         move_lo, move_hi = _span(ar, hh, tube[k])
         low = ar.sum_lower(X_bounds[0][k], move_lo)
         high = ar.sum_upper(X_bounds[1][k], move_hi)
         ok &= _true(low >= ar.lower(ar.exact(E_bounds[:, k, 0])))
         ok &= _true(high <= ar.upper(ar.exact(E_bounds[:, k, 1])))
-    return tube, ok
+        reach.append((low, high))
+    return tube, ok, reach
+
+
+def _search_tubes(ar, progs, params, hh, X_bounds, E_bounds, tube, ok, reach):
+    """Replace failing a-priori boxes by boxes that pass, where a few tries find one.
+
+    Each try joins the box with ``X + [0, h] f(E)`` and pads it by a tenth of its width
+    (plain floats: a candidate is only a candidate until the Picard test accepts it).
+    Updates `ok` in place.
+
+    Returns
+    -------
+    E_bounds : ndarray, shape (N, n, 2)
+    tube : list of intervals
+        ``f`` and the limit rates on the boxes finally used.
+    """
+    E_bounds = E_bounds.copy()
+    rows = np.flatnonzero(~ok)
+    candidate = E_bounds[rows]
+    reach = [(low[rows], high[rows]) for low, high in reach]
+    for _ in range(TUBE_TRIES):
+        for k, (low, high) in enumerate(reach):
+            lo = np.minimum(candidate[:, k, 0], np.array([float(v) for v in low]))
+            hi = np.maximum(candidate[:, k, 1], np.array([float(v) for v in high]))
+            pad = 0.1 * (hi - lo) + 1e-12 * np.maximum(np.abs(lo), np.abs(hi)) + 1e-300
+            candidate[:, k, 0], candidate[:, k, 1] = lo - pad, hi + pad
+        sub_X = ([b[rows] for b in X_bounds[0]], [b[rows] for b in X_bounds[1]])
+        found, passed, reach = _picard(ar, progs, params, ar.take(hh, rows), sub_X, candidate)
+        good = np.flatnonzero(passed)
+        E_bounds[rows[good]] = candidate[good]
+        ok[rows[good]] = True
+        tube = [ar.put(a, rows[good], ar.take(b, good)) for a, b in zip(tube, found)]
+        rest = np.flatnonzero(~passed)
+        rows, candidate = rows[rest], candidate[rest]
+        reach = [(low[rest], high[rest]) for low, high in reach]
+        if len(rows) == 0:
+            break
+    return E_bounds, tube
 
 
 def _span(ar, h, a):
@@ -281,6 +333,7 @@ def cell_facts(context, task, arithmetic):
     outside = _limits_upper_negative(ar, context, cell, N)
     K = task.n_steps
     start = np.concatenate([[0], np.cumsum(K)]).astype(int)
+    tube_boxes = task.E.copy()
     n_valid = np.zeros(N, int)
     first_unkept = np.full(N, -1)
     crossing = np.full(N, -1)
@@ -297,8 +350,9 @@ def cell_facts(context, task, arithmetic):
     k = 0
     while len(ids):
         s = start[ids] + k
-        ok, kept, crossed, X_next, r_next, E = _step(
+        ok, kept, crossed, X_next, r_next, E, E_used = _step(
             ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], task.m[s], task.A[s])
+        tube_boxes[s] = E_used
         n_valid[ids[ok]] = k + 1
         unkept = ok & ~kept & (first_unkept[ids] < 0)
         first_unkept[ids[unkept]] = k
@@ -323,7 +377,7 @@ def cell_facts(context, task, arithmetic):
     first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
     facts = {"outside": outside, "n_valid": n_valid, "first_unkept": first_unkept,
              "crossing_step": crossing}
-    facts.update(_images(ar, context, task, image, image_cells))
+    facts.update(_images(ar, context, task, tube_boxes, image, image_cells))
     return facts
 
 
@@ -333,8 +387,11 @@ def _concat(ar, a, b):
     return np.concatenate([a, b])
 
 
-def _images(ar, context, task, image, image_cells):
-    """Clip the images at the window, decide escapes, express them on the grid."""
+def _images(ar, context, task, tube_boxes, image, image_cells):
+    """Clip the images at the window, decide escapes, express them on the grid.
+
+    `tube_boxes` are the a-priori boxes of the steps (as verified).
+    """
     n = context.programs.n
     N = len(task.cells)
     known = np.zeros(N, int)
@@ -356,7 +413,7 @@ def _images(ar, context, task, image, image_cells):
     hi = np.array([[_to_fraction(x) for x in ar.upper(ar.take(image[i], sel))]
                    for i in range(n)], dtype=object).T.reshape(len(sel), n)
     known[cells] = 1
-    escapes[cells] = _escapes(ar, context, task, cells, lo, hi)
+    escapes[cells] = _escapes(ar, context, task, tube_boxes, cells, lo, hi)
     for c, row_lo, row_hi in zip(cells, lo, hi):
         for i, (a, b) in enumerate(context.window):
             row_lo[i] = max(row_lo[i], a)
@@ -386,7 +443,7 @@ def grid_bounds(window, depth, lo, hi):
     return np.array(first, np.int64), np.array(last, np.int64)
 
 
-def _escapes(ar, context, task, cells, lo, hi):
+def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
     """Whether a part of each image outside the window may hold a trajectory in K.
 
     A trajectory that stays within the limits can leave the window only through an
@@ -407,9 +464,9 @@ def _escapes(ar, context, task, cells, lo, hi):
     for axis, side in context.open_faces:
         a, b = window[axis]
         if side == "lo":
-            beyond = _float_below(task.E[:, axis, 0], a)
+            beyond = _float_below(tube_boxes[:, axis, 0], a)
         else:
-            beyond = _float_above(task.E[:, axis, 1], b)
+            beyond = _float_above(tube_boxes[:, axis, 1], b)
         np.logical_or.at(tube_pokes, rows[beyond], True)
     check = tube_pokes[cells]
     if not check.any():

@@ -772,7 +772,8 @@ def check_certificate(path, model=None, jobs=None, progress=None):
             failures.append(_global(f"face {cert.states[axis]} {side} is not proven to be of "
                                     f"kind {kind!r}"))
     context = CheckContext(programs=programs, params=params, window=cert.window,
-                           open_faces=tuple(open_faces), grid_depth=tree.max_depth)
+                           open_faces=tuple(open_faces), grid_depth=tree.max_depth,
+                           search_tubes=revised is not None)
     jobs = (os.cpu_count() or 1) if jobs is None else max(1, int(jobs))
     n_steps = _needs_steps(cert)
     if progress is not None and hasattr(progress, "total"):

@@ -233,7 +233,8 @@ class _Prover:
             else result.image_lo
         raw_hi = np.where(ok[:, None], result.end_hi[np.maximum(last, 0)], np.nan) if S \
             else result.image_hi
-        image_lo, image_hi, escapes = self._clip(raw_lo, raw_hi, ok)
+        tube_open = self._tube_past_open_faces(result, box_of_step, len(todo))
+        image_lo, image_hi, escapes = self._clip(raw_lo, raw_hi, ok, tube_open)
         # nothing is known after the time reached by a flow without an image
         first_unkept = np.where(ok, first_unkept, np.minimum(first_unkept, result.t_lo))
         first_unkept = np.where(escapes, np.minimum(first_unkept, result.t_lo), first_unkept)
@@ -247,24 +248,33 @@ class _Prover:
         self.image_lo[todo] = image_lo
         self.image_hi[todo] = image_hi
 
-    def _clip(self, lo, hi, ok):
-        """Clip images at harmless faces; flag parts outside the window not known harmless."""
-        lo, hi = lo.copy(), hi.copy()
-        escapes = np.zeros(len(lo), bool)
+    def _tube_past_open_faces(self, result, box_of_step, n_boxes):
+        """Per box: does some a-priori box reach beyond an open face of the window?"""
         lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
+        past = np.zeros(len(result.h), bool)
+        for face in self.faces:
+            if face["kind"] in HARMLESS:
+                continue
+            k = face["axis"]
+            past |= result.e_lo[:, k] < lo_hi[k] if face["side"] == "lo" \
+                else result.e_hi[:, k] > hi_lo[k]
+        return np.bincount(box_of_step, weights=past, minlength=n_boxes) > 0
+
+    def _clip(self, lo, hi, ok, tube_open):
+        """Cut images to the window; flag images whose outside parts may matter.
+
+        Without a tube box beyond an open face, a trajectory that keeps the limits
+        cannot have left the window (harmless faces cannot be crossed within the limits,
+        and the tube never reaches past the others): every outside part is harmless.
+        Otherwise each part beyond a face must violate a limit on the whole part.
+        """
+        lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
+        escapes = np.zeros(len(lo), bool)
+        check = ok & tube_open
         for face in self.faces:
             k, side = face["axis"], face["side"]
-            if side == "lo":
-                pokes = ok & (lo[:, k] < lo_hi[k])
-            else:
-                pokes = ok & (hi[:, k] > hi_lo[k])
+            pokes = check & ((lo[:, k] < lo_hi[k]) if side == "lo" else (hi[:, k] > hi_lo[k]))
             if not pokes.any():
-                continue
-            if face["kind"] in HARMLESS:
-                if side == "lo":
-                    lo[pokes, k] = np.maximum(lo[pokes, k], lo_lo[k])
-                else:
-                    hi[pokes, k] = np.minimum(hi[pokes, k], hi_hi[k])
                 continue
             slo, shi = lo[pokes].copy(), hi[pokes].copy()
             if side == "lo":
@@ -272,14 +282,8 @@ class _Prover:
             else:
                 slo[:, k] = hi_lo[k]
             _, gh = evaluate_limits(self.programs, slo, shi, self.params)
-            harmless = np.any(gh < 0, axis=1)
-            idx = np.flatnonzero(pokes)
-            escapes[idx[~harmless]] = True
-            if side == "lo":
-                lo[idx, k] = np.maximum(lo[idx, k], lo_lo[k])
-            else:
-                hi[idx, k] = np.minimum(hi[idx, k], hi_hi[k])
-        return lo, hi, escapes
+            escapes[np.flatnonzero(pokes)[~np.any(gh < 0, axis=1)]] = True
+        return np.maximum(lo, lo_lo), np.minimum(hi, hi_hi), escapes
 
     # -- labelling ---------------------------------------------------------------------
     def label(self):

@@ -10,6 +10,7 @@ from __future__ import annotations
 import base64
 import gzip
 import json
+import zlib
 from dataclasses import dataclass
 from fractions import Fraction
 from pathlib import Path
@@ -86,7 +87,8 @@ def load_certificate_json(path):
             data = json.loads(f.read().decode("utf-8"))
     except FileNotFoundError:
         raise CertificateError(f"{path}: no such file") from None
-    except (OSError, EOFError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile) as exc:
+    except (OSError, EOFError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile,
+            zlib.error) as exc:
         raise CertificateError(f"{path}: not a readable certificate ({exc})") from None
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise CertificateError(f"{path}: not a certify certificate (key 'format')")

@@ -24,7 +24,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from results_file import write_section
+from results_file import measured_on, write_section
 from flow_bench import machine
 
 from certify import check_certificate, load_model, prove
@@ -68,11 +68,7 @@ def render(rows, jobs, info, load_end):
     lines = [
         f"## {SECTION}",
         "",
-        f"Measured {info['date']} at commit `{info['commit']}` on {info['cpu']} "
-        f"({info['nproc']} logical CPUs), Python {info['python']}, numpy {info['numpy']}; "
-        f"load average {info['load']} at the start and {load_end} at the end (a shared "
-        f"machine: other jobs ran alongside, so wall times are inflated; CPU times are shown "
-        f"too). Produced by `benchmarks/check_bench.py`.",
+        measured_on(info, load_end, "check_bench.py"),
         "",
         f"Demo fermenter (`models/fermenter.toml`), proved from scratch to depth D in one "
         f"process, then `check_certificate` with {jobs} worker processes. The checker "

@@ -79,6 +79,15 @@ def parameter_bounds(model):
             for p in model.parameters]
 
 
+def grid_centres(model, depth):
+    """Centres of the 2^depth cells per side of the window, shape (2^(n depth), n)."""
+    axes = []
+    for lo, hi in model.window:
+        edges = np.linspace(float(lo), float(hi), 2 ** depth + 1)
+        axes.append(0.5 * (edges[:-1] + edges[1:]))
+    return np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, len(axes))
+
+
 def random_boxes(model, n_boxes, rng):
     """Boxes of side 1/256 of the window at random positions inside it."""
     (s0, s1), (x0, x1) = [(float(a), float(b)) for a, b in model.window]

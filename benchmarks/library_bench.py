@@ -35,10 +35,10 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from results_file import write_section
+from results_file import measured_on, write_section
 import numpy as np
 
-from flow_bench import machine, parameter_bounds
+from flow_bench import grid_centres, machine, parameter_bounds
 
 from certify import load_model, prove
 from certify.cells import CellTree
@@ -123,15 +123,6 @@ def time_proof(model, depth, time_limit):
             "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
 
 
-def grid_centres(model, depth):
-    """Centres of the 2^depth cells per side of the window, shape (2^(n depth), n)."""
-    axes = []
-    for lo, hi in model.window:
-        edges = np.linspace(float(lo), float(hi), 2 ** depth + 1)
-        axes.append(0.5 * (edges[:-1] + edges[1:]))
-    return np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, len(axes))
-
-
 def time_simulation(model, case, depth):
     """Wall and CPU seconds of RK4 from every cell centre over the case's horizon (scaled)."""
     programs = flow_programs(model, 1)
@@ -172,11 +163,7 @@ def render(rows, info, load_end):
     lines = [
         f"## {SECTION}",
         "",
-        f"Measured {info['date']} at commit `{info['commit']}` on {info['cpu']} "
-        f"({info['nproc']} logical CPUs), Python {info['python']}, numpy {info['numpy']}; "
-        f"load average {info['load']} at the start and {load_end} at the end. The machine "
-        f"is shared with other jobs: wall times are inflated and noisy, CPU times less so; "
-        f"both are shown. Produced by `benchmarks/library_bench.py`.",
+        measured_on(info, load_end, "library_bench.py"),
         "",
         "Each model proved from scratch by `certify.prove` with its own `[settings]` and "
         "`max_depth` D (cells of 1/2^D of each window side). Undecided is the share of the "

@@ -25,10 +25,10 @@ import sys
 import time
 from pathlib import Path
 
-from results_file import write_section
+from results_file import measured_on, write_section
 import numpy as np
 
-from flow_bench import machine, parameter_bounds
+from flow_bench import grid_centres, machine, parameter_bounds
 
 from certify import load_model, prove
 from certify.simulate import simulate
@@ -53,16 +53,6 @@ def time_proof(model, depth):
     return {"depth": depth, "wall": wall, "cpu": cpu, "fractions": dict(proof.fractions),
             "cells": sum(proof.counts.values()), "depth_reached": proof.depth_reached,
             "stop": proof.stop_reason}
-
-
-def grid_centres(model, depth):
-    """Centres of the 2^depth x 2^depth cells of the window, shape (4^depth, 2)."""
-    axes = []
-    for lo, hi in model.window:
-        lo, hi = float(lo), float(hi)
-        edges = np.linspace(lo, hi, 2 ** depth + 1)
-        axes.append(0.5 * (edges[:-1] + edges[1:]))
-    return np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, len(axes))
 
 
 def time_simulation(model, depth, n_steps):
@@ -130,11 +120,7 @@ def render(rows, check, info, load_end):
     lines = [
         f"## {SECTION}",
         "",
-        f"Measured {info['date']} at commit `{info['commit']}` on {info['cpu']} "
-        f"({info['nproc']} logical CPUs), Python {info['python']}, numpy {info['numpy']}; "
-        f"load average {info['load']} at the start and {load_end} at the end (a shared "
-        f"machine: other jobs ran alongside, so wall times are inflated; CPU times are "
-        f"shown too). Produced by `benchmarks/prove_bench.py`.",
+        measured_on(info, load_end, "prove_bench.py"),
         "",
         "Demo fermenter (`models/fermenter.toml`, window [0, 12] g/L x [0, 10] g/L), "
         "`certify.prove` from scratch with `max_depth` D and its other defaults. "

@@ -5,7 +5,7 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
-__all__ = ["RESULTS", "write_section"]
+__all__ = ["RESULTS", "write_section", "measured_on"]
 
 RESULTS = Path(__file__).resolve().parent / "results.md"
 
@@ -27,3 +27,22 @@ def write_section(section, text, path=RESULTS):
     new = pattern.sub(lambda _: text, old) if pattern.search(old) \
         else old.rstrip("\n") + "\n\n" + text
     path.write_text(new.rstrip("\n") + "\n")
+
+
+def measured_on(info, load_end, script):
+    """The sentence naming date, commit, machine and load of a benchmark run.
+
+    Parameters
+    ----------
+    info : dict
+        From ``flow_bench.machine()`` (date, commit, cpu, nproc, python, numpy, load).
+    load_end : str
+        Load average when the run ended.
+    script : str
+        File name of the benchmark, e.g. ``"prove_bench.py"``.
+    """
+    return (f"Measured {info['date']} at commit `{info['commit']}` on {info['cpu']} "
+            f"({info['nproc']} logical CPUs), Python {info['python']}, numpy {info['numpy']}; "
+            f"load average {info['load']} at the start and {load_end} at the end (a shared "
+            f"machine: other jobs ran alongside, so wall times are inflated; CPU times are "
+            f"shown too). Produced by `benchmarks/{script}`.")

@@ -28,8 +28,7 @@ import numpy as np
 
 from ._check_arith import ARITHMETICS, evaluate
 
-__all__ = ["CheckContext", "CellTask", "cell_facts", "face_pieces_proven", "exact_cells",
-           "grid_bounds"]
+__all__ = ["CheckContext", "CellTask", "cell_facts", "exact_cells", "grid_bounds"]
 
 #: Tries at a passing a-priori box per step in a regression check (``search_tubes``).
 TUBE_TRIES = 4
@@ -40,6 +39,8 @@ TUBE_PIECES = 1
 JACOBIAN_PIECES = (1, 1, 1)
 #: Pieces of the a-priori box for the Taylor remainder (ball arithmetic).
 REMAINDER_PIECES = 1
+#: Slab half-width around an invariant face, as a fraction of each window side.
+SLAB = Fraction(1, 1024)
 
 
 @dataclass(frozen=True)
@@ -53,6 +54,8 @@ class CheckContext:
     window : tuple of (Fraction, Fraction)
     open_faces : tuple of (int, str)
         ``(axis, side)`` of the faces the checker treats as open.
+    invariant_faces : tuple of (int, str)
+        ``(axis, side)`` of the faces confirmed ``invariant``.
     grid_depth : int
         Depth of the finest grid used for exact successor lookups.
     search_tubes : bool
@@ -66,6 +69,7 @@ class CheckContext:
     window: tuple
     open_faces: tuple
     grid_depth: int
+    invariant_faces: tuple = ()
     search_tubes: bool = False
 
 
@@ -374,11 +378,79 @@ def cell_facts(context, task, arithmetic):
         m, A = task.m[s[keep]], task.A[s[keep]]
         ids = ids[keep]
         k += 1
+    if len(image_cells):
+        drift = _drift(ar, context, task, tube_boxes, image_cells)
+        image = [ar.intersect(image[i], ar.add(ar.take(cell[i], image_cells), drift[i]))
+                 for i in range(n)]
     first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
     facts = {"outside": outside, "n_valid": n_valid, "first_unkept": first_unkept,
              "crossing_step": crossing}
     facts.update(_images(ar, context, task, tube_boxes, image, image_cells))
     return facts
+
+
+def _drift(ar, context, task, tube_boxes, cells):
+    """Per cell of `cells`, an enclosure of ``x(T) - x(0)``: the sum of ``h f(E)``.
+
+    Each tube box ``E`` is first cut at the invariant faces where
+    :func:`_cut_at_invariant_faces` allows it.
+    """
+    n = context.programs.n
+    owner = np.repeat(np.arange(len(task.cells)), task.n_steps)
+    E = _cut_at_invariant_faces(context, tube_boxes, owner, len(task.cells))
+    box = [ar.box(E[:, k, 0], E[:, k, 1]) for k in range(n)]
+    params = _params(ar, context)
+    f = _joined(ar, context.programs.field, ar.cover(box, ar.pieces.tube), params)
+    hh = ar.exact(task.h)
+    moved = [ar.mul(hh, f[i]) for i in range(n)]
+    start = np.concatenate([[0], np.cumsum(task.n_steps)]).astype(int)
+    steps = task.n_steps[cells]
+    drift = [ar.exact(np.zeros(len(cells))) for _ in range(n)]
+    for j in range(int(steps.max(initial=0))):
+        live = np.flatnonzero(steps > j)
+        s = start[cells[live]] + j
+        drift = [ar.put(d, live, ar.add(ar.take(d, live), ar.take(m, s)))
+                 for d, m in zip(drift, moved)]
+    return drift
+
+
+def _cut_at_invariant_faces(context, tube_boxes, owner, n_cells):
+    """Tube boxes cut at the invariant faces wherever no trajectory can be beyond them.
+
+    A trajectory reaches the far side of an invariant face ``x_k = b`` only through a
+    point of the hyperplane outside the slab's cross-section (where ``f`` is not known
+    to be Lipschitz): when every tube box of a cell that reaches ``x_k = b`` lies within
+    the cross-section (exact comparisons), the cell's boxes are cut at the largest float
+    not beyond ``b``.
+    """
+    E = tube_boxes.copy()
+    window = context.window
+    for axis, side in context.invariant_faces:
+        inside = np.ones(len(E), bool)
+        for j, (a, c) in enumerate(window):
+            if j != axis:
+                margin = SLAB * (c - a)
+                inside &= ~_float_below(E[:, j, 0], a - margin)
+                inside &= ~_float_above(E[:, j, 1], c + margin)
+        a, c = window[axis]
+        if side == "lo":
+            reaches, bound = ~_float_above(E[:, axis, 0], a), _float_at_most(a)
+        else:
+            reaches, bound = ~_float_below(E[:, axis, 1], c), -_float_at_most(-c)
+        unsure = np.zeros(n_cells, bool)
+        np.logical_or.at(unsure, owner[reaches & ~inside], True)
+        cut = ~unsure[owner]
+        if side == "lo":
+            E[cut, axis, 0] = np.maximum(E[cut, axis, 0], bound)
+        else:
+            E[cut, axis, 1] = np.minimum(E[cut, axis, 1], bound)
+    return E
+
+
+def _float_at_most(a):
+    """The largest float not above the Fraction `a`."""
+    v = float(a)
+    return v if Fraction(v) <= a else float(np.nextafter(v, -np.inf))
 
 
 def _concat(ar, a, b):
@@ -427,19 +499,32 @@ def _images(ar, context, task, tube_boxes, image, image_cells):
 
 
 def grid_bounds(window, depth, lo, hi):
-    """A box inside the window in units of the grid of depth `depth`.
+    """The leaves a box inside the window needs as successors, on the finest grid.
+
+    Along an axis where the box is thick (``lo < hi``) a leaf is needed when it overlaps
+    the open range; along a flat axis, when it meets the point. The leaves so named cover
+    the box: every point of the box's relative interior lies in a leaf, each such leaf is
+    named, and their union is closed.
 
     Returns
     -------
     first, last : ndarray of int, shape (n,)
-        The box meets the closed grid cell ``j`` of axis ``k`` (``j`` in units of
-        ``2^-depth`` of the side) exactly when ``first[k] <= j + 1`` and ``j <= last[k]``:
-        ``first = ceil(u_lo 2^depth)`` and ``last = floor(u_hi 2^depth)`` where ``u`` are
-        the box's sides relative to the window (in ``[0, 1]``).
+        The grid cell ``j`` of axis ``k`` (``[j, j + 1]`` in units of ``2^-depth`` of the
+        side) is needed exactly when ``first[k] <= j + 1`` and ``j <= last[k]``. With
+        ``u`` the box's sides relative to the window (in ``[0, 1]``) and ``s = 2^depth``:
+        thick axes have ``first = floor(u_lo s) + 1``, ``last = ceil(u_hi s) - 1``; flat
+        axes ``first = ceil(u_lo s)``, ``last = floor(u_hi s)``.
     """
     scale = 1 << depth
-    first = [math.ceil((x - a) / (b - a) * scale) for x, (a, b) in zip(lo, window)]
-    last = [math.floor((x - a) / (b - a) * scale) for x, (a, b) in zip(hi, window)]
+    first, last = [], []
+    for x, y, (a, b) in zip(lo, hi, window):
+        u_lo, u_hi = (x - a) / (b - a) * scale, (y - a) / (b - a) * scale
+        if x < y:
+            first.append(math.floor(u_lo) + 1)
+            last.append(math.ceil(u_hi) - 1)
+        else:
+            first.append(math.ceil(u_lo))
+            last.append(math.floor(u_hi))
     return np.array(first, np.int64), np.array(last, np.int64)
 
 
@@ -448,7 +533,8 @@ def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
 
     A trajectory that stays within the limits can leave the window only through an
     open face (a ``limit`` face violates a limit at every point, an ``inflow`` face
-    pushes back every point within the limits). If no a-priori box of the cell reaches
+    pushes back every point within the limits, no solution leaves through an
+    ``invariant`` face). If no a-priori box of the cell reaches
     beyond an open face, no such trajectory left the window and the parts outside it
     are harmless. Otherwise every part beyond a face must violate a limit (in one
     dimension a trajectory beyond the window lies beyond the open face it left by, so
@@ -510,34 +596,3 @@ def _float_above(x, b):
         return x > v
     above = v if Fraction(v) > b else float(np.nextafter(v, np.inf))
     return x >= above
-
-
-def face_pieces_proven(context, arithmetic, axis, side, lo, hi, need_limit):
-    """Which pieces of a window face are proven harmless.
-
-    Parameters
-    ----------
-    context : CheckContext
-    arithmetic : {"ball", "fine", "endpoint"}
-    axis : int
-    side : {"lo", "hi"}
-    lo, hi : object arrays of Fractions, shape (P, n)
-        The pieces (the face coordinate fixed at the window side).
-    need_limit : bool
-        Only a violated limit counts (for faces claimed ``limit``); otherwise strictly
-        inward flow counts too (``inflow``).
-
-    Returns
-    -------
-    ndarray of bool, shape (P,)
-    """
-    ar = ARITHMETICS[arithmetic]()
-    ar.enter()
-    n = context.programs.n
-    box = [ar.rationals(lo[:, i], hi[:, i]) for i in range(n)]
-    proven = _limits_upper_negative(ar, context, box, len(lo))
-    if not need_limit:
-        f = evaluate(context.programs.field, ar, box + _params(ar, context))[axis]
-        inward = ar.lower(f) > 0 if side == "lo" else ar.upper(f) < 0
-        proven |= _true(inward)
-    return proven

@@ -247,7 +247,12 @@ class CheckPrograms:
         The limits ``g_j`` (m outputs; satisfied where ``g_j >= 0``).
     field : Program
         ``f`` alone (for the window faces).
+    field_jacobian : Program or None
+        Row-major Jacobian of ``f`` (for invariant faces); None for models with kinks.
     n_limits : int
+    equations : tuple of sympy.Expr
+        ``f`` with the parameters given as numbers substituted.
+    states : tuple of sympy.Symbol
     """
 
     order: int
@@ -259,7 +264,10 @@ class CheckPrograms:
     higher_jacobians: Program | None
     limits: Program
     field: Program
+    field_jacobian: Program | None
     n_limits: int
+    equations: tuple
+    states: tuple
 
 
 def taylor_coefficients(equations, states, order):
@@ -305,10 +313,14 @@ def derive_programs(model, order):
         jac = compile_expressions(list(middle[0].jacobian(x)), inputs)
     if len(middle) > 1:
         higher = compile_expressions([e for c in middle[1:] for e in c.jacobian(x)], inputs)
+    field_jacobian = None
+    if not model.uses_kinks:
+        field_jacobian = compile_expressions(list(sympy.Matrix(equations).jacobian(x)), inputs)
     on_tube = compile_expressions(list(equations) + rates, inputs)
     remainder = compile_expressions(list(coefficients[order]), inputs)
     return CheckPrograms(order=order, n=len(states), on_tube=on_tube, remainder=remainder,
                          coefficients=point, jacobian=jac, higher_jacobians=higher,
                          limits=compile_expressions(list(limits), inputs),
                          field=compile_expressions(list(equations), inputs),
-                         n_limits=len(limits))
+                         field_jacobian=field_jacobian, n_limits=len(limits),
+                         equations=equations, states=states)

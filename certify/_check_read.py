@@ -20,7 +20,7 @@ from .model import parse_model
 __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
 
 LABELS = ("safe", "doomed", "outside", "undecided")
-KINDS = ("limit", "inflow", "open")
+KINDS = ("limit", "inflow", "invariant", "open")
 
 
 class _Reader:

@@ -129,25 +129,40 @@ class CellTree:
         self.hi = np.concatenate([self.hi, hi])
         return np.arange(start, len(self.depth))
 
-    def leaves_meeting(self, qlo, qhi):
+    def leaves_meeting(self, qlo, qhi, strict=None):
         """All (query, leaf) pairs where the closed query box meets the leaf.
 
         Parameters
         ----------
         qlo, qhi : ndarray, shape (Q, n)
             Query boxes (rows with NaN meet nothing; handle them before calling).
+        strict : ndarray of bool, shape (Q, n), optional
+            Along the marked axes a leaf must overlap the open range ``(qlo, qhi)``
+            instead of the closed one (neighbours that only touch the box there are left
+            out).
 
         Returns
         -------
         query, leaf : ndarray of int
             Pairs, sorted by query.
+
+        Notes
+        -----
+        The leaves whose interiors meet a box's interior cover the box when the box is
+        thick (``qlo < qhi``) along every axis and lies in the window: each interior
+        point of the box lies in some leaf, that leaf then overlaps the interior, and the
+        union of those leaves is closed. Marking only the thick axes keeps this true for
+        flat boxes, within the hyperplane they lie in.
         """
         q = np.arange(len(qlo))
         node = np.zeros(len(qlo), int)
         out_q, out_leaf = [np.zeros(0, int)], [np.zeros(0, int)]
         k = len(self._offsets)
+        strict = np.zeros(qlo.shape, bool) if strict is None else strict
         while len(q):
-            meet = np.all((self.lo[node] <= qhi[q]) & (self.hi[node] >= qlo[q]), axis=1)
+            below = np.where(strict[q], self.lo[node] < qhi[q], self.lo[node] <= qhi[q])
+            above = np.where(strict[q], self.hi[node] > qlo[q], self.hi[node] >= qlo[q])
+            meet = np.all(below & above, axis=1)
             q, node = q[meet], node[meet]
             child = self.first_child[node]
             leaf = child < 0

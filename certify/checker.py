@@ -27,16 +27,13 @@ import numpy as np
 
 from .errors import CertificateError, CertifyError
 from .model import load_model
-from ._check_cells import CellTask, CheckContext, cell_facts, face_pieces_proven
+from ._check_cells import CellTask, CheckContext, cell_facts
+from ._check_faces import confirm_face
 from ._check_programs import derive_programs
 from ._check_read import LABELS, read_for_check
 
 __all__ = ["CheckResult", "check_certificate"]
 
-#: Faces are bisected at most this often along each of their axes.
-FACE_LEVELS = 10
-#: Largest number of face pieces examined per level.
-FACE_PIECES = 1 << 16
 #: Steps per chunk of work (cells are grouped by their number of steps).
 CHUNK_STEPS = 8000
 #: Time unit of the exact step-time sums: every double is a multiple of 2**-1074.
@@ -171,36 +168,6 @@ def _leaves_meeting(tree, first, last):
         q = np.repeat(q[~is_leaf], k)
         node = (child[~is_leaf][:, None] + np.arange(k)[None]).reshape(-1)
     return np.concatenate(out_q), np.concatenate(out_leaf)
-
-
-# -- faces -------------------------------------------------------------------------------
-def _confirm_face(context, window, axis, side, kind):
-    """Bisect a face until every piece is proven harmless (``limit``: a limit violated)."""
-    n = len(window)
-    a, b = window[axis]
-    fixed = a if side == "lo" else b
-    lo = np.array([[fixed if k == axis else window[k][0] for k in range(n)]], dtype=object)
-    hi = np.array([[fixed if k == axis else window[k][1] for k in range(n)]], dtype=object)
-    others = [k for k in range(n) if k != axis]
-    for level in range(FACE_LEVELS + 1):
-        todo = np.ones(len(lo), bool)
-        for arithmetic in ("ball", "endpoint"):
-            sel = np.flatnonzero(todo)
-            if len(sel):
-                todo[sel[face_pieces_proven(context, arithmetic, axis, side, lo[sel], hi[sel],
-                                            kind == "limit")]] = False
-        lo, hi = lo[todo], hi[todo]
-        if len(lo) == 0:
-            return True
-        if level == FACE_LEVELS or not others or len(lo) << len(others) > FACE_PIECES:
-            return False
-        for k in others:
-            mid = (lo[:, k] + hi[:, k]) / 2
-            left_hi, right_lo = hi.copy(), lo.copy()
-            left_hi[:, k] = mid
-            right_lo[:, k] = mid
-            lo, hi = np.concatenate([lo, right_lo]), np.concatenate([left_hi, hi])
-    return False
 
 
 # -- facts in parallel -------------------------------------------------------------------
@@ -540,18 +507,21 @@ def check_certificate(path, model=None, jobs=None, progress=None):
                                           for p in problems], start, 0, {}, revised, model)
     programs = derive_programs(the_model, cert.order)
     params = tuple((p.lo, p.hi) for p in the_model.parameters)
-    open_faces = []
+    open_faces, invariant_faces = [], []
     base = CheckContext(programs=programs, params=params, window=cert.window, open_faces=(),
                         grid_depth=tree.max_depth)
     for axis, side, kind in cert.faces:
         if kind == "open":
             open_faces.append((axis, side))
-        elif not _confirm_face(base, cert.window, axis, side, kind):
+        elif not confirm_face(base, axis, side, kind):
             open_faces.append((axis, side))
             failures.append(_global(f"face {cert.states[axis]} {side} is not proven to be of "
                                     f"kind {kind!r}"))
+        elif kind == "invariant":
+            invariant_faces.append((axis, side))
     context = CheckContext(programs=programs, params=params, window=cert.window,
                            open_faces=tuple(open_faces), grid_depth=tree.max_depth,
+                           invariant_faces=tuple(invariant_faces),
                            search_tubes=revised is not None)
     jobs = (os.cpu_count() or 1) if jobs is None else max(1, int(jobs))
     n_steps = _needs_steps(cert)

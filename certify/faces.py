@@ -7,48 +7,63 @@ A face is
 * ``inflow`` when at every point of it that satisfies the limits the flow points
   strictly into the window: a trajectory that stays within the limits cannot leave
   through it (at the first exit time the outward rate would have to be >= 0);
+* ``invariant`` when the face's hyperplane ``x_k = b`` is invariant: the normal
+  component ``f_k`` vanishes identically on it (a symbolic identity in the other states
+  and the parameters), and ``f`` is Lipschitz on a slab around the face (every Jacobian
+  entry has a finite enclosure). By uniqueness, a solution that meets the face stays on
+  the hyperplane near that time, in both directions: no trajectory leaves the window
+  through it. Lines of rest states (no infected people, no biomass) are such faces;
 * ``open`` otherwise.
 
-Parts of image boxes beyond a ``limit`` or ``inflow`` face are harmless for both the
-safe and the doomed proofs (DESIGN.md section 5). Each verdict rests on a cover of the
-face by boxes, each proven to violate a limit or to have strictly inward flow; the cover
-is stored in the certificate.
+Parts of image boxes beyond a ``limit``, ``inflow`` or ``invariant`` face are harmless
+for both the safe and the doomed proofs (DESIGN.md section 5). Each verdict rests on a
+cover of the face (or of the slab) by boxes, each proven; the face cover is stored in
+the certificate.
 """
 
 from __future__ import annotations
 
+from fractions import Fraction
+
 import numpy as np
+import sympy
 
 from .evaluate import evaluate_boxes
+from .interval import enclose_fraction
+from .program import compile_program
+from .taylor import fixed_parameters
 
-__all__ = ["analyse_faces", "HARMLESS", "FACE_DEPTH"]
+__all__ = ["analyse_faces", "cut_at_invariant_faces", "zero_on_hyperplane", "HARMLESS",
+           "FACE_DEPTH", "SLAB_MARGIN"]
 
-HARMLESS = ("limit", "inflow")
+HARMLESS = ("limit", "inflow", "invariant")
 FACE_DEPTH = 6
-LIMIT, INFLOW = 1, 2
+#: Half-width of the slab around an invariant face, and its overhang past the face's
+#: edges, as a fraction of each window side.
+SLAB_MARGIN = Fraction(1, 1024)
+LIMIT, INFLOW, LIPSCHITZ = 1, 2, 3
 
 
-def _cover_face(programs, lo, hi, k, side, params, depth):
-    """Bisect the face box until every piece is proven; returns pieces or None."""
-    others = [j for j in range(len(lo)) if j != k]
+def _bisect_until_proven(lo, hi, axes, depth, prove_pieces):
+    """Bisect a box along `axes` until `prove_pieces` proves every piece.
+
+    `prove_pieces(lo, hi)` returns a reason code per piece (0: not proven).
+    Returns ``(lo, hi, reason)`` of the proven pieces, or None.
+    """
     pieces_lo, pieces_hi, reasons = [], [], []
     lo, hi = lo[None], hi[None]
     for level in range(depth + 1):
-        _, ghi = evaluate_boxes(programs.limits, lo, hi, params)
-        flo, fhi = evaluate_boxes(programs.field, lo, hi, params)
-        inward_lo = flo[:, k] if side == "lo" else -fhi[:, k]
-        limit = np.any(ghi < 0, axis=1)
-        inflow = ~limit & (inward_lo > 0)
-        done = limit | inflow
+        reason = prove_pieces(lo, hi)
+        done = reason > 0
         pieces_lo.append(lo[done])
         pieces_hi.append(hi[done])
-        reasons.append(np.where(limit[done], LIMIT, INFLOW))
+        reasons.append(reason[done])
         lo, hi = lo[~done], hi[~done]
         if len(lo) == 0:
             return np.concatenate(pieces_lo), np.concatenate(pieces_hi), np.concatenate(reasons)
-        if level == depth or not others:
+        if level == depth or not axes:
             return None
-        for j in others:
+        for j in axes:
             mid = 0.5 * (lo[:, j] + hi[:, j])
             left_hi, right_lo = hi.copy(), lo.copy()
             left_hi[:, j] = mid
@@ -57,11 +72,55 @@ def _cover_face(programs, lo, hi, k, side, params, depth):
     return None
 
 
-def analyse_faces(programs, tree, params, depth=FACE_DEPTH):
+def zero_on_hyperplane(expression, symbol, value):
+    """True when `expression` simplifies to 0 once `symbol` is replaced by `value`.
+
+    Sympy's symbols carry no assumptions here, so its simplifications hold for every
+    complex value of the other symbols; a False answer only means "not shown".
+    """
+    return sympy.simplify(expression.xreplace({symbol: value})) == 0
+
+
+def _lipschitz_near(model, jacobian, k, b, params, depth):
+    """Prove that every Jacobian entry is finite on the slab around the face ``x_k = b``."""
+    lo, hi = np.empty(len(model.window)), np.empty(len(model.window))
+    for j, (a, c) in enumerate(model.window):
+        margin = SLAB_MARGIN * (c - a)
+        low, high = (b - margin, b + margin) if j == k else (a - margin, c + margin)
+        lo[j], hi[j] = enclose_fraction(low)[0], enclose_fraction(high)[1]
+
+    def finite(plo, phi):
+        jlo, jhi = evaluate_boxes(jacobian, plo, phi, params)
+        return np.where(np.all(np.isfinite(jlo) & np.isfinite(jhi), axis=1), LIPSCHITZ, 0)
+
+    others = [j for j in range(len(lo)) if j != k]
+    return _bisect_until_proven(lo, hi, others, depth, finite) is not None
+
+
+def _invariant_faces(model, params, depth):
+    """The ``(axis, side)`` pairs whose faces are ``invariant`` (see the module notes)."""
+    if model.uses_kinks:
+        return set()
+    fixed = dict(fixed_parameters(model))
+    states = model.state_symbols
+    field = [e.xreplace(fixed) for e in model.equations]
+    candidates = [(k, side, value) for k, (a, c) in enumerate(model.window)
+                  for side, value in (("lo", a), ("hi", c))
+                  if zero_on_hyperplane(field[k], states[k], sympy.Rational(value))]
+    if not candidates:
+        return set()
+    jacobian = compile_program(list(sympy.Matrix(field).jacobian(states)),
+                               tuple(states) + tuple(model.parameter_symbols))
+    return {(k, side) for k, side, value in candidates
+            if _lipschitz_near(model, jacobian, k, value, params, depth)}
+
+
+def analyse_faces(model, programs, tree, params, depth=FACE_DEPTH):
     """Classify the ``2 n`` faces of the window.
 
     Parameters
     ----------
+    model : certify.model.Model
     programs : certify.taylor.FlowPrograms
     tree : certify.cells.CellTree
         Gives the float enclosure of the window and of its sides.
@@ -72,12 +131,14 @@ def analyse_faces(programs, tree, params, depth=FACE_DEPTH):
     Returns
     -------
     list of dict
-        ``{"axis": k, "side": "lo"|"hi", "kind": "limit"|"inflow"|"open",
-        "lo": ndarray, "hi": ndarray, "reason": ndarray}`` (the cover; empty when open).
+        ``{"axis": k, "side": "lo"|"hi", "kind": "limit"|"inflow"|"invariant"|"open",
+        "lo": ndarray, "hi": ndarray, "reason": ndarray}`` (the cover; empty when
+        ``invariant`` or ``open``).
     """
     lo_lo, lo_hi, hi_lo, hi_hi = tree.window_bounds()
     wlo, whi = tree.lo[0], tree.hi[0]
     n = len(wlo)
+    invariant = None
     faces = []
     for k in range(n):
         for side in ("lo", "hi"):
@@ -86,14 +147,73 @@ def analyse_faces(programs, tree, params, depth=FACE_DEPTH):
                 lo[k], hi[k] = lo_lo[k], lo_hi[k]
             else:
                 lo[k], hi[k] = hi_lo[k], hi_hi[k]
-            cover = _cover_face(programs, lo, hi, k, side, params, depth)
-            if cover is None:
-                empty = np.zeros((0, n))
-                faces.append({"axis": k, "side": side, "kind": "open", "lo": empty,
-                              "hi": empty, "reason": np.zeros(0, int)})
+
+            def harmless(plo, phi):
+                _, ghi = evaluate_boxes(programs.limits, plo, phi, params)
+                flo, fhi = evaluate_boxes(programs.field, plo, phi, params)
+                inward_lo = flo[:, k] if side == "lo" else -fhi[:, k]
+                limit = np.any(ghi < 0, axis=1)
+                return np.where(limit, LIMIT, np.where(inward_lo > 0, INFLOW, 0))
+
+            others = [j for j in range(n) if j != k]
+            cover = _bisect_until_proven(lo, hi, others, depth, harmless)
+            empty = np.zeros((0, n))
+            if cover is not None:
+                plo, phi, reason = cover
+                kind = "limit" if np.all(reason == LIMIT) else "inflow"
+                faces.append({"axis": k, "side": side, "kind": kind, "lo": plo, "hi": phi,
+                              "reason": reason})
                 continue
-            plo, phi, reason = cover
-            kind = "limit" if np.all(reason == LIMIT) else "inflow"
-            faces.append({"axis": k, "side": side, "kind": kind, "lo": plo, "hi": phi,
-                          "reason": reason})
+            if invariant is None:
+                invariant = _invariant_faces(model, params, depth)
+            kind = "invariant" if (k, side) in invariant else "open"
+            faces.append({"axis": k, "side": side, "kind": kind, "lo": empty, "hi": empty,
+                          "reason": np.zeros(0, int)})
     return faces
+
+
+def cut_at_invariant_faces(faces, window, e_lo, e_hi, owner, n_owners):
+    """Tube boxes cut at the invariant faces wherever no trajectory can be beyond them.
+
+    A trajectory from a cell can reach the far side of an invariant face ``x_k = b``
+    only through a point of the hyperplane where ``f`` is not known to be Lipschitz,
+    that is, outside the slab's cross-section (every other side overhanging by
+    :data:`SLAB_MARGIN`). When every tube box of a cell that reaches the hyperplane lies
+    within that cross-section, the cell's trajectories stay on the window's side of the
+    face throughout, so the part of each tube box beyond the face holds none of them.
+
+    Parameters
+    ----------
+    faces : list of dict
+        From :func:`analyse_faces`.
+    window : sequence of (Fraction, Fraction)
+    e_lo, e_hi : ndarray, shape (S, n)
+        Tube boxes.
+    owner : ndarray of int, shape (S,)
+        Cell of each tube box.
+    n_owners : int
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (S, n)
+    """
+    lo, hi = e_lo.copy(), e_hi.copy()
+    for face in faces:
+        if face["kind"] != "invariant":
+            continue
+        k, side = face["axis"], face["side"]
+        inside = np.ones(len(lo), bool)
+        for j, (a, c) in enumerate(window):
+            if j != k:
+                margin = SLAB_MARGIN * (c - a)
+                inside &= (e_lo[:, j] >= enclose_fraction(a - margin)[1]) & \
+                          (e_hi[:, j] <= enclose_fraction(c + margin)[0])
+        b_lo, b_hi = enclose_fraction(window[k][0] if side == "lo" else window[k][1])
+        reaches = e_lo[:, k] <= b_hi if side == "lo" else e_hi[:, k] >= b_lo
+        unsure = np.bincount(owner, weights=reaches & ~inside, minlength=n_owners) > 0
+        cut = ~unsure[owner]
+        if side == "lo":
+            lo[cut, k] = np.maximum(lo[cut, k], b_lo)
+        else:
+            hi[cut, k] = np.minimum(hi[cut, k], b_hi)
+    return lo, hi

@@ -19,9 +19,9 @@ from .cells import CellTree
 from .flow import flow_boxes, FlowResult
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .taylor import flow_programs
-from .faces import analyse_faces, HARMLESS
+from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
 from .volumes import label_fractions
-from .evaluate import evaluate_limits, parameter_enclosures
+from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
 
 __all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 
@@ -138,7 +138,7 @@ class _Prover:
         self.tree = CellTree(model.window)
         self.n = self.tree.n
         self.window_sides = self.tree.window_bounds()
-        self.faces = analyse_faces(self.programs, self.tree, self.params)
+        self.faces = analyse_faces(model, self.programs, self.tree, self.params)
         self.flows: list[FlowResult] = []
         size = 1
         self.flow_ref = np.full((size, 2), -1)
@@ -233,6 +233,13 @@ class _Prover:
             else result.image_lo
         raw_hi = np.where(ok[:, None], result.end_hi[np.maximum(last, 0)], np.nan) if S \
             else result.image_hi
+        # every trajectory moved by the integral of f over its tube: x(T) - x(0) lies in
+        # the sum of h f(E) over the steps, which caps images along resting directions
+        dlo, dhi = self._drift(result, box_of_step, len(todo))
+        moved_lo, _ = iv.add(self.tree.lo[todo], self.tree.lo[todo], dlo, dhi)
+        _, moved_hi = iv.add(self.tree.hi[todo], self.tree.hi[todo], dlo, dhi)
+        raw_lo = np.where(ok[:, None], np.fmax(raw_lo, moved_lo), raw_lo)
+        raw_hi = np.where(ok[:, None], np.fmin(raw_hi, moved_hi), raw_hi)
         tube_open = self._tube_past_open_faces(result, box_of_step, len(todo))
         image_lo, image_hi, escapes = self._clip(raw_lo, raw_hi, ok, tube_open)
         # nothing is known after the time reached by a flow without an image
@@ -247,6 +254,20 @@ class _Prover:
         self.first_unkept[todo] = first_unkept
         self.image_lo[todo] = image_lo
         self.image_hi[todo] = image_hi
+
+    def _drift(self, result, box_of_step, n_boxes):
+        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``."""
+        elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
+                                          result.e_hi, box_of_step, n_boxes)
+        flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
+        h = result.h[:, None]
+        slo, shi = iv.mul(h, h, flo, fhi)
+        lo, hi = np.zeros((n_boxes, self.n)), np.zeros((n_boxes, self.n))
+        for j in range(int(result.n_steps.max(initial=0))):
+            boxes = np.flatnonzero(result.n_steps > j)
+            s = result.step_start[boxes] + j
+            lo[boxes], hi[boxes] = iv.add(lo[boxes], hi[boxes], slo[s], shi[s])
+        return lo, hi
 
     def _tube_past_open_faces(self, result, box_of_step, n_boxes):
         """Per box: does some a-priori box reach beyond an open face of the window?"""
@@ -285,6 +306,15 @@ class _Prover:
             escapes[np.flatnonzero(pokes)[~np.any(gh < 0, axis=1)]] = True
         return np.maximum(lo, lo_lo), np.minimum(hi, hi_hi), escapes
 
+    def _thick_axes(self, lo, hi):
+        """Axes along which a clipped image meets the exact window in more than a point.
+
+        Along those axes a successor must overlap the image's interior (cells that only
+        touch it are not needed to cover it, see :meth:`CellTree.leaves_meeting`).
+        """
+        _, lo_hi, hi_lo, _ = self.window_sides
+        return (lo < hi) & (hi > lo_hi) & (lo < hi_lo)
+
     # -- labelling ---------------------------------------------------------------------
     def label(self):
         leaves = self.tree.leaves()
@@ -294,7 +324,8 @@ class _Prover:
         qlo, qhi = self.image_lo[leaves[usable]], self.image_hi[leaves[usable]]
         nonempty = np.all(qlo <= qhi, axis=1)
         query_nodes = np.flatnonzero(usable)[nonempty]
-        q, leaf = self.tree.leaves_meeting(qlo[nonempty], qhi[nonempty])
+        qlo, qhi = qlo[nonempty], qhi[nonempty]
+        q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
         src = query_nodes[q]
         dst = number[leaf]
         facts = CellFacts(outside=self.outside[leaves], flow_ok=self.flow_ok[leaves],

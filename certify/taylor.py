@@ -14,7 +14,7 @@ import sympy
 
 from .program import Program, compile_program
 
-__all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs"]
+__all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs", "fixed_parameters"]
 
 
 def taylor_coefficients(equations, states, order):
@@ -125,8 +125,13 @@ def flow_programs(model, order):
     """
     if model.uses_kinks:
         order = 1
-    fixed = tuple((p.symbol, sympy.Rational(p.lo.numerator, p.lo.denominator))
-                  for p in model.parameters if not p.is_interval)
+    fixed = fixed_parameters(model)
     return _build(tuple(model.equations), tuple(model.state_symbols),
                   tuple(model.parameter_symbols),
                   tuple(c.g for c in model.constraints), int(order), fixed)
+
+
+def fixed_parameters(model):
+    """``((symbol, Rational), ...)`` for the parameters given as numbers."""
+    return tuple((p.symbol, sympy.Rational(p.lo.numerator, p.lo.denominator))
+                 for p in model.parameters if not p.is_interval)

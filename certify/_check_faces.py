@@ -1,0 +1,123 @@
+"""The checker's own confirmation of the window faces a certificate calls harmless.
+
+* ``limit``: bisect the face exactly until a limit is proven violated on every piece.
+* ``inflow``: the same, where a piece may instead have a strictly inward normal
+  component of ``f``.
+* ``invariant``: the normal component ``f_k`` simplifies to 0 once ``x_k`` is replaced
+  by the face's exact value (sympy, symbols without assumptions), and every entry of
+  the Jacobian of ``f`` is finite on a slab around the face: ``|x_k - b| <= d_k`` and
+  every other side overhanging by ``d_j``, with ``d = side / 1024``. Then ``f`` is
+  Lipschitz near the face and, by uniqueness, a solution that meets the face stays on
+  the hyperplane ``x_k = b`` near that time, so none leaves the window through it.
+
+Pieces are tried in ball arithmetic first, then with exact endpoints.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import sympy
+
+from ._check_arith import ARITHMETICS, evaluate
+from ._check_cells import SLAB, _limits_upper_negative, _params, _true
+
+__all__ = ["confirm_face"]
+
+#: Faces are bisected at most this often along each of their axes.
+FACE_LEVELS = 10
+#: Largest number of face pieces examined per level.
+FACE_PIECES = 1 << 16
+
+
+def confirm_face(context, axis, side, kind):
+    """Whether a face is proven to be of the claimed harmless kind.
+
+    Parameters
+    ----------
+    context : certify._check_cells.CheckContext
+    axis : int
+    side : {"lo", "hi"}
+    kind : {"limit", "inflow", "invariant"}
+
+    Returns
+    -------
+    bool
+    """
+    window = context.window
+    n = len(window)
+    value = window[axis][0] if side == "lo" else window[axis][1]
+    if kind == "invariant":
+        programs = context.programs
+        if programs.field_jacobian is None:
+            return False
+        normal = programs.equations[axis].xreplace({programs.states[axis]: value})
+        if sympy.simplify(normal) != 0:
+            return False
+        lo, hi = [], []
+        for k, (a, b) in enumerate(window):
+            d = SLAB * (b - a)
+            lo.append(value - d if k == axis else a - d)
+            hi.append(value + d if k == axis else b + d)
+
+        def proven(arithmetic, plo, phi):
+            return _jacobian_finite(context, arithmetic, plo, phi)
+    else:
+        lo = [value if k == axis else window[k][0] for k in range(n)]
+        hi = [value if k == axis else window[k][1] for k in range(n)]
+
+        def proven(arithmetic, plo, phi):
+            return _face_pieces_harmless(context, arithmetic, axis, side, plo, phi,
+                                         kind == "limit")
+    others = [k for k in range(n) if k != axis]
+    return _bisect(np.array([lo], dtype=object), np.array([hi], dtype=object), others,
+                   proven)
+
+
+def _bisect(lo, hi, axes, proven):
+    """Bisect a box along `axes` until `proven(arithmetic, lo, hi)` holds on every piece."""
+    for level in range(FACE_LEVELS + 1):
+        todo = np.ones(len(lo), bool)
+        for arithmetic in ("ball", "endpoint"):
+            sel = np.flatnonzero(todo)
+            if len(sel):
+                todo[sel[proven(arithmetic, lo[sel], hi[sel])]] = False
+        lo, hi = lo[todo], hi[todo]
+        if len(lo) == 0:
+            return True
+        if level == FACE_LEVELS or not axes or len(lo) << len(axes) > FACE_PIECES:
+            return False
+        for k in axes:
+            mid = (lo[:, k] + hi[:, k]) / 2
+            left_hi, right_lo = hi.copy(), lo.copy()
+            left_hi[:, k] = mid
+            right_lo[:, k] = mid
+            lo, hi = np.concatenate([lo, right_lo]), np.concatenate([left_hi, hi])
+    return False
+
+
+def _face_pieces_harmless(context, arithmetic, axis, side, lo, hi, need_limit):
+    """Pieces of a face where a limit is violated (or, unless `need_limit`, ``f`` points
+    strictly into the window)."""
+    ar = ARITHMETICS[arithmetic]()
+    ar.enter()
+    n = context.programs.n
+    box = [ar.rationals(lo[:, i], hi[:, i]) for i in range(n)]
+    proven = _limits_upper_negative(ar, context, box, len(lo))
+    if not need_limit:
+        f = evaluate(context.programs.field, ar, box + _params(ar, context))[axis]
+        inward = ar.lower(f) > 0 if side == "lo" else ar.upper(f) < 0
+        proven |= _true(inward)
+    return proven
+
+
+def _jacobian_finite(context, arithmetic, lo, hi):
+    """Pieces on which every entry of the Jacobian of ``f`` is finite."""
+    ar = ARITHMETICS[arithmetic]()
+    ar.enter()
+    n = context.programs.n
+    box = [ar.rationals(lo[:, i], hi[:, i]) for i in range(n)]
+    entries = evaluate(context.programs.field_jacobian, ar, box + _params(ar, context))
+    proven = np.ones(len(lo), bool)
+    for entry in entries:
+        proven &= np.asarray(ar.finite(entry), bool)
+    return proven

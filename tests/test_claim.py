@@ -89,20 +89,28 @@ def test_sir_region_with_peaks_above_the_cap_is_refuted(files, tmp_path, capsys)
     assert lo - 1e-9 <= t_cross <= hi + 1e-9
 
 
-def test_sir_region_inside_the_safe_set_is_never_refuted(files):
-    # Every start here has S0 <= rho, so its peak is I0 <= 0.08 (Kermack & McKendrick
-    # 1927): the claim is true. The current prover cannot prove SIR starts safe (each
-    # cell on the line I = 0 of equilibria touches its neighbours, up to the doomed
-    # starts with S0 > 0.886), so the verdict may be inconclusive, but never refuted.
-    model = parse_model(SIR)
-    result = check_claim(model, {"S": (0.1, 0.45), "I": (0.01, 0.08)}, "safe", max_depth=4)
-    assert result.verdict in ("proven", "inconclusive")
-    if result.verdict == "inconclusive":
-        region = [(0.1, 0.45), (0.01, 0.08)]
-        boxes = result.undecided_boxes
-        assert boxes and all(lo >= a and hi <= b for box in boxes
-                             for (lo, hi), (a, b) in zip(box, region))
-        assert 0 < result.undecided_volume <= 0.35 * 0.07
+def test_sir_region_strictly_inside_the_safe_set_is_proven(files, tmp_path, capsys):
+    # The peak grows with S0 and I0 once S0 > rho, so its largest value on the region is
+    # at the corner (0.7, 0.05): 0.0818 < 0.1 (Kermack & McKendrick 1927), and starts
+    # with S0 <= rho peak at I0 <= 0.05. The region straddles S0 = rho, where the
+    # epidemic first grows, and its trajectories end on the line I = 0 of rest states.
+    region = [(0.3, 0.7), (0.01, 0.05)]
+    assert max(sir_peak(s, i) for s in (0.3, 0.5, 0.7) for i in (0.01, 0.05)) < 0.09
+    out_dir = tmp_path / "sir"
+    code, out = run_claim(capsys, [files["sir"], "--region", "S=0.3:0.7, I=0.01:0.05",
+                                   "--expect", "safe", "--max-depth", "8",
+                                   "--out", str(out_dir)])
+    assert (code, out["verdict"]) == (0, "proven")
+    assert out["undecided_boxes"] == [] and out["counterexample"] is None
+    assert main(["check", out["certificate"], "--json"]) == 0
+    check = json.loads(capsys.readouterr().out)
+    assert check["valid"] is True
+    from certify.certificate import read_certificate
+    cert = read_certificate(out["certificate"])
+    grid = np.stack(np.meshgrid(np.linspace(0.301, 0.699, 9), np.linspace(0.011, 0.049, 9)),
+                    -1).reshape(-1, 2)
+    assert all(in_region(p, region) for p in grid)
+    assert set(cert.label_at(grid)) == {"safe"}
 
 
 # -- overdamped oscillator (R4) ---------------------------------------------------------

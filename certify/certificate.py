@@ -24,7 +24,7 @@ __all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write
            "load_certificate_json", "read_certificate", "Certificate"]
 
 FORMAT = "certify-certificate"
-VERSION = 1
+VERSION = 2
 LABELS = ("safe", "doomed", "outside", "undecided")
 
 

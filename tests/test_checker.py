@@ -20,6 +20,7 @@ import json
 import math
 import random
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -64,6 +65,8 @@ min_horizon = 5
 """
 
 FERMENTER = "models/fermenter.toml"
+#: SIR with a cap (REFERENCES.md R5): the faces S = 0 and I = 0 are lines of rest states.
+SIR = str(Path(__file__).resolve().parent / "data" / "prove_sir_cap.toml")
 
 
 def _prove(tmp, name, text_or_path, depth):
@@ -83,7 +86,8 @@ def certs(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("certs")
     return {"logistic": _prove(tmp, "logistic", LOGISTIC, 8),
             "decay": _prove(tmp, "decay", DECAY, 6),
-            "fermenter": _prove(tmp, "fermenter", FERMENTER, 5)}
+            "fermenter": _prove(tmp, "fermenter", FERMENTER, 5),
+            "sir": _prove(tmp, "sir", SIR, 6)}
 
 
 def _load(path):
@@ -113,7 +117,7 @@ def _check(path, capsys, *extra):
 
 
 # -- valid certificates ------------------------------------------------------------------
-@pytest.mark.parametrize("name", ["logistic", "decay", "fermenter"])
+@pytest.mark.parametrize("name", ["logistic", "decay", "fermenter", "sir"])
 def test_every_certificate_produced_passes(certs, name, capsys):
     code, out = _check(certs[name], capsys)
     assert code == 0, out.out
@@ -323,6 +327,13 @@ def claim_limit_face(data):
     face["kind"] = "limit"
 
 
+def claim_invariant_face(data):
+    # S' = -beta S I does not vanish on the side S = 1 (only where I = 0)
+    face = next(f for f in data["faces"] if f["axis"] == 0 and f["side"] == "hi")
+    assert face["kind"] == "open"
+    face["kind"] = "invariant"
+
+
 def unknown_version(data):
     data["version"] = 99
 
@@ -346,6 +357,8 @@ MUTATIONS = [
     ("logistic", rank_equal_to_successor, {1}),
     ("logistic", raise_survival_bound, {1}),
     ("fermenter", claim_limit_face, {1}),
+    ("sir", claim_invariant_face, {1}),
+    ("sir", remove_successors_of_a_safe_cell, {1}),
     ("logistic", unknown_version, {2}),
     ("logistic", drop_key, {2}),
 ]

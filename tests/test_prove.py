@@ -323,6 +323,7 @@ def test_sir_cells_respect_the_exact_peak(certified):
     peak = sir_peak(points[:, 0], points[:, 1])
     labels = run.cert.labels[cell]
     assert Counter(run.cert.labels)["doomed"] > 0
+    assert Counter(run.cert.labels)["safe"] > 0
     assert not np.any((labels == "safe") & (peak > 0.1 + EXACT_TOL))
     bad = (labels == "doomed") & (peak <= 0.1 - EXACT_TOL)
     assert not bad.any(), points[bad][:5]
@@ -610,3 +611,103 @@ def test_interrupt_keeps_the_first_round(interrupt_second_round, tmp_path, capsy
     np.testing.assert_array_equal(cert.labels, first.labelling.label)
     summary = json.loads((out / "summary.json").read_text())
     assert summary["interrupted"] is True and summary["depth_reached"] == start_depth
+
+
+# -- window faces and successors -------------------------------------------------------
+
+ROOT_FACE = """
+[model]
+name = "growth with a square-root rate"
+[states]
+x = [0, 1]
+y = [0, 1]
+[parameters]
+k = 1
+[equations]
+x = "x*sqrt(y)"
+y = "-k*y"
+[constraints]
+cap = "x <= 2"
+"""
+
+
+def _face_kinds(model, order):
+    from certify.cells import CellTree
+    from certify.evaluate import parameter_enclosures
+    from certify.faces import analyse_faces
+    from certify.taylor import flow_programs
+
+    faces = analyse_faces(model, flow_programs(model, order), CellTree(model.window),
+                          parameter_enclosures(model))
+    return {(f["axis"], f["side"]): f["kind"] for f in faces}
+
+
+def test_rest_lines_of_the_epidemic_are_invariant_faces():
+    # S' = -beta S I vanishes on S = 0 and I' = (beta S - gamma) I on I = 0 (by
+    # inspection); on S = 1 and I = 0.1 the normal components are not identically 0.
+    assert _face_kinds(load_model(SIR), 4) == {
+        (0, "lo"): "invariant", (0, "hi"): "open", (1, "lo"): "invariant",
+        (1, "hi"): "open"}
+
+
+def test_a_face_near_which_the_field_is_not_lipschitz_stays_open():
+    # x' = x sqrt(y) vanishes on x = 0 and y' = -k y on y = 0, but the derivative
+    # x / (2 sqrt(y)) of the first component is unbounded near y = 0, which both faces
+    # reach: no Lipschitz bound, no uniqueness argument, so both stay open.
+    kinds = _face_kinds(parse_model(ROOT_FACE), 2)
+    assert kinds[(0, "lo")] == "open" and kinds[(1, "lo")] == "open"
+
+
+def _random_boxes(rng, grid, count):
+    """Boxes in the unit square: on grid lines (so they touch leaves), anywhere, and
+    flat along one axis (a third of each)."""
+    for trial in range(count):
+        if trial % 3 == 0:
+            ends = rng.integers(0, grid + 1, size=(2, 2)) / grid
+        else:
+            ends = rng.random((2, 2))
+        if trial % 3 == 2:
+            axis = trial % 2
+            ends[1, axis] = ends[0, axis] = rng.integers(0, grid + 1) / grid
+        yield ends.min(0), ends.max(0)
+
+
+def test_successors_cover_the_image_and_touching_leaves_are_left_out():
+    # covering property of the successor rule (docs/proof-loop.md): every point of a
+    # box inside the window lies in some named leaf; a leaf left out shares no point of
+    # the box's relative interior. The checker's exact grid rule names no other leaf.
+    from fractions import Fraction
+    from certify.cells import CellTree
+    from certify._check_cells import grid_bounds
+
+    rng = np.random.default_rng(11)
+    tree = CellTree([(Fraction(0), Fraction(1)), (Fraction(0), Fraction(1))])
+    tree.split([0])
+    for _ in range(5):
+        leaves = tree.leaves()
+        tree.split(rng.choice(leaves, size=max(1, len(leaves) // 3), replace=False))
+    leaves = tree.leaves()
+    depth = int(tree.depth[leaves].max())
+    left_out = 0
+    for lo, hi in _random_boxes(rng, 2 ** depth, 300):
+        thick = lo < hi
+        _, leaf = tree.leaves_meeting(lo[None], hi[None], strict=thick[None])
+        named = set(leaf.tolist())
+        points = lo + rng.random((200, 2)) * (hi - lo)
+        points = np.concatenate([points, [lo, hi, [lo[0], hi[1]], [hi[0], lo[1]]]])
+        for p in points:
+            holding = np.all((tree.lo[leaves] <= p) & (p <= tree.hi[leaves]), axis=1)
+            assert named & set(leaves[holding].tolist()), (lo, hi, p)
+        _, touching = tree.leaves_meeting(lo[None], hi[None])
+        for c in set(touching.tolist()) - named:
+            left_out += 1
+            overlap = np.minimum(tree.hi[c], hi) - np.maximum(tree.lo[c], lo)
+            assert np.any(thick & (overlap <= 0)), (lo, hi, c)
+        first, last = grid_bounds(tree.window, depth, [Fraction(x) for x in lo],
+                                  [Fraction(x) for x in hi])
+        for c in leaves:
+            shift = depth - int(tree.depth[c])
+            c_lo, c_hi = tree.index[c] << shift, (tree.index[c] + 1) << shift
+            if np.all((c_lo <= last) & (c_hi >= first)):
+                assert c in named
+    assert left_out > 50  # the rule does leave touching leaves out

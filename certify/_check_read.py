@@ -192,7 +192,6 @@ def _parse(path, data):
     E = arr("step_E", "f", (S, n, 2))
     m = arr("step_m", "f", (S, n))
     A = arr("step_A", "f", (S, n, n))
-    arr("step_r", "f", (S, n, 2))
     for key, a in (("step_h", h), ("step_E", E), ("step_m", m), ("step_A", A),
                    ("set0_m", set0_m)):
         if not np.all(np.isfinite(a)):

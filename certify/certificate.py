@@ -266,7 +266,7 @@ def _leaf_steps(proof):
     start = np.concatenate([[0], np.cumsum(counts)])
     S = int(start[-1])
     out = {"h": np.zeros(S), "E": np.zeros((S, n, 2)), "m": np.zeros((S, n)),
-           "A": np.zeros((S, n, n)), "r": np.zeros((S, n, 2))}
+           "A": np.zeros((S, n, n))}
     set0_m = np.zeros((len(leaves), n))
     set0_r = np.zeros((len(leaves), n, 2))
     for b, flow in enumerate(proof.flows):
@@ -285,7 +285,6 @@ def _leaf_steps(proof):
         out["E"][dst, :, 0], out["E"][dst, :, 1] = flow.e_lo[src], flow.e_hi[src]
         out["m"][dst] = flow.m[src]
         out["A"][dst] = flow.A[src]
-        out["r"][dst, :, 0], out["r"][dst, :, 1] = flow.r_lo[src], flow.r_hi[src]
     return start, out, set0_m, set0_r
 
 
@@ -344,7 +343,6 @@ def certificate_data(proof, summary):
             "step_E": encode_array(steps["E"]),
             "step_m": encode_array(steps["m"]),
             "step_A": encode_array(steps["A"]),
-            "step_r": encode_array(steps["r"]),
         },
         "summary": summary,
     }

@@ -268,7 +268,7 @@ def delete_cell(data):
     _put(data, "successors", succ, "<i8")
     steps = _cells(data, "step_start")
     s0, s1 = int(steps[c]), int(steps[c + 1])
-    for key in ("step_h", "step_E", "step_m", "step_A", "step_r"):
+    for key in ("step_h", "step_E", "step_m", "step_A"):
         _put(data, key, np.delete(_cells(data, key), np.arange(s0, s1), axis=0))
     steps = np.concatenate([steps[:c], steps[c + 1:] - (s1 - s0)])
     _put(data, "step_start", steps, "<i8")

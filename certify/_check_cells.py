@@ -418,10 +418,11 @@ def _cut_at_invariant_faces(context, tube_boxes, owner, n_cells):
     """Tube boxes cut at the invariant faces wherever no trajectory can be beyond them.
 
     A trajectory reaches the far side of an invariant face ``x_k = b`` only through a
-    point of the hyperplane outside the slab's cross-section (where ``f`` is not known
-    to be Lipschitz): when every tube box of a cell that reaches ``x_k = b`` lies within
-    the cross-section (exact comparisons), the cell's boxes are cut at the largest float
-    not beyond ``b``.
+    point of the hyperplane off the open cross-section of the slab (elsewhere ``f`` is
+    Lipschitz on a neighbourhood, and uniqueness keeps a solution that meets the
+    hyperplane on it): when every tube box of a cell that reaches ``x_k = b`` lies
+    strictly within the cross-section (exact comparisons), the cell's boxes are cut at
+    the largest float not beyond ``b``.
     """
     E = tube_boxes.copy()
     window = context.window
@@ -430,8 +431,8 @@ def _cut_at_invariant_faces(context, tube_boxes, owner, n_cells):
         for j, (a, c) in enumerate(window):
             if j != axis:
                 margin = SLAB * (c - a)
-                inside &= ~_float_below(E[:, j, 0], a - margin)
-                inside &= ~_float_above(E[:, j, 1], c + margin)
+                inside &= _float_above(E[:, j, 0], a - margin)
+                inside &= _float_below(E[:, j, 1], c + margin)
         a, c = window[axis]
         if side == "lo":
             reaches, bound = ~_float_above(E[:, axis, 0], a), _float_at_most(a)

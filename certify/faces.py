@@ -176,11 +176,12 @@ def cut_at_invariant_faces(faces, window, e_lo, e_hi, owner, n_owners):
     """Tube boxes cut at the invariant faces wherever no trajectory can be beyond them.
 
     A trajectory from a cell can reach the far side of an invariant face ``x_k = b``
-    only through a point of the hyperplane where ``f`` is not known to be Lipschitz,
-    that is, outside the slab's cross-section (every other side overhanging by
-    :data:`SLAB_MARGIN`). When every tube box of a cell that reaches the hyperplane lies
-    within that cross-section, the cell's trajectories stay on the window's side of the
-    face throughout, so the part of each tube box beyond the face holds none of them.
+    only through a point of the hyperplane with no neighbourhood where ``f`` is known
+    to be Lipschitz, that is, off the open cross-section of the slab (every other side
+    overhanging by :data:`SLAB_MARGIN`). When every tube box of a cell that reaches the
+    hyperplane lies strictly within that cross-section, the cell's trajectories stay on
+    the window's side of the face throughout, so the part of each tube box beyond the
+    face holds none of them.
 
     Parameters
     ----------
@@ -206,8 +207,8 @@ def cut_at_invariant_faces(faces, window, e_lo, e_hi, owner, n_owners):
         for j, (a, c) in enumerate(window):
             if j != k:
                 margin = SLAB_MARGIN * (c - a)
-                inside &= (e_lo[:, j] >= enclose_fraction(a - margin)[1]) & \
-                          (e_hi[:, j] <= enclose_fraction(c + margin)[0])
+                inside &= (e_lo[:, j] > enclose_fraction(a - margin)[1]) & \
+                          (e_hi[:, j] < enclose_fraction(c + margin)[0])
         b_lo, b_hi = enclose_fraction(window[k][0] if side == "lo" else window[k][1])
         reaches = e_lo[:, k] <= b_hi if side == "lo" else e_hi[:, k] >= b_lo
         unsure = np.bincount(owner, weights=reaches & ~inside, minlength=n_owners) > 0

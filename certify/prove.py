@@ -83,7 +83,8 @@ class Proof:
     labelling : Labelling
     facts : CellFacts
     faces : list of dict
-        Per window face: its kind (``limit``, ``inflow``, ``open``) and its cover.
+        Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``open``) and its
+        cover.
     flows : list of FlowResult
     flow_ref : ndarray of int, shape (n_nodes, 2)
         (flow batch, box in batch) per node, -1 where no flow was computed.

@@ -480,6 +480,43 @@ def test_revised_model_reports_claims(certs, tmp_path, capsys):
         _load(certs["logistic"])["cells"]["label"].count("safe")
 
 
+ROOT_RATE = """
+[model]
+name = "growth with a square-root rate"
+[states]
+x = [0, 1]
+y = [0, 1]
+[equations]
+x = "x*sqrt(y)"
+y = "-y"
+[constraints]
+cap = "x <= 2"
+"""
+
+
+def test_invariant_face_needs_the_identity_and_a_lipschitz_slab():
+    # By inspection: S' = -beta S I is 0 on S = 0, I' = (beta S - gamma) I on I = 0, and
+    # the SIR field is polynomial; x' = x sqrt(y) is 0 on x = 0 but its derivative
+    # x / (2 sqrt(y)) is unbounded near y = 0, so uniqueness is not available there.
+    from certify.model import parse_model
+    from certify._check_cells import CheckContext
+    from certify._check_faces import confirm_face
+    from certify._check_programs import derive_programs
+
+    def context(model):
+        return CheckContext(programs=derive_programs(model, 2),
+                            params=tuple((p.lo, p.hi) for p in model.parameters),
+                            window=model.window, open_faces=(), grid_depth=0)
+
+    sir = context(load_model(SIR))
+    assert confirm_face(sir, 0, "lo", "invariant") and confirm_face(sir, 1, "lo", "invariant")
+    assert not confirm_face(sir, 0, "hi", "invariant")
+    assert not confirm_face(sir, 1, "hi", "invariant")
+    root = context(parse_model(ROOT_RATE))
+    assert not confirm_face(root, 0, "lo", "invariant")
+    assert not confirm_face(root, 1, "lo", "invariant")
+
+
 def test_revised_model_needs_the_same_states(certs, tmp_path, capsys):
     other = tmp_path / "other.toml"
     other.write_text(LOGISTIC.replace("x = {", "y = {").replace('x = "x*(1 - x) - q"',

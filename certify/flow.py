@@ -181,6 +181,10 @@ def _time_box(h, flo, fhi):
     return np.minimum(down, 0.0), np.maximum(up, 0.0)
 
 
+#: Share of the room between the tightened a-priori box and the found one that is kept.
+BLEND = 0.25
+
+
 def _apriori(programs, xlo, xhi, h, params, iterations=4):
     """Find E with X + [0,h] f(E) ⊆ E; returns (elo, ehi, ok)."""
     hh = h[:, None]
@@ -210,7 +214,17 @@ def _apriori(programs, xlo, xhi, h, params, iterations=4):
     dlo, dhi = _time_box(hh, flo, fhi)
     nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
     tight = ok & np.all((nlo >= tlo) & (nhi <= thi), axis=1)
+    # keep half of the room between the tight box and the found one: the checker's ball
+    # arithmetic evaluates f a little wider and needs that room to confirm the inclusion
+    blo = np.minimum(tlo, iv.round_down(tlo + BLEND * (out_lo - tlo)))
+    bhi = np.maximum(thi, iv.round_up(thi + BLEND * (out_hi - thi)))
+    blo, bhi = np.maximum(blo, out_lo), np.minimum(bhi, out_hi)
+    flo, fhi = evaluate_boxes(programs.field, blo, bhi, params)
+    dlo, dhi = _time_box(hh, flo, fhi)
+    nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
+    blended = tight & np.all((nlo >= blo) & (nhi <= bhi), axis=1)
     out_lo[tight], out_hi[tight] = tlo[tight], thi[tight]
+    out_lo[blended], out_hi[blended] = blo[blended], bhi[blended]
     return out_lo, out_hi, ok
 
 

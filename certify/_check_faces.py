@@ -4,7 +4,7 @@
 * ``inflow``: the same, where a piece may instead have a strictly inward normal
   component of ``f``.
 * ``invariant``: the normal component ``f_k`` simplifies to 0 once ``x_k`` is replaced
-  by the face's exact value (sympy, symbols without assumptions), and every entry of
+  by the face's exact value (sympy, with the model's real symbols), and every entry of
   the Jacobian of ``f`` is finite on a slab around the face: ``|x_k - b| <= d_k`` and
   every other side overhanging by ``d_j``, with ``d = side / 1024``. Then ``f`` is
   Lipschitz near the face and, by uniqueness, a solution that meets the face stays on

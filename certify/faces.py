@@ -75,8 +75,9 @@ def _bisect_until_proven(lo, hi, axes, depth, prove_pieces):
 def zero_on_hyperplane(expression, symbol, value):
     """True when `expression` simplifies to 0 once `symbol` is replaced by `value`.
 
-    Sympy's symbols carry no assumptions here, so its simplifications hold for every
-    complex value of the other symbols; a False answer only means "not shown".
+    The model's symbols are real, so a 0 means the identity holds for every real value
+    of the other states and of the parameters, which is what the invariance argument
+    needs; False only means "not shown".
     """
     return sympy.simplify(expression.xreplace({symbol: value})) == 0
 

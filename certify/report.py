@@ -32,6 +32,7 @@ def proof_summary(proof, certificate_path=None):
     return {
         "model": model.name,
         "model_file": model.path,
+        "time_unit": model.time_unit,
         "model_sha256": model.sha256,
         "window": [[float(a), float(b)] for a, b in model.window],
         "parameters": {p.name: [float(p.lo), float(p.hi)] for p in model.parameters},
@@ -74,9 +75,14 @@ def summary_table(summary):
     lines.append(f"finest cell 1/{summary['finest_cells_per_side'][0]} of each side, "
                  f"{summary['rounds']} rounds, {summary['seconds']:.1f} s{exact}")
     lines.append(f"stopped:   {summary['stop_reason']}")
+    # faces come two per state, in state order (see certify.faces.analyse_faces)
+    sides = [f"{face['state']} = {summary['window'][i // 2][i % 2]:g} {face['kind']}"
+             for i, face in enumerate(summary["faces"])]
+    lines.append(f"sides:     {', '.join(sides)}")
     if summary.get("crossing_time_max") is not None:
+        unit = summary.get("time_unit") or "time units"
         lines.append(f"every doomed start crosses a limit within "
-                     f"{summary['crossing_time_max']:.4g} time units")
+                     f"{summary['crossing_time_max']:.4g} {unit}")
     if summary.get("certificate"):
         lines.append(f"certificate {summary['certificate']}")
     lines.append(summary["note"])

@@ -13,6 +13,7 @@ import hashlib
 import importlib
 import json
 import math
+import re
 import tempfile
 from collections import Counter
 from dataclasses import dataclass
@@ -548,6 +549,15 @@ def test_cli_prove_json_summary(tmp_path, capsys):
     assert summary["finest_cells_per_side"] == [int(round(s)) for s in sides / smallest]
     assert summary["finest_cells_per_side"] == [2 ** summary["depth_reached"]] * 2
     assert summary["depth_reached"] == 5
+
+
+def test_cli_prove_table_names_the_window_sides(tmp_path, capsys):
+    # the SIR test model (time unit "d"): rest lines S = 0 and I = 0, open elsewhere
+    out = tmp_path / "sir"
+    assert main(["prove", str(SIR), "--max-depth", "4", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "sides:     S = 0 invariant, S = 1 open, I = 0 invariant, I = 0.1 open" in text
+    assert re.search(r"crosses a limit within [0-9.]+ d$", text, re.MULTILINE)
 
 
 def test_fractions_split_straddling_cells_exactly(certified):

@@ -121,18 +121,18 @@ def _outward(lo, hi, neg_possible, pos_possible):
     underflowed towards 0 from the right side. The sign tests run only on the (rare)
     entries that came out 0; ``neg_possible()`` and ``pos_possible()`` return masks.
     """
-    out_lo = np.array(round_down(lo), dtype=float, ndmin=1)
-    out_hi = np.array(round_up(hi), dtype=float, ndmin=1)
-    zero_lo = np.broadcast_to(lo == 0, out_lo.shape)
-    if zero_lo.any():
-        keep = zero_lo & ~np.broadcast_to(neg_possible(), out_lo.shape)
-        out_lo[keep] = 0.0
-    zero_hi = np.broadcast_to(hi == 0, out_hi.shape)
-    if zero_hi.any():
-        keep = zero_hi & ~np.broadcast_to(pos_possible(), out_hi.shape)
-        out_hi[keep] = 0.0
     if np.ndim(lo) == 0:
+        out_lo, out_hi = _outward(np.array([lo], float), np.array([hi], float),
+                                  neg_possible, pos_possible)
         return out_lo[0], out_hi[0]
+    out_lo = round_down(lo)
+    out_hi = round_up(hi)
+    zero_lo = lo == 0
+    if zero_lo.any():
+        out_lo[zero_lo & ~np.broadcast_to(neg_possible(), lo.shape)] = 0.0
+    zero_hi = hi == 0
+    if zero_hi.any():
+        out_hi[zero_hi & ~np.broadcast_to(pos_possible(), hi.shape)] = 0.0
     return out_lo, out_hi
 
 

@@ -186,6 +186,13 @@ class Certificate:
         upper = np.where(v < 0, 0.0, np.where(v == 0, np.inf, upper))
         return lower, upper
 
+    def transition_graph(self):
+        """The cells and their successors as a networkx DiGraph (see
+        :func:`certify.graph.transition_graph`)."""
+        from .graph import transition_graph
+
+        return transition_graph(self)
+
     def _leaf_of_node(self, node):
         lookup = self.data["_node_to_leaf"]
         return np.where(node >= 0, lookup[np.maximum(node, 0)], -1)

@@ -721,3 +721,41 @@ def test_successors_cover_the_image_and_touching_leaves_are_left_out():
             if np.all((c_lo <= last) & (c_hi >= first)):
                 assert c in named
     assert left_out > 50  # the rule does leave touching leaves out
+
+
+def test_transition_graph_edges_cover_simulated_images(certified):
+    # For starts in cells of every label, the state at the cell's horizon T_c, integrated
+    # by scipy's DOP853 (an integrator outside this project), lies in one of the cell's
+    # successors (the successor rule claims they cover the image); and the labels are
+    # the fixpoints of DESIGN.md section 5 on the networkx graph.
+    import networkx as nx
+
+    run = certified(SIR, CASES["sir"].depth)
+    graph = run.cert.transition_graph()
+    assert isinstance(graph, nx.DiGraph) and graph.number_of_nodes() == len(run.cert.labels)
+    for c, data in graph.nodes(data=True):
+        after = {graph.nodes[d]["label"] for d in graph.successors(c)}
+        if data["label"] == "safe":
+            assert after <= {"safe", "outside"}
+        if data["label"] == "doomed" and data["rank"] > 0:
+            assert all(graph.nodes[d]["rank"] < data["rank"] for d in graph.successors(c)
+                       if graph.nodes[d]["label"] != "outside")
+    safe = [c for c, d in graph.nodes(data=True) if d["label"] == "safe"]
+    reach = set().union(*(nx.descendants(graph, c) for c in safe[:50]))
+    assert {graph.nodes[d]["label"] for d in reach} <= {"safe", "outside"}
+    rng = np.random.default_rng(3)
+    cells = rng.choice([c for c in graph if graph.out_degree(c) > 0], 60, replace=False)
+    beta, gamma = 2.0, 1.0
+    for c in cells:
+        node = graph.nodes[c]
+        start = rng.uniform(node["lo"], node["hi"])
+        T = node["horizon"][0]
+        sol = solve_ivp(lambda t, y: [-beta * y[0] * y[1], beta * y[0] * y[1] - gamma * y[1]],
+                        (0, T), start, method="DOP853", rtol=1e-12, atol=1e-14)
+        end = sol.y[:, -1]
+        if end[1] > 0.1:  # crossed the cap: no successor is needed for this start
+            continue
+        held = [d for d in graph.successors(c)
+                if all(graph.nodes[d]["lo"][k] - 1e-9 <= end[k] <= graph.nodes[d]["hi"][k] + 1e-9
+                       for k in range(2))]
+        assert held, (c, start, T, end)

@@ -29,6 +29,7 @@ CHECKS = {
     "generator_swing.toml": (6, 20.0),
     "crane_load.toml": (6, 120.0),
     "microbial_food_chain.toml": (3, 40.0),
+    "greenhouse_biocontrol.toml": (6, 400.0),
 }
 
 #: Starts simulated per model.

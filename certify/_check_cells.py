@@ -7,8 +7,8 @@ arithmetics of :mod:`certify._check_arith`. For step ``k`` of a cell (stored: st
 * Picard: ``X_k + [0, h] f(E) ⊆ E``, so every solution from ``X_k`` stays in ``E`` on
   ``[0, h]``;
 * mean-value Taylor step: ``Y = T(m_k) + h^q f^[q](E)``, ``M = DT(J) A_k`` with
-  ``J = hull(X_k, m_k)`` (for ``Df`` cut at ``m_k`` into ``2^n`` parts, as the prover
-  cuts its own); the checker's own new coordinates
+  ``J = hull(X_k, m_k)`` (for ``Df`` cut at ``m_k`` into ``2^n`` parts where the
+  prover cuts its own); the checker's own new coordinates
   ``r_{k+1} = B (Y - m_{k+1}) + (B M) r_k`` with ``B`` enclosing ``A_{k+1}^-1``, and
   ``X_{k+1} = hull(m_{k+1} + A_{k+1} r_{k+1}) ∩ (Y + M r_k)``;
 * a limit ``g`` is kept on the step when ``g(X_k) + [0, h] (grad g . f)(E) >= 0`` or
@@ -178,9 +178,9 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     # DT(J) = I + sum h^k Df^[k](J)
     D = [[ar.exact(np.full(len(h), float(i == j))) for j in range(n)] for i in range(n)]
     if q > 1:
-        # the Jacobian of f on J cut at m into 2^n parts, as the prover cuts its own J
+        # the Jacobian of f on J cut at m into 2^n parts where the prover cuts its own J
         J = [ar.hull(X[k], point[k]) for k in range(n)]
-        parts = ar.split_at(J, point)
+        parts = ar.split_at(J, point) if progs.cut_jacobian else [J]
         jac = _joined(ar, progs.jacobian,
                       [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
                       params)

@@ -250,6 +250,10 @@ class CheckPrograms:
     field_jacobian : Program or None
         Row-major Jacobian of ``f`` (for invariant faces); None for models with kinks.
     n_limits : int
+    cut_jacobian : bool
+        The prover evaluates ``jacobian`` on the ``2^n`` parts into which the point
+        ``m`` cuts the mean-value box: in at most two dimensions, when some entry is not
+        affine in the states (docs/method.md). Cutting is sound either way.
     equations : tuple of sympy.Expr
         ``f`` with the parameters given as numbers substituted.
     states : tuple of sympy.Symbol
@@ -266,6 +270,7 @@ class CheckPrograms:
     field: Program
     field_jacobian: Program | None
     n_limits: int
+    cut_jacobian: bool
     equations: tuple
     states: tuple
 
@@ -323,4 +328,16 @@ def derive_programs(model, order):
                          limits=compile_expressions(list(limits), inputs),
                          field=compile_expressions(list(equations), inputs),
                          field_jacobian=field_jacobian, n_limits=len(limits),
+                         cut_jacobian=_cut(equations, states),
                          equations=equations, states=states)
+
+
+def _cut(equations, states):
+    """The prover's rule for cutting the mean-value box (docs/method.md, step 4)."""
+    if len(states) > 2:
+        return False
+    for row in sympy.Matrix(equations).jacobian(sympy.Matrix(states)).tolist():
+        for entry in row:
+            if not entry.is_polynomial(*states) or sympy.Poly(entry, *states).total_degree() > 1:
+                return True
+    return False

@@ -271,8 +271,12 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
     if q > 1:
         jlo, jhi = np.minimum(xlo, m), np.maximum(xhi, m)
         # the first-order term h Df(J) dominates: its Jacobian is evaluated on the parts
-        # of J cut at m, the higher-order ones on J whole
-        glo, ghi = _split_at_point(programs.jacobian, jlo, jhi, m, params)
+        # of J cut at m where that pays (FlowPrograms.cut_jacobian), the higher-order ones
+        # on J whole
+        if programs.cut_jacobian:
+            glo, ghi = _split_at_point(programs.jacobian, jlo, jhi, m, params)
+        else:
+            glo, ghi = evaluate_boxes(programs.jacobian, jlo, jhi, params)
         if q > 2:
             wlo, whi = evaluate_boxes(programs.higher_jacobians, jlo, jhi, params)
             glo, ghi = np.concatenate([glo, wlo], axis=1), np.concatenate([ghi, whi], axis=1)

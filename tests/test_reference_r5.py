@@ -86,28 +86,17 @@ def test_no_certified_cell_contradicts_the_exact_fate(r5):
     assert len(bad) == 0, bad[:5]  # K-McK 1927 peak rule (REFERENCES.md R5)
 
 
-def test_doomed_side_coverage_away_from_the_boundary(r5):
-    def doomed_or_boundary(points):
+@pytest.mark.parametrize("side, level", [("doomed", DOOMED_COVERAGE), ("safe", SAFE_COVERAGE)])
+def test_coverage_away_from_the_boundary(r5, side, level):
+    def side_or_boundary(points):
         fate = exact_fate(points)
-        return np.where(fate == "doomed", "doomed", "boundary")
+        return np.where(fate == side, side, "boundary")
 
-    decided, agree, n_far = far_points_coverage(r5.cert, doomed_or_boundary,
+    decided, agree, n_far = far_points_coverage(r5.cert, side_or_boundary,
                                                 [(0, 1), (0, 0.1)], 201, r5.finest)
     assert n_far > 2000
-    assert agree == decided  # decided far doomed points are doomed (R5, K-McK 1927)
-    assert decided >= DOOMED_COVERAGE  # stated level on the doomed side (R5)
-
-
-def test_safe_side_coverage_away_from_the_boundary(r5):
-    def safe_or_boundary(points):
-        fate = exact_fate(points)
-        return np.where(fate == "safe", "safe", "boundary")
-
-    decided, agree, n_far = far_points_coverage(r5.cert, safe_or_boundary,
-                                                [(0, 1), (0, 0.1)], 201, r5.finest)
-    assert n_far > 2000
-    assert agree == decided  # decided far safe points are safe (R5, K-McK 1927)
-    assert decided >= SAFE_COVERAGE  # stated level on the safe side (R5)
+    assert agree == decided  # decided far points have the exact fate (R5, K-McK 1927)
+    assert decided >= level  # stated level on that side (R5)
 
 
 def test_crossing_time_lies_in_the_proven_bounds(r5):

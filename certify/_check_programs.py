@@ -312,32 +312,30 @@ def derive_programs(model, order):
     rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
              for g in limits]
     middle = coefficients[1:order]
-    point = jac = higher = None
+    # Df serves the mean-value step (f^[1] = f) and the invariant faces; models with
+    # kinks are stepped at order 1 and have no invariant faces
+    df = None if model.uses_kinks else sympy.Matrix(equations).jacobian(x)
+    field_jacobian = None if df is None else compile_expressions(list(df), inputs)
+    point = higher = None
     if middle:
         point = compile_expressions([e for c in middle for e in c], inputs)
-        jac = compile_expressions(list(middle[0].jacobian(x)), inputs)
     if len(middle) > 1:
         higher = compile_expressions([e for c in middle[1:] for e in c.jacobian(x)], inputs)
-    field_jacobian = None
-    if not model.uses_kinks:
-        field_jacobian = compile_expressions(list(sympy.Matrix(equations).jacobian(x)), inputs)
     on_tube = compile_expressions(list(equations) + rates, inputs)
     remainder = compile_expressions(list(coefficients[order]), inputs)
     return CheckPrograms(order=order, n=len(states), on_tube=on_tube, remainder=remainder,
-                         coefficients=point, jacobian=jac, higher_jacobians=higher,
+                         coefficients=point, jacobian=field_jacobian if middle else None,
+                         higher_jacobians=higher,
                          limits=compile_expressions(list(limits), inputs),
                          field=compile_expressions(list(equations), inputs),
                          field_jacobian=field_jacobian, n_limits=len(limits),
-                         cut_jacobian=_cut(equations, states),
+                         cut_jacobian=df is not None and _cut(df, states),
                          equations=equations, states=states)
 
 
-def _cut(equations, states):
+def _cut(df, states):
     """The prover's rule for cutting the mean-value box (docs/method.md, step 4)."""
     if len(states) > 2:
         return False
-    for row in sympy.Matrix(equations).jacobian(sympy.Matrix(states)).tolist():
-        for entry in row:
-            if not entry.is_polynomial(*states) or sympy.Poly(entry, *states).total_degree() > 1:
-                return True
-    return False
+    return any(not entry.is_polynomial(*states) or sympy.Poly(entry, *states).total_degree() > 1
+               for entry in df)

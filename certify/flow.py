@@ -19,7 +19,6 @@ See docs/method.md for the exact order of operations, which the checker repeats.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-
 from itertools import product
 
 import numpy as np
@@ -216,8 +215,8 @@ def _apriori(programs, xlo, xhi, h, params, iterations=4):
     dlo, dhi = _time_box(hh, flo, fhi)
     nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
     tight = ok & np.all((nlo >= tlo) & (nhi <= thi), axis=1)
-    # keep half of the room between the tight box and the found one: the checker's ball
-    # arithmetic evaluates f a little wider and needs that room to confirm the inclusion
+    # keep a share BLEND of the room between the tight box and the found one: the
+    # checker's ball arithmetic evaluates f a little wider and needs that room
     blo = np.minimum(tlo, iv.round_down(tlo + BLEND * (out_lo - tlo)))
     bhi = np.maximum(thi, iv.round_up(thi + BLEND * (out_hi - thi)))
     blo, bhi = np.maximum(blo, out_lo), np.minimum(bhi, out_hi)

@@ -95,9 +95,10 @@ def _build(equations, states, parameters, limits, order, fixed=()):
     coeffs = taylor_coefficients(equations, states, order)
     middle = coeffs[1:order]
     coefficients = jacobian = higher = None
+    df = coeffs[1].jacobian(x)
     if middle:
         coefficients = compile_program([e for c in middle for e in c], inputs)
-        jacobian = compile_program(list(middle[0].jacobian(x)), inputs)
+        jacobian = compile_program(list(df), inputs)
     if len(middle) > 1:
         higher = compile_program([e for c in middle[1:] for e in c.jacobian(x)], inputs)
     rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
@@ -109,7 +110,7 @@ def _build(equations, states, parameters, limits, order, fixed=()):
         coefficients=coefficients,
         jacobian=jacobian,
         higher_jacobians=higher,
-        cut_jacobian=jacobian_is_cut(equations, states),
+        cut_jacobian=jacobian_is_cut(df, states),
         remainder=compile_program(list(coeffs[order]), inputs),
         limits=compile_program(list(limits), inputs),
         limit_rates=compile_program(rates, inputs),
@@ -150,8 +151,8 @@ def fixed_parameters(model):
                  for p in model.parameters if not p.is_interval)
 
 
-def jacobian_is_cut(equations, states):
-    """Whether the mean-value step evaluates the Jacobian of ``f`` on cut parts.
+def jacobian_is_cut(df, states):
+    """Whether the mean-value step evaluates the Jacobian ``df`` of ``f`` on cut parts.
 
     Cutting pays where natural interval extensions overestimate: on Jacobian entries
     that are not affine in the states (on affine ones interval evaluation is exact up
@@ -161,6 +162,5 @@ def jacobian_is_cut(equations, states):
     """
     if len(states) > 2:
         return False
-    jacobian = sympy.Matrix(equations).jacobian(sympy.Matrix(states))
     return not all(e.is_polynomial(*states) and sympy.Poly(e, *states).total_degree() <= 1
-                   for e in jacobian)
+                   for e in df)

@@ -10,7 +10,7 @@ from __future__ import annotations
 import networkx as nx
 import numpy as np
 
-from .certificate import decode_array
+from .container import decode_array
 
 __all__ = ["transition_graph"]
 

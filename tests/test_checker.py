@@ -1,4 +1,4 @@
-"""Tests of the independent certificate checker (certify/checker.py, ``certify check``).
+"""Tests of the independent certificate checker (certify/check/, ``certify check``).
 
 References named beside the checks:
 
@@ -27,11 +27,11 @@ import pytest
 from flint import arb, ctx
 
 from certify.certificate import certificate_data, decode_array, encode_array, write_certificate
-from certify.checker import check_certificate
+from certify.check import check_certificate
 from certify.cli import main
 from certify.model import load_model
 from certify.prove import prove
-from certify._check_arith import BallArith, EndpointArith
+from certify.check._arith import BallArith, EndpointArith
 
 LOGISTIC = """\
 [model]
@@ -499,9 +499,9 @@ def test_invariant_face_needs_the_identity_and_a_lipschitz_slab():
     # the SIR field is polynomial; x' = x sqrt(y) is 0 on x = 0 but its derivative
     # x / (2 sqrt(y)) is unbounded near y = 0, so uniqueness is not available there.
     from certify.model import parse_model
-    from certify._check_cells import CheckContext
-    from certify._check_faces import confirm_face
-    from certify._check_programs import derive_programs
+    from certify.check._cells import CheckContext
+    from certify.check._faces import confirm_face
+    from certify.check._programs import derive_programs
 
     def context(model):
         return CheckContext(programs=derive_programs(model, 2),

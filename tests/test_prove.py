@@ -688,7 +688,7 @@ def test_successors_cover_the_image_and_touching_leaves_are_left_out():
     # the box's relative interior. The checker's exact grid rule names no other leaf.
     from fractions import Fraction
     from certify.cells import CellTree
-    from certify._check_cells import grid_bounds
+    from certify.check._cells import grid_bounds
 
     rng = np.random.default_rng(11)
     tree = CellTree([(Fraction(0), Fraction(1)), (Fraction(0), Fraction(1))])

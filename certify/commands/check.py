@@ -58,7 +58,7 @@ def _describe(failure):
 
 def run(args):
     """Check the certificate named by ``args.certificate``; returns 0 or 1."""
-    from certify.checker import check_certificate
+    from certify.check import check_certificate
 
     if args.jobs is not None and args.jobs < 1:
         raise UsageError("--jobs must be at least 1")

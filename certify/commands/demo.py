@@ -28,7 +28,7 @@ def run(args):
     code = run_proof(str(path), args, default_out=out)
     if code != 0:
         return code
-    from certify.checker import check_certificate
+    from certify.check import check_certificate
     from certify.commands.check import _Progress
 
     cert = out / "certificate.json.gz"

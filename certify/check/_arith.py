@@ -74,7 +74,7 @@ def _to_fmpq(q):
 
 
 def _constant_ball(spec):
-    """Ball enclosing a constant spec of :mod:`certify._check_programs`."""
+    """Ball enclosing a constant spec of :mod:`certify.check._programs`."""
     kind = spec[0]
     if kind == "q":
         return arb(fmpq(spec[1], spec[2]))
@@ -646,11 +646,11 @@ def _plan(program, ar):
 
 
 def evaluate(program, ar, inputs):
-    """Run a program of :mod:`certify._check_programs` on intervals.
+    """Run a program of :mod:`certify.check._programs` on intervals.
 
     Parameters
     ----------
-    program : certify._check_programs.Program
+    program : certify.check._programs.Program
     ar : BallArith or EndpointArith
     inputs : list of intervals
         One per program input (arrays over cells, or scalars that broadcast).

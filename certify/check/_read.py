@@ -1,7 +1,7 @@
 """Reading a certificate for the checker: structure, types and shapes, nothing trusted.
 
 Every problem raises :class:`certify.errors.CertificateError` naming the file and the key;
-the arrays come back decoded (exact floats and integers) for :mod:`certify.checker`.
+the arrays come back decoded (exact floats and integers) for :mod:`certify.check.checker`.
 """
 
 from __future__ import annotations
@@ -13,9 +13,9 @@ from fractions import Fraction
 
 import numpy as np
 
-from .certificate import decode_array, load_certificate_json
-from .errors import CertificateError, CertifyError
-from .model import parse_model
+from ..container import decode_array, load_certificate_json
+from ..errors import CertificateError, CertifyError
+from ..model import parse_model
 
 __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
 

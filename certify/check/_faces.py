@@ -18,8 +18,8 @@ from __future__ import annotations
 import numpy as np
 import sympy
 
-from ._check_arith import ARITHMETICS, evaluate
-from ._check_cells import SLAB, _limits_upper_negative, _params, _true
+from ._arith import ARITHMETICS, evaluate
+from ._cells import SLAB, _limits_upper_negative, _params, _true
 
 __all__ = ["confirm_face"]
 
@@ -34,7 +34,7 @@ def confirm_face(context, axis, side, kind):
 
     Parameters
     ----------
-    context : certify._check_cells.CheckContext
+    context : certify.check._cells.CheckContext
     axis : int
     side : {"lo", "hi"}
     kind : {"limit", "inflow", "invariant"}

@@ -1,5 +1,5 @@
 """The checker's own programs: Taylor coefficients re-derived with sympy, compiled to
-straight-line instruction lists that :mod:`certify._check_arith` evaluates.
+straight-line instruction lists that :mod:`certify.check._arith` evaluates.
 
 Nothing here is shared with the proof code. The derivation follows the recipe the
 certificate format documents (docs/certificate-format.md): parameters given as numbers
@@ -31,7 +31,7 @@ from fractions import Fraction
 
 import sympy
 
-from .errors import CertificateError
+from ..errors import CertificateError
 
 __all__ = ["Program", "CheckPrograms", "compile_expressions", "derive_programs"]
 

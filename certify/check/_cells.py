@@ -1,7 +1,7 @@
 """What the checker recomputes per cell: its tube, image, and the facts its label needs.
 
 Everything runs vectorized over a chunk of cells, step by step, in one of the two
-arithmetics of :mod:`certify._check_arith`. For step ``k`` of a cell (stored: step size
+arithmetics of :mod:`certify.check._arith`. For step ``k`` of a cell (stored: step size
 ``h``, a-priori box ``E``, and the coordinates ``m``, ``A`` of the set at the step end):
 
 * Picard: ``X_k + [0, h] f(E) ⊆ E``, so every solution from ``X_k`` stays in ``E`` on
@@ -27,7 +27,7 @@ from fractions import Fraction
 
 import numpy as np
 
-from ._check_arith import ARITHMETICS, evaluate
+from ._arith import ARITHMETICS, evaluate
 
 __all__ = ["CheckContext", "CellTask", "cell_facts", "exact_cells", "grid_bounds"]
 
@@ -44,7 +44,7 @@ class CheckContext:
 
     Attributes
     ----------
-    programs : certify._check_programs.CheckPrograms
+    programs : certify.check._programs.CheckPrograms
     params : tuple of (Fraction, Fraction)
     window : tuple of (Fraction, Fraction)
     open_faces : tuple of (int, str)
@@ -315,7 +315,7 @@ def cell_facts(context, task, arithmetic):
     context : CheckContext
     task : CellTask
     arithmetic : {"ball", "fine", "endpoint"}
-        A key of :data:`certify._check_arith.ARITHMETICS`.
+        A key of :data:`certify.check._arith.ARITHMETICS`.
 
     Returns
     -------

@@ -3,7 +3,7 @@
 The checker trusts only the model parser, sympy's derivatives, python-flint's arb and
 its own short graph checks. It never imports the proof code: it reads the certificate
 file, re-derives the Taylor coefficients from the stored model text, recomputes every
-step of every cell whose claims need it (:mod:`certify._check_cells`), and checks each
+step of every cell whose claims need it (:mod:`certify.check._cells`), and checks each
 cell's claims locally against its own facts and its successors' claims
 (DESIGN.md section 5). When every local check holds, every claim holds by induction
 over ranks (doomed) and horizons (safe, survival bounds).
@@ -11,7 +11,7 @@ over ranks (doomed) and horizons (safe, survival bounds).
 Arithmetic: each cell is first recomputed with arb balls, vectorized over chunks of
 cells and evaluating wide boxes in pieces; a cell whose claims do not verify that way is
 recomputed with finer pieces, then with exact-endpoint arithmetic
-(:mod:`certify._check_arith`), before it is declared invalid.
+(:mod:`certify.check._arith`), before it is declared invalid.
 """
 
 from __future__ import annotations
@@ -25,12 +25,12 @@ from fractions import Fraction
 
 import numpy as np
 
-from .errors import CertificateError, CertifyError
-from .model import load_model
-from ._check_cells import CellTask, CheckContext, cell_facts
-from ._check_faces import confirm_face
-from ._check_programs import derive_programs
-from ._check_read import LABELS, read_for_check
+from ..errors import CertificateError, CertifyError
+from ..model import load_model
+from ._cells import CellTask, CheckContext, cell_facts
+from ._faces import confirm_face
+from ._programs import derive_programs
+from ._read import LABELS, read_for_check
 
 __all__ = ["CheckResult", "check_certificate"]
 

@@ -1,0 +1,96 @@
+"""The certificate container: format name, version, exact array encoding, gzip JSON.
+
+Shared by the writer (:mod:`certify.certificate`) and the independent checker
+(:mod:`certify.check`); it holds no proof logic.
+"""
+
+from __future__ import annotations
+
+import base64
+import gzip
+import json
+import zlib
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+
+from .errors import CertificateError
+from .files import write_atomic
+
+__all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "fraction_text",
+           "write_certificate", "load_certificate_json"]
+
+FORMAT = "certify-certificate"
+VERSION = 2
+LABELS = ("safe", "doomed", "outside", "undecided")
+
+
+def encode_array(a, dtype="<f8"):
+    """Encode an array exactly as ``{"dtype", "shape", "data"}`` (base64)."""
+    a = np.ascontiguousarray(np.asarray(a), dtype=dtype)
+    return {"dtype": dtype, "shape": list(a.shape),
+            "data": base64.b64encode(a.tobytes()).decode("ascii")}
+
+
+def decode_array(obj, where="array"):
+    """Decode an array written by :func:`encode_array`.
+
+    Raises
+    ------
+    CertificateError
+        When the object is malformed.
+    """
+    try:
+        dtype = np.dtype(obj["dtype"])
+        if dtype.kind not in "fi" or dtype.itemsize != 8:
+            raise ValueError("dtype")
+        shape = tuple(int(s) for s in obj["shape"])
+        raw = base64.b64decode(obj["data"], validate=True)
+        return np.frombuffer(raw, dtype=dtype).reshape(shape).copy()
+    except (KeyError, TypeError, ValueError) as exc:
+        raise CertificateError(f"malformed {where} in the certificate ({exc})") from None
+
+
+def fraction_text(q):
+    """Exact text of a rational: ``"p/q"`` (or ``"p"``)."""
+    q = Fraction(q)
+    return str(q.numerator) if q.denominator == 1 else f"{q.numerator}/{q.denominator}"
+
+
+def write_certificate(path, data):
+    """Write a certificate dictionary as gzip-compressed JSON, atomically.
+
+    Parameters
+    ----------
+    path : str or Path
+    data : dict
+        JSON-serialisable content (arrays already encoded).
+    """
+    text = json.dumps(data, separators=(",", ":")).encode("utf-8")
+    write_atomic(path, gzip.compress(text, compresslevel=6, mtime=0))
+
+
+def load_certificate_json(path):
+    """Read the raw certificate dictionary, checking format and version.
+
+    Raises
+    ------
+    CertificateError
+        Unreadable file, not gzip/JSON, unknown format or version.
+    """
+    path = Path(path)
+    try:
+        with gzip.open(path, "rb") as f:
+            data = json.loads(f.read().decode("utf-8"))
+    except FileNotFoundError:
+        raise CertificateError(f"{path}: no such file") from None
+    except (OSError, EOFError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile,
+            zlib.error) as exc:
+        raise CertificateError(f"{path}: not a readable certificate ({exc})") from None
+    if not isinstance(data, dict) or data.get("format") != FORMAT:
+        raise CertificateError(f"{path}: not a certify certificate (key 'format')")
+    if data.get("version") != VERSION:
+        raise CertificateError(f"{path}: unknown certificate version {data.get('version')!r} "
+                               f"(this tool reads version {VERSION})")
+    return data

@@ -8,11 +8,20 @@ Grammar (see ``docs/model-format.md``): numbers, declared names, ``+ - * /``,
 ``^`` or ``**`` for powers, unary ``-``/``+``, parentheses, calls of the
 functions in :data:`FUNCTION_NAMES`, and the constants ``pi`` and ``e``. Number
 literals are exact: ``0.1`` is the rational 1/10, not the nearest double.
+
+sympy simplifies while it builds (``x/x`` becomes ``1``, ``exp(log(x))`` becomes ``x``),
+and such a rewrite can remove a point where the written expression is undefined. The
+parser records where every written division, power, ``log``, ``sqrt`` and ``tan`` is
+defined (:class:`DomainCondition`) and refuses an expression whose built form no longer
+keeps all of these conditions (:func:`check_conditions`): certify evaluates exactly the
+built form, so it must be undefined wherever the written one is.
 """
 
 import ast
+import dataclasses
 import difflib
 import re
+from dataclasses import dataclass
 from decimal import Decimal, localcontext
 from fractions import Fraction
 
@@ -30,6 +39,8 @@ __all__ = [
     "NUMBER_RANGE_MESSAGE",
     "RESERVED_NAMES",
     "TIME_NAME",
+    "DomainCondition",
+    "check_conditions",
     "format_expression",
     "format_number",
     "is_number_in_range",
@@ -174,6 +185,155 @@ def format_number(value):
     return str(decimal)
 
 
+_NONZERO, _POSITIVE, _NONNEGATIVE = "nonzero", "positive", "nonnegative"
+_FAILS_WHERE = {_NONZERO: "= 0", _POSITIVE: "<= 0", _NONNEGATIVE: "< 0"}
+
+
+@dataclass(frozen=True)
+class DomainCondition:
+    """Where one written operation is defined: ``arg != 0``, ``arg > 0`` or ``arg >= 0``.
+
+    Attributes
+    ----------
+    kind : str
+        ``"nonzero"``, ``"positive"`` or ``"nonnegative"``.
+    arg : sympy.Expr
+        The operand as built (e.g. the divisor), in the names of the expression.
+    what : str
+        The operation in words, e.g. ``"the division by x"``.
+    where : str
+        File, key and column of the operation, e.g. ``"m.toml: [equations] x: column 3"``.
+    """
+
+    kind: str
+    arg: sympy.Expr
+    what: str
+    where: str
+
+    def substituted(self, replacements):
+        """The same condition with names replaced (``xreplace``) in its operand."""
+        return dataclasses.replace(self, arg=self.arg.xreplace(replacements))
+
+
+def _power_conditions(base, exponent):
+    """``(kind, arg)`` pairs under which certify's evaluation of ``base**exponent`` is defined.
+
+    These follow the evaluation rules of :mod:`certify.program`: a negative integer
+    exponent divides, a rational one takes a root (``x >= 0``, ``x > 0`` when negative),
+    any other exponent goes through ``exp(exponent*log(base))``.
+    """
+    if base is sympy.E or (exponent.is_Integer and exponent >= 0):
+        return []
+    if exponent.is_Integer:
+        return [(_NONZERO, base)]
+    if exponent.is_Rational:
+        return [(_POSITIVE if exponent < 0 else _NONNEGATIVE, base)]
+    return [(_POSITIVE, base)]
+
+
+def _call_conditions(function, arg):
+    """``(kind, arg)`` pairs under which a one-argument function call is defined."""
+    if function is sympy.log:
+        return [(_POSITIVE, arg)]
+    if function is sympy.sqrt:
+        return _power_conditions(arg, sympy.S.Half)
+    if function is sympy.tan:
+        return [(_NONZERO, sympy.cos(arg))]
+    return []
+
+
+def _node_conditions(node):
+    """``(kind, arg)`` pairs under which one node of a built expression is defined."""
+    if node.is_Pow:
+        return _power_conditions(node.base, node.exp)
+    if isinstance(node, (sympy.log, sympy.tan)):
+        return _call_conditions(type(node), node.args[0])
+    return []
+
+
+def _atoms(kind, arg):
+    """Simple conditions that together say the same as ``kind(arg)`` where ``arg`` is defined.
+
+    Every rule is an equivalence (given that ``arg`` itself is defined), so the result
+    serves both to state what a written operation needs and what a built expression
+    guarantees. Products split into factors, positive constant factors drop out, powers
+    reduce to their base, and ``exp``, ``cosh``, ``pi``, ``e`` are positive.
+    """
+    if arg.is_Rational:
+        holds = {_NONZERO: arg != 0, _POSITIVE: arg > 0, _NONNEGATIVE: arg >= 0}[kind]
+        return set() if holds else {(kind, arg)}
+    if arg in (sympy.pi, sympy.E) or isinstance(arg, (sympy.exp, sympy.cosh)):
+        return set()
+    if isinstance(arg, sympy.Abs):
+        return set() if kind == _NONNEGATIVE else _atoms(_NONZERO, arg.args[0])
+    coeff, rest = arg.as_coeff_Mul()
+    if coeff.is_Rational and coeff != 1 and (kind == _NONZERO or coeff > 0):
+        return _atoms(kind, rest)
+    if arg.is_Mul and kind == _NONZERO:
+        return set().union(*(_atoms(kind, factor) for factor in arg.args))
+    if arg.is_Pow:
+        base, exponent = arg.base, arg.exp
+        if not exponent.is_Rational:  # exp(exponent*log(base)) > 0
+            return set()
+        even = exponent.is_Integer and exponent % 2 == 0
+        if kind == _NONZERO:
+            return _atoms(kind, base) if exponent > 0 else set()
+        if kind == _POSITIVE:
+            return _atoms(_NONZERO if even else _POSITIVE, base)
+        return _atoms(kind, base) if exponent.is_Integer and not even else set()
+    if arg.is_Add:
+        _, arg = arg.as_content_primitive()
+    if kind == _NONZERO and arg.could_extract_minus_sign():
+        arg = -arg
+    return {(kind, arg)}
+
+
+def _guaranteed(expr):
+    """The simple conditions that hold wherever certify's evaluation of ``expr`` is defined."""
+    known = set()
+    for node in sympy.preorder_traversal(expr):
+        for kind, arg in _node_conditions(node):
+            for atom in _atoms(kind, arg):
+                known.add(atom)
+                if atom[0] == _POSITIVE:
+                    known |= _atoms(_NONZERO, atom[1]) | {(_NONNEGATIVE, atom[1])}
+    return known
+
+
+def check_conditions(expr, conditions, *, subject):
+    """Refuse ``expr`` when it is defined somewhere one of the written conditions fails.
+
+    Parameters
+    ----------
+    expr : sympy.Expr
+        An expression as built (and as certify evaluates it).
+    conditions : iterable of DomainCondition
+        The conditions of the operations written in its text (and in the definitions
+        it uses), in the same names as ``expr``.
+    subject : str
+        What ``expr`` is, for the message, e.g. ``"the expression"``.
+
+    Raises
+    ------
+    ModelError
+        Naming the first condition that ``expr`` does not keep: sympy's automatic
+        simplification removed a point where the written expression is undefined.
+        The test is syntactic and errs towards refusing.
+    """
+    known = None
+    for condition in conditions:
+        if known is None:
+            known = _guaranteed(expr)
+        if not _atoms(condition.kind, condition.arg) <= known:
+            fails = f"{format_expression(condition.arg)} {_FAILS_WHERE[condition.kind]}"
+            raise ModelError(
+                f"{condition.where}: {condition.what} is undefined where {fails}, but automatic "
+                f"simplification turns {subject} into '{format_expression(expr)}', which is "
+                "defined there; certify does not change a model's equations: remove the "
+                "cancelling part or write the simplified form if that is what is meant"
+            )
+
+
 class _Source:
     """Expression text prepared for ``ast.parse``, with a map back to the original columns.
 
@@ -203,20 +363,26 @@ class _Source:
         lineno = min(max(lineno or 1, 1), len(self._line_starts))
         return min(self._line_starts[lineno - 1] + max(col or 0, 0), len(self.code))
 
-    def error(self, code_index, message):
-        """A :class:`ModelError` pointing at ``code_index`` in the original text."""
+    def position(self, code_index):
+        """``where`` and the line and column of ``code_index`` in the original text."""
         original = self._origin[min(code_index, len(self._origin) - 1)]
         column = original - (self.text.rfind("\n", 0, original) + 1) + 1
         if "\n" in self.text:
             line = self.text.count("\n", 0, original) + 1
-            position = f"line {line}, column {column}"
-        else:
-            position = f"column {column}"
-        return ModelError(f"{self.where}: {position}: {message}")
+            return f"{self.where}: line {line}, column {column}"
+        return f"{self.where}: column {column}"
+
+    def node_position(self, node):
+        """:meth:`position` of the start of an ast ``node``."""
+        return self.position(self.index(node.lineno, node.col_offset))
+
+    def error(self, code_index, message):
+        """A :class:`ModelError` pointing at ``code_index`` in the original text."""
+        return ModelError(f"{self.position(code_index)}: {message}")
 
     def node_error(self, node, message):
         """A :class:`ModelError` pointing at the start of an ast ``node``."""
-        return self.error(self.index(node.lineno, node.col_offset), message)
+        return ModelError(f"{self.node_position(node)}: {message}")
 
     def parse(self):
         """Parse ``self.code`` in eval mode, turning every parser failure into ModelError."""
@@ -265,11 +431,22 @@ def _or_list(words):
 
 
 class _Builder:
-    """Walks an ast through the whitelist and builds the sympy expression."""
+    """Walks an ast through the whitelist and builds the sympy expression.
+
+    ``conditions`` collects a :class:`DomainCondition` for every written operation that
+    is not defined everywhere, ``used`` the names of ``names`` the text refers to.
+    """
 
     def __init__(self, source, names):
         self.source = source
         self.names = names
+        self.conditions = []
+        self.used = set()
+
+    def note(self, node, pairs, what):
+        """Record the ``(kind, arg)`` pairs of the operation written at ``node``."""
+        where = self.source.node_position(node)
+        self.conditions += [DomainCondition(kind, arg, what, where) for kind, arg in pairs]
 
     def fail(self, node, message):
         return self.source.node_error(node, message)
@@ -311,6 +488,7 @@ class _Builder:
     def _build_Name(self, node, depth):
         name = node.id
         if name in self.names:
+            self.used.add(name)
             return self.names[name]
         if name in CONSTANTS:
             return CONSTANTS[name]
@@ -362,6 +540,7 @@ class _Builder:
                 if isinstance(op, ast.Div):
                     if value == 0:
                         raise self.fail(operand, "division by zero")
+                    self.note(operand, [(_NONZERO, value)], f"the division by {format_expression(value)}")
                     value = sympy.Pow(value, -1)
                 factors.append(value)
             return sympy.Mul(*factors)
@@ -379,6 +558,8 @@ class _Builder:
             bits = base.p.bit_length() + base.q.bit_length()
             if bits * abs(exponent) > _MAX_EXACT_BITS:
                 raise self.fail(node, "this power of a number is too large to keep exactly")
+        self.note(node, _power_conditions(base, exponent),
+                  f"the power ({format_expression(base)})^({format_expression(exponent)})")
         return self._real(node, sympy.Pow(base, exponent))
 
     def _real(self, node, value):
@@ -403,6 +584,8 @@ class _Builder:
                 raise self.fail(node, f"{name}() takes two or more arguments, got {count}")
             args = [self.build(arg, depth + 1) for arg in node.args]
             function = _ONE_ARGUMENT.get(name) or _TWO_OR_MORE[name]
+            if name in _ONE_ARGUMENT:
+                self.note(node, _call_conditions(function, args[0]), f"{name}({format_expression(args[0])})")
             return self._real(node, function(*args))
         if name in self.names or name in CONSTANTS:
             raise self.fail(node, f"{name!r} is not a function")
@@ -412,7 +595,7 @@ class _Builder:
         raise self.fail(node.func, f"unknown function {name!r} ({hint}allowed: {allowed})")
 
 
-def parse_expression(text, names, *, where):
+def parse_expression(text, names, *, where, conditions=None, used=None):
     """Parse one model expression into a sympy expression.
 
     Parameters
@@ -425,6 +608,13 @@ def parse_expression(text, names, *, where):
         of :data:`RESERVED_NAMES`.
     where : str
         Location used in error messages, e.g. ``"models/x.toml: [equations] s"``.
+    conditions : list, optional
+        When given, the :class:`DomainCondition` of every written operation that is not
+        defined everywhere is appended to it (in the names of ``names``), so that a
+        caller substituting names can check them again with :func:`check_conditions`.
+    used : set, optional
+        When given, the names of ``names`` that the text refers to are added to it
+        (also those that simplification cancels, as in ``d - d``).
 
     Returns
     -------
@@ -434,7 +624,9 @@ def parse_expression(text, names, *, where):
     Raises
     ------
     ModelError
-        One line naming ``where`` and the column, for any text outside the grammar.
+        One line naming ``where`` and the column, for any text outside the grammar,
+        and for an expression that sympy's automatic simplification would make defined
+        where the written one is not (``x/x``, ``exp(log(x))``, ``sqrt(x)^2``).
 
     Examples
     --------
@@ -450,10 +642,21 @@ def parse_expression(text, names, *, where):
     _check_text(text, where)
     _check_names(names, where)
     source = _Source(text, where)
-    return _Builder(source, names).build(source.parse(), 1)
+    builder = _Builder(source, names)
+    return _kept(builder.build(source.parse(), 1), builder, conditions, used)
 
 
-def parse_constraint(text, names, *, where):
+def _kept(expr, builder, conditions, used):
+    """``expr`` after :func:`check_conditions`, reporting what ``builder`` found."""
+    check_conditions(expr, builder.conditions, subject="the expression")
+    if conditions is not None:
+        conditions += builder.conditions
+    if used is not None:
+        used |= builder.used
+    return expr
+
+
+def parse_constraint(text, names, *, where, conditions=None, used=None):
     """Parse a limit ``lhs <= rhs`` or ``lhs >= rhs`` into its margin ``g``.
 
     Parameters
@@ -464,6 +667,8 @@ def parse_constraint(text, names, *, where):
         As for :func:`parse_expression`.
     where : str
         Location used in error messages.
+    conditions, used : list and set, optional
+        As for :func:`parse_expression`.
 
     Returns
     -------
@@ -474,7 +679,8 @@ def parse_constraint(text, names, *, where):
     Raises
     ------
     ModelError
-        For text outside the grammar, strict or chained comparisons, or no comparison.
+        For text outside the grammar, strict or chained comparisons, no comparison, or
+        sides that automatic simplification would make defined where they are not.
 
     Examples
     --------
@@ -508,7 +714,7 @@ def parse_constraint(text, names, *, where):
     builder = _Builder(source, names)
     lhs = builder.build(node.left, 2)
     rhs = builder.build(node.comparators[0], 2)
-    return rhs - lhs if isinstance(op, ast.LtE) else lhs - rhs
+    return _kept(rhs - lhs if isinstance(op, ast.LtE) else lhs - rhs, builder, conditions, used)
 
 
 class _TidyPrinter(StrPrinter):

@@ -27,6 +27,7 @@ from certify.expr import (
     FUNCTION_NAMES,
     NUMBER_RANGE_MESSAGE,
     TIME_NAME,
+    check_conditions,
     format_number,
     is_number_in_range,
     parse_constraint,
@@ -331,6 +332,9 @@ class _Reader:
         self.label = label
         self.declared = {}  # name -> section that declared it
         self.referenced = set()  # symbols used by expressions as written
+        self.conditions = {}  # expression location -> DomainConditions of its written operations
+        self.used = {}  # expression location -> symbols its text refers to
+        self.carried = {}  # definition symbol -> DomainConditions it brings along, substituted
         self.warnings = []
 
     def error(self, where, message):
@@ -493,9 +497,9 @@ class _Reader:
     def expansion(self, definitions):
         """Map each definition symbol to its expression in states and parameters."""
         symbols = {name: sympy.Symbol(name, real=True) for name in definitions}
-        graph = {
-            name: [other for other, symbol in symbols.items() if symbol in expr.free_symbols]
-            for name, expr in definitions.items()
+        graph = {  # as written: a reference that simplification cancels still counts
+            name: [other for other, symbol in symbols.items() if symbol in self.used[f"[definitions] {name}"]]
+            for name in definitions
         }
         try:
             order = list(graphlib.TopologicalSorter(graph).static_order())
@@ -504,21 +508,40 @@ class _Reader:
             raise self.error("[definitions]", f"definitions refer to each other in a cycle: {cycle}") from None
         expand = {}
         for name in order:
-            expand[symbols[name]] = self.substituted(definitions[name], expand, f"[definitions] {name}")
+            where = f"[definitions] {name}"
+            expand[symbols[name]] = self.substituted(definitions[name], expand, where)
+            self.carried[symbols[name]] = self.kept_conditions(where, expand)
         return expand
 
     def parse(self, text, scope, where, *, limit=False):
-        """Parse one expression (or limit) of the file, noting which names it uses."""
+        """Parse one expression (or limit) of the file, noting which names and conditions it uses."""
         self.text(text, where, required=limit)
         parse = parse_constraint if limit else parse_expression
-        expr = parse(text, scope, where=f"{self.label}: {where}")
-        self.referenced |= expr.free_symbols
+        self.conditions[where], names = [], set()
+        expr = parse(text, scope, where=f"{self.label}: {where}", conditions=self.conditions[where], used=names)
+        self.used[where] = {scope[name] for name in names}
+        self.referenced |= self.used[where]
         return expr
 
+    def kept_conditions(self, where, expand):
+        """The conditions of the expression parsed at ``where`` and of the definitions it uses."""
+        own = [condition.substituted(expand) for condition in self.conditions[where]]
+        used = [symbol for symbol in self.carried if symbol in self.used[where]]
+        return own + [condition for symbol in used for condition in self.carried[symbol]]
+
     def substituted(self, expr, expand, where):
+        """``expr`` with the definitions substituted, refused when that removes a singularity.
+
+        Substitution simplifies as it builds (a definition ``d = 1/x`` in ``x*d`` gives
+        ``1``): every condition of the written operations, here and in the definitions
+        used, must still hold wherever the result is defined.
+        """
         result = expr.xreplace(expand)
         if result.has(*_UNDEFINED):
             raise self.error(where, "undefined once the definitions are substituted (a division by zero or similar)")
+        if expand:
+            subject = f"{where} (with the definitions substituted)"
+            check_conditions(result, self.kept_conditions(where, expand), subject=subject)
         return result
 
     def equations(self, table, states, scope):

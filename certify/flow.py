@@ -18,6 +18,7 @@ See docs/method.md for the exact order of operations, which the checker repeats.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass, field
 from itertools import product
 
@@ -26,7 +27,7 @@ import numpy as np
 from . import interval as iv
 from .evaluate import evaluate_boxes
 
-__all__ = ["FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set"]
+__all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set"]
 
 #: Target width of a step's Taylor remainder, as a share of the set's width.
 REMAINDER_SHARE = 0.01
@@ -317,8 +318,12 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
     return new_m, Q, nrlo, nrhi, endlo, endhi, usable, growth
 
 
+class DeadlinePassed(Exception):
+    """:func:`flow_boxes` was given a deadline and it passed before the batch was done."""
+
+
 def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
-               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None):
+               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None):
     """Enclose the flow of every box of a batch up to a horizon per box.
 
     Parameters
@@ -344,10 +349,17 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     should_stop : callable, optional
         ``should_stop(ids, end_lo, end_hi, t_lo, t_hi) -> bool array`` for boxes past
         `min_horizon`; ``ids`` are batch indices, ``t_lo, t_hi`` enclose the step end time.
+    deadline : float, optional
+        A time of :func:`time.monotonic`; checked before every step.
 
     Returns
     -------
     FlowResult
+
+    Raises
+    ------
+    DeadlinePassed
+        When `deadline` is passed before every box is done (nothing is returned).
     """
     lo = np.asarray(lo, float)
     hi = np.asarray(hi, float)
@@ -374,6 +386,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     for _ in range(max_steps):
         if len(ids) == 0:
             break
+        if deadline is not None and time.monotonic() >= deadline:
+            raise DeadlinePassed
         elo, ehi, ok = _apriori(programs, xlo, xhi, h, params)
         clean = ok.copy()
         while not ok.all():

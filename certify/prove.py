@@ -3,7 +3,9 @@
 Each round computes, for the cells that are new, the flow over a horizon (the tube and
 the image box), then relabels every leaf by the fixpoints of :mod:`certify.labels`, and
 splits the undecided leaves. At the end of every round the labelling is complete and
-valid, so an interrupted run still leaves a proof.
+valid, so an interrupted run still leaves a proof. The time limit is kept within a
+round as well: a round (after the first) that is still running when the limit passes is
+abandoned, and the proof is the one of the last finished round.
 """
 
 from __future__ import annotations
@@ -16,7 +18,7 @@ import numpy as np
 
 from . import interval as iv
 from .cells import CellTree
-from .flow import flow_boxes, FlowResult
+from .flow import DeadlinePassed, flow_boxes, FlowResult
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .taylor import flow_programs
 from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
@@ -64,6 +66,7 @@ class _Snapshot:
     labelling: Labelling
     facts: CellFacts
     round: int
+    n_flows: int
 
 
 @dataclass
@@ -133,6 +136,7 @@ class _Prover:
         self.method = method
         self.budget = budget
         self.progress = progress
+        self.deadline = None  # set by _prove: a time.monotonic() the flow must not run past
         self.params = parameter_enclosures(model)
         self.programs = flow_programs(model, method.order)
         self.limits_programs = self.programs
@@ -200,7 +204,8 @@ class _Prover:
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
                             min_horizon=0.0, max_horizon=m.max_horizon,
                             step=m.step, max_step=m.max_step, min_step=m.min_step,
-                            max_steps=m.max_steps, should_stop=should_stop)
+                            max_steps=m.max_steps, should_stop=should_stop,
+                            deadline=self.deadline)
         batch = len(self.flows)
         self.flows.append(result)
         self.flow_ref[todo] = np.stack([np.full(len(todo), batch), np.arange(len(todo))], 1)
@@ -380,7 +385,9 @@ def prove(model, *, method=None, budget=None, progress=None, focus=None, **optio
     -------
     Proof
         ``interrupted`` is True when a KeyboardInterrupt ended the run; the proof is then
-        the one of the last finished round.
+        the one of the last finished round. The same holds when the time limit passes
+        during a round after the first (``stop_reason`` says so; the first round always
+        finishes, since a proof needs one).
     """
     method, budget = _settings(model, method, budget, options)
     with np.errstate(all="ignore"):  # NaN marks unusable bounds; no warnings needed
@@ -414,16 +421,21 @@ def _prove(model, method, budget, progress, focus):
     interrupted = False
     stop_reason = "nothing left undecided"
     rounds = 0
+    deadline = start + budget.time_limit
     try:
         new = tree.split([0]) if method.start_depth > 0 else np.array([0])
         for _ in range(1, method.start_depth):
             new = tree.split(new)
         while True:
+            # a proof needs one finished round: only later rounds are abandoned at the deadline
+            prover.deadline = None if snapshot is None else deadline
             prover.analyse(new)
+            if snapshot is not None and time.monotonic() >= deadline:
+                raise DeadlinePassed
             leaves, facts, labelling = prover.label()
             rounds += 1
             snapshot = _Snapshot(len(tree), tree.first_child.copy(), leaves, labelling, facts,
-                                 rounds)
+                                 rounds, len(prover.flows))
             elapsed = time.monotonic() - start
             if progress is not None:
                 undecided = labelling.label == UNDECIDED
@@ -451,13 +463,19 @@ def _prove(model, method, budget, progress, focus):
                 break
             und = und[np.argsort(tree.depth[und], kind="stable")][:room]
             new = tree.split(und)
-    except KeyboardInterrupt:
-        interrupted = True
-        stop_reason = "interrupted"
+    except (KeyboardInterrupt, DeadlinePassed) as stop:
+        # keep the last finished round
+        interrupted = isinstance(stop, KeyboardInterrupt)
+        if interrupted:
+            stop_reason = "interrupted"
+        else:
+            stop_reason = (f"time limit {budget.time_limit:g} s reached within round {rounds + 1}; "
+                           f"the proof is the one of round {rounds}")
         if snapshot is None:
             raise
         tree.first_child = snapshot.first_child
         _truncate(tree, snapshot.n_nodes)
+        del prover.flows[snapshot.n_flows:]
     leaves, facts, labelling = snapshot.leaves, snapshot.facts, snapshot.labelling
     proof = Proof(model=model, method=method, budget=budget, params=prover.params, tree=tree,
                   leaves=leaves, labelling=labelling, facts=facts, faces=prover.faces,

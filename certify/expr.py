@@ -42,6 +42,7 @@ __all__ = [
     "DomainCondition",
     "check_conditions",
     "format_expression",
+    "substitute",
     "format_number",
     "is_number_in_range",
     "parse_constraint",
@@ -332,6 +333,42 @@ def check_conditions(expr, conditions, *, subject):
                 "defined there; certify does not change a model's equations: remove the "
                 "cancelling part or write the simplified form if that is what is meant"
             )
+
+
+def substitute(expr, replacements, *, where):
+    """Substitute numbers (or expressions) for names, refusing a cancelled singularity.
+
+    sympy simplifies again while it substitutes: ``(x - k)/(x - 2)`` with ``k = 2``
+    becomes ``1``. Each operation of ``expr`` that is not defined everywhere must stay
+    undefined where it was (:func:`check_conditions`).
+
+    Parameters
+    ----------
+    expr : sympy.Expr
+        An expression as built by :func:`parse_expression`.
+    replacements : Mapping[sympy.Symbol, sympy.Expr]
+        What to substitute (``xreplace``).
+    where : str
+        File and key of ``expr``, for messages.
+
+    Returns
+    -------
+    sympy.Expr
+
+    Raises
+    ------
+    ModelError
+        When the result is undefined (``1/(k - 2)`` with ``k = 2``) or defined somewhere
+        an operation of ``expr`` is not.
+    """
+    result = expr.xreplace(replacements)
+    if result.has(*_UNDEFINED):
+        raise ModelError(f"{where}: undefined once the parameter values are substituted "
+                         "(a division by zero or similar)")
+    conditions = [DomainCondition(kind, arg.xreplace(replacements), f"'{format_expression(node)}'", where)
+                  for node in sympy.preorder_traversal(expr) for kind, arg in _node_conditions(node)]
+    check_conditions(result, conditions, subject="the expression with the parameter values substituted")
+    return result
 
 
 class _Source:

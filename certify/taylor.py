@@ -12,6 +12,7 @@ from functools import lru_cache
 
 import sympy
 
+from .expr import substitute
 from .program import Program, compile_program
 
 __all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs", "fixed_parameters",
@@ -85,12 +86,8 @@ class FlowPrograms:
 
 
 @lru_cache(maxsize=32)
-def _build(equations, states, parameters, limits, order, fixed=()):
+def _build(equations, states, parameters, limits, order):
     inputs = tuple(states) + tuple(parameters)
-    if fixed:
-        values = dict(fixed)
-        equations = tuple(e.xreplace(values) for e in equations)
-        limits = tuple(g.xreplace(values) for g in limits)
     x = sympy.Matrix(states)
     coeffs = taylor_coefficients(equations, states, order)
     middle = coeffs[1:order]
@@ -131,6 +128,12 @@ def flow_programs(model, order):
     -------
     FlowPrograms
 
+    Raises
+    ------
+    ModelError
+        When substituting the parameter values cancels a singularity (see
+        :func:`certify.expr.substitute`).
+
     Notes
     -----
     Parameters given as numbers are substituted as exact rationals before any
@@ -139,10 +142,14 @@ def flow_programs(model, order):
     """
     if model.uses_kinks:
         order = 1
-    fixed = fixed_parameters(model)
-    return _build(tuple(model.equations), tuple(model.state_symbols),
-                  tuple(model.parameter_symbols),
-                  tuple(c.g for c in model.constraints), int(order), fixed)
+    values = dict(fixed_parameters(model))
+    label = model.path or "<model text>"
+    equations = tuple(substitute(e, values, where=f"{label}: [equations] {state.name}")
+                      for state, e in zip(model.states, model.equations))
+    limits = tuple(substitute(c.g, values, where=f"{label}: [constraints] {c.name}")
+                   for c in model.constraints)
+    return _build(equations, tuple(model.state_symbols), tuple(model.parameter_symbols),
+                  limits, int(order))
 
 
 def fixed_parameters(model):

@@ -165,3 +165,40 @@ def test_show_prints_the_equations_certify_evaluates(path, capsys):
         assert parse_expression(printed, names, where="shown") == expr
     for limit, data in zip(model.constraints, shown["constraints"]):
         assert parse_expression(data["g"], names, where="shown") == limit.g
+
+
+PARAMETER_CANCELS = """\
+[model]
+name = "a pole that a parameter value cancels"
+[states]
+x = [0, 4]
+[parameters]
+k = 2
+[equations]
+x = "(x - k)/(x - 2) - x"
+[constraints]
+cap = "x <= 3"
+"""
+
+
+def test_parameter_value_that_cancels_a_singularity_is_refused_by_prover_and_checker():
+    # with k = 2 the written right-hand side is undefined at x = 2 (Python: 0.0/0.0 raises)
+    with pytest.raises(ZeroDivisionError):
+        (2.0 - 2) / (2.0 - 2)
+    k = sympy.Symbol("k", real=True)
+    assert ((X - k) / (X - 2)).xreplace({k: 2}) == 1  # sympy cancels on substitution
+    model = parse_model(PARAMETER_CANCELS, path="m.toml")
+    expected = r"m\.toml: \[equations\] x: '1/\(x - 2\)' is undefined where x - 2 = 0"
+    with pytest.raises(ModelError, match=expected):
+        flow_programs(model, 4)
+    with pytest.raises(ModelError, match=expected):
+        derive_programs(model, 4)
+    # another value keeps the pole, which both sides then see
+    other = model.with_parameters({"k": 3})
+    lo, hi = np.array([[1.5]]), np.array([[2.5]])
+    plo, phi = evaluate_boxes(flow_programs(other, 4).field, lo, hi, parameter_enclosures(other))
+    assert not np.all(np.isfinite([plo[0, 0], phi[0, 0]]))
+    ar = BallArith()
+    ar.enter()
+    (ball,) = evaluate(derive_programs(other, 4).field, ar, [ar.box(lo[:, 0], hi[:, 0]), ar.box(3.0, 3.0)])
+    assert not ar.finite(ball)[0]

@@ -32,6 +32,7 @@ from fractions import Fraction
 import sympy
 
 from ..errors import CertificateError
+from ..expr import substitute
 
 __all__ = ["Program", "CheckPrograms", "compile_expressions", "derive_programs"]
 
@@ -298,13 +299,21 @@ def derive_programs(model, order):
     Returns
     -------
     CheckPrograms
+
+    Raises
+    ------
+    ModelError
+        When substituting the parameter values cancels a singularity.
     """
     if model.uses_kinks:
         order = 1
     fixed = {p.symbol: sympy.Rational(p.lo.numerator, p.lo.denominator)
              for p in model.parameters if not p.is_interval}
-    equations = tuple(e.xreplace(fixed) for e in model.equations)
-    limits = tuple(c.g.xreplace(fixed) for c in model.constraints)
+    label = model.path or "<model text>"  # substitution must not cancel a singularity
+    equations = tuple(substitute(e, fixed, where=f"{label}: [equations] {state.name}")
+                      for state, e in zip(model.states, model.equations))
+    limits = tuple(substitute(c.g, fixed, where=f"{label}: [constraints] {c.name}")
+                   for c in model.constraints)
     states = tuple(model.state_symbols)
     inputs = states + tuple(model.parameter_symbols)
     x = sympy.Matrix(states)

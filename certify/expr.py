@@ -192,28 +192,39 @@ _FAILS_WHERE = {_NONZERO: "= 0", _POSITIVE: "<= 0", _NONNEGATIVE: "< 0"}
 
 @dataclass(frozen=True)
 class DomainCondition:
-    """Where one written operation is defined: ``arg != 0``, ``arg > 0`` or ``arg >= 0``.
+    """A written operation that is not defined everywhere, and where it is written.
 
     Attributes
     ----------
-    kind : str
-        ``"nonzero"``, ``"positive"`` or ``"nonnegative"``.
-    arg : sympy.Expr
-        The operand as built (e.g. the divisor), in the names of the expression.
+    function : sympy.Pow, sympy.log or sympy.tan
+        The operation: a division by ``b`` is the power ``b^-1``, ``sqrt(a)`` is ``a^(1/2)``.
+    args : tuple of sympy.Expr
+        Its operands as built (base and exponent of a power), in the names of the expression.
     what : str
         The operation in words, e.g. ``"the division by x"``.
     where : str
         File, key and column of the operation, e.g. ``"m.toml: [equations] x: column 3"``.
     """
 
-    kind: str
-    arg: sympy.Expr
+    function: type
+    args: tuple
     what: str
     where: str
 
+    def requirements(self):
+        """``(kind, arg)`` pairs: the operation is defined where every ``arg`` is of its kind.
+
+        ``kind`` is ``"nonzero"``, ``"positive"`` or ``"nonnegative"``; the pairs follow
+        certify's evaluation of the operands as they are now (an exponent that became a
+        number by substitution counts as that number).
+        """
+        if self.function is sympy.Pow:
+            return _power_conditions(*self.args)
+        return _call_conditions(self.function, self.args[0])
+
     def substituted(self, replacements):
-        """The same condition with names replaced (``xreplace``) in its operand."""
-        return dataclasses.replace(self, arg=self.arg.xreplace(replacements))
+        """The same operation with names replaced (``xreplace``) in its operands."""
+        return dataclasses.replace(self, args=tuple(arg.xreplace(replacements) for arg in self.args))
 
 
 def _power_conditions(base, exponent):
@@ -236,8 +247,6 @@ def _call_conditions(function, arg):
     """``(kind, arg)`` pairs under which a one-argument function call is defined."""
     if function is sympy.log:
         return [(_POSITIVE, arg)]
-    if function is sympy.sqrt:
-        return _power_conditions(arg, sympy.S.Half)
     if function is sympy.tan:
         return [(_NONZERO, sympy.cos(arg))]
     return []
@@ -322,11 +331,11 @@ def check_conditions(expr, conditions, *, subject):
         The test is syntactic and errs towards refusing.
     """
     known = None
-    for condition in conditions:
+    for condition, (kind, arg) in ((c, pair) for c in conditions for pair in c.requirements()):
         if known is None:
             known = _guaranteed(expr)
-        if not _atoms(condition.kind, condition.arg) <= known:
-            fails = f"{format_expression(condition.arg)} {_FAILS_WHERE[condition.kind]}"
+        if not _atoms(kind, arg) <= known:
+            fails = f"{format_expression(arg)} {_FAILS_WHERE[kind]}"
             raise ModelError(
                 f"{condition.where}: {condition.what} is undefined where {fails}, but automatic "
                 f"simplification turns {subject} into '{format_expression(expr)}', which is "
@@ -335,21 +344,24 @@ def check_conditions(expr, conditions, *, subject):
             )
 
 
-def substitute(expr, replacements, *, where):
-    """Substitute numbers (or expressions) for names, refusing a cancelled singularity.
+def substitute(expr, conditions, replacements, *, label, key):
+    """Substitute numbers for names, refusing a singularity that simplification cancels.
 
     sympy simplifies again while it substitutes: ``(x - k)/(x - 2)`` with ``k = 2``
-    becomes ``1``. Each operation of ``expr`` that is not defined everywhere must stay
-    undefined where it was (:func:`check_conditions`).
+    becomes ``1``. Every written operation, with the numbers substituted, must stay
+    undefined where it is (:func:`check_conditions`); an exponent that becomes a number
+    counts as that number (``x^n`` with ``n = 2`` is ``x^2``, defined for every ``x``).
 
     Parameters
     ----------
     expr : sympy.Expr
         An expression as built by :func:`parse_expression`.
+    conditions : iterable of DomainCondition
+        The written operations of ``expr`` (``Model.conditions``).
     replacements : Mapping[sympy.Symbol, sympy.Expr]
         What to substitute (``xreplace``).
-    where : str
-        File and key of ``expr``, for messages.
+    label, key : str
+        The file and the key of ``expr`` (``"[equations] x"``), for messages.
 
     Returns
     -------
@@ -359,15 +371,14 @@ def substitute(expr, replacements, *, where):
     ------
     ModelError
         When the result is undefined (``1/(k - 2)`` with ``k = 2``) or defined somewhere
-        an operation of ``expr`` is not.
+        a written operation is not.
     """
     result = expr.xreplace(replacements)
     if result.has(*_UNDEFINED):
-        raise ModelError(f"{where}: undefined once the parameter values are substituted "
+        raise ModelError(f"{label}: {key}: undefined once the parameter values are substituted "
                          "(a division by zero or similar)")
-    conditions = [DomainCondition(kind, arg.xreplace(replacements), f"'{format_expression(node)}'", where)
-                  for node in sympy.preorder_traversal(expr) for kind, arg in _node_conditions(node)]
-    check_conditions(result, conditions, subject="the expression with the parameter values substituted")
+    check_conditions(result, [condition.substituted(replacements) for condition in conditions],
+                     subject=f"{key} with the parameter values substituted")
     return result
 
 
@@ -480,10 +491,11 @@ class _Builder:
         self.conditions = []
         self.used = set()
 
-    def note(self, node, pairs, what):
-        """Record the ``(kind, arg)`` pairs of the operation written at ``node``."""
-        where = self.source.node_position(node)
-        self.conditions += [DomainCondition(kind, arg, what, where) for kind, arg in pairs]
+    def note(self, node, function, args, what):
+        """Record the operation ``function(*args)`` written at ``node``, if it has a condition."""
+        condition = DomainCondition(function, tuple(args), what, self.source.node_position(node))
+        if condition.requirements():
+            self.conditions.append(condition)
 
     def fail(self, node, message):
         return self.source.node_error(node, message)
@@ -577,7 +589,8 @@ class _Builder:
                 if isinstance(op, ast.Div):
                     if value == 0:
                         raise self.fail(operand, "division by zero")
-                    self.note(operand, [(_NONZERO, value)], f"the division by {format_expression(value)}")
+                    self.note(operand, sympy.Pow, (value, sympy.S.NegativeOne),
+                              f"the division by {format_expression(value)}")
                     value = sympy.Pow(value, -1)
                 factors.append(value)
             return sympy.Mul(*factors)
@@ -595,7 +608,7 @@ class _Builder:
             bits = base.p.bit_length() + base.q.bit_length()
             if bits * abs(exponent) > _MAX_EXACT_BITS:
                 raise self.fail(node, "this power of a number is too large to keep exactly")
-        self.note(node, _power_conditions(base, exponent),
+        self.note(node, sympy.Pow, (base, exponent),
                   f"the power ({format_expression(base)})^({format_expression(exponent)})")
         return self._real(node, sympy.Pow(base, exponent))
 
@@ -622,7 +635,8 @@ class _Builder:
             args = [self.build(arg, depth + 1) for arg in node.args]
             function = _ONE_ARGUMENT.get(name) or _TWO_OR_MORE[name]
             if name in _ONE_ARGUMENT:
-                self.note(node, _call_conditions(function, args[0]), f"{name}({format_expression(args[0])})")
+                operation = (sympy.Pow, (args[0], sympy.S.Half)) if name == "sqrt" else (function, args)
+                self.note(node, *operation, f"{name}({format_expression(args[0])})")
             return self._real(node, function(*args))
         if name in self.names or name in CONSTANTS:
             raise self.fail(node, f"{name!r} is not a function")

@@ -27,6 +27,7 @@ from certify.expr import (
     FUNCTION_NAMES,
     NUMBER_RANGE_MESSAGE,
     TIME_NAME,
+    DomainCondition,
     check_conditions,
     format_number,
     is_number_in_range,
@@ -138,7 +139,11 @@ class Model:
 
     ``equations`` are the right-hand sides in state order with definitions substituted,
     in state and parameter symbols. ``definitions`` are kept as written (they may use
-    each other). ``sha256`` is the hash of the UTF-8 bytes of ``text``.
+    each other). ``sha256`` is the hash of the UTF-8 bytes of ``text``. ``conditions``
+    maps ``"[equations] x"`` and ``"[constraints] name"`` to the written operations that
+    are not defined everywhere (divisions, roots, ``log``, ...), those of the definitions
+    used included, in state and parameter symbols: substituting parameter values must
+    keep them (:func:`certify.expr.substitute`).
     """
 
     name: str
@@ -154,6 +159,7 @@ class Model:
     constraints: tuple[Constraint, ...]
     settings: dict
     warnings: tuple[str, ...]
+    conditions: dict[str, tuple[DomainCondition, ...]]
 
     @property
     def state_symbols(self):
@@ -164,6 +170,16 @@ class Model:
     def parameter_symbols(self):
         """tuple of sympy.Symbol: the parameters' symbols, in file order."""
         return tuple(parameter.symbol for parameter in self.parameters)
+
+    @property
+    def equation_keys(self):
+        """tuple of str: ``"[equations] x"`` per state, in state order (keys of ``conditions``)."""
+        return tuple(f"[equations] {state.name}" for state in self.states)
+
+    @property
+    def constraint_keys(self):
+        """tuple of str: ``"[constraints] name"`` per limit (keys of ``conditions``)."""
+        return tuple(f"[constraints] {constraint.name}" for constraint in self.constraints)
 
     @property
     def window(self):
@@ -335,6 +351,7 @@ class _Reader:
         self.conditions = {}  # expression location -> DomainConditions of its written operations
         self.used = {}  # expression location -> symbols its text refers to
         self.carried = {}  # definition symbol -> DomainConditions it brings along, substituted
+        self.kept = {}  # expression location -> its DomainConditions, definitions substituted
         self.warnings = []
 
     def error(self, where, message):
@@ -376,6 +393,8 @@ class _Reader:
             constraints=constraints,
             settings=settings,
             warnings=tuple(self.warnings),
+            conditions={where: self.kept[where] for where in self.kept
+                        if where.startswith(("[equations]", "[constraints]"))},
         )
 
     def table(self, data, section):
@@ -510,7 +529,7 @@ class _Reader:
         for name in order:
             where = f"[definitions] {name}"
             expand[symbols[name]] = self.substituted(definitions[name], expand, where)
-            self.carried[symbols[name]] = self.kept_conditions(where, expand)
+            self.carried[symbols[name]] = self.kept[where]
         return expand
 
     def parse(self, text, scope, where, *, limit=False):
@@ -539,9 +558,10 @@ class _Reader:
         result = expr.xreplace(expand)
         if result.has(*_UNDEFINED):
             raise self.error(where, "undefined once the definitions are substituted (a division by zero or similar)")
+        self.kept[where] = tuple(self.kept_conditions(where, expand))
         if expand:
             subject = f"{where} (with the definitions substituted)"
-            check_conditions(result, self.kept_conditions(where, expand), subject=subject)
+            check_conditions(result, self.kept[where], subject=subject)
         return result
 
     def equations(self, table, states, scope):

@@ -144,10 +144,10 @@ def flow_programs(model, order):
         order = 1
     values = dict(fixed_parameters(model))
     label = model.path or "<model text>"
-    equations = tuple(substitute(e, values, where=f"{label}: [equations] {state.name}")
-                      for state, e in zip(model.states, model.equations))
-    limits = tuple(substitute(c.g, values, where=f"{label}: [constraints] {c.name}")
-                   for c in model.constraints)
+    equations = tuple(substitute(e, model.conditions[key], values, label=label, key=key)
+                      for key, e in zip(model.equation_keys, model.equations))
+    limits = tuple(substitute(c.g, model.conditions[key], values, label=label, key=key)
+                   for key, c in zip(model.constraint_keys, model.constraints))
     return _build(equations, tuple(model.state_symbols), tuple(model.parameter_symbols),
                   limits, int(order))
 

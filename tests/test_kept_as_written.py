@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -182,13 +183,13 @@ cap = "x <= 3"
 
 
 def test_parameter_value_that_cancels_a_singularity_is_refused_by_prover_and_checker():
-    # with k = 2 the written right-hand side is undefined at x = 2 (Python: 0.0/0.0 raises)
-    with pytest.raises(ZeroDivisionError):
-        (2.0 - 2) / (2.0 - 2)
+    # with k = 2 the written right-hand side is undefined at x = 2 (a division by 0)
     k = sympy.Symbol("k", real=True)
     assert ((X - k) / (X - 2)).xreplace({k: 2}) == 1  # sympy cancels on substitution
     model = parse_model(PARAMETER_CANCELS, path="m.toml")
-    expected = r"m\.toml: \[equations\] x: '1/\(x - 2\)' is undefined where x - 2 = 0"
+    expected = (r"m\.toml: \[equations\] x: column 10: the division by x - 2 is undefined where "
+                r"x - 2 = 0, but automatic simplification turns \[equations\] x with the parameter "
+                r"values substituted into '1 - x'")
     with pytest.raises(ModelError, match=expected):
         flow_programs(model, 4)
     with pytest.raises(ModelError, match=expected):
@@ -202,3 +203,26 @@ def test_parameter_value_that_cancels_a_singularity_is_refused_by_prover_and_che
     ar.enter()
     (ball,) = evaluate(derive_programs(other, 4).field, ar, [ar.box(lo[:, 0], hi[:, 0]), ar.box(3.0, 3.0)])
     assert not ar.finite(ball)[0]
+
+
+@pytest.mark.parametrize(("value", "equation", "refused"), [
+    # x^n/x is x^(n-1) for x != 0 and undefined at x = 0
+    ("1", "x^n/x - x", "column 5: the division by x"),
+    ("2", "x^n/x - x", "column 5: the division by x"),
+    ("2", "x^n*x^(-2) - x", "column 5: the power (x)^(-2)"),
+    # an exponent given as a number is that number: x^2/(1 + x^2) is defined for every x
+    ("2", "x^n/(1 + x^n) - x", None),
+    # a range of exponents keeps x^(n-1) = exp((n-1) log x), undefined for x <= 0
+    ("[1, 3]", "x^n/x - x", None),
+])
+def test_parameter_exponents(value, equation, refused):
+    text = PARAMETER_CANCELS.replace("k = 2", f"n = {value}").replace(
+        '"(x - k)/(x - 2) - x"', f'"{equation}"')
+    model = parse_model(text, path="m.toml")
+    if refused is None:
+        assert flow_programs(model, 4).field is not None
+        assert derive_programs(model, 4).field is not None
+        return
+    for derive in (flow_programs, derive_programs):
+        with pytest.raises(ModelError, match=re.escape(f"m.toml: [equations] x: {refused}")):
+            derive(model, 4)

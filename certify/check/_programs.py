@@ -310,10 +310,10 @@ def derive_programs(model, order):
     fixed = {p.symbol: sympy.Rational(p.lo.numerator, p.lo.denominator)
              for p in model.parameters if not p.is_interval}
     label = model.path or "<model text>"  # substitution must not cancel a singularity
-    equations = tuple(substitute(e, fixed, where=f"{label}: [equations] {state.name}")
-                      for state, e in zip(model.states, model.equations))
-    limits = tuple(substitute(c.g, fixed, where=f"{label}: [constraints] {c.name}")
-                   for c in model.constraints)
+    equations = tuple(substitute(e, model.conditions[key], fixed, label=label, key=key)
+                      for key, e in zip(model.equation_keys, model.equations))
+    limits = tuple(substitute(c.g, model.conditions[key], fixed, label=label, key=key)
+                   for key, c in zip(model.constraint_keys, model.constraints))
     states = tuple(model.state_symbols)
     inputs = states + tuple(model.parameter_symbols)
     x = sympy.Matrix(states)

@@ -13,6 +13,8 @@ References named beside the checks:
   ``(y^2 - 1) / (y + 1) = y - 1`` (polynomial division), a rational identity.
 * SIR: ``S' = -beta S I`` is 0 on ``S = 0`` and ``I' = (beta S - gamma) I`` on ``I = 0``
   (Kermack & McKendrick 1927; by inspection).
+* ``x' = -x`` and ``x' = -1`` reach ``x = 1/4`` from ``x0`` at ``ln(4 x0)`` and
+  ``x0 - 1/4`` (closed forms).
 """
 
 from pathlib import Path
@@ -182,3 +184,52 @@ def test_the_epidemic_rest_lines_stay_invariant():
     kinds = _prover_kinds(model)
     assert kinds[(0, "lo")] == "invariant" and kinds[(1, "lo")] == "invariant"
     assert _checker_confirms(model, 0, "lo") and _checker_confirms(model, 1, "lo")
+
+
+STILL_STATE = """\
+[model]
+name = "decay beside a state at rest"
+[states]
+x = [0, 2]
+y = [0, 1]
+[equations]
+x = "RATE"
+y = "0"
+[constraints]
+floor = "x >= 0.25"
+"""
+
+
+def _touching_tube(tmp_path, rate):
+    """Prove the model, then shrink the y side of one cell's first tube to the cell's
+    own y range: y' = 0 reaches it exactly, so that inclusion is not strict."""
+    tmp_path.mkdir()
+    source = tmp_path / "still.toml"
+    source.write_text(STILL_STATE.replace("RATE", rate))
+    path = tmp_path / "still.json.gz"
+    write_certificate(path, certificate_data(prove(load_model(source), max_depth=3), {}))
+    assert check_certificate(path, jobs=1).valid
+    data = load_certificate_json(path)
+    cells = data["cells"]
+    start = decode_array(cells["step_start"])
+    cell = next(c for c in range(cells["count"])
+                if start[c + 1] > start[c] and cells["label"][c] in ("safe", "doomed"))
+    depth, index = decode_array(cells["depth"])[cell], decode_array(cells["index"])[cell]
+    tube = decode_array(cells["step_E"])
+    tube[start[cell], 1] = [index[1] / 2 ** depth, (index[1] + 1) / 2 ** depth]
+    cells["step_E"] = encode_array(tube)
+    write_certificate(path, data)
+    return check_certificate(path, jobs=1), cell
+
+
+def test_a_tube_touched_on_a_side_needs_a_finite_jacobian(tmp_path):
+    # y' = 0 with x' = -x: Df = diag(-1, 0) is finite everywhere, so the touching side is
+    # covered by uniqueness. With x' = min(-1, -x/10) (= -1 on the window, a kink) there
+    # is no Jacobian: the strict inclusion is required and the same edit is rejected.
+    # Both fields cross x = 0.25 from every start in x > 1/4 (closed forms x0 e^-t and
+    # x0 - t), so the cells there are doomed and have steps to edit.
+    smooth, _ = _touching_tube(tmp_path / "smooth", "-x")
+    assert smooth.valid, smooth.failures
+    kinked, cell = _touching_tube(tmp_path / "kinked", "min(-1, -x/10)")
+    assert not kinked.valid
+    assert [f["cell"] for f in kinked.failures] == [cell]

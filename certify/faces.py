@@ -9,10 +9,10 @@ A face is
   through it (at the first exit time the outward rate would have to be >= 0);
 * ``invariant`` when the face's hyperplane ``x_k = b`` is invariant: the normal
   component ``f_k`` vanishes identically on it (a symbolic identity in the other states
-  and the parameters, decided by :func:`zero_on_hyperplane`), and ``f`` is Lipschitz on a slab around the face (every Jacobian
-  entry has a finite enclosure). By uniqueness, a solution that meets the face stays on
-  the hyperplane near that time, in both directions: no trajectory leaves the window
-  through it. Lines of rest states (no infected people, no biomass) are such faces;
+  and the parameters, decided by :func:`zero_on_hyperplane`), and ``f`` is Lipschitz on
+  a slab around the face (every Jacobian entry has a finite enclosure). By uniqueness,
+  a solution that meets the face stays on the hyperplane near that time, in both
+  directions: no trajectory leaves the window through it. Lines of rest states (no infected people, no biomass) are such faces;
 * ``open`` otherwise.
 
 Parts of image boxes beyond a ``limit``, ``inflow`` or ``invariant`` face are harmless

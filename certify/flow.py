@@ -207,7 +207,8 @@ def _is_apriori(programs, nlo, nhi, elo, ehi, params):
         if programs.jacobian is None:
             inside &= ~touching
         else:
-            jlo, jhi = evaluate_boxes(programs.jacobian, elo[touching], ehi[touching], params)
+            jlo, jhi = evaluate_boxes(programs.jacobian, elo[touching], ehi[touching],
+                                      params)
             inside[touching] = np.all(np.isfinite(jlo) & np.isfinite(jhi), axis=1)
     return inside
 

@@ -9,10 +9,10 @@ A face is
   through it (at the first exit time the outward rate would have to be >= 0);
 * ``invariant`` when the face's hyperplane ``x_k = b`` is invariant: the normal
   component ``f_k`` vanishes identically on it (a symbolic identity in the other states
-  and the parameters), and ``f`` is Lipschitz on a slab around the face (every Jacobian
-  entry has a finite enclosure). By uniqueness, a solution that meets the face stays on
-  the hyperplane near that time, in both directions: no trajectory leaves the window
-  through it. Lines of rest states (no infected people, no biomass) are such faces;
+  and the parameters, decided by :func:`zero_on_hyperplane`), and ``f`` is Lipschitz on
+  a slab around the face (every Jacobian entry has a finite enclosure). By uniqueness,
+  a solution that meets the face stays on the hyperplane near that time, in both
+  directions: no trajectory leaves the window through it. Lines of rest states (no infected people, no biomass) are such faces;
 * ``open`` otherwise.
 
 Parts of image boxes beyond a ``limit``, ``inflow`` or ``invariant`` face are harmless
@@ -73,13 +73,27 @@ def _bisect_until_proven(lo, hi, axes, depth, prove_pieces):
 
 
 def zero_on_hyperplane(expression, symbol, value):
-    """True when `expression` simplifies to 0 once `symbol` is replaced by `value`.
+    """True when `expression` is proven to be 0 once `symbol` is replaced by `value`.
 
-    The model's symbols are real, so a 0 means the identity holds for every real value
-    of the other states and of the parameters, which is what the invariance argument
-    needs; False only means "not shown".
+    Two decision rules, no heuristic simplification: a rational function (no floats) is
+    0 exactly when ``cancel(together(e))`` is 0; any other expression only when it is a
+    structural zero (:func:`_structural_zero`). A 0 holds for every real value of the
+    other states and of the parameters, which is what the invariance argument needs;
+    False only means "not shown".
     """
-    return sympy.simplify(expression.xreplace({symbol: value})) == 0
+    e = expression.xreplace({symbol: value})
+    if e.is_rational_function() and not e.has(sympy.Float):
+        return sympy.cancel(sympy.together(e)) == 0
+    return _structural_zero(e)
+
+
+def _structural_zero(e):
+    """``e`` is the number 0, a sum of structural zeros, or a product with one as factor."""
+    if e.is_Add:
+        return all(_structural_zero(term) for term in e.args)
+    if e.is_Mul:
+        return any(_structural_zero(factor) for factor in e.args)
+    return bool(e.is_Number and e == 0)
 
 
 def _lipschitz_near(model, jacobian, k, b, params, depth):

@@ -2,8 +2,9 @@
 
 One step of size ``h`` from a set ``S = {m + A r : r in [r]}`` with box hull ``X``:
 
-1. A-priori enclosure (Picard-Lindelof): a box ``E`` with ``X + [0, h] f(E) ⊆ E``;
-   then every solution from ``X`` stays in ``E`` on ``[0, h]``.
+1. A-priori enclosure (Picard-Lindelof): a box ``E`` with ``X + [0, h] f(E)`` inside
+   the interior of ``E``, or inside ``E`` with ``Df`` finite on ``E``; then every
+   solution from ``X`` stays in ``E`` on ``[0, h]``.
 2. Taylor step with the mean-value form (Moore 1966; Lohner 1987)::
 
        phi_h(x) in T(m) + DT(J) A [r] + h^q f^[q](E),   T(x) = sum_{k<q} h^k f^[k](x)
@@ -187,44 +188,60 @@ def _time_box(h, flo, fhi):
 BLEND = 0.25
 
 
-def _apriori(programs, xlo, xhi, h, params, iterations=4):
-    """Find E with X + [0,h] f(E) ⊆ E; returns (elo, ehi, ok)."""
-    hh = h[:, None]
-    flo, fhi = evaluate_boxes(programs.field, xlo, xhi, params)
+def _reach(programs, xlo, xhi, hh, elo, ehi, params):
+    """``X + [0, h] f(E)`` (outward rounded)."""
+    flo, fhi = evaluate_boxes(programs.field, elo, ehi, params)
     dlo, dhi = _time_box(hh, flo, fhi)
-    elo, ehi = iv.add(xlo, xhi, dlo, dhi)
+    return iv.add(xlo, xhi, dlo, dhi)
+
+
+def _is_apriori(programs, nlo, nhi, elo, ehi, params):
+    """Whether ``E`` is an a-priori box given its reach ``N = X + [0, h] f(E)``.
+
+    ``N`` must lie in the interior of ``E``; where a side of ``N`` touches the side of
+    ``E``, ``Df`` must be finite on ``E`` (uniqueness, docs/method.md step 1; never for
+    programs without a Jacobian: order 1 and models with kinks).
+    """
+    inside = np.all((nlo >= elo) & (nhi <= ehi), axis=1)
+    touching = inside & ~np.all((nlo > elo) & (nhi < ehi), axis=1)
+    if touching.any():
+        if programs.jacobian is None:
+            inside &= ~touching
+        else:
+            jlo, jhi = evaluate_boxes(programs.jacobian, elo[touching], ehi[touching],
+                                      params)
+            inside[touching] = np.all(np.isfinite(jlo) & np.isfinite(jhi), axis=1)
+    return inside
+
+
+def _apriori(programs, xlo, xhi, h, params, iterations=4):
+    """Find an a-priori box E (see :func:`_is_apriori`); returns (elo, ehi, ok)."""
+    hh = h[:, None]
+    elo, ehi = _reach(programs, xlo, xhi, hh, xlo, xhi, params)
     ok = np.zeros(len(h), bool)
     out_lo, out_hi = elo.copy(), ehi.copy()
     for _ in range(iterations):
         w = ehi - elo
         pad = 0.1 * w + 1e-12 * np.abs(elo) + 1e-300
         elo, ehi = iv.round_down(elo - pad), iv.round_up(ehi + pad)
-        flo, fhi = evaluate_boxes(programs.field, elo, ehi, params)
-        dlo, dhi = _time_box(hh, flo, fhi)
-        nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
-        inside = np.all((nlo >= elo) & (nhi <= ehi), axis=1) & ~ok
+        nlo, nhi = _reach(programs, xlo, xhi, hh, elo, ehi, params)
+        inside = _is_apriori(programs, nlo, nhi, elo, ehi, params) & ~ok
         out_lo[inside], out_hi[inside] = elo[inside], ehi[inside]
         ok |= inside
         if ok.all():
             break
         elo, ehi = nlo, nhi
     # tighten: E' = X + [0,h] f(E) is usually an a-priori box too, and a smaller one
-    flo, fhi = evaluate_boxes(programs.field, out_lo, out_hi, params)
-    dlo, dhi = _time_box(hh, flo, fhi)
-    tlo, thi = iv.add(xlo, xhi, dlo, dhi)
-    flo, fhi = evaluate_boxes(programs.field, tlo, thi, params)
-    dlo, dhi = _time_box(hh, flo, fhi)
-    nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
-    tight = ok & np.all((nlo >= tlo) & (nhi <= thi), axis=1)
+    tlo, thi = _reach(programs, xlo, xhi, hh, out_lo, out_hi, params)
+    nlo, nhi = _reach(programs, xlo, xhi, hh, tlo, thi, params)
+    tight = ok & _is_apriori(programs, nlo, nhi, tlo, thi, params)
     # keep a share BLEND of the room between the tight box and the found one: the
     # checker's ball arithmetic evaluates f a little wider and needs that room
     blo = np.minimum(tlo, iv.round_down(tlo + BLEND * (out_lo - tlo)))
     bhi = np.maximum(thi, iv.round_up(thi + BLEND * (out_hi - thi)))
     blo, bhi = np.maximum(blo, out_lo), np.minimum(bhi, out_hi)
-    flo, fhi = evaluate_boxes(programs.field, blo, bhi, params)
-    dlo, dhi = _time_box(hh, flo, fhi)
-    nlo, nhi = iv.add(xlo, xhi, dlo, dhi)
-    blended = tight & np.all((nlo >= blo) & (nhi <= bhi), axis=1)
+    nlo, nhi = _reach(programs, xlo, xhi, hh, blo, bhi, params)
+    blended = ok & _is_apriori(programs, nlo, nhi, blo, bhi, params)
     out_lo[tight], out_hi[tight] = tlo[tight], thi[tight]
     out_lo[blended], out_hi[blended] = blo[blended], bhi[blended]
     return out_lo, out_hi, ok

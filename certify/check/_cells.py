@@ -4,8 +4,9 @@ Everything runs vectorized over a chunk of cells, step by step, in one of the tw
 arithmetics of :mod:`certify.check._arith`. For step ``k`` of a cell (stored: step size
 ``h``, a-priori box ``E``, and the coordinates ``m``, ``A`` of the set at the step end):
 
-* Picard: ``X_k + [0, h] f(E) ⊆ E``, so every solution from ``X_k`` stays in ``E`` on
-  ``[0, h]``;
+* Picard: ``X_k + [0, h] f(E) ⊆ E`` with every side strict (inside the interior of
+  ``E``), or, where a side is reached exactly, every entry of ``Df`` finite on ``E``;
+  then every solution from ``X_k`` stays in ``E`` on ``[0, h]``;
 * mean-value Taylor step: ``Y = T(m_k) + h^q f^[q](E)``, ``M = DT(J) A_k`` with
   ``J = hull(X_k, m_k)`` (for ``Df`` cut at ``m_k`` into ``2^n`` parts where the
   prover cuts its own); the checker's own new coordinates
@@ -218,7 +219,10 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
 
 
 def _picard(ar, progs, params, hh, X_bounds, E_bounds):
-    """Field and limit rates on the boxes, and whether ``X + [0, h] f(E) ⊆ E``.
+    """Field and limit rates on the boxes, and whether ``E`` is an a-priori box.
+
+    ``X + [0, h] f(E)`` must lie in ``E``, strictly on every side or else with ``Df``
+    finite on ``E`` (see :func:`_lipschitz`).
 
     Returns
     -------
@@ -232,15 +236,37 @@ def _picard(ar, progs, params, hh, X_bounds, E_bounds):
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
     tube = _joined(ar, progs.on_tube, ar.cover(E, ar.pieces.tube), params)
     ok = np.ones(len(E_bounds), bool)
+    strict = np.ones(len(E_bounds), bool)
     reach = []
     for k in range(n):
         move_lo, move_hi = _span(ar, hh, tube[k])
         low = ar.sum_lower(X_bounds[0][k], move_lo)
         high = ar.sum_upper(X_bounds[1][k], move_hi)
-        ok &= _true(low >= ar.lower(ar.exact(E_bounds[:, k, 0])))
-        ok &= _true(high <= ar.upper(ar.exact(E_bounds[:, k, 1])))
+        e_lo = ar.lower(ar.exact(E_bounds[:, k, 0]))
+        e_hi = ar.upper(ar.exact(E_bounds[:, k, 1]))
+        ok &= _true(low >= e_lo) & _true(high <= e_hi)
+        strict &= _true(low > e_lo) & _true(high < e_hi)
         reach.append((low, high))
+    # a side reached exactly needs uniqueness: Df finite on E (docs/method.md, step 1)
+    touching = np.flatnonzero(ok & ~strict)
+    if len(touching):
+        ok[touching] = _lipschitz(ar, progs, params, [ar.take(e, touching) for e in E],
+                                  len(touching))
     return tube, ok, reach
+
+
+def _lipschitz(ar, progs, params, E, count):
+    """Bool array: every entry of ``Df`` has a finite enclosure on the box ``E``.
+
+    Models with kinks (``abs``, ``min``, ``max``) have no Jacobian program: False.
+    """
+    if progs.field_jacobian is None:
+        return np.zeros(count, bool)
+    entries = _joined(ar, progs.field_jacobian, ar.cover(E, ar.pieces.tube), params)
+    finite = np.ones(count, bool)
+    for entry in entries:
+        finite &= np.asarray(ar.finite(entry), bool)
+    return finite
 
 
 def _search_tubes(ar, progs, params, hh, X_bounds, E_bounds, tube, ok, reach):

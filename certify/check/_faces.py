@@ -3,8 +3,9 @@
 * ``limit``: bisect the face exactly until a limit is proven violated on every piece.
 * ``inflow``: the same, where a piece may instead have a strictly inward normal
   component of ``f``.
-* ``invariant``: the normal component ``f_k`` simplifies to 0 once ``x_k`` is replaced
-  by the face's exact value (sympy, with the model's real symbols), and every entry of
+* ``invariant``: the normal component ``f_k`` is proven 0 once ``x_k`` is replaced by
+  the face's exact value (:func:`_identically_zero`: exact for rational functions,
+  otherwise only a structural zero; the model's symbols are real), and every entry of
   the Jacobian of ``f`` is finite on a slab around the face: ``|x_k - b| <= d_k`` and
   every other side overhanging by ``d_j``, with ``d = side / 1024``. Then ``f`` is
   Lipschitz near the face and, by uniqueness, a solution that meets the face stays on
@@ -51,7 +52,7 @@ def confirm_face(context, axis, side, kind):
         if programs.field_jacobian is None:
             return False
         normal = programs.equations[axis].xreplace({programs.states[axis]: value})
-        if sympy.simplify(normal) != 0:
+        if not _identically_zero(normal):
             return False
         lo, hi = [], []
         for k, (a, b) in enumerate(window):
@@ -71,6 +72,27 @@ def confirm_face(context, axis, side, kind):
     others = [k for k in range(n) if k != axis]
     return _bisect(np.array([lo], dtype=object), np.array([hi], dtype=object), others,
                    proven)
+
+
+def _identically_zero(e):
+    """Whether the sympy expression `e` is 0 for every real value of its symbols.
+
+    A rational function without floats: ``cancel(together(e)) == 0``, which decides it.
+    Anything else: only a structural zero (:func:`_structural_zero`). False means "not
+    shown", and the face is then treated as open.
+    """
+    if e.is_rational_function() and not e.has(sympy.Float):
+        return sympy.cancel(sympy.together(e)) == 0
+    return _structural_zero(e)
+
+
+def _structural_zero(e):
+    """``e`` is the number 0, a sum of structural zeros, or a product with one as factor."""
+    if e.is_Add:
+        return all(_structural_zero(term) for term in e.args)
+    if e.is_Mul:
+        return any(_structural_zero(factor) for factor in e.args)
+    return bool(e.is_Number and e == 0)
 
 
 def _bisect(lo, hi, axes, proven):

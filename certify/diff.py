@@ -25,6 +25,7 @@ import numpy as np
 from .certificate import decode_array, read_certificate
 from .errors import CertificateError
 from .expr import format_expression, format_number
+from .palette import TRANSITION_COLOURS
 from .evaluate import evaluate_limits
 from .taylor import flow_programs
 from .volumes import axis_threshold
@@ -33,15 +34,6 @@ __all__ = ["LABELS", "FAIL_ON", "DiffResult", "diff_certificates", "plot_diff", 
 
 LABELS = ("safe", "doomed", "outside", "undecided")
 FAIL_ON = ("safe-loss", "any-change")
-#: Colours of label changes: losses of safe in reds, gains of safe in greens.
-TRANSITION_COLOURS = {
-    ("safe", "doomed"): "#b2182b", ("safe", "outside"): "#67001f",
-    ("safe", "undecided"): "#e7298a", ("doomed", "safe"): "#1b7837",
-    ("undecided", "safe"): "#5aae61", ("outside", "safe"): "#00441b",
-    ("undecided", "doomed"): "#762a83", ("doomed", "undecided"): "#c2a5cf",
-    ("doomed", "outside"): "#8c510a", ("outside", "doomed"): "#bf812d",
-    ("undecided", "outside"): "#01665e", ("outside", "undecided"): "#35978f",
-}
 #: Sub-boxes per axis when a straddling piece's split has to be estimated.
 SUBGRID = 8
 
@@ -377,7 +369,7 @@ def plot_diff(result, ax=None, plane=(0, 1)):
     from matplotlib.collections import PolyCollection
     from matplotlib.patches import Patch
 
-    from .plots import LABEL_COLOURS
+    from .palette import LABEL_COLOURS
 
     if ax is None:
         _, ax = plt.subplots(figsize=(7.5, 6))

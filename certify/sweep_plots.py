@@ -9,11 +9,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from certify.plots import LABEL_COLOURS
+from certify.palette import LABEL_COLOURS, NO_SAFE_COLOUR, safe_share_colormap
 
 __all__ = ["plot_safe_band", "plot_safe_maps", "plot_sweep"]
 
-_NO_SAFE_COLOUR = "#b2182b"
 _NO_SAFE_LABEL = "proven: no safe state"
 
 
@@ -54,7 +53,7 @@ def plot_safe_band(data, ax=None):
                         color=LABEL_COLOURS["safe"], alpha=0.3, linewidth=0)
         ax.hlines([100 * s_lo, 100 * s_hi], lo, hi, colors=LABEL_COLOURS["safe"], linewidth=1.5)
         if e["no_safe_state"]:
-            ax.axvspan(lo, hi, facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",
+            ax.axvspan(lo, hi, facecolor="none", edgecolor=NO_SAFE_COLOUR, hatch="///",
                        linewidth=0)
     edges = _box_edges(data["entries"], name)
     ax.set_xlim(edges[0], edges[-1])
@@ -64,7 +63,7 @@ def plot_safe_band(data, ax=None):
     ax.legend(handles=[Patch(facecolor=LABEL_COLOURS["safe"], alpha=0.3,
                              edgecolor=LABEL_COLOURS["safe"],
                              label="safe fraction: proven lower to upper bound"),
-                       Patch(facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",
+                       Patch(facecolor="none", edgecolor=NO_SAFE_COLOUR, hatch="///",
                              label=_NO_SAFE_LABEL)],
               loc="lower left", fontsize=8)
     ax.set_title(f"{data['model']}: safe fraction per box of {name}", fontsize=10)
@@ -99,19 +98,19 @@ def plot_safe_maps(data, axes=None):
         grids[:, j, i] = [100 * bound for bound in e["safe_bounds"]]
     titles = ("proven safe fraction (lower bound)", "largest possible safe fraction (upper bound)")
     for ax, grid, title in zip(axes, grids, titles):
-        mesh = ax.pcolormesh(x_edges, y_edges, grid, vmin=0, vmax=100, cmap="Blues",
+        mesh = ax.pcolormesh(x_edges, y_edges, grid, vmin=0, vmax=100, cmap=safe_share_colormap(),
                              edgecolors="white", linewidth=0.3)
         for e in data["entries"]:
             if e["no_safe_state"]:
                 (xl, xh), (yl, yh) = e["params"][first], e["params"][second]
                 ax.add_patch(Rectangle((xl, yl), xh - xl, yh - yl, facecolor="none",
-                                       edgecolor=_NO_SAFE_COLOUR, hatch="///", linewidth=0))
+                                       edgecolor=NO_SAFE_COLOUR, hatch="///", linewidth=0))
         ax.set_title(title, fontsize=10)
         ax.set_xlabel(_axis_label(data, first))
     axes[0].set_ylabel(_axis_label(data, second))
     colorbar = axes[0].figure.colorbar(mesh, ax=list(axes), fraction=0.04)
     colorbar.set_label("safe part of the window [%]")
-    axes[1].legend(handles=[Patch(facecolor="none", edgecolor=_NO_SAFE_COLOUR, hatch="///",
+    axes[1].legend(handles=[Patch(facecolor="none", edgecolor=NO_SAFE_COLOUR, hatch="///",
                                   label=_NO_SAFE_LABEL)], loc="upper right", fontsize=8)
     return axes
 

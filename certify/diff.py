@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from .certificate import decode_array, read_certificate
+from .container import certificate_path
 from .errors import CertificateError
 from .expr import format_expression, format_number
 from .palette import TRANSITION_COLOURS
@@ -118,11 +119,6 @@ class DiffResult:
         sel = (a == LABELS.index(old_label)) & np.isin(b, [LABELS.index(k) for k in new_labels])
         lo, hi = self.pieces["lo"][sel], self.pieces["hi"][sel]
         return np.stack([lo, hi], -1).tolist()
-
-
-def _certificate_path(path):
-    path = Path(path)
-    return path / "certificate.json.gz" if path.is_dir() else path
 
 
 def _leaf_keys(cert):
@@ -303,7 +299,7 @@ def diff_certificates(old_path, new_path):
     CertificateError
         Unreadable certificates, or certificates of different states or windows.
     """
-    old_path, new_path = _certificate_path(old_path), _certificate_path(new_path)
+    old_path, new_path = certificate_path(old_path), certificate_path(new_path)
     old, new = read_certificate(old_path), read_certificate(new_path)
     _check_same_space(old, new, old_path, new_path)
     window = old.model.window

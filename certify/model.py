@@ -256,8 +256,12 @@ def load_model(path):
         raise ModelError(f"{label}: cannot read the file (permission denied)") from None
     except OSError as exc:
         raise ModelError(f"{label}: cannot read the file ({exc.strerror or exc})") from None
+    if data[:2] == b"\x1f\x8b":
+        raise ModelError(f"{label}: a gzip-compressed file (a certificate?), not a model "
+                         "file; expected TOML text (see docs/model-format.md)")
     if len(data) > MAX_FILE_BYTES:
-        raise ModelError(f"{label}: the file is larger than {MAX_FILE_BYTES:,} bytes")
+        raise ModelError(f"{label}: the file is larger than {MAX_FILE_BYTES:,} bytes; a "
+                         "model file is TOML text (see docs/model-format.md)")
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:

@@ -180,7 +180,7 @@ def other_certs(certs):
 @pytest.mark.parametrize("other, message", [
     ("decay", "are about different states (s, x vs x)"),
     ("narrow", "have different windows for s ([0, 12] vs [0, 10])"),
-    ("text", "not a readable certificate"),
+    ("text", "text (a model file?); expected a certificate"),
     ("missing", "no such file"),
 ])
 def test_bad_pairs_exit_2_with_one_line(certs, other_certs, capsys, other, message):

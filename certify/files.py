@@ -34,9 +34,9 @@ def write_atomic(path, data):
 
 
 def output_folder(path, option="--out"):
-    """Make sure `path` is a folder this process can write into, before any work.
+    """Make sure `path` names a folder this process can write into, before any work.
 
-    Creates the folder (and its parents) when missing.
+    Nothing is created: a missing folder is checked through its nearest existing parent.
 
     Parameters
     ----------
@@ -51,18 +51,16 @@ def output_folder(path, option="--out"):
     Raises
     ------
     UsageError
-        When `path` is an existing file, or the folder cannot be created or written.
+        When `path` or a parent of it is an existing file, or the folder (or the parent
+        that would hold it) cannot be written.
     """
     path = Path(path)
-    if path.exists() and not path.is_dir():
-        raise UsageError(f"{option} {path}: is a file, not a folder; name a folder for "
-                         "the outputs")
-    try:
-        path.mkdir(parents=True, exist_ok=True)
-        fd, probe = tempfile.mkstemp(prefix=".certify-write-test-", dir=path)
-        os.close(fd)
-        os.unlink(probe)
-    except OSError as exc:
-        reason = exc.strerror or type(exc).__name__
-        raise UsageError(f"{option} {path}: cannot write there ({reason.lower()})") from None
+    existing = path
+    while not existing.exists() and existing != existing.parent:
+        existing = existing.parent
+    if existing.exists() and not existing.is_dir():
+        where = "is a file" if existing == path else f"{existing} is a file"
+        raise UsageError(f"{option} {path}: {where}, not a folder; name a folder for the outputs")
+    if not os.access(existing, os.W_OK | os.X_OK):
+        raise UsageError(f"{option} {path}: cannot write there (no permission in {existing})")
     return path

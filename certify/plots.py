@@ -383,6 +383,15 @@ def save_figures(proof, out_dir):
     -------
     list of pathlib.Path
     """
+    import warnings
+
+    with warnings.catch_warnings():
+        # names may hold characters the default font lacks; a box drawn instead is enough
+        warnings.filterwarnings("ignore", message="Glyph .* missing from", category=UserWarning)
+        return _save_figures(proof, out_dir)
+
+
+def _save_figures(proof, out_dir):
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt

@@ -110,10 +110,11 @@ def test_out_is_checked_before_any_work(argv, tmp_path, capsys, no_work):
     a_file = tmp_path / "a_file"
     a_file.write_text("")
     for out, message in ((a_file, "is a file, not a folder"),
-                         (a_file / "below", "cannot write there")):
+                         (a_file / "below", f"{a_file} is a file, not a folder")):
         assert main([*argv, "--out", str(out)]) == 2
         err = _one_line(capsys.readouterr().err)
         assert f"--out {out}: {message}" in err
+        assert not (a_file / "below").exists()
 
 
 @pytest.fixture(scope="module")
@@ -215,3 +216,48 @@ def test_second_interrupt_says_what_was_written(tmp_path, capsys, monkeypatch):
     assert code == 130
     assert "written: certificate.json.gz, summary.json;" in err
     assert "not written (older copies may remain): map.png, time_to_limit.png" in err
+
+
+# -- model sections and free text (items 13, 18) --------------------------------------------
+
+def test_limits_section_reads_like_constraints():
+    from certify import parse_model
+
+    new = parse_model(DECAY_SECONDS.replace("[constraints]", "[limits]"))
+    old = parse_model(DECAY_SECONDS)
+    assert [(c.name, c.g) for c in new.constraints] == [(c.name, c.g) for c in old.constraints]
+
+
+@pytest.mark.parametrize("text, message", [
+    (DECAY_SECONDS.replace("[constraints]", "[limits]") + '[constraints]\nc = "x <= 9"\n',
+     "[limits] and [constraints] are the same section"),
+    (DECAY_SECONDS.replace("[constraints]", "[limts]"), "did you mean [limits]?"),
+    (DECAY_SECONDS.replace("[constraints]", "[limits]").replace('"x >= 0.5"', '"y >= 0.5"'),
+     "[limits] floor: column 1: unknown name 'y'"),
+])
+def test_limits_section_messages(text, message):
+    from certify import ModelError, parse_model
+
+    with pytest.raises(ModelError, match=re.escape(message)):
+        parse_model(text)
+
+
+@pytest.mark.parametrize("field, where, old", [
+    ("name", "[model] name", 'name = "decay in seconds"'),
+    ("time_unit", "[model] time_unit", 'time_unit = "s"'),
+    ("unit", "[states] x: unit", "x = [1, 4]"),
+])
+def test_free_text_is_capped(field, where, old):
+    from certify import ModelError, parse_model
+    from certify.model import TEXT_LENGTHS
+
+    def with_text(n):
+        value = "w" * n
+        new = f'x = {{ range = [1, 4], unit = "{value}" }}' if field == "unit" \
+            else f'{field} = "{value}"'
+        return DECAY_SECONDS.replace(old, new)
+
+    parse_model(with_text(TEXT_LENGTHS[field]))
+    n = TEXT_LENGTHS[field] + 1
+    with pytest.raises(ModelError, match=re.escape(f"{where}: is {n:,} characters long; at most")):
+        parse_model(with_text(n))

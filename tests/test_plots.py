@@ -151,3 +151,28 @@ def test_label_colours_differ_in_luminance():
     ratio = lambda a, b: (max(lum[a], lum[b]) + 0.05) / (min(lum[a], lum[b]) + 0.05)  # noqa: E731
     for other in ("outside", "doomed late", "undecided"):
         assert ratio("safe", other) >= 1.3, other
+
+
+def test_diff_picture_is_clipped_at_the_limits(tmp_path):
+    # two proofs of the disc model: the diff picture's pieces outside the disc must be
+    # drawn "outside, unchanged", so the pale outside area is the closed-form 9 - pi
+    from certify.diff import LABELS, diff_certificates, plot_diff
+    from certify.prove import write_proof
+
+    for name in ("a", "b"):
+        write_proof(prove(parse_model(DISC), max_depth=5), tmp_path / name, figures=False)
+    result = diff_certificates(tmp_path / "a", tmp_path / "b")
+    fig, ax = plt.subplots()
+    plot_diff(result, ax)
+    pale = colors.to_rgba(LABEL_COLOURS["outside"], alpha=0.25)
+    area = 0.0
+    for coll in ax.collections:
+        if isinstance(coll, PolyCollection) and np.allclose(coll.get_facecolors()[:1], pale):
+            for path in coll.get_paths():
+                v = path.vertices
+                area += abs(v[2, 0] - v[0, 0]) * abs(v[2, 1] - v[0, 1])
+    plt.close(fig)
+    s = 3 / 2 ** 5 / DRAW_SUBGRID  # sub-box side; error bound as in the map test above
+    assert area == pytest.approx(9 - math.pi, abs=4 * (2 * math.pi * s + s * s))
+    assert result.table[LABELS.index("outside"), LABELS.index("outside")] == \
+        pytest.approx(9 - math.pi, abs=4 * (2 * math.pi * s + s * s))

@@ -328,6 +328,42 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     return ax
 
 
+def _time_scale(proof):
+    """Normalisation of the time ramp: 0 to the largest finite proven lower bound."""
+    from matplotlib import colors
+
+    t = proof.labelling.survival_lower
+    tmax = float(np.max(t[np.isfinite(t)], initial=0.0))
+    return colors.Normalize(0, tmax if tmax > 0 else 1.0)
+
+
+def _draw_time(ax, proof, plane, fixed, norm):
+    """Draw one time-within-the-limits panel; return the legend handles."""
+    from matplotlib.patches import Patch
+
+    pieces = drawn_pieces(proof, plane, fixed)
+    _, _, _, fixed, others = _slice(proof, plane, fixed)
+    t = proof.labelling.survival_lower[pieces.cell]
+    inside = pieces.label != "outside"
+    finite = inside & np.isfinite(t)
+    _fill(ax, pieces, finite, time_colormap()(norm(t[finite])))
+    _fill(ax, pieces, inside & ~np.isfinite(t), LABEL_COLOURS["safe"])
+    _fill(ax, pieces, ~inside, LABEL_COLOURS["outside"])
+    handles = _draw_limits(ax, proof, plane, fixed)
+    _frame(ax, proof, plane, others, fixed)
+    return [Patch(color=LABEL_COLOURS["safe"], label="within the limits forever (safe)"),
+            Patch(color=LABEL_COLOURS["outside"], label="outside the limits at the start"),
+            *handles]
+
+
+def _time_colourbar(fig, axes, proof, norm, **kw):
+    import matplotlib.pyplot as plt
+
+    bar = fig.colorbar(plt.cm.ScalarMappable(norm=norm, cmap=time_colormap()), ax=axes, **kw)
+    bar.set_label(f"proven time within the limits, at least "
+                  f"[{proof.model.time_unit or 'time units'}]", fontsize=8)
+
+
 def plot_time_to_limit(proof, ax=None, plane=(0, 1), fixed=None):
     """Draw, per cell, the proven lower bound of the time spent within the limits.
 
@@ -345,34 +381,17 @@ def plot_time_to_limit(proof, ax=None, plane=(0, 1), fixed=None):
     matplotlib Axes
     """
     import matplotlib.pyplot as plt
-    from matplotlib import colors
-    from matplotlib.patches import Patch
 
     if ax is None:
         _, ax = plt.subplots(figsize=(7, 6))
-    pieces = drawn_pieces(proof, plane, fixed)
-    _, _, _, fixed, others = _slice(proof, plane, fixed)
-    t = proof.labelling.survival_lower[pieces.cell]
-    inside = pieces.label != "outside"
-    finite = inside & np.isfinite(t)
-    t_all = proof.labelling.survival_lower
-    tmax = float(np.max(t_all[np.isfinite(t_all)], initial=0.0))
-    norm = colors.Normalize(0, tmax if tmax > 0 else 1.0)
-    cmap = time_colormap()
-    _fill(ax, pieces, finite, cmap(norm(t[finite])))
-    _fill(ax, pieces, inside & ~np.isfinite(t), LABEL_COLOURS["safe"])
-    _fill(ax, pieces, ~inside, LABEL_COLOURS["outside"])
-    handles = _draw_limits(ax, proof, plane, fixed)
-    bar = ax.figure.colorbar(plt.cm.ScalarMappable(norm=norm, cmap=cmap), ax=ax,
-                             fraction=0.05, pad=0.02)
-    bar.set_label(f"proven time within the limits, at least [{proof.model.time_unit or 'time units'}]",
-                  fontsize=8)
-    _frame(ax, proof, plane, others, fixed)
-    handles = [Patch(color=LABEL_COLOURS["safe"], label="within the limits forever (safe)"),
-               Patch(color=LABEL_COLOURS["outside"], label="outside the limits at the start"),
-               *handles]
+    norm = _time_scale(proof)
+    handles = _draw_time(ax, proof, plane, fixed, norm)
+    _time_colourbar(ax.figure, ax, proof, norm, fraction=0.05, pad=0.02)
     _legend_below(ax, handles, ncol=2)
-    ax.set_title(f"{_short(proof.model.name)}: time within the limits", fontsize=10)
+    title = f"{_short(proof.model.name)}: time within the limits"
+    if ax.get_title():
+        title += f" ({ax.get_title()})"
+    ax.set_title(title, fontsize=10)
     return ax
 
 
@@ -419,22 +438,22 @@ def _save_figures(proof, out_dir):
         fixed = 0.5 * (lo + hi)
         fixed[k] = level
         fixed_points.append(fixed)
-    fig, axes = plt.subplots(1, 3, figsize=(19, 6))
-    norm = _doomed_scale(proof)
-    handles = {}
-    for ax, fixed in zip(axes, fixed_points):
-        for h in _draw_map(ax, proof, (0, 1), fixed, norm):
-            handles.setdefault(h.get_label(), h)
-    _doomed_colourbar(fig, list(axes), proof, norm, fraction=0.02, pad=0.01)
-    fig.suptitle(f"{_short(proof.model.name)} (label shares of the whole window)", fontsize=11)
-    _legend_below(fig, _label_handles(proof) + list(handles.values()), ncol=4)
-    paths.append(out_dir / "map.png")
-    fig.savefig(paths[-1], dpi=110, bbox_inches="tight")
-    plt.close(fig)
-    fig, axes = plt.subplots(1, 3, figsize=(19, 6))
-    for ax, fixed in zip(axes, fixed_points):
-        plot_time_to_limit(proof, ax, plane=(0, 1), fixed=fixed)
-    paths.append(out_dir / "time_to_limit.png")
-    fig.savefig(paths[-1], dpi=110, bbox_inches="tight")
-    plt.close(fig)
+    for name, draw, scale, bar in (("map.png", _draw_map, _doomed_scale, _doomed_colourbar),
+                                   ("time_to_limit.png", _draw_time, _time_scale,
+                                    _time_colourbar)):
+        fig, axes = plt.subplots(1, 3, figsize=(19, 6))
+        norm = scale(proof)
+        handles = {}
+        for ax, fixed in zip(axes, fixed_points):
+            for h in draw(ax, proof, (0, 1), fixed, norm):
+                handles.setdefault(h.get_label(), h)
+        bar(fig, list(axes), proof, norm, fraction=0.02, pad=0.01)
+        fig.suptitle(f"{_short(proof.model.name)}"
+                     + (" (label shares of the whole window)" if name == "map.png" else
+                        ": time within the limits"), fontsize=11)
+        first = _label_handles(proof) if name == "map.png" else []
+        _legend_below(fig, first + list(handles.values()), ncol=4)
+        paths.append(out_dir / name)
+        fig.savefig(paths[-1], dpi=110, bbox_inches="tight")
+        plt.close(fig)
     return paths

@@ -176,3 +176,23 @@ def test_diff_picture_is_clipped_at_the_limits(tmp_path):
     assert area == pytest.approx(9 - math.pi, abs=4 * (2 * math.pi * s + s * s))
     assert result.table[LABELS.index("outside"), LABELS.index("outside")] == \
         pytest.approx(9 - math.pi, abs=4 * (2 * math.pi * s + s * s))
+
+
+def test_3d_pictures_have_one_legend(tmp_path, monkeypatch):
+    # a 3D decay with a limit on z: each picture is three slices with one legend below
+    text = DISC.replace('y = [-1.5, 1.5]\n', 'y = [-1.5, 1.5]\nz = [0, 2]\n') \
+               .replace('y = "-x - y"\n', 'y = "-x - y"\nz = "-z"\n') \
+               .replace('disc = "x^2 + y^2 <= 1"', 'cap = "z <= 1.5"')
+    proof = prove(parse_model(text), max_depth=2)
+    figures = []
+    monkeypatch.setattr(plt, "close", figures.append)  # keep the figures to inspect
+    save_figures(proof, tmp_path)
+    assert len(figures) == 2
+    for fig in figures:
+        axes = [ax for ax in fig.axes if ax.get_label() != "<colorbar>"]
+        assert len(axes) == 3
+        assert all(ax.get_legend() is None for ax in axes)
+        assert len(fig.legends) == 1
+        assert all("z = " in ax.get_title() for ax in axes)  # slices named with their value
+    monkeypatch.undo()
+    plt.close("all")

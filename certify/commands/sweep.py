@@ -3,7 +3,7 @@
 import json
 import sys
 
-from certify.commands.prove import add_depth_argument, check_depth, parse_param
+from certify.commands.prove import add_depth_argument, parse_param
 from certify.errors import UsageError
 
 __all__ = ["HELP", "EXITS", "add_arguments", "run", "parse_vary", "sweep_table"]
@@ -151,7 +151,6 @@ def run(args):
     from certify.sweep import default_sweep_dir, sweep
 
     vary = _vary(args.vary)
-    check_depth(args.max_depth)
     model = load_model(args.model)
     if args.param:
         fixed = dict(parse_param(p) for p in args.param)

@@ -261,3 +261,20 @@ def test_free_text_is_capped(field, where, old):
     n = TEXT_LENGTHS[field] + 1
     with pytest.raises(ModelError, match=re.escape(f"{where}: is {n:,} characters long; at most")):
         parse_model(with_text(n))
+
+
+def test_revised_model_wording(tmp_path, capsys):
+    # x' = x (1 - x) - h: with h = 0.16 the lower equilibrium is 0.2, with h = 0.24 it is
+    # 0.4 (roots of x^2 - x + h, closed form): stocks between them were safe and now
+    # decline, so some stored safe claims cannot be re-verified
+    logistic = DATA / "prove_logistic_harvest.toml"
+    out = tmp_path / "old"
+    assert main(["prove", str(logistic), "--max-depth", "5", "--out", str(out), "--quiet"]) == 0
+    revised = tmp_path / "revised.toml"
+    revised.write_text(logistic.read_text().replace("h = 0.16", "h = 0.24"))
+    code = main(["check", str(out), "--model", str(revised), "--workers", "1", "--quiet"])
+    text = capsys.readouterr().out
+    assert code == 1
+    assert "claims not re-verified with the stored steps:" in text
+    assert "safe" in text.split("claims not re-verified with the stored steps:")[1]
+    assert "claims that fail" not in text

@@ -57,6 +57,19 @@ def _describe(failure):
             f"{failure['reason']}")
 
 
+def _print_regression(claims, model):
+    """Per label, the claims that hold for the revised model and those whose stored
+    steps do not re-verify (they may still be true: only a new proof can tell)."""
+    for key, words in (("held", "claims that still hold"),
+                       ("failed", "claims not re-verified with the stored steps")):
+        counts = ", ".join(f"{n} {label}" for label, n in claims[key].items() if n)
+        print(f"{words}: {counts or 'none'}")
+    held, failed = sum(claims["held"].values()), sum(claims["failed"].values())
+    if failed > held:
+        print(f"most claims could not be re-verified for the revised model; prove it anew "
+              f"(certify prove {model}) for a map of its own")
+
+
 def run(args):
     """Check the certificate named by ``args.certificate``; returns 0 or 1."""
     from certify.check import check_certificate
@@ -81,9 +94,7 @@ def run(args):
     print(f"{verdict}: {args.certificate}: {result.message} "
           f"({result.cells_checked} cells, {result.seconds:.1f} s)")
     if result.claims is not None:
-        for key in ("held", "failed"):
-            counts = ", ".join(f"{n} {label}" for label, n in result.claims[key].items() if n)
-            print(f"claims that {'still hold' if key == 'held' else 'fail'}: {counts or 'none'}")
+        _print_regression(result.claims, args.model)
     for failure in result.failures[:SHOWN_FAILURES]:
         print(_describe(failure))
     hidden = len(result.failures) - SHOWN_FAILURES

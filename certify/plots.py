@@ -19,7 +19,7 @@ from .palette import (HATCH_COLOUR, LABEL_COLOURS, UNDECIDED_HATCH, doomed_color
                       limit_style, time_colormap)
 
 __all__ = ["Pieces", "drawn_pieces", "plot_map", "plot_time_to_limit", "save_figures",
-           "TITLE_LENGTH"]
+           "parse_slice", "TITLE_LENGTH"]
 
 LABELS = ("safe", "doomed", "outside", "undecided")
 #: Sub-boxes per side of a straddling cell when a limit is not a bound on one state.
@@ -328,6 +328,65 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     return ax
 
 
+def parse_slice(proof_or_model, text):
+    """Read ``NAME=V1,V2,...`` (``--slice``) into ``(state index, levels)``.
+
+    Raises
+    ------
+    UsageError
+        Unknown state, a level that is not a number or lies outside the window, or more
+        than four levels.
+    """
+    from .errors import UsageError
+
+    model = getattr(proof_or_model, "model", proof_or_model)
+    names = [s.name for s in model.states]
+    name, sep, values = text.partition("=")
+    name = name.strip()
+    if not sep or name not in names:
+        raise UsageError(f"--slice {text!r}: write NAME=VALUE[,VALUE...] with NAME one of "
+                         f"the states ({', '.join(names)})")
+    k = names.index(name)
+    try:
+        levels = [float(v) for v in values.split(",")]
+    except ValueError:
+        raise UsageError(f"--slice {text!r}: the levels must be numbers") from None
+    lo, hi = (float(b) for b in model.window[k])
+    if not 1 <= len(levels) <= 4 or not all(lo <= v <= hi for v in levels):
+        raise UsageError(f"--slice {text!r}: give one to four levels within the window "
+                         f"[{lo:g}, {hi:g}] of {name}")
+    return k, levels
+
+
+def _shares_along(ax, proof, k, bins=48):
+    """Stacked shares of the labels along state k over the whole window (cells whole)."""
+    tree, leaves, labels = proof.tree, proof.leaves, proof.labelling.label
+    lo, hi = tree.lo[leaves], tree.hi[leaves]
+    wlo, whi = tree.lo[0], tree.hi[0]
+    others = [a for a in range(tree.n) if a != k]
+    cross = np.prod((hi[:, others] - lo[:, others]) / (whi[others] - wlo[others]), axis=1)
+    edges = np.linspace(wlo[k], whi[k], bins + 1)
+    share = np.zeros((len(LABELS), bins))
+    for j in range(bins):
+        overlap = np.clip(np.minimum(hi[:, k], edges[j + 1]) - np.maximum(lo[:, k], edges[j]),
+                          0, None) / (edges[j + 1] - edges[j])
+        for m, name in enumerate(LABELS):
+            sel = labels == name
+            share[m, j] = np.sum(cross[sel] * overlap[sel])
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    colours = [LABEL_COLOURS[x] if x != "doomed" else doomed_colormap()(0.5) for x in LABELS]
+    polys = ax.stackplot(centres, 100 * share, colors=colours, step=None)
+    polys[LABELS.index("undecided")].set_hatch(UNDECIDED_HATCH)
+    polys[LABELS.index("undecided")].set_edgecolor(HATCH_COLOUR)
+    state = proof.model.states[k]
+    ax.set_xlim(wlo[k], whi[k])
+    ax.set_ylim(0, 100)
+    ax.set_xlabel(_axis_label(state))
+    ax.set_ylabel("share of the cross-section [%]")
+    ax.set_title(f"whole window: labels along {state.name}\n(cells straddling a limit "
+                 "counted whole)", fontsize=9)
+
+
 def _time_scale(proof):
     """Normalisation of the time ramp: 0 to the largest finite proven lower bound."""
     from matplotlib import colors
@@ -395,8 +454,20 @@ def plot_time_to_limit(proof, ax=None, plane=(0, 1), fixed=None):
     return ax
 
 
-def save_figures(proof, out_dir):
-    """Write ``map.png`` and ``time_to_limit.png`` (1D: strips; 3D and up: three slices).
+def save_figures(proof, out_dir, slices=None):
+    """Write ``map.png`` and ``time_to_limit.png``.
+
+    1D models: strips; 2D: the plane. More states: slices of the plane of the first two
+    states not sliced, at the levels `slices` gives (default: three levels of the third
+    state), the other states at the window centre; ``map.png`` adds a panel with the share
+    of each label along the sliced state over the whole window.
+
+    Parameters
+    ----------
+    proof : certify.prove.Proof
+    out_dir : str or Path
+    slices : (int, list of float), optional
+        The sliced state's index and its levels (see :func:`parse_slice`).
 
     Returns
     -------
@@ -407,10 +478,10 @@ def save_figures(proof, out_dir):
     with warnings.catch_warnings():
         # names may hold characters the default font lacks; a box drawn instead is enough
         warnings.filterwarnings("ignore", message="Glyph .* missing from", category=UserWarning)
-        return _save_figures(proof, out_dir)
+        return _save_figures(proof, out_dir, slices)
 
 
-def _save_figures(proof, out_dir):
+def _save_figures(proof, out_dir, slices):
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
@@ -429,10 +500,13 @@ def _save_figures(proof, out_dir):
             fig.savefig(paths[-1], dpi=120, bbox_inches="tight")
             plt.close(fig)
         return paths
-    # higher dimension: slices of the first two axes at three levels of the third
-    k = 2
     lo, hi = proof.tree.lo[0], proof.tree.hi[0]
-    levels = lo[k] + (hi[k] - lo[k]) * np.array([0.25, 0.5, 0.75])
+    if slices is None:
+        k = 2
+        levels = lo[k] + (hi[k] - lo[k]) * np.array([0.25, 0.5, 0.75])
+    else:
+        k, levels = slices
+    plane = tuple(a for a in range(n) if a != k)[:2]
     fixed_points = []
     for level in levels:
         fixed = 0.5 * (lo + hi)
@@ -441,13 +515,17 @@ def _save_figures(proof, out_dir):
     for name, draw, scale, bar in (("map.png", _draw_map, _doomed_scale, _doomed_colourbar),
                                    ("time_to_limit.png", _draw_time, _time_scale,
                                     _time_colourbar)):
-        fig, axes = plt.subplots(1, 3, figsize=(19, 6))
+        panels = len(levels) + (name == "map.png")
+        fig, axes = plt.subplots(1, panels, figsize=(6.3 * panels, 6), squeeze=False)
+        axes = list(axes[0])
         norm = scale(proof)
         handles = {}
+        if name == "map.png":  # first, so that the colour bar sits beside the slices
+            _shares_along(axes.pop(0), proof, k)
         for ax, fixed in zip(axes, fixed_points):
-            for h in draw(ax, proof, (0, 1), fixed, norm):
+            for h in draw(ax, proof, plane, fixed, norm):
                 handles.setdefault(h.get_label(), h)
-        bar(fig, list(axes), proof, norm, fraction=0.02, pad=0.01)
+        bar(fig, axes, proof, norm, fraction=0.02, pad=0.01)
         fig.suptitle(f"{_short(proof.model.name)}"
                      + (" (label shares of the whole window)" if name == "map.png" else
                         ": time within the limits"), fontsize=11)

@@ -11,6 +11,7 @@
 from __future__ import annotations
 
 import math
+import re
 
 import matplotlib
 
@@ -24,7 +25,7 @@ from matplotlib.collections import PolyCollection  # noqa: E402
 
 from certify import parse_model, prove  # noqa: E402
 from certify.palette import LABEL_COLOURS, doomed_colormap  # noqa: E402
-from certify.plots import DRAW_SUBGRID, plot_map, save_figures  # noqa: E402
+from certify.plots import DRAW_SUBGRID, parse_slice, plot_map, save_figures  # noqa: E402
 
 # A stable spiral inside a disc of radius 1 in the window [-1.5, 1.5]^2: d(x^2+y^2)/dt
 # = -2 (x^2+y^2), so the disc is invariant. Outside at t = 0 is the window minus the disc,
@@ -187,12 +188,28 @@ def test_3d_pictures_have_one_legend(tmp_path, monkeypatch):
     figures = []
     monkeypatch.setattr(plt, "close", figures.append)  # keep the figures to inspect
     save_figures(proof, tmp_path)
-    assert len(figures) == 2
-    for fig in figures:
+    save_figures(proof, tmp_path, slices=parse_slice(proof, "x=-1,0.5"))
+    assert len(figures) == 4
+    for fig, name, levels in zip(figures, ("map", "time", "map", "time"),
+                                 (["z = 0.5", "z = 1", "z = 1.5"],) * 2 + (["x = -1", "x = 0.5"],) * 2):
         axes = [ax for ax in fig.axes if ax.get_label() != "<colorbar>"]
-        assert len(axes) == 3
+        assert len(axes) == len(levels) + (name == "map")  # map: the whole-window panel
         assert all(ax.get_legend() is None for ax in axes)
         assert len(fig.legends) == 1
-        assert all("z = " in ax.get_title() for ax in axes)  # slices named with their value
+        slices = [ax.get_title() for ax in axes if ax.get_title().startswith("slice")]
+        assert slices == [f"slice {v}" for v in levels]
     monkeypatch.undo()
     plt.close("all")
+
+
+@pytest.mark.parametrize("text, message", [
+    ("w=1", "NAME one of the states (x, y, z)"), ("z=a", "the levels must be numbers"),
+    ("z=3", "one to four levels within the window [0, 2] of z"),
+])
+def test_bad_slices_are_named(text, message):
+    from certify import UsageError
+
+    model = parse_model(DISC.replace('y = [-1.5, 1.5]\n', 'y = [-1.5, 1.5]\nz = [0, 2]\n')
+                        .replace('y = "-x - y"\n', 'y = "-x - y"\nz = "-z"\n'))
+    with pytest.raises(UsageError, match=re.escape(message)):
+        parse_slice(model, text)

@@ -34,6 +34,9 @@ def add_budget_arguments(parser):
                              f"{_budget_default('time_limit'):g})")
     parser.add_argument("--param", action="append", default=[], metavar="NAME=VALUE|NAME=LO:HI",
                         help="override a parameter by a number or an interval (repeatable)")
+    parser.add_argument("--slice", metavar="NAME=V[,V...]",
+                        help="models of 3 or more states: draw the slices at these levels "
+                             "of state NAME (default: 3 levels of the third state)")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON on stdout")
     parser.add_argument("--quiet", action="store_true", help="no progress bar, no table")
 
@@ -111,6 +114,12 @@ def run_proof(model_path, args, default_out=None):
     if args.param:
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
     out = output_folder(args.out or default_out or Path("proofs_out") / Path(model_path).stem)
+    slices = None
+    if args.slice:
+        from certify.plots import parse_slice
+        if len(model.states) < 3:
+            raise UsageError("--slice: only models of 3 or more states are drawn in slices")
+        slices = parse_slice(model, args.slice)
     progress = None if args.quiet else progress_bar()
     proof = prove(model, max_depth=args.max_depth, max_cells=args.max_cells,
                   time_limit=args.time_limit, progress=progress)
@@ -118,7 +127,9 @@ def run_proof(model_path, args, default_out=None):
         progress.close()
     started = time.time()
     try:
-        summary = write_proof(proof, out)
+        summary = write_proof(proof, out, figures=False)
+        from certify.plots import save_figures
+        save_figures(proof, out, slices)
     except KeyboardInterrupt:
         _report_partial(out, started)
         return 130

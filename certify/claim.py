@@ -534,7 +534,7 @@ def check_claim(model, region, expect, until=None, *, max_depth=None, time_limit
                   f"{counterexample['reason']}"
         unsettled = []
     elif not unsettled:
-        verdict, message = "proven", _proof_message(expect, T, pieces)
+        verdict, message = "proven", _proof_message(expect, T, pieces, model.time_unit)
     else:
         verdict = "inconclusive"
         message = (f"inconclusive: {len(unsettled)} parts of the region are not settled "
@@ -546,19 +546,20 @@ def check_claim(model, region, expect, until=None, *, max_depth=None, time_limit
                        undecided_volume=volume, proof=proof)
 
 
-def _proof_message(expect, T, pieces):
-    """One line saying what the cells meeting the region prove."""
+def _proof_message(expect, T, pieces, unit):
+    """One line saying what the cells meeting the region prove (times in `unit`)."""
     n = len(pieces)
+    unit = f" {unit}" if unit else ""
     if expect == "safe":
         return f"proven: the region satisfies the limits and lies in {n} cells proven safe"
     if expect == "stays":
         low = min(p.lower for p in pieces)
         return (f"proven: the {n} cells meeting the region stay within the limits at least "
-                f"up to t = {low:.6g}" if math.isfinite(low) else
+                f"up to t = {low:.6g}{unit}" if math.isfinite(low) else
                 f"proven: the region satisfies the limits and lies in {n} cells proven safe")
     high = max((p.upper for p in pieces if math.isfinite(p.upper)), default=0.0)
-    return (f"proven: every start of the region in K lies in one of {n} cells proven to "
-            f"cross a limit by t = {high:.6g}")
+    return (f"proven: every start of the region within the limits lies in one of {n} cells "
+            f"proven to cross a limit by t = {high:.6g}{unit}")
 
 
 def _fmt(point):

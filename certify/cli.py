@@ -1,11 +1,13 @@
 """The ``certify`` command line: ``main(argv=None) -> int``.
 
 Subcommands live in ``certify/commands/<name>.py``; each module defines ``HELP``
-(one line), ``add_arguments(parser)`` and ``run(args) -> int``. Only the modules
+(one line), ``EXITS`` (its exit codes, one line), ``add_arguments(parser)`` and
+``run(args) -> int``. Only the modules
 that exist are registered, so commands can be added one at a time.
 
 Exit codes: 0 done (or verified), 1 not verified, 2 usage or input error,
-130 interrupted.
+3 inconclusive (``claim``), 130 interrupted; each module's ``EXITS`` text says which of
+them its command uses, and ``--help`` prints it.
 """
 
 import argparse
@@ -50,7 +52,9 @@ def build_parser():
     """
     modules = _available_commands()
     missing = [name for name in COMMANDS if name not in modules]
-    epilog = "Run 'certify COMMAND --help' for the options of a command."
+    epilog = ("Run 'certify COMMAND --help' for the options of a command. Exit codes: 0 done, "
+              "1 not verified (check, diff --fail-on, claim refuted), 2 usage or input error, "
+              "3 claim inconclusive, 130 interrupted.")
     if missing:
         epilog += " Not built yet: " + ", ".join(missing) + "."
     parser = argparse.ArgumentParser(
@@ -58,14 +62,15 @@ def build_parser():
         description=(
             "Prove which starting states of an ODE model stay within its limits forever, "
             "which must cross a limit, and write a certificate that an independent checker "
-            "re-verifies. A certificate speaks about the model, not the plant."
+            "re-verifies. A certificate speaks about the model, not the system it describes."
         ),
         epilog=epilog,
     )
     parser.add_argument("--version", action="version", version=f"certify {_version()}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
     for name, module in modules.items():
-        sub = subparsers.add_parser(name, help=module.HELP, description=module.HELP)
+        sub = subparsers.add_parser(name, help=module.HELP, description=module.HELP,
+                                    epilog=f"Exit codes: {module.EXITS}.")
         module.add_arguments(sub)
         sub.set_defaults(run=module.run)
     return parser

@@ -18,10 +18,13 @@ import numpy as np
 from .errors import CertificateError
 from .files import write_atomic
 
-__all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "fraction_text",
-           "write_certificate", "load_certificate_json"]
+__all__ = ["FORMAT", "VERSION", "CERTIFICATE_NAME", "certificate_path", "LABELS",
+           "encode_array", "decode_array", "fraction_text", "write_certificate",
+           "load_certificate_json"]
 
 FORMAT = "certify-certificate"
+#: File name of a certificate inside an output folder.
+CERTIFICATE_NAME = "certificate.json.gz"
 VERSION = 2
 LABELS = ("safe", "doomed", "outside", "undecided")
 
@@ -71,23 +74,56 @@ def write_certificate(path, data):
     write_atomic(path, gzip.compress(text, compresslevel=6, mtime=0))
 
 
+def certificate_path(path):
+    """The certificate file meant by `path`: the path itself, or a folder's certificate."""
+    path = Path(path)
+    return path / CERTIFICATE_NAME if path.is_dir() else path
+
+
+def _what_it_is(path):
+    """A few words on what a file that is not a certificate looks like."""
+    try:
+        with open(path, "rb") as f:
+            head = f.read(64)
+    except OSError:
+        return "an unreadable file"
+    if head[:2] == b"\x1f\x8b":
+        return "gzip-compressed data that is not a certificate's JSON"
+    text = head.lstrip()
+    if text[:1] == b"#" or text[:2].isalpha() or text[:1] == b"[" and text[1:2].isalpha():
+        return "text (a model file?)"
+    if text[:1] in (b"{", b"["):
+        return "JSON that is not gzip-compressed"
+    return "data that is not gzip-compressed"
+
+
 def load_certificate_json(path):
     """Read the raw certificate dictionary, checking format and version.
+
+    `path` may name the certificate file or a folder holding ``certificate.json.gz``.
 
     Raises
     ------
     CertificateError
         Unreadable file, not gzip/JSON, unknown format or version.
     """
-    path = Path(path)
+    given = Path(path)
+    path = certificate_path(given)
+    expected = f"expected a certificate ({CERTIFICATE_NAME}, gzip-compressed JSON)"
     try:
         with gzip.open(path, "rb") as f:
             data = json.loads(f.read().decode("utf-8"))
     except FileNotFoundError:
+        if given.is_dir():
+            raise CertificateError(f"{given}: the folder holds no {CERTIFICATE_NAME}") from None
         raise CertificateError(f"{path}: no such file") from None
-    except (OSError, EOFError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile,
-            zlib.error) as exc:
-        raise CertificateError(f"{path}: not a readable certificate ({exc})") from None
+    except PermissionError:
+        raise CertificateError(f"{path}: cannot read the file (permission denied)") from None
+    except (EOFError, zlib.error):
+        raise CertificateError(f"{path}: the compressed data is truncated or damaged; "
+                               f"{expected}") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile):
+        raise CertificateError(f"{path}: {_what_it_is(path)}; {expected}") from None
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise CertificateError(f"{path}: not a certify certificate (key 'format')")
     if data.get("version") != VERSION:

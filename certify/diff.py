@@ -23,8 +23,10 @@ from pathlib import Path
 import numpy as np
 
 from .certificate import decode_array, read_certificate
+from .container import certificate_path
 from .errors import CertificateError
 from .expr import format_expression, format_number
+from .palette import TRANSITION_COLOURS
 from .evaluate import evaluate_limits
 from .taylor import flow_programs
 from .volumes import axis_threshold
@@ -33,15 +35,6 @@ __all__ = ["LABELS", "FAIL_ON", "DiffResult", "diff_certificates", "plot_diff", 
 
 LABELS = ("safe", "doomed", "outside", "undecided")
 FAIL_ON = ("safe-loss", "any-change")
-#: Colours of label changes: losses of safe in reds, gains of safe in greens.
-TRANSITION_COLOURS = {
-    ("safe", "doomed"): "#b2182b", ("safe", "outside"): "#67001f",
-    ("safe", "undecided"): "#e7298a", ("doomed", "safe"): "#1b7837",
-    ("undecided", "safe"): "#5aae61", ("outside", "safe"): "#00441b",
-    ("undecided", "doomed"): "#762a83", ("doomed", "undecided"): "#c2a5cf",
-    ("doomed", "outside"): "#8c510a", ("outside", "doomed"): "#bf812d",
-    ("undecided", "outside"): "#01665e", ("outside", "undecided"): "#35978f",
-}
 #: Sub-boxes per axis when a straddling piece's split has to be estimated.
 SUBGRID = 8
 
@@ -67,7 +60,10 @@ class DiffResult:
     pieces : dict
         ``lo``, ``hi`` (float boxes, shape (P, n)), ``old``, ``new`` (label indices:
         the cell's label, or ``outside`` where the whole piece violates a limit) of the
-        common refinement, for plots.
+        common refinement, for plots; ``known_old``, ``known_new`` (1 within every
+        limit, -1 violating one on the whole piece, 0 straddling).
+    limits : tuple
+        The limits of the OLD and NEW models, to clip pictures at the limits.
     """
 
     old: str
@@ -78,6 +74,7 @@ class DiffResult:
     exact: bool
     model_changes: list
     pieces: dict
+    limits: tuple = ()
 
     def volume(self, old_label, new_label):
         """Volume labelled `old_label` in OLD and `new_label` in NEW."""
@@ -126,11 +123,6 @@ class DiffResult:
         sel = (a == LABELS.index(old_label)) & np.isin(b, [LABELS.index(k) for k in new_labels])
         lo, hi = self.pieces["lo"][sel], self.pieces["hi"][sel]
         return np.stack([lo, hi], -1).tolist()
-
-
-def _certificate_path(path):
-    path = Path(path)
-    return path / "certificate.json.gz" if path.is_dir() else path
 
 
 def _leaf_keys(cert):
@@ -311,7 +303,7 @@ def diff_certificates(old_path, new_path):
     CertificateError
         Unreadable certificates, or certificates of different states or windows.
     """
-    old_path, new_path = _certificate_path(old_path), _certificate_path(new_path)
+    old_path, new_path = certificate_path(old_path), certificate_path(new_path)
     old, new = read_certificate(old_path), read_certificate(new_path)
     _check_same_space(old, new, old_path, new_path)
     window = old.model.window
@@ -354,11 +346,93 @@ def diff_certificates(old_path, new_path):
                       states=tuple(s.name for s in old.model.states), window_volume=float(W),
                       table=table, exact=exact, model_changes=_model_changes(old.model,
                                                                              new.model),
-                      pieces={"lo": lo, "hi": hi, "old": a_eff, "new": b_eff})
+                      pieces={"lo": lo, "hi": hi, "old": a_eff, "new": b_eff,
+                              "known_old": s_old, "known_new": s_new},
+                      limits=(lim_old, lim_new))
+
+
+def _clipped_pieces(result, on, axes, centre):
+    """Pieces on the slice, straddling ones cut on a sub-grid and relabelled per model.
+
+    A sub-box whose centre (other coordinates at `centre`) violates a model's limits is
+    ``outside`` for that model, so the picture is clipped at the limits of both.
+    """
+    from .plots import DRAW_SUBGRID
+
+    p = result.pieces
+    lo, hi, a, b = p["lo"][on], p["hi"][on], p["old"][on], p["new"][on]
+    k_old, k_new = p["known_old"][on], p["known_new"][on]
+    straddle = (k_old == 0) | (k_new == 0)
+    if not straddle.any() or not result.limits:
+        return lo, hi, a, b
+    out = LABELS.index("outside")
+    grid = np.array(list(product(range(DRAW_SUBGRID), repeat=len(axes))))
+    parts = [(lo[~straddle], hi[~straddle], a[~straddle], b[~straddle])]
+    idx = np.flatnonzero(straddle)
+    n_sub = len(grid)
+    slo = np.repeat(lo[idx], n_sub, axis=0)
+    shi = np.repeat(hi[idx], n_sub, axis=0)
+    width = (shi - slo)[:, axes] / DRAW_SUBGRID
+    tiled = np.tile(grid, (len(idx), 1))
+    slo[:, axes] = slo[:, axes] + tiled * width
+    shi[:, axes] = slo[:, axes] + width
+    centres = np.tile(centre, (len(slo), 1))
+    centres[:, axes] = 0.5 * (slo[:, axes] + shi[:, axes])
+    sa, sb = np.repeat(a[idx], n_sub), np.repeat(b[idx], n_sub)
+    for labels, known, limits in ((sa, np.repeat(k_old[idx], n_sub), result.limits[0]),
+                                  (sb, np.repeat(k_new[idx], n_sub), result.limits[1])):
+        unknown = known == 0
+        labels[unknown & ~limits.inside_points(centres)] = out
+    parts.append((slo, shi, sa, sb))
+    return tuple(np.concatenate([part[k] for part in parts]) for k in range(4))
+
+
+def _diff_limit_lines(ax, result, plane, centre, wlo, whi):
+    """Zero lines of both models' limits on the plane (2D); legend handles."""
+    from matplotlib.lines import Line2D
+
+    from .palette import limit_style
+
+    i, j = plane
+    X, Y = np.meshgrid(np.linspace(wlo[i], whi[i], 300), np.linspace(wlo[j], whi[j], 300))
+    pts = np.tile(centre, (X.size, 1))
+    pts[:, i], pts[:, j] = X.ravel(), Y.ravel()
+    handles, drawn = [], set()
+    shared = ({c.text for c in result.limits[0].model.constraints}
+              & {c.text for c in result.limits[1].model.constraints})
+    for tag, limits in zip(("OLD", "NEW"), result.limits):
+        mid = [0.5 * (q[0] + q[1]) for q in limits.params]
+        inputs = np.concatenate([pts, np.tile(mid, (len(pts), 1))], 1) if mid else pts
+        g = limits.programs.limits.point(inputs)
+        for k, c in enumerate(limits.model.constraints):
+            G = g[:, k].reshape(X.shape)
+            if c.text in drawn or not np.nanmin(G) < 0 < np.nanmax(G):
+                continue
+            drawn.add(c.text)
+            colour, dash = limit_style(k) if tag == "OLD" else limit_style(k + 3)
+            ax.contour(X, Y, G, levels=[0], colors=[colour], linestyles=[dash],
+                       linewidths=1.2, zorder=4)
+            handles.append(Line2D([], [], color=colour, linestyle=dash,
+                                  label=("" if c.text in shared else f"{tag} ")
+                                  + f"limit {c.name}: {c.text}"[:70]))
+    return handles
+
+
+def _diff_title(result):
+    """What changed between the models, in a few words."""
+    changes = [f"{c['kind']} {c['name']}: {c['old'] or '(absent)'} \u2192 "
+               f"{c['new'] or '(absent)'}" for c in result.model_changes]
+    if not changes:
+        return "labels OLD \u2192 NEW (same model)"
+    more = f" (+{len(changes) - 2} more)" if len(changes) > 2 else ""
+    return "labels OLD \u2192 NEW; " + "; ".join(text[:50] for text in changes[:2]) + more
 
 
 def plot_diff(result, ax=None, plane=(0, 1)):
     """Draw where labels changed: unchanged pieces pale, changed ones by transition.
+
+    Pieces straddling a limit are cut on a sub-grid and drawn ``outside`` where they
+    violate that model's limits, and the limits of both models are drawn.
 
     Parameters
     ----------
@@ -377,23 +451,23 @@ def plot_diff(result, ax=None, plane=(0, 1)):
     from matplotlib.collections import PolyCollection
     from matplotlib.patches import Patch
 
-    from .plots import LABEL_COLOURS
+    from .palette import LABEL_COLOURS
 
     if ax is None:
         _, ax = plt.subplots(figsize=(7.5, 6))
     lo, hi = result.pieces["lo"], result.pieces["hi"]
-    a, b = result.pieces["old"], result.pieces["new"]
     n = lo.shape[1]
+    axes = (0,) if n == 1 else tuple(plane)
+    wlo, whi = lo.min(axis=0), hi.max(axis=0)
+    centre = 0.5 * (wlo + whi)
+    others = [k for k in range(n) if k not in axes]
+    on = np.all([(lo[:, k] <= centre[k]) & (hi[:, k] >= centre[k]) for k in others], axis=0) \
+        if others else np.ones(len(lo), bool)
+    lo, hi, a, b = _clipped_pieces(result, on, axes, centre)
     if n == 1:
         lo = np.concatenate([lo, np.zeros((len(lo), 1))], 1)
         hi = np.concatenate([hi, np.ones((len(hi), 1))], 1)
-        plane = (0, 1)
-    i, j = plane
-    wlo, whi = lo.min(axis=0), hi.max(axis=0)
-    centre = 0.5 * (wlo + whi)
-    others = [k for k in range(n) if k not in plane]
-    on = np.all([(lo[:, k] <= centre[k]) & (hi[:, k] >= centre[k]) for k in others], axis=0) \
-        if others else np.ones(len(lo), bool)
+    i, j = (0, 1) if n == 1 else plane
 
     def rectangles(sel):
         return np.stack([np.stack([lo[sel, i], lo[sel, j]], 1),
@@ -403,33 +477,42 @@ def plot_diff(result, ax=None, plane=(0, 1)):
 
     legend = []
     for k, name in enumerate(LABELS):
-        sel = on & (a == k) & (b == k)
+        sel = (a == k) & (b == k)
         pale = colors.to_rgba(LABEL_COLOURS[name], alpha=0.25)
         ax.add_collection(PolyCollection(rectangles(sel), facecolors=[pale], edgecolors="none"))
         legend.append(Patch(color=pale, label=f"{name}, unchanged"))
-    drawn = set(zip(a[on & (a != b)].tolist(), b[on & (a != b)].tolist()))
+    drawn = set(zip(a[a != b].tolist(), b[a != b].tolist()))
     moves = sorted(drawn | {(x, y) for x in range(4) for y in range(4)
                             if x != y and result.table[x, y] > 0})
     for x, y in moves:
-        sel = on & (a == x) & (b == y)
+        sel = (a == x) & (b == y)
         colour = TRANSITION_COLOURS[(LABELS[x], LABELS[y])]
         ax.add_collection(PolyCollection(rectangles(sel), facecolors=[colour],
                                          edgecolors="none"))
         share = 100 * result.table[x, y] / result.window_volume
         legend.append(Patch(color=colour, label=f"{LABELS[x]} \u2192 {LABELS[y]} "
                                                 f"{share:.2f} %"))
+    if n > 1 and result.limits:
+        legend += _diff_limit_lines(ax, result, (i, j), centre, wlo, whi)
+    states = result.limits[0].model.states if result.limits else None
+
+    def name(k):
+        if states is None:
+            return result.states[k]
+        return f"{states[k].name} [{states[k].unit}]" if states[k].unit else states[k].name
+
     ax.set_xlim(wlo[i], whi[i])
-    ax.set_ylim(wlo[j], whi[j])
-    ax.set_xlabel(result.states[i])
+    ax.set_xlabel(name(i))
     if n == 1:
+        ax.set_ylim(0, 1)
         ax.set_yticks([])
     else:
-        ax.set_ylabel(result.states[j])
-    title = "labels OLD \u2192 NEW"
+        ax.set_ylim(wlo[j], whi[j])
+        ax.set_ylabel(name(j))
+    title = _diff_title(result)
     if others:
-        title += " (slice " + ", ".join(f"{result.states[k]} = {centre[k]:.3g}"
-                                        for k in others) + ")"
-    ax.set_title(title, fontsize=10)
+        title += "\n(slice " + ", ".join(f"{name(k)} = {centre[k]:.3g}" for k in others) + ")"
+    ax.set_title(title, fontsize=9)
     ax.legend(handles=legend, loc="upper left", bbox_to_anchor=(1.02, 1), fontsize=8,
               frameon=False)
     return ax

@@ -16,7 +16,7 @@ A face is
 * ``open`` otherwise.
 
 Parts of image boxes beyond a ``limit``, ``inflow`` or ``invariant`` face are harmless
-for both the safe and the doomed proofs (DESIGN.md section 5). Each verdict rests on a
+for both the safe and the doomed proofs (docs/design.md, section 5). Each verdict rests on a
 cover of the face (or of the slab) by boxes, each proven; the face cover is stored in
 the certificate.
 """

@@ -1,4 +1,4 @@
-"""The transition graph of a certificate as a networkx DiGraph (DESIGN.md section 4).
+"""The transition graph of a certificate as a networkx DiGraph (docs/design.md, section 4).
 
 The proof loop keeps its graph in arrays; this is the public form, for analyses of
 one's own: which cells a region can reach, the chains behind a crossing bound, where

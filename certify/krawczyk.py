@@ -4,7 +4,7 @@ A *system* is ``h(x, p) = 0`` with ``m`` equations in ``n`` unknowns ``x`` and
 parameters ``p`` that range over a box (an interval parameter means "for every value").
 The search splits the box, discards pieces where some ``h_i`` certainly has no zero
 (exclusion), and proves zeros with the Krawczyk operator (Krawczyk 1969; Moore 1977,
-both (mem))::
+both (from memory))::
 
     K(X) = m - C h(m, p^) - (C J_p(m, P)) (P - p^) + (I - C J_x(X, P)) (X - m)
 
@@ -327,7 +327,7 @@ def _newton(system, x):
 
 
 def _inflate_and_test(system, points, scale):
-    """Epsilon-inflation (Rump 1983 (mem)) around float guesses: ``X := K(X)`` widened.
+    """Epsilon-inflation (Rump 1983 (from memory)) around float guesses: ``X := K(X)`` widened.
 
     Returns
     -------

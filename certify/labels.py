@@ -1,4 +1,4 @@
-"""The labels as fixpoints on the transition graph (DESIGN.md section 5).
+"""The labels as fixpoints on the transition graph (docs/design.md, section 5).
 
 All functions work on leaves numbered ``0..L-1`` and on edges ``src -> dst`` between
 them (the successors: leaves meeting a cell's image box).
@@ -30,7 +30,7 @@ class CellFacts:
     flow_ok : ndarray of bool
         The image box is known (the flow did not fail).
     kept : ndarray of bool
-        Every limit is kept on every step (DESIGN.md section 5, rules (a)/(b)).
+        Every limit is kept on every step (docs/design.md, section 5, rules (a)/(b)).
     escapes : ndarray of bool
         Part of the image lies outside the window where it is not known to be harmless.
     crossing : ndarray of float
@@ -155,7 +155,7 @@ def _survival(facts, L, label):
 
 
 def label_cells(facts):
-    """Compute the labels and bounds of DESIGN.md section 5.
+    """Compute the labels and bounds of docs/design.md, section 5.
 
     Parameters
     ----------

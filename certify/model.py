@@ -1,7 +1,8 @@
 """Model files: reading, validating, and the :class:`Model` they describe.
 
 A model file is TOML with the sections ``[model]``, ``[states]``, ``[parameters]``,
-``[definitions]``, ``[equations]``, ``[constraints]`` and ``[settings]``; the format
+``[definitions]``, ``[equations]``, ``[limits]`` (also read under its older name
+``[constraints]``) and ``[settings]``; the format
 is documented in ``docs/model-format.md``. Every number is kept exact: TOML numbers
 become :class:`fractions.Fraction` and number literals inside expressions become
 ``sympy.Rational``.
@@ -56,6 +57,8 @@ MAX_FILE_BYTES = 1_000_000
 #: Sections of a model file, in their usual order.
 SECTIONS = ("model", "states", "parameters", "definitions", "equations", "constraints", "settings")
 _REQUIRED_SECTIONS = ("model", "states", "equations", "constraints")
+#: Longest free texts, in characters: a model names and describes, it is not a document.
+TEXT_LENGTHS = {"name": 200, "description": 5000, "time_unit": 40, "unit": 40, "about": 300}
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]{0,63}")
 _KINKS = (sympy.Abs, sympy.Min, sympy.Max)
 _UNDEFINED = (sympy.zoo, sympy.nan, sympy.oo, -sympy.oo)
@@ -273,8 +276,12 @@ def load_model(path):
         raise ModelError(f"{label}: cannot read the file (permission denied)") from None
     except OSError as exc:
         raise ModelError(f"{label}: cannot read the file ({exc.strerror or exc})") from None
+    if data[:2] == b"\x1f\x8b":
+        raise ModelError(f"{label}: a gzip-compressed file (a certificate?), not a model "
+                         "file; expected TOML text (see docs/model-format.md)")
     if len(data) > MAX_FILE_BYTES:
-        raise ModelError(f"{label}: the file is larger than {MAX_FILE_BYTES:,} bytes")
+        raise ModelError(f"{label}: the file is larger than {MAX_FILE_BYTES:,} bytes; a "
+                         "model file is TOML text (see docs/model-format.md)")
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -358,12 +365,15 @@ class _Reader:
         return ModelError(f"{self.label}: {where}: {message}")
 
     def read(self, data, *, path, text, sha256):
+        data = self.limits_section(data)
         for key in data:
             if key not in SECTIONS:
-                raise ModelError(f"{self.label}: {_unknown('section', key, SECTIONS, brackets=True)}")
+                shown = SECTIONS[:5] + ("limits",) + SECTIONS[5:]  # both names are read
+                raise ModelError(f"{self.label}: {_unknown('section', key, shown, brackets=True)}")
         for section in _REQUIRED_SECTIONS:
             if section not in data:
-                raise ModelError(f"{self.label}: missing section [{section}]")
+                shown = "limits" if section == "constraints" else section
+                raise ModelError(f"{self.label}: missing section [{shown}]")
         tables = {section: self.table(data, section) for section in SECTIONS}
         header = self.header(tables["model"])
         states = self.states(tables["states"])
@@ -397,6 +407,16 @@ class _Reader:
                         if where.startswith(("[equations]", "[constraints]"))},
         )
 
+    def limits_section(self, data):
+        """Read ``[limits]`` (the documented name) as ``[constraints]`` (the older one)."""
+        self.limits_name = "limits" if "limits" in data else "constraints"  # for messages
+        if "limits" not in data:
+            return data
+        if "constraints" in data:
+            raise ModelError(f"{self.label}: [limits] and [constraints] are the same section; "
+                             "write the limits once, under [limits]")
+        return {("constraints" if key == "limits" else key): v for key, v in data.items()}
+
     def table(self, data, section):
         value = data.get(section, {})
         if not isinstance(value, dict):
@@ -408,11 +428,14 @@ class _Reader:
             if key not in allowed:
                 raise self.error(where, _unknown("key", key, allowed))
 
-    def text(self, value, where, *, required=False):
+    def text(self, value, where, *, required=False, field=None):
         if not isinstance(value, str):
             raise self.error(where, f"expected text in quotes, got {_describe(value)}")
         if required and not value.strip():
             raise self.error(where, "must not be empty")
+        if field is not None and len(value) > TEXT_LENGTHS[field]:
+            raise self.error(where, f"is {len(value):,} characters long; at most "
+                                    f"{TEXT_LENGTHS[field]:,} are allowed")
         return value
 
     def number(self, value, where):
@@ -445,7 +468,7 @@ class _Reader:
             raise self.error(where, f"is a reserved name (the constant {name}); choose another name")
         if name in FUNCTION_NAMES:
             raise self.error(where, f"is a reserved name (the function {name}()); choose another name")
-        if section != "constraints":
+        if section not in ("constraints", "limits"):  # limits have names of their own
             if name in self.declared:
                 raise self.error(where, f"the name is already declared in [{self.declared[name]}]")
             self.declared[name] = section
@@ -455,9 +478,11 @@ class _Reader:
         if "name" not in table:
             raise self.error("[model]", "missing key 'name'")
         return {
-            "name": self.text(table["name"], "[model] name", required=True),
-            "time_unit": self.text(table.get("time_unit", ""), "[model] time_unit"),
-            "description": self.text(table.get("description", ""), "[model] description"),
+            "name": self.text(table["name"], "[model] name", required=True, field="name"),
+            "time_unit": self.text(table.get("time_unit", ""), "[model] time_unit",
+                                   field="time_unit"),
+            "description": self.text(table.get("description", ""), "[model] description",
+                                     field="description"),
         }
 
     def states(self, table):
@@ -481,8 +506,8 @@ class _Reader:
                 raise self.error(where, f"the range {_range(lo, hi)} is empty (lo must be below hi)")
             if lo > hi:
                 raise self.error(where, f"the range {_range(lo, hi)} is reversed (write [lo, hi] with lo < hi)")
-            unit = self.text(value.get("unit", ""), f"{where}: unit")
-            about = self.text(value.get("about", ""), f"{where}: about")
+            unit = self.text(value.get("unit", ""), f"{where}: unit", field="unit")
+            about = self.text(value.get("about", ""), f"{where}: about", field="about")
             states.append(State(name, lo, hi, unit, about))
         return tuple(states)
 
@@ -496,7 +521,7 @@ class _Reader:
                 self.keys(value, ("value", "range", "unit"), where)
                 if ("value" in value) == ("range" in value):
                     raise self.error(where, "give exactly one of 'value' and 'range'")
-                unit = self.text(value.get("unit", ""), f"{where}: unit")
+                unit = self.text(value.get("unit", ""), f"{where}: unit", field="unit")
                 value = value.get("value", value.get("range"))
             if isinstance(value, list):
                 lo, hi = self.pair(value, where)
@@ -579,11 +604,12 @@ class _Reader:
 
     def constraints(self, table, scope, expand):
         if not table:
-            raise self.error("[constraints]", "no limits are declared (a model needs at least one)")
+            raise self.error(f"[{self.limits_name}]",
+                             "no limits are declared (a model needs at least one)")
         constraints = []
         for name, text in table.items():
-            self.name(name, "constraints")
-            where = f"[constraints] {name}"
+            self.name(name, self.limits_name)
+            where = f"[{self.limits_name}] {name}"
             g = self.substituted(self.parse(text, scope, where, limit=True), expand, where)
             if g.has(*_KINKS):
                 raise self.error(where, "abs, min and max are not allowed in limits; write each case as a limit")

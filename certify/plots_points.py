@@ -4,36 +4,33 @@
 
 * equilibria, marker by stability: filled circle stable, open circle unstable,
   cross saddle, diamond undetermined;
-* the arcs of each limit surface where the flow provably leaves (thick solid) or
-  returns (thick dashed), where the other limits hold;
+* the arcs of each limit surface where the flow provably leaves or returns, where
+  the other limits hold: thick lines with arrows pointing out of the limits (leaves)
+  or into them (returns), styles from :mod:`certify.palette`;
 * tangency points: filled star where the tangent trajectory leaves, open star where
   it returns, grey star undetermined;
 * the explaining curves, thin and dashed, labelled as estimates.
 
-Its legend sits below the axes, apart from the map's own legend.
+1D models get their equilibria only. The legend handles are returned for the map's
+single legend.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from .palette import ARC_STYLES, INK
 from .points import SUMMARY_BUDGET, analyse_points, explaining_curves
 
 __all__ = ["draw_points", "EQUILIBRIUM_MARKERS"]
 
-_INK = "#111111"
+_INK = INK
 #: Marker keyword arguments per stability.
 EQUILIBRIUM_MARKERS = {
     "stable": {"marker": "o", "markerfacecolor": _INK, "markeredgecolor": _INK},
     "unstable": {"marker": "o", "markerfacecolor": "white", "markeredgecolor": _INK},
     "saddle": {"marker": "X", "markerfacecolor": _INK, "markeredgecolor": "white"},
     "undetermined": {"marker": "D", "markerfacecolor": "#9a9a9a", "markeredgecolor": _INK},
-}
-_ARC_STYLES = {
-    "leaves": {"color": "#b2182b", "linestyle": "solid", "linewidth": 3.5,
-               "label": "limit: flow leaves (proven)"},
-    "returns": {"color": "#542788", "linestyle": (0, (1.2, 0.8)), "linewidth": 3.5,
-                "label": "limit: flow returns (proven)"},
 }
 _TANGENCY_MARKERS = {
     "leaves": {"marker": "*", "markerfacecolor": _INK, "markeredgecolor": _INK},
@@ -82,21 +79,60 @@ def _within_other_limits(program, params, line, k):
     return (others >= 0).all(1)
 
 
+def _arc_arrows(ax, margins, params, segments, ks, lo, hi, sign):
+    """Arrows across arc segments, about every 6 % of the window, pointing where
+    ``sign * g_k`` grows (sign -1: out of the limits, +1: into them)."""
+    span = hi - lo
+    u0, u1 = (segments[:, 0] - lo) / span, (segments[:, 1] - lo) / span
+    d = u1 - u0
+    length = np.hypot(d[:, 0], d[:, 1])
+    steps = np.floor(np.cumsum(length) / 0.06)
+    pick = np.flatnonzero(np.diff(steps, prepend=-1) > 0)
+    pick = pick[length[pick] > 0]
+    if not len(pick):
+        return
+    normal = np.stack([-d[pick, 1], d[pick, 0]], 1) / length[pick, None]
+    mid = 0.5 * (segments[pick, 0] + segments[pick, 1])
+    probe = mid + 1e-3 * normal * span
+    g = margins.point(np.concatenate([probe, np.tile(params, (len(probe), 1))], 1))
+    g_mid = margins.point(np.concatenate([mid, np.tile(params, (len(mid), 1))], 1))
+    rows = np.arange(len(pick))
+    grows = g[rows, ks[pick]] > g_mid[rows, ks[pick]]
+    direction = np.where((grows == (sign > 0))[:, None], normal, -normal) * 0.035 * span
+    ax.quiver(mid[:, 0], mid[:, 1], direction[:, 0], direction[:, 1], angles="xy",
+              scale_units="xy", scale=1, color=INK, width=0.004, headwidth=4,
+              headlength=4, headaxislength=3.5, zorder=5)
+
+
+def _arc_style(key):
+    """Keyword arguments of a LineCollection / Line2D for arcs of kind `key`."""
+    from matplotlib import patheffects
+
+    style = ARC_STYLES[key]
+    kw = {"color": style["color"], "linewidth": style["linewidth"]}
+    if "edge" in style:
+        kw["path_effects"] = [patheffects.Stroke(linewidth=style["linewidth"] + 2,
+                                                 foreground=style["edge"]),
+                              patheffects.Normal()]
+    return kw
+
+
 def draw_points(ax, proof, plane=(0, 1)):
-    """Draw equilibria, limit arcs, tangencies and explaining curves of a 2D proof.
+    """Draw equilibria, limit arcs, tangencies and explaining curves of a proof map.
 
     Parameters
     ----------
     ax : matplotlib Axes
         The axes of the map.
     proof : certify.prove.Proof
-    plane : (int, int)
-        The state axes drawn; only the full plane of a 2D model is drawn on.
+    plane : tuple of int
+        The state axes drawn; only the full line of a 1D model (equilibria only) or
+        the full plane of a 2D model is drawn on.
 
     Returns
     -------
     list
-        The legend handles added (empty when nothing was drawn).
+        The legend handles of what was drawn (empty when nothing was drawn).
     """
     from matplotlib.collections import LineCollection
     from matplotlib.lines import Line2D
@@ -104,10 +140,18 @@ def draw_points(ax, proof, plane=(0, 1)):
     from .taylor import flow_programs
 
     model = proof.model
-    if len(model.states) != 2 or tuple(plane) != (0, 1):
+    n = len(model.states)
+    if tuple(plane) != tuple(range(n)) or n > 2:
         return []
     result = analyse_points(model, **SUMMARY_BUDGET)
     handles = []
+    seen = set()
+    if n == 1:
+        for e in result.equilibria.equilibria:
+            ax.plot(e.centre[0], 0.5, linestyle="none", markersize=10, zorder=7,
+                    **EQUILIBRIUM_MARKERS[e.stability])
+            seen.add(("equilibrium", e.stability))
+        return _marker_handles(seen)
     lo = np.array([float(a) for a, _ in model.window])
     hi = np.array([float(b) for _, b in model.window])
     params = np.array([0.5 * (p[0] + p[1]) for p in proof.params])
@@ -117,21 +161,22 @@ def draw_points(ax, proof, plane=(0, 1)):
         for line in _zero_lines(margins, params, lo, hi, k):
             keep = _within_other_limits(margins, params, line, k)
             for key in arcs:
-                arcs[key].append(_arc_segments(line, getattr(limit, key), keep))
+                part = _arc_segments(line, getattr(limit, key), keep)
+                arcs[key].append((part, np.full(len(part), k)))
     for key, parts in arcs.items():
-        segments = np.concatenate(parts) if parts else np.empty((0, 2, 2))
+        segments = np.concatenate([p for p, _ in parts]) if parts else np.empty((0, 2, 2))
         if len(segments):
-            style = dict(_ARC_STYLES[key])
-            label = style.pop("label")
-            ax.add_collection(LineCollection(segments, capstyle="butt", zorder=3, **style))
-            handles.append(Line2D([], [], label=label, **style))
+            kw = _arc_style(key)
+            ax.add_collection(LineCollection(segments, capstyle="butt", zorder=3, **kw))
+            _arc_arrows(ax, margins, params, segments, np.concatenate([k for _, k in parts]),
+                        lo, hi, ARC_STYLES[key]["arrow"])
+            handles.append(Line2D([], [], label=ARC_STYLES[key]["label"], **kw))
     for curve in explaining_curves(model, result):
         style = _CURVE_STYLES[curve.kind]
         ax.plot(curve.points[:, 0], curve.points[:, 1], zorder=4, **style)
         label = f"estimate: {curve.kind}"
         if label not in [h.get_label() for h in handles]:
             handles.append(Line2D([], [], label=label, **style))
-    seen = set()
     for limit in result.limits:
         for t in limit.tangencies:
             c = t.box.mean(axis=1)
@@ -143,6 +188,13 @@ def draw_points(ax, proof, plane=(0, 1)):
         ax.plot(c[0], c[1], linestyle="none", markersize=10, zorder=7,
                 clip_on=False, **EQUILIBRIUM_MARKERS[e.stability])
         seen.add(("equilibrium", e.stability))
+    return handles + _marker_handles(seen)
+
+
+def _marker_handles(seen):
+    from matplotlib.lines import Line2D
+
+    handles = []
     for stability, style in EQUILIBRIUM_MARKERS.items():
         if ("equilibrium", stability) in seen:
             handles.append(Line2D([], [], linestyle="none", markersize=8,
@@ -151,9 +203,4 @@ def draw_points(ax, proof, plane=(0, 1)):
         if ("tangency", kind) in seen:
             handles.append(Line2D([], [], linestyle="none", markersize=11,
                                   label=f"tangency: {kind}", **style))
-    if handles:
-        legend = ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.11),
-                           ncol=3, fontsize=8, frameon=False)
-        ax.add_artist(legend)
-        legend.set_clip_on(False)  # add_artist clips to the axes; this legend sits below them
     return handles

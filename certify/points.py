@@ -1,6 +1,6 @@
 """Proven equilibria, their stability, and how the flow meets each limit.
 
-Three results explain a map of fates (DESIGN.md section 7):
+Three results explain a map of fates (docs/design.md, section 7):
 
 * **Equilibria** (:func:`find_equilibria`): every zero of ``f(x, p)`` in the window,
   each in a box proven (Krawczyk) to hold exactly one for every parameter value, the
@@ -252,7 +252,7 @@ def classify_stability(jlo, jhi):
 
     Notes
     -----
-    Routh 1877, Hurwitz 1895 (mem): a real monic polynomial has all roots in the open
+    Routh 1877, Hurwitz 1895 (from memory): a real monic polynomial has all roots in the open
     left half plane iff the leading principal minors of its Hurwitz matrix
     ``H_ij = a_(2i-j)`` are positive. NaN bounds make every test fail (undetermined).
 

@@ -8,9 +8,9 @@ from .points import points_summary
 
 __all__ = ["proof_summary", "summary_table", "SAFETY_NOTE"]
 
-SAFETY_NOTE = ("This certificate is a theorem about the model, not about the plant. Real "
-               "plants need validated models, margins, and review under the local codes "
-               "and licensed engineering practice that govern them.")
+SAFETY_NOTE = ("This certificate is a theorem about the model, not about the system it "
+               "describes. Decisions about a real system need a validated model, margins, "
+               "and review under the rules and practice that govern that system.")
 
 LABELS = ("safe", "doomed", "outside", "undecided")
 
@@ -71,6 +71,10 @@ def summary_table(summary):
     lines.append(f"{'label':<10} {'cells':>8} {'window %':>10}")
     for k in LABELS:
         lines.append(f"{k:<10} {summary['cells'][k]:>8} {100 * summary['fractions'][k]:>10.3f}")
+    if summary["cells"]["safe"] == 0 and summary["cells"]["undecided"] > 0:
+        lines.append(f"nothing is proven safe at depth {summary['depth_reached']} yet: go deeper "
+                     "with --max-depth (or max_depth in [settings]), or allow more time "
+                     "with --time-limit")
     exact = "" if summary["fractions_exact"] else " (straddling cells split by estimate)"
     lines.append(f"finest cell 1/{summary['finest_cells_per_side'][0]} of each side, "
                  f"{summary['rounds']} rounds, {summary['seconds']:.1f} s{exact}")
@@ -79,7 +83,7 @@ def summary_table(summary):
     sides = [f"{face['state']} = {summary['window'][i // 2][i % 2]:g} {face['kind']}"
              for i, face in enumerate(summary["faces"])]
     lines.append(f"sides:     {', '.join(sides)}")
-    if summary.get("crossing_time_max") is not None:
+    if summary["cells"]["doomed"] and summary.get("crossing_time_max") is not None:
         unit = summary.get("time_unit") or "time units"
         lines.append(f"every doomed start crosses a limit within "
                      f"{summary['crossing_time_max']:.4g} {unit}")

@@ -248,9 +248,13 @@ def _check_vary(model, vary):
 
 
 def _check_options(max_depth, time_limit_each, executor, scheduler, workers):
+    from certify.model import SETTINGS
+
+    rule = SETTINGS["max_depth"]  # the range [settings] accepts
     if max_depth is not None and (isinstance(max_depth, bool) or not isinstance(max_depth, int)
-                                  or not 0 <= max_depth <= 30):
-        raise UsageError("max_depth (--max-depth) must be a whole number between 0 and 30")
+                                  or not rule.lo <= max_depth <= rule.hi):
+        raise UsageError(f"max_depth (--max-depth) must be a whole number between {rule.lo} "
+                         f"and {rule.hi}")
     if time_limit_each is not None and not (isinstance(time_limit_each, (int, float))
                                             and 0 < time_limit_each < float("inf")):
         raise UsageError("time_limit_each (--time-limit-each) must be a positive number of seconds")

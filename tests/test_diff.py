@@ -8,7 +8,7 @@ References:
   = 0.5 / 2 = 0.25 for the demo numbers. With D = 0.3, x' = (mu - D) x <= -0.05 x, so
   every start with x0 <= 9 falls below the floor x >= 1 (chemostat washout when D exceeds
   the largest growth rate; Smith & Waltman 1995 (mem)). The revised model has no safe start.
-- Soundness (DESIGN.md section 5): labels are theorems, so two maps of one model never
+- Soundness (docs/design.md, section 5): labels are theorems, so two maps of one model never
   call the same start safe in one and doomed in the other.
 """
 
@@ -180,7 +180,7 @@ def other_certs(certs):
 @pytest.mark.parametrize("other, message", [
     ("decay", "are about different states (s, x vs x)"),
     ("narrow", "have different windows for s ([0, 12] vs [0, 10])"),
-    ("text", "not a readable certificate"),
+    ("text", "text (a model file?); expected a certificate"),
     ("missing", "no such file"),
 ])
 def test_bad_pairs_exit_2_with_one_line(certs, other_certs, capsys, other, message):

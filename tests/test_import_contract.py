@@ -1,4 +1,4 @@
-"""The checker's independence is a package boundary (DESIGN.md section 6: the checker
+"""The checker's independence is a package boundary (docs/design.md, section 6: the checker
 trusts only the model reader, sympy and python-flint, never the proof code).
 
 Two checks: an AST walk over every module of ``certify/check/`` lists the ``certify``

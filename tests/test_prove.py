@@ -440,7 +440,7 @@ def _certificate_of(proof):
     (FERMENTER, 6, 8), (PENDULUM, 5, 7), (OVERDAMPED, 5, 7),
 ])
 def test_deeper_run_never_relabels_decided_points(path, shallow, deep, certified):
-    # DESIGN.md section 5: decided cells are never split or relabelled
+    # docs/design.md, section 5: decided cells are never split or relabelled
     a, b = certified(path, shallow), certified(path, deep)
     points = random_points(a.model, N_POINTS, np.random.default_rng(11))
     la, lb = a.cert.label_at(points), b.cert.label_at(points)
@@ -727,7 +727,7 @@ def test_transition_graph_edges_cover_simulated_images(certified):
     # For starts in cells of every label, the state at the cell's horizon T_c, integrated
     # by scipy's DOP853 (an integrator outside this project), lies in one of the cell's
     # successors (the successor rule claims they cover the image); and the labels are
-    # the fixpoints of DESIGN.md section 5 on the networkx graph.
+    # the fixpoints of docs/design.md, section 5 on the networkx graph.
     import networkx as nx
 
     run = certified(SIR, CASES["sir"].depth)

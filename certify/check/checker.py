@@ -5,7 +5,7 @@ its own short graph checks. It never imports the proof code: it reads the certif
 file, re-derives the Taylor coefficients from the stored model text, recomputes every
 step of every cell whose claims need it (:mod:`certify.check._cells`), and checks each
 cell's claims locally against its own facts and its successors' claims
-(DESIGN.md section 5). When every local check holds, every claim holds by induction
+(docs/design.md, section 5). When every local check holds, every claim holds by induction
 over ranks (doomed) and horizons (safe, survival bounds).
 
 Arithmetic: each cell is first recomputed with arb balls, vectorized over chunks of
@@ -262,7 +262,7 @@ class _Facts:
 
 # -- claims ------------------------------------------------------------------------------
 class _Judge:
-    """Local checks of each cell's claims (DESIGN.md section 5)."""
+    """Local checks of each cell's claims (docs/design.md, section 5)."""
 
     def __init__(self, cert, facts, tree, succ_missing):
         self.cert = cert

@@ -5,9 +5,10 @@ import sys
 
 from certify.errors import UsageError
 
-__all__ = ["HELP", "add_arguments", "run", "SHOWN_FAILURES"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run", "SHOWN_FAILURES"]
 
 HELP = "re-verify a certificate with independent arithmetic (exit 0 valid, 1 invalid)"
+EXITS = "0 valid, 1 invalid, 2 usage or input error, 130 interrupted"
 
 #: Failures listed on the terminal (``--json`` lists all).
 SHOWN_FAILURES = 20
@@ -16,12 +17,12 @@ SHOWN_FAILURES = 20
 def add_arguments(parser):
     """Add the options of ``certify check`` to ``parser``."""
     parser.add_argument("certificate", metavar="CERT",
-                        help="certificate file (certificate.json.gz)")
+                        help="certificate file (certificate.json.gz) or the folder holding it")
     parser.add_argument("--model", metavar="MODEL.toml",
                         help="check the claims against this revised model (same states) "
                              "and report which still hold")
-    parser.add_argument("--jobs", type=int, metavar="N",
-                        help="worker processes (default: all cores)")
+    parser.add_argument("--workers", "--jobs", type=int, metavar="N", dest="jobs",
+                        help="worker processes (default: all cores; --jobs is the old name)")
     parser.add_argument("--json", action="store_true",
                         help="print {valid, cells_checked, failures, seconds} as JSON")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -56,12 +57,25 @@ def _describe(failure):
             f"{failure['reason']}")
 
 
+def _print_regression(claims, model):
+    """Per label, the claims that hold for the revised model and those whose stored
+    steps do not re-verify (they may still be true: only a new proof can tell)."""
+    for key, words in (("held", "claims that still hold"),
+                       ("failed", "claims not re-verified with the stored steps")):
+        counts = ", ".join(f"{n} {label}" for label, n in claims[key].items() if n)
+        print(f"{words}: {counts or 'none'}")
+    held, failed = sum(claims["held"].values()), sum(claims["failed"].values())
+    if failed > held:
+        print(f"most claims could not be re-verified for the revised model; prove it anew "
+              f"(certify prove {model}) for a map of its own")
+
+
 def run(args):
     """Check the certificate named by ``args.certificate``; returns 0 or 1."""
     from certify.check import check_certificate
 
     if args.jobs is not None and args.jobs < 1:
-        raise UsageError("--jobs must be at least 1")
+        raise UsageError("--workers must be at least 1")
     progress = None if args.quiet or args.json else _Progress()
     try:
         result = check_certificate(args.certificate, model=args.model, jobs=args.jobs,
@@ -80,9 +94,7 @@ def run(args):
     print(f"{verdict}: {args.certificate}: {result.message} "
           f"({result.cells_checked} cells, {result.seconds:.1f} s)")
     if result.claims is not None:
-        for key in ("held", "failed"):
-            counts = ", ".join(f"{n} {label}" for label, n in result.claims[key].items() if n)
-            print(f"claims that {'still hold' if key == 'held' else 'fail'}: {counts or 'none'}")
+        _print_regression(result.claims, args.model)
     for failure in result.failures[:SHOWN_FAILURES]:
         print(_describe(failure))
     hidden = len(result.failures) - SHOWN_FAILURES

@@ -4,9 +4,11 @@ from pathlib import Path
 
 from certify.commands.prove import add_budget_arguments, run_proof
 
-__all__ = ["HELP", "add_arguments", "run", "DEMO_MODEL"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run", "DEMO_MODEL"]
 
-HELP = "prove the built-in demo model (a substrate-inhibited fermenter) and write its map"
+HELP = ("prove the built-in demo model (a substrate-inhibited fermenter), write its map, and "
+        "re-verify its certificate with the independent checker")
+EXITS = "0 proven and valid, 1 the check found the certificate invalid, 2 usage or input error, 130 interrupted"
 
 #: The demo model ships with the repository (``make demo`` runs from an editable install).
 DEMO_MODEL = Path(__file__).resolve().parents[2] / "models" / "fermenter.toml"

@@ -5,11 +5,14 @@ holds, 2 usage or input error.
 """
 
 import json
+import sys
 
-__all__ = ["HELP", "add_arguments", "run"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run"]
 
 HELP = ("compare two certificates of the same states and window: volume moving between "
         "labels, a plot of the changes, and the model differences")
+EXITS = ("0 done (or the --fail-on condition does not hold), 1 the --fail-on condition holds, "
+         "2 usage or input error, 130 interrupted")
 
 
 def add_arguments(parser):
@@ -31,10 +34,15 @@ def run(args):
     from pathlib import Path
 
     from certify.diff import diff_certificates, write_diff
+    from certify.files import output_folder
 
+    out = output_folder(args.out or Path("proofs_out") / "diff")
     result = diff_certificates(args.old, args.new)
-    out = write_diff(result, Path(args.out or Path("proofs_out") / "diff"))
+    write_diff(result, out)
     failed = bool(args.fail_on) and result.fails(args.fail_on)
+    if args.fail_on == "safe-loss" and sum(result.table[0]) == 0:
+        print("certify: warning: OLD proves no start safe, so --fail-on safe-loss has nothing "
+              "to lose; prove OLD deeper (--max-depth) for a meaningful gate", file=sys.stderr)
     if args.json:
         data = result.to_json()
         data.update({"plot": str(out / "diff.png"), "fail_on": args.fail_on, "failed": failed})

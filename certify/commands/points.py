@@ -2,12 +2,12 @@
 
 import json
 
-from certify.commands.prove import parse_param
-from certify.errors import UsageError
+from certify.commands.prove import check_depth, parse_param
 
-__all__ = ["HELP", "add_arguments", "run", "points_table"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run", "points_table"]
 
 HELP = "prove the equilibria (with stability) and where the flow leaves, returns to or touches each limit"
+EXITS = "0 done, 2 usage or input error, 130 interrupted"
 
 
 def add_arguments(parser):
@@ -25,8 +25,7 @@ def run(args):
     from certify.model import load_model
     from certify.points import analyse_points
 
-    if not 0 <= args.max_depth <= 30:
-        raise UsageError("--max-depth must be between 0 and 30")
+    check_depth(args.max_depth)
     model = load_model(args.model)
     if args.param:
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
@@ -39,8 +38,8 @@ def run(args):
     return 0
 
 
-def _fmt_box(box):
-    return " x ".join(_fmt_interval(lo, hi) for lo, hi in box)
+def _fmt_box(box, names):
+    return ", ".join(f"{name} = {_fmt_interval(lo, hi)}" for name, (lo, hi) in zip(names, box))
 
 
 def _fmt_interval(lo, hi):
@@ -61,18 +60,19 @@ def points_table(model, result):
     -------
     str
     """
-    names = ", ".join(s.name for s in model.states)
+    states = [s.name for s in model.states]
+    names = ", ".join(states)
     eq = result.equilibria
     lines = [f"model      {model.name}", "", f"equilibria in the window ({names}):"]
     if not eq.equilibria:
         lines.append("  none")
     for k, e in enumerate(eq.equilibria, start=1):
-        lines.append(f"  {k:>2}  {e.stability:<12} {e.limits:<10} {_fmt_box(e.box)}")
+        lines.append(f"  {k:>2}  {e.stability:<12} {e.limits:<10} {_fmt_box(e.box, states)}")
     if eq.complete:
         lines.append("  the rest of the window is proven free of equilibria")
     else:
         lines.append(f"  NOT complete: {len(eq.unresolved)} box(es) could not be cleared:")
-        lines += [f"      {_fmt_box(b)}" for b in eq.unresolved[:10]]
+        lines += [f"      {_fmt_box(b, states)}" for b in eq.unresolved[:10]]
         if len(eq.unresolved) > 10:
             lines.append(f"      ... and {len(eq.unresolved) - 10} more (see --json)")
     for r, c in zip(result.limits, model.constraints):
@@ -80,10 +80,10 @@ def points_table(model, result):
                   f"  flow leaves in {len(r.leaves)} box(es), returns in {len(r.returns)} box(es)"]
         for t in r.tangencies:
             proof = "one tangency point" if t.unique else "covers possible tangencies"
-            lines.append(f"  tangency  {t.kind:<12} {_fmt_box(t.box)}  ({proof})")
+            lines.append(f"  tangency  {t.kind:<12} {_fmt_box(t.box, states)}  ({proof})")
         if not r.tangencies:
             lines.append("  no tangency in the window")
     lines += ["", "Boxes are proven for every parameter value; stability is from the "
               "Routh-Hurwitz conditions on the interval Jacobian. Results speak about the "
-              "model, not the plant."]
+              "model, not the system it describes."]
     return "\n".join(lines)

@@ -2,12 +2,15 @@
 
 import json
 import sys
+import time
 
 from certify.errors import UsageError
 
-__all__ = ["HELP", "add_arguments", "run", "parse_param", "run_proof"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run", "parse_param", "run_proof",
+           "add_budget_arguments", "add_depth_argument", "check_depth", "progress_bar"]
 
 HELP = "prove which starting states stay within the limits, which must cross, and write a certificate"
+EXITS = "0 done, 2 usage or input error, 130 interrupted (the last finished round is written)"
 
 
 def add_arguments(parser):
@@ -20,15 +23,47 @@ def add_budget_arguments(parser):
     """Options shared by ``prove`` and ``demo``."""
     parser.add_argument("--out", metavar="DIR",
                         help="output folder (default: proofs_out/<model file stem>/)")
-    parser.add_argument("--max-depth", type=int, metavar="D",
-                        help="deepest bisection level of a cell (cells of 1/2^D of each side)")
-    parser.add_argument("--max-cells", type=int, metavar="N", help="largest number of cells")
+    add_depth_argument(parser, "deepest bisection level of a cell (cells of 1/2^D of each side)",
+                       "max_depth")
+    parser.add_argument("--max-cells", type=int, metavar="N",
+                        help=f"largest number of cells (default: the model's [settings] "
+                             f"max_cells, else {_budget_default('max_cells'):,})")
     parser.add_argument("--time-limit", type=float, metavar="S",
-                        help="stop refining after S seconds (the last finished round is kept)")
+                        help=f"stop refining after S seconds, keeping the last finished round "
+                             f"(default: the model's [settings] time_limit, else "
+                             f"{_budget_default('time_limit'):g})")
     parser.add_argument("--param", action="append", default=[], metavar="NAME=VALUE|NAME=LO:HI",
                         help="override a parameter by a number or an interval (repeatable)")
+    parser.add_argument("--slice", metavar="NAME=V[,V...]",
+                        help="models of 3 or more states: draw the slices at these levels "
+                             "of state NAME (default: 3 levels of the third state)")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON on stdout")
     parser.add_argument("--quiet", action="store_true", help="no progress bar, no table")
+
+
+def _budget_default(key):
+    from certify.prove import Budget
+    return getattr(Budget(), key)
+
+
+def add_depth_argument(parser, what, key=None):
+    """Add ``--max-depth`` with the range of the model's ``[settings] max_depth``."""
+    from certify.model import SETTINGS
+
+    rule = SETTINGS["max_depth"]
+    default = (f"the model's [settings] max_depth, else {_budget_default(key)}" if key
+               else "the model's [settings] max_depth, else the command's own")
+    parser.add_argument("--max-depth", type=int, metavar="D",
+                        help=f"{what}; {rule.lo} to {rule.hi} (default: {default})")
+
+
+def check_depth(depth):
+    """Raise UsageError unless `depth` is None or in the range ``[settings]`` accepts."""
+    from certify.model import SETTINGS
+
+    rule = SETTINGS["max_depth"]
+    if depth is not None and not rule.lo <= depth <= rule.hi:
+        raise UsageError(f"--max-depth must be between {rule.lo} and {rule.hi}")
 
 
 def parse_param(text):
@@ -58,8 +93,7 @@ def parse_param(text):
 
 
 def _check_budget(args):
-    if args.max_depth is not None and not 0 <= args.max_depth <= 30:
-        raise UsageError("--max-depth must be between 0 and 30")
+    check_depth(args.max_depth)
     if args.max_cells is not None and args.max_cells < 1:
         raise UsageError("--max-cells must be at least 1")
     if args.time_limit is not None and not args.time_limit > 0:
@@ -70,6 +104,7 @@ def run_proof(model_path, args, default_out=None):
     """Load, prove, write outputs; shared by ``prove`` and ``demo``. Returns exit code."""
     from pathlib import Path
 
+    from certify.files import output_folder
     from certify.model import load_model
     from certify.prove import prove, write_proof
     from certify.report import summary_table
@@ -78,13 +113,26 @@ def run_proof(model_path, args, default_out=None):
     model = load_model(model_path)
     if args.param:
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
-    out = Path(args.out or default_out or Path("proofs_out") / Path(model_path).stem)
-    progress = None if args.quiet else _progress_bar()
+    out = output_folder(args.out or default_out or Path("proofs_out") / Path(model_path).stem)
+    slices = None
+    if args.slice:
+        from certify.plots import parse_slice
+        if len(model.states) < 3:
+            raise UsageError("--slice: only models of 3 or more states are drawn in slices")
+        slices = parse_slice(model, args.slice)
+    progress = None if args.quiet else progress_bar()
     proof = prove(model, max_depth=args.max_depth, max_cells=args.max_cells,
                   time_limit=args.time_limit, progress=progress)
     if progress is not None:
         progress.close()
-    summary = write_proof(proof, out)
+    started = time.time()
+    try:
+        summary = write_proof(proof, out, figures=False)
+        from certify.plots import save_figures
+        save_figures(proof, out, slices)
+    except KeyboardInterrupt:
+        _report_partial(out, started)
+        return 130
     if args.json:
         print(json.dumps(summary, indent=2))
     elif not args.quiet:
@@ -95,7 +143,21 @@ def run_proof(model_path, args, default_out=None):
     return 0
 
 
-class _progress_bar:
+#: The files ``certify prove`` writes, in the order it writes them.
+OUTPUTS = ("certificate.json.gz", "summary.json", "map.png", "time_to_limit.png")
+
+
+def _report_partial(out, started):
+    """Say which outputs an interrupt during writing left complete in `out`."""
+    written = [name for name in OUTPUTS
+               if (out / name).is_file() and (out / name).stat().st_mtime >= started - 1]
+    missing = [name for name in OUTPUTS if name not in written]
+    print(f"certify: interrupted while writing into {out}; written: "
+          f"{', '.join(written) or 'nothing'}; not written (older copies may remain): "
+          f"{', '.join(missing)}", file=sys.stderr)
+
+
+class progress_bar:
     """Progress on stderr: rounds, cells, decided fraction."""
 
     def __init__(self):

@@ -5,9 +5,10 @@ import json
 from certify.expr import format_expression, format_number
 from certify.model import load_model
 
-__all__ = ["HELP", "add_arguments", "describe_model", "run"]
+__all__ = ["HELP", "EXITS", "add_arguments", "describe_model", "run"]
 
 HELP = "print a model as certify reads it: states, parameters, equations, limits, warnings"
+EXITS = "0 done, 2 usage or input error, 130 interrupted"
 
 _KINK_NOTE = (
     "abs/min/max make the right-hand side non-smooth: the flow is stepped at order 1 "

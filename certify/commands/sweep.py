@@ -3,11 +3,13 @@
 import json
 import sys
 
+from certify.commands.prove import add_depth_argument, parse_param
 from certify.errors import UsageError
 
-__all__ = ["HELP", "add_arguments", "run", "parse_vary", "sweep_table"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run", "parse_vary", "sweep_table"]
 
 HELP = "prove the map of fates for every box of a range of one or two parameters"
+EXITS = "0 done, 2 usage or input error, 130 interrupted (rerun the command to resume)"
 
 
 def add_arguments(parser):
@@ -16,11 +18,14 @@ def add_arguments(parser):
     parser.add_argument("--vary", action="append", default=[], metavar="NAME=LO:HI:N",
                         help="cut [LO, HI] of parameter NAME into N equal boxes "
                              "(once or twice)")
-    parser.add_argument("--max-depth", type=int, metavar="D",
-                        help="deepest bisection level of a cell in each box's proof")
+    parser.add_argument("--param", action="append", default=[], metavar="NAME=VALUE|NAME=LO:HI",
+                        help="fix another parameter to a number or an interval for the whole "
+                             "sweep (repeatable)")
+    add_depth_argument(parser, "deepest bisection level of a cell in each box's proof",
+                       "max_depth")
     parser.add_argument("--time-limit-each", type=float, metavar="S",
                         help="stop refining each box's proof after S seconds "
-                             "(results then depend on the machine)")
+                             "(default: none; results then depend on the machine)")
     parser.add_argument("--executor", choices=["local", "dask"], default="local",
                         help="local process pool (default) or a Dask cluster")
     parser.add_argument("--scheduler", metavar="ADDRESS",
@@ -118,8 +123,7 @@ def sweep_table(result):
     -------
     str
     """
-    lines = [f"{'box':<26} {'safe %: proven .. at most':>26} {'undecided %':>12}  "
-             "equilibria  verdict"]
+    rows = [("box", "safe % proven", "safe % at most", "undecided %", "equilibria", "verdict")]
     for e in result.entries:
         box = " ".join(f"{name}=[{lo:.4g}, {hi:.4g}]" for name, (lo, hi) in e["params"].items())
         lo, hi = e["safe_bounds"]
@@ -129,8 +133,12 @@ def sweep_table(result):
             counts += " (+unresolved)"
         verdict = ("no safe state" if e["no_safe_state"]
                    else "safe states exist" if e["safe_state_exists"] else "open")
-        lines.append(f"{box:<26} {100 * lo:>12.2f} .. {100 * hi:<10.2f} "
-                     f"{100 * e['fractions']['undecided']:>12.2f}  {counts}  {verdict}")
+        rows.append((box, f"{100 * lo:.2f}", f"{100 * hi:.2f}",
+                     f"{100 * e['fractions']['undecided']:.2f}", counts, verdict))
+    widths = [max(len(r[k]) for r in rows) for k in range(len(rows[0]))]
+    right = (False, True, True, True, False, False)  # numbers right-aligned
+    lines = ["  ".join(cell.rjust(w) if r else cell.ljust(w)
+                       for cell, w, r in zip(row, widths, right)).rstrip() for row in rows]
     lines.append(f"{result.n_boxes} boxes ({result.n_resumed} resumed), {result.seconds:.1f} s; "
                  f"written to {result.out}")
     return "\n".join(lines)
@@ -138,16 +146,24 @@ def sweep_table(result):
 
 def run(args):
     """Sweep the model named by ``args.model``; return 0, or 130 when interrupted."""
+    from certify.files import output_folder
     from certify.model import load_model
-    from certify.sweep import sweep
+    from certify.sweep import default_sweep_dir, sweep
 
     vary = _vary(args.vary)
     model = load_model(args.model)
+    if args.param:
+        fixed = dict(parse_param(p) for p in args.param)
+        both = sorted(set(fixed) & set(vary))
+        if both:
+            raise UsageError(f"--param {both[0]}: the parameter is also given to --vary")
+        model = model.with_parameters(fixed)
+    out = output_folder(args.out or default_sweep_dir(model))
     progress = None if args.quiet else _ProgressBar()
     try:
         result = sweep(model, vary, max_depth=args.max_depth,
                        time_limit_each=args.time_limit_each, executor=args.executor,
-                       scheduler=args.scheduler, workers=args.workers, out=args.out,
+                       scheduler=args.scheduler, workers=args.workers, out=out,
                        keep_certificates=args.keep_certificates, progress=progress)
     finally:
         if progress is not None:

@@ -194,7 +194,11 @@ class _Prover:
             _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
             crossed = np.any(gh < 0, axis=1)
             too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
-            return ((left | inside) & (t_lo >= min_horizon)) | crossed | too_wide
+            # an end box beyond an open side would escape: follow the trajectories until
+            # they come back into the window or cross a limit out there
+            ones = np.ones(len(ids), bool)
+            away = self._clip(end_lo, end_hi, ones, ones)[2]
+            return ((left | inside) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,

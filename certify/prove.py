@@ -13,6 +13,7 @@ import time
 from dataclasses import dataclass, field
 
 import numpy as np
+import scipy.sparse as sp
 
 from . import interval as iv
 from .cells import CellTree
@@ -410,6 +411,40 @@ def _focused(tree, leaves, labelling, facts, focus):
     return leaves[mask[:L] & und]
 
 
+def _causes_first(tree, leaves, labelling, facts, wanted):
+    """The leaves to split this round: where the graph is wrong first.
+
+    An undecided leaf is a *cause* when its own facts fail (no image, a limit not kept,
+    an escape), when it lies on a cycle of undecided leaves (recurrence, often an artefact
+    of wide images: scipy's strongly connected components), or when one of its successors
+    is decided (it sits on a border). The other undecided leaves only wait for their
+    undecided successors; they are split once no cause is left below the depth budget.
+    """
+    from scipy.sparse.csgraph import connected_components
+
+    if len(wanted) == 0:
+        return wanted
+    L = len(leaves)
+    und = labelling.label == UNDECIDED
+    own = ~facts.flow_ok | ~facts.kept | facts.escapes
+    inner = und[facts.src] & und[facts.dst]
+    g = sp.csr_matrix((np.ones(int(inner.sum())), (facts.src[inner], facts.dst[inner])),
+                      shape=(L, L))
+    _, component = connected_components(g, directed=True, connection="strong")
+    size = np.bincount(component, minlength=L)
+    cyclic = size[component] > 1
+    cyclic[facts.src[inner & (facts.src == facts.dst)]] = True
+    decided = labelling.label[facts.dst] != UNDECIDED
+    decided &= labelling.label[facts.dst] != "outside"
+    border = np.zeros(L, bool)
+    border[facts.src[decided]] = True
+    cause = und & (own | cyclic | border)
+    number = np.full(len(tree), -1)
+    number[leaves] = np.arange(L)
+    first = wanted[cause[number[wanted]]]
+    return first if len(first) else wanted
+
+
 def _prove(model, method, budget, progress, focus):
     start = time.monotonic()
     prover = _Prover(model, method, budget, progress)
@@ -440,6 +475,8 @@ def _prove(model, method, budget, progress, focus):
             else:
                 wanted = _focused(tree, leaves, labelling, facts, focus)
             und = wanted[tree.depth[wanted] < budget.max_depth]
+            if focus is None:
+                und = _causes_first(tree, leaves, labelling, facts, und)
             if len(und) == 0:
                 if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"

@@ -742,6 +742,47 @@ def test_open_sides_are_reported_by_prove_and_show(tmp_path, capsys):
         ("y", "1.2", "open")]
 
 
+def test_refinement_splits_cycles_failures_and_borders_first():
+    # a random graph on undecided leaves plus a few decided ones; the strongly
+    # connected components come from networkx (an outside reference)
+    import networkx as nx
+
+    from certify.labels import CellFacts, Labelling
+
+    rng = np.random.default_rng(7)
+    L = 300
+    label = np.where(rng.random(L) < 0.8, "undecided",
+                     rng.choice(["safe", "doomed", "outside"], L))
+    src = rng.integers(0, L, 450)
+    dst = rng.integers(0, L, 450)
+    own = rng.random(L) < 0.05
+    facts = CellFacts(outside=label == "outside", flow_ok=~own, kept=np.ones(L, bool),
+                      escapes=np.zeros(L, bool), crossing=np.full(L, np.inf),
+                      horizon_lo=np.ones(L), horizon_hi=np.ones(L),
+                      first_unkept=np.full(L, np.inf), src=src, dst=dst)
+    labelling = Labelling(label=label, rank=np.full(L, -1),
+                          crossing_upper=np.full(L, np.inf), survival_lower=np.zeros(L))
+    und = np.flatnonzero(label == "undecided")
+    g = nx.DiGraph()
+    g.add_nodes_from(und)
+    g.add_edges_from((a, b) for a, b in zip(src, dst) if a in g and b in g)
+    expected = set()
+    for part in nx.strongly_connected_components(g):
+        if len(part) > 1 or any(g.has_edge(c, c) for c in part):
+            expected |= part
+    expected |= {int(c) for c in und if own[c]}
+    expected |= {int(a) for a, b in zip(src, dst)
+                 if label[a] == "undecided" and label[b] in ("safe", "doomed")}
+    leaves = np.arange(L)
+    first = prove_module._causes_first(leaves, leaves, labelling, facts, und)
+    assert 0 < len(expected) < len(und)
+    assert set(first.tolist()) == expected
+    # with no cause left, every wanted leaf is split
+    waiting = np.array(sorted(set(und.tolist()) - expected))
+    assert set(prove_module._causes_first(leaves, leaves, labelling, facts, waiting)) \
+        == set(waiting.tolist())
+
+
 def test_successors_cover_the_image_and_touching_leaves_are_left_out():
     # covering property of the successor rule (docs/proof-loop.md): every point of a
     # box inside the window lies in some named leaf; a leaf left out shares no point of

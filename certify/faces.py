@@ -33,8 +33,8 @@ from .interval import enclose_fraction
 from .program import compile_program
 from .taylor import fixed_parameters
 
-__all__ = ["analyse_faces", "cut_at_invariant_faces", "zero_on_hyperplane", "HARMLESS",
-           "FACE_DEPTH", "SLAB_MARGIN"]
+__all__ = ["analyse_faces", "window_sides", "cut_at_invariant_faces", "zero_on_hyperplane",
+           "HARMLESS", "FACE_DEPTH", "SLAB_MARGIN"]
 
 HARMLESS = ("limit", "inflow", "invariant")
 FACE_DEPTH = 6
@@ -185,6 +185,30 @@ def analyse_faces(model, programs, tree, params, depth=FACE_DEPTH):
             faces.append({"axis": k, "side": side, "kind": kind, "lo": empty, "hi": empty,
                           "reason": np.zeros(0, int)})
     return faces
+
+
+def window_sides(model):
+    """The kind of each side of a model's window, as ``certify prove`` classifies it.
+
+    Parameters
+    ----------
+    model : certify.model.Model
+
+    Returns
+    -------
+    list of dict
+        ``{"state": name, "side": "lo"|"hi", "value": Fraction, "kind": ...}``, two per
+        state in state order. Trajectories may leave the window only at ``open`` sides.
+    """
+    from .cells import CellTree
+    from .evaluate import parameter_enclosures
+    from .taylor import flow_programs
+
+    programs = flow_programs(model, 1)
+    faces = analyse_faces(model, programs, CellTree(model.window), parameter_enclosures(model))
+    return [{"state": model.states[f["axis"]].name, "side": f["side"],
+             "value": model.window[f["axis"]][0 if f["side"] == "lo" else 1],
+             "kind": f["kind"]} for f in faces]
 
 
 def cut_at_invariant_faces(faces, window, e_lo, e_hi, owner, n_owners):

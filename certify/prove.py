@@ -15,6 +15,7 @@ import time
 from dataclasses import dataclass, field
 
 import numpy as np
+import scipy.sparse as sp
 
 from . import interval as iv
 from .cells import CellTree
@@ -198,7 +199,11 @@ class _Prover:
             _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
             crossed = np.any(gh < 0, axis=1)
             too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
-            return ((left | inside) & (t_lo >= min_horizon)) | crossed | too_wide
+            # an end box beyond an open side would escape: follow the trajectories until
+            # they come back into the window or cross a limit out there
+            ones = np.ones(len(ids), bool)
+            away = self._clip(end_lo, end_hi, ones, ones)[2]
+            return ((left | inside) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
@@ -413,6 +418,40 @@ def _focused(tree, leaves, labelling, facts, focus):
     return leaves[mask[:L] & und]
 
 
+def _causes_first(tree, leaves, labelling, facts, wanted):
+    """The leaves to split this round: where the graph is wrong first.
+
+    An undecided leaf is a *cause* when its own facts fail (no image, a limit not kept,
+    an escape), when it lies on a cycle of undecided leaves (recurrence, often an artefact
+    of wide images: scipy's strongly connected components), or when one of its successors
+    is decided (it sits on a border). The other undecided leaves only wait for their
+    undecided successors; they are split once no cause is left below the depth budget.
+    """
+    from scipy.sparse.csgraph import connected_components
+
+    if len(wanted) == 0:
+        return wanted
+    L = len(leaves)
+    und = labelling.label == UNDECIDED
+    own = ~facts.flow_ok | ~facts.kept | facts.escapes
+    inner = und[facts.src] & und[facts.dst]
+    g = sp.csr_matrix((np.ones(int(inner.sum())), (facts.src[inner], facts.dst[inner])),
+                      shape=(L, L))
+    _, component = connected_components(g, directed=True, connection="strong")
+    size = np.bincount(component, minlength=L)
+    cyclic = size[component] > 1
+    cyclic[facts.src[inner & (facts.src == facts.dst)]] = True
+    decided = labelling.label[facts.dst] != UNDECIDED
+    decided &= labelling.label[facts.dst] != "outside"
+    border = np.zeros(L, bool)
+    border[facts.src[decided]] = True
+    cause = und & (own | cyclic | border)
+    number = np.full(len(tree), -1)
+    number[leaves] = np.arange(L)
+    first = wanted[cause[number[wanted]]]
+    return first if len(first) else wanted
+
+
 def _prove(model, method, budget, progress, focus):
     start = time.monotonic()
     prover = _Prover(model, method, budget, progress)
@@ -448,6 +487,8 @@ def _prove(model, method, budget, progress, focus):
             else:
                 wanted = _focused(tree, leaves, labelling, facts, focus)
             und = wanted[tree.depth[wanted] < budget.max_depth]
+            if focus is None:
+                und = _causes_first(tree, leaves, labelling, facts, und)
             if len(und) == 0:
                 if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"

@@ -83,6 +83,11 @@ def summary_table(summary):
     sides = [f"{face['state']} = {summary['window'][i // 2][i % 2]:g} {face['kind']}"
              for i, face in enumerate(summary["faces"])]
     lines.append(f"sides:     {', '.join(sides)}")
+    open_sides = [side.removesuffix(" open") for side in sides if side.endswith(" open")]
+    if open_sides:
+        lines.append(f"open:      the flow may leave the window at {', '.join(open_sides)}; "
+                     f"trajectories are followed outside it, and cells whose trajectories "
+                     f"stay away undecided: widen the window there to decide them")
     if summary["cells"]["doomed"] and summary.get("crossing_time_max") is not None:
         unit = summary.get("time_unit") or "time units"
         lines.append(f"every doomed start crosses a limit within "

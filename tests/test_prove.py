@@ -39,6 +39,7 @@ OVERDAMPED = DATA / "prove_overdamped.toml"
 DECAY = DATA / "prove_decay.toml"
 BLOWUP = DATA / "prove_blowup.toml"
 NEVER = DATA / "prove_never_satisfiable.toml"
+ROTATION = DATA / "prove_rotation_open_side.toml"
 
 DECIDED = ("safe", "doomed", "outside")
 N_POINTS = 20_000
@@ -98,6 +99,16 @@ def pendulum_margins(y):
     return np.stack([2.5 - theta, theta + 2.5, 3.5 - w, w + 3.5])
 
 
+def rotation_rhs(y):
+    """Damped rotation x' = -y - c x, y' = x - c y with c = 0.05 (a linear system)."""
+    x, y_ = y
+    return np.stack([-y_ - 0.05 * x, x - 0.05 * y_])
+
+
+def rotation_margins(y):
+    return np.stack([0.9 - y[0], y[0] + 0.9])
+
+
 @dataclass(frozen=True)
 class Case:
     """A model file with its hand-written flow and limits for the simulation checks."""
@@ -118,6 +129,8 @@ CASES = {
     # undecided (REFERENCES.md R5), so no SIR cell can be proven safe
     "sir": Case(SIR, 7, sir_rhs, sir_margins, 100.0, ("doomed",)),
     "pendulum": Case(PENDULUM, 7, pendulum_rhs, pendulum_margins, 40.0, ("safe", "doomed")),
+    # trajectories leave the window at x = -0.6 and come back or cross x = -0.9 out there
+    "rotation": Case(ROTATION, 6, rotation_rhs, rotation_margins, 40.0, ("safe", "doomed")),
 }
 
 
@@ -680,6 +693,94 @@ def _random_boxes(rng, grid, count):
             axis = trial % 2
             ends[1, axis] = ends[0, axis] = rng.integers(0, grid + 1) / grid
         yield ends.min(0), ends.max(0)
+
+
+def _tube_reaches(proof, axis, value):
+    """Per leaf: some a-priori box of its tube reaches below ``x_axis = value``."""
+    out = np.zeros(len(proof.leaves), bool)
+    ref = proof.flow_ref[proof.leaves]
+    for b, flow in enumerate(proof.flows):
+        below = flow.e_lo[:, axis] < value
+        owner = np.repeat(np.arange(len(flow.status)), flow.n_steps)
+        reached = np.bincount(owner, weights=below, minlength=len(flow.status)) > 0
+        sel = ref[:, 0] == b
+        out[sel] = reached[ref[sel, 1]]
+    return out
+
+
+def test_trajectories_that_leave_the_window_are_followed(certified, capsys):
+    # x = -0.6 is an open side of the damped rotation: the flow leaves there for
+    # y > 0.03 and comes back half a turn later (r(t) = r0 exp(-t/20), closed form)
+    run = certified(ROTATION, 6)
+    kinds = {(f["state"], f["side"]): f["kind"] for f in run.summary["faces"]}
+    assert kinds[("x", "lo")] == "open" and kinds[("x", "hi")] == "limit"
+    labels = run.proof.labelling.label
+    outside_the_window = _tube_reaches(run.proof, 0, -0.6)
+    # cells whose trajectories went out and came back are proven safe; cells whose
+    # trajectories cross x = -0.9, beyond the window, are proven doomed
+    assert np.sum(outside_the_window & (labels == "safe")) > 10
+    beyond_left = _tube_reaches(run.proof, 0, -0.9)
+    assert np.sum(beyond_left & (labels == "doomed")) > 10
+    # the certificate passes the independent checker
+    cert = run.summary["certificate"]
+    assert main(["check", cert, "--jobs", "1", "--quiet"]) == 0
+    assert capsys.readouterr().out.startswith("VALID: ")
+
+
+def test_open_sides_are_reported_by_prove_and_show(tmp_path, capsys):
+    out = tmp_path / "rotation"
+    assert main(["prove", str(ROTATION), "--max-depth", "3", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "open:      the flow may leave the window at x = -0.6, y = -1.2, y = 1.2;" in text
+    assert main(["show", str(ROTATION)]) == 0
+    text = capsys.readouterr().out
+    assert "  x = -0.6: open\n  x = 1.2: limit\n  y = -1.2: open\n  y = 1.2: open" in text
+    assert main(["show", str(ROTATION), "--json"]) == 0
+    sides = json.loads(capsys.readouterr().out)["sides"]
+    assert [(s["state"], s["value"], s["kind"]) for s in sides] == [
+        ("x", "-0.6", "open"), ("x", "1.2", "limit"), ("y", "-1.2", "open"),
+        ("y", "1.2", "open")]
+
+
+def test_refinement_splits_cycles_failures_and_borders_first():
+    # a random graph on undecided leaves plus a few decided ones; the strongly
+    # connected components come from networkx (an outside reference)
+    import networkx as nx
+
+    from certify.labels import CellFacts, Labelling
+
+    rng = np.random.default_rng(7)
+    L = 300
+    label = np.where(rng.random(L) < 0.8, "undecided",
+                     rng.choice(["safe", "doomed", "outside"], L))
+    src = rng.integers(0, L, 450)
+    dst = rng.integers(0, L, 450)
+    own = rng.random(L) < 0.05
+    facts = CellFacts(outside=label == "outside", flow_ok=~own, kept=np.ones(L, bool),
+                      escapes=np.zeros(L, bool), crossing=np.full(L, np.inf),
+                      horizon_lo=np.ones(L), horizon_hi=np.ones(L),
+                      first_unkept=np.full(L, np.inf), src=src, dst=dst)
+    labelling = Labelling(label=label, rank=np.full(L, -1),
+                          crossing_upper=np.full(L, np.inf), survival_lower=np.zeros(L))
+    und = np.flatnonzero(label == "undecided")
+    g = nx.DiGraph()
+    g.add_nodes_from(und)
+    g.add_edges_from((a, b) for a, b in zip(src, dst) if a in g and b in g)
+    expected = set()
+    for part in nx.strongly_connected_components(g):
+        if len(part) > 1 or any(g.has_edge(c, c) for c in part):
+            expected |= part
+    expected |= {int(c) for c in und if own[c]}
+    expected |= {int(a) for a, b in zip(src, dst)
+                 if label[a] == "undecided" and label[b] in ("safe", "doomed")}
+    leaves = np.arange(L)
+    first = prove_module._causes_first(leaves, leaves, labelling, facts, und)
+    assert 0 < len(expected) < len(und)
+    assert set(first.tolist()) == expected
+    # with no cause left, every wanted leaf is split
+    waiting = np.array(sorted(set(und.tolist()) - expected))
+    assert set(prove_module._causes_first(leaves, leaves, labelling, facts, waiting)) \
+        == set(waiting.tolist())
 
 
 def test_successors_cover_the_image_and_touching_leaves_are_left_out():

@@ -107,7 +107,8 @@ def fate_b(points, tol=1e-9):
 
 
 def test_b_no_certified_cell_contradicts_washout(r11b):
-    bad, n_checked = contradictions(r11b.cert, fate_b, np.random.default_rng(11))
+    # 13 points per cell (corners, centre, 8 random): the cells here are few and large
+    bad, n_checked = contradictions(r11b.cert, fate_b, np.random.default_rng(11), n_random=8)
     assert n_checked > 1000
     assert len(bad) == 0, bad[:5]  # washout for D >= D_c (R11b, Smith & Waltman 1995 (mem))
 

@@ -3,6 +3,7 @@
 import json
 
 from certify.expr import format_expression, format_number
+from certify.faces import window_sides
 from certify.model import load_model
 
 __all__ = ["HELP", "EXITS", "add_arguments", "describe_model", "run"]
@@ -81,6 +82,7 @@ def describe_model(model):
         "settings": model.settings,
         "warnings": list(model.warnings),
         "uses_kinks": model.uses_kinks,
+        "sides": [dict(side, value=format_number(side["value"])) for side in window_sides(model)],
     }
 
 
@@ -125,6 +127,11 @@ def _text(model):
     lines += ["", "limits (closed; each holds where g >= 0):"]
     for limit in model.constraints:
         lines.append(f"  {limit.name}: {limit.text}    g = {format_expression(limit.g)} >= 0")
+
+    lines += ["", "window sides (trajectories may leave the window only at open sides; "
+                  "widen it there when cells stay undecided):"]
+    lines += [f"  {side['state']} = {format_number(side['value'])}: {side['kind']}"
+              for side in window_sides(model)]
 
     lines += ["", "settings:"]
     lines += [f"  {key} = {value}" for key, value in model.settings.items()] or ["  (defaults)"]

@@ -19,12 +19,15 @@ Margins are sampled on a fine time grid (from each step's dense output). Between
 grid times ``h`` apart a margin ``m`` with ``|m''| <= M`` lies above its chord minus
 ``M/2 (t - t_k)(t_k+1 - t)`` (the interpolation-error bound of linear interpolation);
 the test takes the exact minimum of that bound on every grid interval, per limit, with
-``m''`` the second Lie derivative of the limit along the field and ``M`` twice the larger
-of its values at the interval's ends. A start counts as keeping the limits only when
-that bound stays above an integration-error allowance, and as having crossed only when
-some grid margin is below minus the allowance. Both rules can only make the test fail
-more often (a safe trajectory that grazes a limit, or a doomed one crossing within a
-hair of its deadline, would be reported), never hide a wrong label.
+``m''`` the second Lie derivative of the limit along the field and ``M`` estimated as
+twice the larger of its values at the interval's ends (the grid is fine enough that
+``m''`` changes little within one interval). A start counts as keeping the limits only
+when that bound stays above an integration-error allowance, and as having crossed only
+when some grid margin is below minus the allowance; the check before a doomed start's
+lower bound includes the whole grid interval in which that bound falls. These rules
+only make the test fail more often than exact margins would (a safe trajectory that
+grazes a limit, or a doomed one crossing within a hair of its deadline, would be
+reported); they do not let a crossing between grid times pass unseen.
 """
 
 from pathlib import Path
@@ -43,7 +46,7 @@ MODELS_3D4D = [p for p in MODELS if len(load_model(p).states) >= 3]
 
 #: Proof depth, proof time limit (s), simulated horizon (model time units) and focus per
 #: model: coarse enough for CI, fine enough to decide cells of each fate where that is
-#: cheap. A focus (a point: the proven stable state) refines only the cells around it and
+#: cheap. A focus (a point: the stable state named in the model's header) refines only the cells around it and
 #: those their images reach (``certify.prove(focus=...)``), which proves safe cells
 #: there at a fraction of the cost of the whole window at that depth.
 SETTINGS = {

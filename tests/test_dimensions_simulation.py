@@ -60,7 +60,11 @@ FOCUS_RADIUS = 0.01
 
 N_STARTS = 20_000
 GRID_STEPS = 4000       # grid times over the horizon
-#: Integration-error allowance on a margin, relative to the window's largest side.
+#: Integration-error allowance on a margin, relative to the window's largest side. scipy
+#: controls the error of the stacked system in the root mean square over all starts;
+#: checked once against single-start DOP853 solves at rtol 1e-13 (every 1000th start,
+#: at the end of the horizon), the stacked states of these models deviated by at most
+#: 4e-11, far below this allowance.
 ERROR_ALLOWANCE = 1e-6
 
 

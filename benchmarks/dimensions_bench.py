@@ -60,7 +60,9 @@ def library_models():
 
 def prove_once(name, depth, time_limit):
     """Prove one model in a fresh process; the row of :func:`library_bench.time_proof`."""
-    command = [sys.executable, __file__, "--one", name, "--time-limit", repr(time_limit)]
+    command = [sys.executable, __file__, "--one", name]
+    if time_limit is not None:
+        command += ["--time-limit", repr(time_limit)]
     if depth is not None:
         command += ["--max-depth", str(depth)]
     out = subprocess.run(command, capture_output=True, text=True, check=True,

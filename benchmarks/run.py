@@ -10,6 +10,7 @@ from pathlib import Path
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import check_bench  # noqa: E402  (the folder above is not a package)
+import dimensions_bench  # noqa: E402
 import flow_bench  # noqa: E402
 import library_bench  # noqa: E402
 import prove_bench  # noqa: E402
@@ -19,7 +20,7 @@ import sweep_bench  # noqa: E402
 def main():
     """Run the benchmarks in turn; return the largest exit code."""
     return max(bench.main([]) for bench in (flow_bench, prove_bench, check_bench, library_bench,
-                                            sweep_bench))
+                                            sweep_bench, dimensions_bench))
 
 
 if __name__ == "__main__":

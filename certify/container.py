@@ -20,7 +20,7 @@ from .files import write_atomic
 
 __all__ = ["FORMAT", "VERSION", "CERTIFICATE_NAME", "certificate_path", "LABELS",
            "encode_array", "decode_array", "fraction_text", "parameter_differences",
-           "write_certificate", "load_certificate_json"]
+           "narrowed_text", "write_certificate", "load_certificate_json"]
 
 FORMAT = "certify-certificate"
 #: File name of a certificate inside an output folder.
@@ -89,6 +89,15 @@ def parameter_differences(proven, stated):
             out.append({"name": name, "proven": [fraction_text(lo), fraction_text(hi)],
                         "model": None if box is None else [fraction_text(b) for b in box]})
     return out
+
+
+def narrowed_text(differences):
+    """One phrase per entry of :func:`parameter_differences`: ``C = 70 (file: [70, 90])``."""
+    def box(pair):
+        return pair[0] if pair[0] == pair[1] else f"[{pair[0]}, {pair[1]}]"
+    return ", ".join(f"{d['name']} = {box(d['proven'])} (file: "
+                     f"{'not stated' if d['model'] is None else box(d['model'])})"
+                     for d in differences)
 
 
 def write_certificate(path, data):

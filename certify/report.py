@@ -4,11 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from .container import parameter_differences
+from .container import narrowed_text, parameter_differences
 from .points import points_summary
 
-__all__ = ["proof_summary", "summary_table", "narrowed_parameters", "narrowed_text",
-           "SAFETY_NOTE"]
+__all__ = ["proof_summary", "summary_table", "narrowed_parameters", "SAFETY_NOTE"]
 
 SAFETY_NOTE = ("This certificate is a theorem about the model, not about the system it "
                "describes. Decisions about a real system need a validated model, margins, "
@@ -76,15 +75,6 @@ def narrowed_parameters(model):
     stated = parse_model(model.text, path=model.path).parameters
     return parameter_differences({p.name: (p.lo, p.hi) for p in model.parameters},
                                  {p.name: (p.lo, p.hi) for p in stated})
-
-
-def narrowed_text(narrowed):
-    """One short phrase per differing parameter: ``C = 70 (file: [70, 90])``."""
-    def box(pair):
-        return pair[0] if pair[0] == pair[1] else f"[{pair[0]}, {pair[1]}]"
-    return ", ".join(f"{d['name']} = {box(d['proven'])} (file: "
-                     f"{'not stated' if d['model'] is None else box(d['model'])})"
-                     for d in narrowed)
 
 
 def _finite_max(a):

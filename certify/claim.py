@@ -40,6 +40,7 @@ from pathlib import Path
 import numpy as np
 
 from . import interval as iv
+from .container import encode_array
 from .errors import UsageError
 from .expr import format_number
 from .labels import _reachable
@@ -80,7 +81,10 @@ class ClaimResult:
     until : Fraction or None
     counterexample : dict or None
         ``{"point": [...], "limit": str or None, "crossing_time": [lo, hi],
-        "reason": str}``; a bound of None means +infinity (never, or not proven).
+        "reason": str}``; a bound of None means +infinity (never, or not proven). When
+        the point's own flow enclosure names the limit or proves the crossing, ``"flow"``
+        holds its box and validated steps (encoded arrays, see
+        docs/certificate-format.md).
     undecided_boxes : list
         The unsettled parts of the region, each a list of ``[lo, hi]`` per state.
     undecided_volume : float
@@ -104,7 +108,8 @@ class ClaimResult:
     certificate: str | None = None
 
     def record(self):
-        """The small ``claim`` record stored in the certificate (exact numbers as text)."""
+        """The ``claim`` record stored in the certificate (exact numbers as text), with
+        the evidence of a point counterexample that ``certify check`` re-derives."""
         return {"region": {k: [_text(lo), _text(hi)] for k, (lo, hi) in self.region.items()},
                 "expect": self.expect,
                 "until": None if self.until is None else _text(self.until),
@@ -113,11 +118,14 @@ class ClaimResult:
                 "undecided_volume": self.undecided_volume}
 
     def to_json(self):
-        """JSON-ready dictionary (what ``certify claim --json`` prints)."""
+        """JSON-ready dictionary (what ``certify claim --json`` prints; the encoded
+        point flow stays in the certificate)."""
+        c = self.counterexample
         return {"verdict": self.verdict, "message": self.message, "expect": self.expect,
                 "region": {k: [float(lo), float(hi)] for k, (lo, hi) in self.region.items()},
                 "until": None if self.until is None else float(self.until),
-                "counterexample": self.counterexample,
+                "counterexample": None if c is None else
+                {k: v for k, v in c.items() if k != "flow"},
                 "undecided_volume": self.undecided_volume,
                 "undecided_boxes": self.undecided_boxes,
                 "certificate": self.certificate}
@@ -419,8 +427,31 @@ def _point_crossings(auditor, proof, points, horizon):
             out.append(None)
             continue
         k = steps.start + hit[0]
-        out.append((int(np.argmax(ghi[k] < 0)), float(t1_hi[k])))
+        out.append(_PointHit(limit=int(np.argmax(ghi[k] < 0)), time=float(t1_hi[k]),
+                             flow=_flow_record(result, b, lo[b], hi[b], k)))
     return out
+
+
+@dataclass(frozen=True)
+class _PointHit:
+    """A point's flow enclosure wholly violates limit number ``limit`` at the end of a
+    step, by time ``time``; ``flow`` is the evidence stored with the counterexample."""
+
+    limit: int
+    time: float
+    flow: dict
+
+
+def _flow_record(result, b, lo, hi, last):
+    """The box of a point and its validated steps up to step record ``last`` (the first
+    whose end violates a limit), encoded exactly (docs/certificate-format.md)."""
+    rows = slice(result.step_start[b], last + 1)
+    return {"box": encode_array(np.stack([lo, hi], 1)),
+            "set0_m": encode_array(result.set0_m[b]),
+            "step_h": encode_array(result.h[rows]),
+            "step_E": encode_array(np.stack([result.e_lo[rows], result.e_hi[rows]], -1)),
+            "step_m": encode_array(result.m[rows]),
+            "step_A": encode_array(result.A[rows])}
 
 
 def _name_limit(auditor, proof, counterexample):
@@ -433,10 +464,10 @@ def _name_limit(auditor, proof, counterexample):
     hit = _point_crossings(auditor, proof, point, upper)[0]
     if hit is None:
         return counterexample
-    j, t = hit
     counterexample = dict(counterexample)
-    counterexample["limit"] = proof.model.constraints[j].name
-    counterexample["crossing_time"] = [counterexample["crossing_time"][0], min(upper, t)]
+    counterexample["limit"] = proof.model.constraints[hit.limit].name
+    counterexample["crossing_time"] = [counterexample["crossing_time"][0], min(upper, hit.time)]
+    counterexample["flow"] = hit.flow
     return counterexample
 
 
@@ -458,10 +489,11 @@ def _refute_by_points(auditor, proof, pieces):
     horizon = proof.method.max_horizon if auditor.until is None else auditor.until
     hits = _point_crossings(auditor, proof, np.array(chosen), horizon)
     for point, p, hit in zip(chosen, where, hits):
-        if hit is not None and _at_most(hit[1], auditor.until):
-            return {"point": point, "limit": proof.model.constraints[hit[0]].name,
-                    "crossing_time": [_bound(max(p.lower, 0.0)), hit[1]],
-                    "reason": "its own flow enclosure wholly violates the limit"}
+        if hit is not None and _at_most(hit.time, auditor.until):
+            return {"point": point, "limit": proof.model.constraints[hit.limit].name,
+                    "crossing_time": [_bound(max(p.lower, 0.0)), hit.time],
+                    "reason": "its own flow enclosure wholly violates the limit",
+                    "flow": hit.flow}
     return None
 
 

@@ -19,8 +19,8 @@ from .errors import CertificateError
 from .files import write_atomic
 
 __all__ = ["FORMAT", "VERSION", "CERTIFICATE_NAME", "certificate_path", "LABELS",
-           "encode_array", "decode_array", "fraction_text", "write_certificate",
-           "load_certificate_json"]
+           "encode_array", "decode_array", "fraction_text", "parameter_differences",
+           "narrowed_text", "write_certificate", "load_certificate_json"]
 
 FORMAT = "certify-certificate"
 #: File name of a certificate inside an output folder.
@@ -59,6 +59,45 @@ def fraction_text(q):
     """Exact text of a rational: ``"p/q"`` (or ``"p"``)."""
     q = Fraction(q)
     return str(q.numerator) if q.denominator == 1 else f"{q.numerator}/{q.denominator}"
+
+
+def parameter_differences(proven, stated):
+    """The parameters whose proven box differs from the box the model file states.
+
+    Parameters
+    ----------
+    proven, stated : dict
+        Parameter name -> ``(lo, hi)`` exact numbers: the boxes a map is proven for (the
+        certificate's ``parameters``) and the boxes of the model file's text.
+
+    Returns
+    -------
+    list of dict
+        ``{"name", "proven": ["lo", "hi"], "model": ["lo", "hi"]}`` with exact text
+        (:func:`fraction_text`), in the order of `proven`; a parameter the file does
+        not state has ``"model": None``.
+
+    Examples
+    --------
+    >>> parameter_differences({"C": (70, 70), "r": (1, 1)}, {"C": (70, 90), "r": (1, 1)})
+    [{'name': 'C', 'proven': ['70', '70'], 'model': ['70', '90']}]
+    """
+    out = []
+    for name, (lo, hi) in proven.items():
+        box = stated.get(name)
+        if box is None or (Fraction(box[0]), Fraction(box[1])) != (Fraction(lo), Fraction(hi)):
+            out.append({"name": name, "proven": [fraction_text(lo), fraction_text(hi)],
+                        "model": None if box is None else [fraction_text(b) for b in box]})
+    return out
+
+
+def narrowed_text(differences):
+    """One phrase per entry of :func:`parameter_differences`: ``C = 70 (file: [70, 90])``."""
+    def box(pair):
+        return pair[0] if pair[0] == pair[1] else f"[{pair[0]}, {pair[1]}]"
+    return ", ".join(f"{d['name']} = {box(d['proven'])} (file: "
+                     f"{'not stated' if d['model'] is None else box(d['model'])})"
+                     for d in differences)
 
 
 def write_certificate(path, data):

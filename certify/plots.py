@@ -58,6 +58,16 @@ def _short(text):
     return text if len(text) <= TITLE_LENGTH else text[:TITLE_LENGTH - 3] + "..."
 
 
+def _narrowed(proof, title):
+    """A title, with a second line naming the parameters proven for other boxes than
+    the model file's (``--param`` overrides)."""
+    from .container import narrowed_text
+    from .report import narrowed_parameters
+
+    narrowed = narrowed_parameters(proof.model)
+    return f"{title}\nproven only for {narrowed_text(narrowed)}" if narrowed else title
+
+
 def _axis_label(state):
     return f"{state.name} [{state.unit}]" if state.unit else state.name
 
@@ -324,7 +334,7 @@ def plot_map(proof, ax=None, plane=(0, 1), fixed=None):
     title = _short(proof.model.name)
     if ax.get_title():
         title += f" ({ax.get_title()})"
-    ax.set_title(title, fontsize=10)
+    ax.set_title(_narrowed(proof, title), fontsize=10)
     return ax
 
 
@@ -450,7 +460,7 @@ def plot_time_to_limit(proof, ax=None, plane=(0, 1), fixed=None):
     title = f"{_short(proof.model.name)}: time within the limits"
     if ax.get_title():
         title += f" ({ax.get_title()})"
-    ax.set_title(title, fontsize=10)
+    ax.set_title(_narrowed(proof, title), fontsize=10)
     return ax
 
 
@@ -526,9 +536,9 @@ def _save_figures(proof, out_dir, slices):
             for h in draw(ax, proof, plane, fixed, norm):
                 handles.setdefault(h.get_label(), h)
         bar(fig, axes, proof, norm, fraction=0.02, pad=0.01)
-        fig.suptitle(f"{_short(proof.model.name)}"
+        fig.suptitle(_narrowed(proof, f"{_short(proof.model.name)}"
                      + (" (label shares of the whole window)" if name == "map.png" else
-                        ": time within the limits"), fontsize=11)
+                        ": time within the limits")), fontsize=11)
         first = _label_handles(proof) if name == "map.png" else []
         _legend_below(fig, first + list(handles.values()), ncol=4)
         paths.append(out_dir / name)

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 
+from .container import narrowed_text, parameter_differences
 from .points import points_summary
 
-__all__ = ["proof_summary", "summary_table", "SAFETY_NOTE"]
+__all__ = ["proof_summary", "summary_table", "narrowed_parameters", "SAFETY_NOTE"]
 
 SAFETY_NOTE = ("This certificate is a theorem about the model, not about the system it "
                "describes. Decisions about a real system need a validated model, margins, "
@@ -36,6 +37,7 @@ def proof_summary(proof, certificate_path=None):
         "model_sha256": model.sha256,
         "window": [[float(a), float(b)] for a, b in model.window],
         "parameters": {p.name: [float(p.lo), float(p.hi)] for p in model.parameters},
+        "parameters_narrowed": narrowed_parameters(model),
         "fractions": {k: float(proof.fractions[k]) for k in LABELS},
         "fractions_exact": bool(proof.fractions_exact),
         "cells": proof.counts,
@@ -52,6 +54,27 @@ def proof_summary(proof, certificate_path=None):
         "note": SAFETY_NOTE,
         **points_summary(model),  # equilibria, complete, unresolved, limits
     }
+
+
+def narrowed_parameters(model):
+    """The parameters whose box differs from the one in the model's own text.
+
+    A map proven with ``--param`` overrides is a theorem about the overridden boxes only.
+
+    Parameters
+    ----------
+    model : certify.model.Model
+
+    Returns
+    -------
+    list of dict
+        See :func:`certify.container.parameter_differences` (exact text).
+    """
+    from .model import parse_model
+
+    stated = parse_model(model.text, path=model.path).parameters
+    return parameter_differences({p.name: (p.lo, p.hi) for p in model.parameters},
+                                 {p.name: (p.lo, p.hi) for p in stated})
 
 
 def _finite_max(a):
@@ -79,6 +102,8 @@ def summary_table(summary):
     lines.append(f"finest cell 1/{summary['finest_cells_per_side'][0]} of each side, "
                  f"{summary['rounds']} rounds, {summary['seconds']:.1f} s{exact}")
     lines.append(f"stopped:   {summary['stop_reason']}")
+    if summary.get("parameters_narrowed"):
+        lines.append(f"proven only for {narrowed_text(summary['parameters_narrowed'])}")
     # faces come two per state, in state order (see certify.faces.analyse_faces)
     sides = [f"{face['state']} = {summary['window'][i // 2][i % 2]:g} {face['kind']}"
              for i, face in enumerate(summary["faces"])]

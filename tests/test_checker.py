@@ -136,8 +136,10 @@ def test_json_output(certs, capsys):
     code = main(["check", str(certs["logistic"]), "--jobs", "1", "--json"])
     report = json.loads(capsys.readouterr().out)
     assert code == 0
-    assert set(report) == {"valid", "cells_checked", "failures", "seconds"}
+    assert set(report) == {"valid", "cells_checked", "failures", "seconds",
+                           "parameters_narrowed"}
     assert report["valid"] is True and report["failures"] == []
+    assert report["parameters_narrowed"] == []       # proven for the file's own numbers
 
 
 def test_decay_crossing_bounds_agree_with_closed_form(certs):

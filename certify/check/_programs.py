@@ -26,7 +26,7 @@ Instructions are plain tuples, so they travel to worker processes by pickling.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from fractions import Fraction
 
 import sympy
@@ -34,7 +34,8 @@ import sympy
 from ..errors import CertificateError
 from ..expr import substitute
 
-__all__ = ["Program", "CheckPrograms", "compile_expressions", "derive_programs"]
+__all__ = ["Program", "CheckPrograms", "compile_expressions", "derive_programs",
+           "with_one_limit"]
 
 _UNARY = {
     sympy.exp: "exp", sympy.log: "log", sympy.sin: "sin", sympy.cos: "cos",
@@ -258,6 +259,8 @@ class CheckPrograms:
     equations : tuple of sympy.Expr
         ``f`` with the parameters given as numbers substituted.
     states : tuple of sympy.Symbol
+    limit_expressions : tuple of sympy.Expr
+        The limits ``g_j`` with the parameters given as numbers substituted.
     """
 
     order: int
@@ -274,6 +277,7 @@ class CheckPrograms:
     cut_jacobian: bool
     equations: tuple
     states: tuple
+    limit_expressions: tuple = ()
 
 
 def taylor_coefficients(equations, states, order):
@@ -318,8 +322,7 @@ def derive_programs(model, order):
     inputs = states + tuple(model.parameter_symbols)
     x = sympy.Matrix(states)
     coefficients = taylor_coefficients(equations, states, order)
-    rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
-             for g in limits]
+    rates = _rates(limits, equations, states)
     middle = coefficients[1:order]
     # Df serves the mean-value step (f^[1] = f) and the invariant faces; models with
     # kinks are stepped at order 1 and have no invariant faces
@@ -339,7 +342,27 @@ def derive_programs(model, order):
                          field=compile_expressions(list(equations), inputs),
                          field_jacobian=field_jacobian, n_limits=len(limits),
                          cut_jacobian=df is not None and _cut(df, states),
-                         equations=equations, states=states)
+                         equations=equations, states=states, limit_expressions=limits)
+
+
+def with_one_limit(programs, model, j):
+    """The programs of :func:`derive_programs` with only the limit number `j` of `model`.
+
+    A step end whose box violates the one limit left is then evidence that this limit
+    is crossed (:func:`certify.check._cells.cell_facts` reports any limit).
+    """
+    g = programs.limit_expressions[j]
+    inputs = programs.states + tuple(model.parameter_symbols)
+    rates = _rates((g,), programs.equations, programs.states)
+    return replace(programs, on_tube=compile_expressions(list(programs.equations) + rates,
+                                                         inputs),
+                   limits=compile_expressions([g], inputs), n_limits=1, limit_expressions=(g,))
+
+
+def _rates(limits, equations, states):
+    """The rate ``sum_s diff(g, s) f_s`` of each limit ``g`` along the flow."""
+    return [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
+            for g in limits]
 
 
 def _cut(df, states):

@@ -91,6 +91,7 @@ class CertificateData:
     E: np.ndarray
     m: np.ndarray
     A: np.ndarray
+    claim: object = None
 
 
 def read_for_check(path):
@@ -207,7 +208,8 @@ def _parse(path, data):
                         L=L, depth=depth, index=index, label=np.array(labels), rank=rank,
                         crossing_upper=crossing, survival_lower=survival, horizon=horizon,
                         image_known=np.array(known, bool), succ_start=succ_start, succ=succ,
-                        set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A)
+                        set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A,
+                        claim=data.get("claim"))
 
 
 def _read_faces(rd, data, n):

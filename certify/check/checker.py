@@ -25,9 +25,11 @@ from fractions import Fraction
 
 import numpy as np
 
+from ..container import parameter_differences
 from ..errors import CertificateError, CertifyError
 from ..model import load_model
 from ._cells import CellTask, CheckContext, cell_facts
+from ._claim import read_claim, rederive_claim
 from ._faces import confirm_face
 from ._programs import derive_programs
 from ._read import LABELS, read_for_check
@@ -66,6 +68,13 @@ class CheckResult:
     claims : dict or None
         For a regression check: ``{"held": {label: count}, "failed": {label: count}}``
         after propagating failures along the successors the claims rely on.
+    parameters_narrowed : list of dict
+        The parameters whose proven box (the certificate's ``parameters``) differs from
+        the box of the model file (the stored model text, or ``model=``), as
+        ``{"name", "proven": ["lo", "hi"], "model": ["lo", "hi"]}`` exact text.
+    claim : certify.check._claim.ClaimCheck or None
+        For a certificate written by ``certify claim``: the stored verdict, the one
+        re-derived from the verified cells, and why the stored one does not follow.
     """
 
     status: int
@@ -78,6 +87,8 @@ class CheckResult:
     fallback_cells: int = 0
     model: str | None = None
     claims: dict | None = field(default=None)
+    parameters_narrowed: list = field(default_factory=list)
+    claim: object = None
 
 
 # -- tiling ------------------------------------------------------------------------------
@@ -482,6 +493,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     """
     start = time.monotonic()
     cert = read_for_check(path)
+    record = read_claim(cert.claim, cert.path, cert.states, cert.window)
     failures = []
     revised = None
     if model is not None:
@@ -490,21 +502,26 @@ def check_certificate(path, model=None, jobs=None, progress=None):
             raise CertificateError(f"{model}: its states {[s.name for s in revised.states]} "
                                    f"differ from the certificate's {cert.states}")
         the_model = revised
+        stated = revised
     else:
         if not cert.sha_ok:
             return _verdict(cert, [_global("the model text does not match its sha256 "
                                            "(the model or the hash was changed)")],
                             start, 0, {})
         the_model = _with_parameters(cert)
+        stated = cert.model
         if [s.name for s in the_model.states] != cert.states:
             raise CertificateError(f"{path}: key 'states': {cert.states} differ from the "
                                    f"model's states")
         if tuple(the_model.window) != cert.window:
             failures.append(_global("the window differs from the model's state ranges"))
+    narrowed = parameter_differences(cert.params, {p.name: (p.lo, p.hi)
+                                                   for p in stated.parameters})
     tree, problems = _tile(cert)
     if problems:
         return _verdict(cert, failures + [_global(f"the cells do not tile the window: {p}")
-                                          for p in problems], start, 0, {}, revised, model)
+                                          for p in problems], start, 0, {}, revised, model,
+                        narrowed=narrowed)
     programs = derive_programs(the_model, cert.order)
     params = tuple((p.lo, p.hi) for p in the_model.parameters)
     open_faces, invariant_faces = [], []
@@ -550,11 +567,21 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     for c in sorted(local):
         failures.append(_record(cert, c, cert.label[c], "; ".join(r for r, _ in local[c])))
     claims = None
-    if revised is not None:
+    if revised is not None or record is not None:
         claims = _propagate(cert, judge, set(local))
+        inherited = claims.pop("inherited")
+    if revised is not None:
         failures += [_record(cert, c, cert.label[c], "a successor's claim does not hold")
-                     for c in claims.pop("inherited")]
-    return _verdict(cert, failures, start, cert.L, recomputed, revised, model, claims)
+                     for c in inherited]
+    claim = None
+    if record is not None:
+        holds = np.ones(cert.L, bool)
+        holds[list(local) + inherited] = False
+        claim = rederive_claim(record, cert, the_model, context, holds,
+                               lambda first, last: _leaves_meeting(tree, first, last)[1])
+        failures += [_global(f"claim: {p}") for p in claim.problems]
+    return _verdict(cert, failures, start, cert.L, recomputed, revised, model,
+                    claims if revised is not None else None, narrowed, claim)
 
 
 def _with_parameters(cert):
@@ -616,7 +643,7 @@ def _propagate(cert, judge, failed):
 
 
 def _verdict(cert, failures, start, checked, recomputed, revised=None, model=None,
-             claims=None):
+             claims=None, narrowed=(), claim=None):
     valid = not failures
     if valid:
         message = "every claim of the certificate holds"
@@ -633,4 +660,5 @@ def _verdict(cert, failures, start, checked, recomputed, revised=None, model=Non
                        seconds=time.monotonic() - start,
                        refined_cells=recomputed.get("fine", 0),
                        fallback_cells=recomputed.get("endpoint", 0),
-                       model=str(model) if model is not None else None, claims=claims)
+                       model=str(model) if model is not None else None, claims=claims,
+                       parameters_narrowed=list(narrowed), claim=claim)

@@ -24,7 +24,8 @@ def add_arguments(parser):
     parser.add_argument("--workers", "--jobs", type=int, metavar="N", dest="jobs",
                         help="worker processes (default: all cores; --jobs is the old name)")
     parser.add_argument("--json", action="store_true",
-                        help="print {valid, cells_checked, failures, seconds} as JSON")
+                        help="print {valid, cells_checked, failures, seconds, "
+                             "parameters_narrowed} (and claim) as JSON")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
@@ -73,6 +74,7 @@ def _print_regression(claims, model):
 def run(args):
     """Check the certificate named by ``args.certificate``; returns 0 or 1."""
     from certify.check import check_certificate
+    from certify.container import narrowed_text
 
     if args.jobs is not None and args.jobs < 1:
         raise UsageError("--workers must be at least 1")
@@ -85,9 +87,12 @@ def run(args):
             progress.close()
     if args.json:
         out = {"valid": result.valid, "cells_checked": result.cells_checked,
-               "failures": result.failures, "seconds": round(result.seconds, 3)}
+               "failures": result.failures, "seconds": round(result.seconds, 3),
+               "parameters_narrowed": result.parameters_narrowed}
         if result.claims is not None:
             out["claims"] = result.claims
+        if result.claim is not None:
+            out["claim"] = result.claim.to_json()
         print(json.dumps(out, indent=2))
         return result.status
     verdict = "VALID" if result.valid else "INVALID"
@@ -95,6 +100,13 @@ def run(args):
           f"({result.cells_checked} cells, {result.seconds:.1f} s)")
     if result.claims is not None:
         _print_regression(result.claims, args.model)
+    if result.parameters_narrowed:
+        text = narrowed_text(result.parameters_narrowed)
+        print(f"parameters: the certificate was proven for {text}; its claims were checked "
+              f"against the file's boxes" if result.model is not None else
+              f"parameters: proven only for {text}")
+    if result.claim is not None:
+        print(f"claim: {result.claim.summary()}")
     for failure in result.failures[:SHOWN_FAILURES]:
         print(_describe(failure))
     hidden = len(result.failures) - SHOWN_FAILURES

@@ -403,8 +403,8 @@ class _Reader:
             constraints=constraints,
             settings=settings,
             warnings=tuple(self.warnings),
-            conditions={where: self.kept[where] for where in self.kept
-                        if where.startswith(("[equations]", "[constraints]"))},
+            conditions={_canonical(where): self.kept[where] for where in self.kept
+                        if where.startswith(("[equations]", "[constraints]", "[limits]"))},
         )
 
     def limits_section(self, data):
@@ -685,3 +685,8 @@ def _unknown(kind, key, allowed, *, brackets=False):
     close = difflib.get_close_matches(str(key), list(allowed), n=1)
     hint = f" (did you mean {wrap(close[0])}?)" if close else ""
     return f"unknown {kind} {wrap(key)}{hint}; allowed: {', '.join(wrap(word) for word in allowed)}"
+
+
+def _canonical(where):
+    """Key of ``Model.conditions``: limits under ``[constraints]``, whichever name the file used."""
+    return "[constraints]" + where[len("[limits]"):] if where.startswith("[limits]") else where

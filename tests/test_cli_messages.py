@@ -226,6 +226,14 @@ def test_limits_section_reads_like_constraints():
     new = parse_model(DECAY_SECONDS.replace("[constraints]", "[limits]"))
     old = parse_model(DECAY_SECONDS)
     assert [(c.name, c.g) for c in new.constraints] == [(c.name, c.g) for c in old.constraints]
+    # the domain conditions of the limits are found under the same keys either way, so
+    # that the prover's and the checker's programs can be built (x' = -x crosses 0.5 from
+    # x0 = 1 at ln 2: closed form)
+    assert set(new.conditions) == set(old.conditions)
+    from certify.claim import check_claim
+
+    result = check_claim(new, {"x": (1, 1.5)}, "stays", until=0.5, max_depth=6)
+    assert result.verdict == "proven"
 
 
 @pytest.mark.parametrize("text, message", [

@@ -1,0 +1,418 @@
+"""Trapping regions: sets around stable equilibria proven forward invariant inside the limits.
+
+Near a stable equilibrium the flow contracts, but validated enclosures of cells of
+moderate size still grow when the Jacobian is far from normal, so no set of cells
+around it closes. A quadratic Lyapunov function of the linearisation closes it instead.
+
+For a stable equilibrium inside the limits (:func:`certify.points.find_equilibria`),
+with ``c`` an exact point near it and ``A = Df(c)`` at the parameter midpoint,
+``P`` solves ``A^T P + P A = -I`` (rounded to exact binary fractions, symmetric), and
+``V(x) = (x - c)^T P (x - c)``. The region is ``R = {x in B : V(x) <= level}`` for an
+exact box ``B``. Its certificate is a tiling of ``B`` by dyadic sub-boxes (the *cover*),
+each proven with interval arithmetic, for every parameter value in the model's boxes,
+to be one of
+
+* ``above``: ``V > level`` on the whole sub-box;
+* ``below``: ``V < level`` on it;
+* ``shell``: ``dV/dt = 2 (x - c)^T P f(x) < 0`` on it;
+
+where every sub-box touching the boundary of ``B`` is ``above`` and every sub-box that is
+not ``above`` satisfies every limit. Then ``R`` is forward invariant and inside the limits
+(docs/proof-loop.md, "Trapping regions"): a trajectory leaving ``R`` would, at the last
+time it is in ``R``, sit either on the boundary of ``B`` (where ``V > level``, so not in
+``R``) or at a point with ``V = level`` whose neighbourhood lies in shell sub-boxes,
+where ``V`` strictly decreases.
+
+A cell is then safe when its tube keeps the limits and its image box lies in ``R``
+(inside ``B`` with an upper bound of ``V`` at most ``level``), or when the cell itself
+lies in ``R``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from fractions import Fraction
+from itertools import product
+
+import numpy as np
+
+from . import interval as iv
+from .evaluate import evaluate_boxes, evaluate_limits
+
+__all__ = ["Region", "RegionSearch", "find_regions", "trapped_cells", "lyapunov_matrix",
+           "v_bounds", "v_rate_bounds", "classify", "ABOVE", "BELOW", "SHELL", "CLASSES"]
+
+ABOVE, BELOW, SHELL = 0, 1, 2
+#: Class names in the order of their codes (the certificate stores the codes).
+CLASSES = ("above", "below", "shell")
+#: Fractions of the largest level the float check allows, tried in turn.
+LEVEL_TRIES = (0.8, 0.5, 0.25, 0.1)
+#: The box B is the bounding box of the ellipsoid {V <= level} widened by this factor.
+BOX_MARGIN = 1.25
+
+
+@dataclass(frozen=True)
+class Region:
+    """A proven trapping region ``{x in box : (x - c)^T P (x - c) <= level}``.
+
+    All numbers are binary fractions, so the float arrays hold them exactly.
+
+    Attributes
+    ----------
+    centre : ndarray, shape (n,)
+    matrix : ndarray, shape (n, n)
+        Symmetric ``P``.
+    level : float
+    box_lo, box_hi : ndarray, shape (n,)
+        The box ``B``.
+    cover_depth : ndarray of int, shape (k,)
+    cover_index : ndarray of int, shape (k, n)
+        Dyadic sub-boxes of ``B`` (like cells of the window).
+    cover_class : ndarray of int, shape (k,)
+        :data:`ABOVE`, :data:`BELOW` or :data:`SHELL`.
+    """
+
+    centre: np.ndarray
+    matrix: np.ndarray
+    level: float
+    box_lo: np.ndarray
+    box_hi: np.ndarray
+    cover_depth: np.ndarray
+    cover_index: np.ndarray
+    cover_class: np.ndarray
+
+    def exact(self):
+        """The region's numbers as Fractions: ``(centre, matrix, level, box)``."""
+        fr = Fraction
+        return ([fr(x) for x in self.centre], [[fr(x) for x in row] for row in self.matrix],
+                fr(self.level), [(fr(a), fr(b)) for a, b in zip(self.box_lo, self.box_hi)])
+
+
+@dataclass(frozen=True)
+class RegionSearch:
+    """Regions found and why some stable equilibria have none.
+
+    Attributes
+    ----------
+    regions : tuple of Region
+    notes : tuple of str
+    """
+
+    regions: tuple
+    notes: tuple
+
+
+# -- V and dV/dt on boxes (outward rounded) -------------------------------------------------
+def v_bounds(centre, matrix, lo, hi):
+    """Enclosure of ``V`` on boxes, as ``sum_i P_ii d_i^2 + sum_{i<j} (2 P_ij) d_i d_j``.
+
+    The checker evaluates the same expression with exact rationals, which encloses no
+    more than these outward-rounded floats.
+
+    Parameters
+    ----------
+    centre : ndarray, shape (n,)
+    matrix : ndarray, shape (n, n)
+    lo, hi : ndarray, shape (N, n)
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (N,)
+    """
+    n = len(centre)
+    dlo, dhi = iv.sub(lo, hi, centre, centre)
+    acc_lo = np.zeros(len(lo))
+    acc_hi = np.zeros(len(lo))
+    for i in range(n):
+        s = iv.scale(*iv.sqr(dlo[:, i], dhi[:, i]), matrix[i, i])
+        acc_lo, acc_hi = iv.add(acc_lo, acc_hi, *s)
+        for j in range(i + 1, n):
+            prod = iv.mul(dlo[:, i], dhi[:, i], dlo[:, j], dhi[:, j])
+            acc_lo, acc_hi = iv.add(acc_lo, acc_hi, *iv.scale(*prod, 2.0 * matrix[i, j]))
+    return acc_lo, acc_hi
+
+
+def v_rate_bounds(programs, params, centre, matrix, lo, hi):
+    """Enclosure of ``dV/dt = sum_i w_i f_i`` with ``w_i = sum_j (2 P_ij) d_j`` on boxes."""
+    n = len(centre)
+    flo, fhi = evaluate_boxes(programs.field, lo, hi, params)
+    dlo, dhi = iv.sub(lo, hi, centre, centre)
+    acc_lo = np.zeros(len(lo))
+    acc_hi = np.zeros(len(lo))
+    for i in range(n):
+        wlo, whi = iv.scale(dlo[:, 0], dhi[:, 0], 2.0 * matrix[i, 0])
+        for j in range(1, n):
+            wlo, whi = iv.add(wlo, whi, *iv.scale(dlo[:, j], dhi[:, j], 2.0 * matrix[i, j]))
+        acc_lo, acc_hi = iv.add(acc_lo, acc_hi, *iv.mul(wlo, whi, flo[:, i], fhi[:, i]))
+    return acc_lo, acc_hi
+
+
+# -- the float construction -----------------------------------------------------------------
+def lyapunov_matrix(jacobian, scale):
+    """Symmetric ``P`` with ``A^T P + P A = -I`` in coordinates scaled by `scale`.
+
+    Parameters
+    ----------
+    jacobian : ndarray, shape (n, n)
+        ``A``.
+    scale : ndarray, shape (n,)
+        Typical sizes of the states (the window's widths).
+
+    Returns
+    -------
+    ndarray, shape (n, n)
+        ``P`` in the original coordinates, symmetric, or None when the solution is not
+        positive definite (the linearisation is not stable enough).
+    """
+    from scipy.linalg import solve_continuous_lyapunov
+
+    s = np.asarray(scale, float)
+    a = jacobian * s[None, :] / s[:, None]       # S^-1 A S
+    p = solve_continuous_lyapunov(a.T, -np.eye(len(s)))
+    p = 0.5 * (p + p.T) / s[:, None] / s[None, :]  # S^-1 P_y S^-1
+    if not np.all(np.isfinite(p)) or np.linalg.eigvalsh(p * s[:, None] * s[None, :]).min() <= 0:
+        return None
+    return p
+
+
+def _sphere(n, count, rng):
+    u = rng.standard_normal((count, n))
+    return u / np.linalg.norm(u, axis=1, keepdims=True)
+
+
+def _parameter_samples(params, rng, count=6):
+    p = np.array(params, float).reshape(-1, 2)
+    mid = 0.5 * (p[:, 0] + p[:, 1])
+    corners = [mid] + [p[np.arange(len(p)), np.array(bits)]
+                       for bits in product((0, 1), repeat=len(p))][:count]
+    corners += list(p[:, 0] + rng.random((count, len(p))) * (p[:, 1] - p[:, 0]))
+    return np.unique(np.array(corners).reshape(-1, len(p)), axis=0)
+
+
+def _level_ok(programs, samples, centre, matrix, factor, level, dirs):
+    """Float check: on sampled points of {V = level}, dV/dt < 0 and every limit holds."""
+    x = centre + np.sqrt(level) * dirs @ factor
+    for p in samples:
+        inputs = np.concatenate([x, np.broadcast_to(p, (len(x), len(p)))], axis=1)
+        f = programs.field.point(inputs)
+        g = programs.limits.point(inputs) if programs.limits.n_outputs else np.ones((1, 1))
+        rate = 2.0 * np.einsum("ki,ij,kj->k", x - centre, matrix, f)
+        if not (np.all(rate < 0) and np.all(g > 0)):
+            return False
+    return True
+
+
+def _largest_level(programs, samples, centre, matrix, width, rng):
+    """Bisection (in log scale) for the largest level passing the float check."""
+    factor = np.linalg.inv(np.linalg.cholesky(matrix)).T   # rows: x - c = u @ factor, V = |u|^2
+    dirs = _sphere(len(centre), 2000, rng)
+    top = float(np.max(np.diag(matrix) * width ** 2))
+    lo, hi = np.log(top) - 40.0, np.log(top)
+    if not _level_ok(programs, samples, centre, matrix, factor, np.exp(lo), dirs):
+        return None
+    for _ in range(40):
+        mid = 0.5 * (lo + hi)
+        if _level_ok(programs, samples, centre, matrix, factor, np.exp(mid), dirs):
+            lo = mid
+        else:
+            hi = mid
+    return float(np.exp(lo))
+
+
+# -- the rigorous cover ---------------------------------------------------------------------
+def _sub_boxes(box_lo, box_hi, depth, index):
+    width = (box_hi - box_lo) / (2.0 ** depth)[:, None]
+    # exact: the ends of B are multiples of a power of two q below 2^21 q (see _grid_box),
+    # so every sub-box end is an integer below 2^(22 + depth) times q / 2^depth
+    return box_lo + index * width, box_lo + (index + 1) * width
+
+
+def _grid_box(lo, hi, bits=20):
+    """Round a box outward to multiples of a power of two ``q`` with ``|ends| < 2^(bits+1) q``."""
+    top = np.maximum(np.abs(lo), np.abs(hi))
+    q = np.ldexp(1.0, np.frexp(top)[1] - bits)
+    return np.floor(lo / q) * q, np.ceil(hi / q) * q
+
+
+def classify(programs, params, centre, matrix, level, box_lo, box_hi, depth, index):
+    """Prove classes of sub-boxes of ``B`` (floats, outward rounded).
+
+    Returns
+    -------
+    ndarray of int
+        :data:`ABOVE`, :data:`BELOW`, :data:`SHELL`, or -1 where nothing is proven.
+    """
+    lo, hi = _sub_boxes(box_lo, box_hi, depth, index)
+    vlo, vhi = v_bounds(centre, matrix, lo, hi)
+    glo, _ = evaluate_limits(programs, lo, hi, params)
+    limits_ok = np.all(glo >= 0, axis=1)
+    edge = np.any((index == 0) | (index == (1 << depth)[:, None] - 1), axis=1)
+    out = np.full(len(lo), -1)
+    inner = limits_ok & ~edge
+    out[inner] = np.where(vhi[inner] < level, BELOW, -1)
+    rest = np.flatnonzero(inner & (out < 0))
+    if len(rest):
+        _, rhi = v_rate_bounds(programs, params, centre, matrix, lo[rest], hi[rest])
+        out[rest[rhi < 0]] = SHELL
+    out[vlo > level] = ABOVE
+    return out
+
+
+def _cover(programs, params, centre, matrix, level, box_lo, box_hi, max_depth, max_boxes):
+    n = len(centre)
+    offsets = np.array(list(product((0, 1), repeat=n)), np.int64)
+    depth = np.ones(len(offsets), np.int64)
+    index = offsets.copy()
+    done_depth, done_index, done_class = [], [], []
+    total = 0
+    while len(depth):
+        cls = classify(programs, params, centre, matrix, level, box_lo, box_hi, depth, index)
+        ok = cls >= 0
+        done_depth.append(depth[ok])
+        done_index.append(index[ok])
+        done_class.append(cls[ok])
+        total += int(ok.sum())
+        depth, index = depth[~ok], index[~ok]
+        if len(depth) == 0:
+            break
+        if depth.max() >= max_depth or total + len(depth) * len(offsets) > max_boxes:
+            return None
+        index = (2 * index[:, None, :] + offsets[None]).reshape(-1, n)
+        depth = np.repeat(depth + 1, len(offsets))
+    return (np.concatenate(done_depth), np.concatenate(done_index),
+            np.concatenate(done_class))
+
+
+def _binary(x, bits=30):
+    """Round floats to binary fractions with `bits` significant bits (exact in floats)."""
+    m, e = np.frexp(np.asarray(x, float))
+    return np.ldexp(np.round(m * 2.0 ** bits), e - bits)
+
+
+def _candidates(programs, params, model, centre, rng):
+    """Float candidates ``(volume, matrix, top level)``, largest region first.
+
+    ``P`` depends on the coordinates in which ``A^T P + P A = -I`` is solved: scaled by
+    the window's widths, by the equilibrium's own coordinates, or unscaled. On the 3D food
+    chain the second gives a region 13 times larger than the first.
+    """
+    n = len(centre)
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    jac = programs.jacobian.point(np.concatenate([centre, mid])).reshape(n, n)
+    width = np.array([float(b - a) for a, b in model.window])
+    samples = _parameter_samples(params, rng)
+    out = []
+    for scale in (width, np.where(np.abs(centre) > 0, np.abs(centre), width), np.ones(n)):
+        matrix = lyapunov_matrix(jac, scale)
+        if matrix is None:
+            continue
+        matrix = _binary(matrix)
+        matrix = np.triu(matrix) + np.triu(matrix, 1).T
+        if np.linalg.eigvalsh(matrix).min() <= 0:
+            continue
+        top = _largest_level(programs, samples, centre, matrix, width, rng)
+        if top is not None:
+            out.append((top ** (n / 2) / np.sqrt(np.linalg.det(matrix)), matrix, top))
+    return sorted(out, key=lambda t: -t[0])
+
+
+def _region_at(model, programs, params, point, rng, max_depth, max_boxes):
+    """A region around the equilibrium estimate `point`, or a note why there is none."""
+    centre = _binary(point)
+    candidates = _candidates(programs, params, model, centre, rng)
+    if not candidates:
+        return None, "no Lyapunov matrix passes the float check (dV/dt < 0 near the point)"
+    for _, matrix, top in candidates:
+        inverse = np.linalg.inv(matrix)
+        for fraction in LEVEL_TRIES:
+            level = float(_binary(top * fraction, 20))
+            half = BOX_MARGIN * np.sqrt(level * np.diag(inverse))
+            box_lo, box_hi = _grid_box(centre - half, centre + half)
+            cover = _cover(programs, params, centre, matrix, level, box_lo, box_hi,
+                           max_depth, max_boxes)
+            if cover is not None:
+                return Region(centre=centre, matrix=matrix, level=level, box_lo=box_lo,
+                              box_hi=box_hi, cover_depth=cover[0], cover_index=cover[1],
+                              cover_class=cover[2]), None
+    return None, "no level set was proven invariant within the cover budget"
+
+
+def find_regions(model, programs, params, *, max_depth=None, max_boxes=200_000):
+    """Trapping regions around the stable equilibria inside the limits.
+
+    Parameters
+    ----------
+    model : certify.model.Model
+    programs : certify.taylor.FlowPrograms
+        Of Taylor order at least 2 (the Jacobian is needed).
+    params : sequence of (float, float)
+        Parameter enclosures.
+    max_depth : int, optional
+        Deepest halving of the box ``B`` (default ``24 // n``).
+    max_boxes : int
+        Largest number of sub-boxes in a cover.
+
+    Returns
+    -------
+    RegionSearch
+    """
+    from .points import find_equilibria
+
+    if programs.jacobian is None or model.uses_kinks:
+        return RegionSearch((), ("the model has no Jacobian (abs, min or max)",))
+    n = programs.n
+    max_depth = max_depth or max(24 // n, 4)
+    rng = np.random.default_rng(20261204)
+    regions, notes = [], []
+    with np.errstate(all="ignore"):
+        for eq in find_equilibria(model).equilibria:
+            if eq.stability != "stable" or eq.limits != "inside":
+                continue
+            region, note = _region_at(model, programs, params, eq.centre, rng,
+                                      max_depth, max_boxes)
+            if region is None:
+                notes.append(f"equilibrium near {np.round(eq.centre, 6).tolist()}: {note}")
+            else:
+                regions.append(region)
+    return RegionSearch(tuple(regions), tuple(notes))
+
+
+# -- use by the cells -----------------------------------------------------------------------
+def _inside(region, lo, hi):
+    within = np.all((lo >= region.box_lo) & (hi <= region.box_hi), axis=1)
+    _, vhi = v_bounds(region.centre, region.matrix, lo, hi)
+    return within & (vhi <= region.level)
+
+
+def trapped_cells(regions, cell_lo, cell_hi, image_lo, image_hi, image_usable):
+    """Which region each cell is proven to enter.
+
+    Parameters
+    ----------
+    regions : sequence of Region
+    cell_lo, cell_hi : ndarray, shape (L, n)
+    image_lo, image_hi : ndarray, shape (L, n)
+        Image boxes at the horizon.
+    image_usable : ndarray of bool, shape (L,)
+        The tube keeps every limit and the image encloses every trajectory's end.
+
+    Returns
+    -------
+    region : ndarray of int, shape (L,)
+        A region holding the cell or its image; -1 for none.
+    whole : ndarray of bool, shape (L,)
+        The cell itself lies in that region (no flow needed).
+    """
+    L = len(cell_lo)
+    image_usable = image_usable & np.all(image_lo <= image_hi, axis=1)
+    region = np.full(L, -1)
+    whole = np.zeros(L, bool)
+    for k, r in enumerate(regions):
+        free = region < 0
+        cell_in = free & _inside(r, cell_lo, cell_hi)
+        region[cell_in] = k
+        whole[cell_in] = True
+        sel = np.flatnonzero((region < 0) & image_usable)
+        if len(sel):
+            region[sel[_inside(r, image_lo[sel], image_hi[sel])]] = k
+    return region, whole

@@ -416,3 +416,32 @@ def trapped_cells(regions, cell_lo, cell_hi, image_lo, image_hi, image_usable):
         if len(sel):
             region[sel[_inside(r, image_lo[sel], image_hi[sel])]] = k
     return region, whole
+
+
+# -- certificate records --------------------------------------------------------------------
+def regions_data(search):
+    """The certificate's ``regions`` list (docs/certificate-format.md)."""
+    from .container import encode_array, fraction_text
+
+    out = []
+    for r in (search.regions if search is not None else ()):
+        centre, matrix, level, box = r.exact()
+        out.append({"centre": [fraction_text(x) for x in centre],
+                    "matrix": [[fraction_text(x) for x in row] for row in matrix],
+                    "level": fraction_text(level),
+                    "box": [[fraction_text(a), fraction_text(b)] for a, b in box],
+                    "cover_depth": encode_array(r.cover_depth, "<i8"),
+                    "cover_index": encode_array(r.cover_index, "<i8"),
+                    "cover_class": encode_array(r.cover_class, "<i8")})
+    return out
+
+
+def trapping_cells(facts):
+    """The per-cell keys ``trapped`` and ``trapped_whole`` of the certificate."""
+    from .container import encode_array
+
+    L = len(facts.outside)
+    trapped = np.full(L, -1) if facts.trapped is None else facts.trapped
+    whole = np.zeros(L, bool) if facts.trapped_whole is None else facts.trapped_whole
+    return {"trapped": encode_array(np.asarray(trapped), "<i8"),
+            "trapped_whole": [bool(x) for x in whole]}

@@ -39,14 +39,15 @@ import numpy as np
 from . import interval as iv
 from .evaluate import evaluate_boxes, evaluate_limits
 
-__all__ = ["Region", "RegionSearch", "find_regions", "trapped_cells", "lyapunov_matrix",
+__all__ = ["Region", "RegionSearch", "find_regions", "prove_region", "grid_box",
+           "trapped_cells", "lyapunov_matrix",
            "v_bounds", "v_rate_bounds", "classify", "ABOVE", "BELOW", "SHELL", "CLASSES"]
 
 ABOVE, BELOW, SHELL = 0, 1, 2
 #: Class names in the order of their codes (the certificate stores the codes).
 CLASSES = ("above", "below", "shell")
 #: Fractions of the largest level the float check allows, tried in turn.
-LEVEL_TRIES = (0.8, 0.5, 0.25, 0.1)
+LEVEL_TRIES = (0.95, 0.8, 0.5, 0.25, 0.1)
 #: The box B is the bounding box of the ellipsoid {V <= level} widened by this factor.
 BOX_MARGIN = 1.25
 
@@ -204,7 +205,7 @@ def _level_ok(programs, samples, centre, matrix, factor, level, dirs):
 
 def _largest_level(programs, samples, centre, matrix, width, rng):
     """Bisection (in log scale) for the largest level passing the float check."""
-    factor = np.linalg.inv(np.linalg.cholesky(matrix)).T   # rows: x - c = u @ factor, V = |u|^2
+    factor = np.linalg.inv(np.linalg.cholesky(matrix))   # rows: x - c = u @ factor, V = |u|^2
     dirs = _sphere(len(centre), 2000, rng)
     top = float(np.max(np.diag(matrix) * width ** 2))
     lo, hi = np.log(top) - 40.0, np.log(top)
@@ -221,13 +222,16 @@ def _largest_level(programs, samples, centre, matrix, width, rng):
 
 # -- the rigorous cover ---------------------------------------------------------------------
 def _sub_boxes(box_lo, box_hi, depth, index):
-    width = (box_hi - box_lo) / (2.0 ** depth)[:, None]
-    # exact: the ends of B are multiples of a power of two q below 2^21 q (see _grid_box),
-    # so every sub-box end is an integer below 2^(22 + depth) times q / 2^depth
-    return box_lo + index * width, box_lo + (index + 1) * width
+    """Float boxes enclosing the exact dyadic sub-boxes of ``B`` (outward rounded)."""
+    wlo, whi = iv.sub(box_hi, box_hi, box_lo, box_lo)
+    scale = 2.0 ** -depth.astype(float)[:, None]
+    wlo, whi = wlo * scale, whi * scale     # exact: powers of two
+    lo, _ = iv.add(box_lo, box_lo, *iv.mul(wlo, whi, index, index))
+    _, hi = iv.add(box_lo, box_lo, *iv.mul(wlo, whi, index + 1, index + 1))
+    return lo, hi
 
 
-def _grid_box(lo, hi, bits=20):
+def grid_box(lo, hi, bits=20):
     """Round a box outward to multiples of a power of two ``q`` with ``|ends| < 2^(bits+1) q``."""
     top = np.maximum(np.abs(lo), np.abs(hi))
     q = np.ldexp(1.0, np.frexp(top)[1] - bits)
@@ -283,6 +287,37 @@ def _cover(programs, params, centre, matrix, level, box_lo, box_hi, max_depth, m
             np.concatenate(done_class))
 
 
+def prove_region(programs, params, centre, matrix, level, box_lo, box_hi, *, max_depth=8,
+                 max_boxes=200_000):
+    """Prove ``{x in B : V(x) <= level}`` forward invariant inside the limits.
+
+    Parameters
+    ----------
+    programs : certify.taylor.FlowPrograms
+    params : sequence of (float, float)
+    centre : ndarray, shape (n,)
+    matrix : ndarray, shape (n, n)
+        Symmetric; need not be positive definite (the cover's classes prove everything).
+    level : float
+    box_lo, box_hi : ndarray, shape (n,)
+        ``B`` (:func:`grid_box` rounds a box to a coarse binary grid).
+
+    Returns
+    -------
+    Region or None
+        None when no cover within `max_depth` halvings and `max_boxes` sub-boxes proves it.
+    """
+    if not np.array_equal(matrix, matrix.T):
+        raise ValueError("the matrix must be symmetric")
+    with np.errstate(all="ignore"):
+        cover = _cover(programs, params, centre, matrix, level, box_lo, box_hi, max_depth,
+                       max_boxes)
+    if cover is None:
+        return None
+    return Region(centre=centre, matrix=matrix, level=level, box_lo=box_lo, box_hi=box_hi,
+                  cover_depth=cover[0], cover_index=cover[1], cover_class=cover[2])
+
+
 def _binary(x, bits=30):
     """Round floats to binary fractions with `bits` significant bits (exact in floats)."""
     m, e = np.frexp(np.asarray(x, float))
@@ -327,13 +362,11 @@ def _region_at(model, programs, params, point, rng, max_depth, max_boxes):
         for fraction in LEVEL_TRIES:
             level = float(_binary(top * fraction, 20))
             half = BOX_MARGIN * np.sqrt(level * np.diag(inverse))
-            box_lo, box_hi = _grid_box(centre - half, centre + half)
-            cover = _cover(programs, params, centre, matrix, level, box_lo, box_hi,
-                           max_depth, max_boxes)
-            if cover is not None:
-                return Region(centre=centre, matrix=matrix, level=level, box_lo=box_lo,
-                              box_hi=box_hi, cover_depth=cover[0], cover_index=cover[1],
-                              cover_class=cover[2]), None
+            box_lo, box_hi = grid_box(centre - half, centre + half)
+            region = prove_region(programs, params, centre, matrix, level, box_lo, box_hi,
+                                  max_depth=max_depth, max_boxes=max_boxes)
+            if region is not None:
+                return region, None
     return None, "no level set was proven invariant within the cover budget"
 
 

@@ -32,7 +32,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from fractions import Fraction
-from itertools import product
+from itertools import islice, product
 
 import numpy as np
 
@@ -182,12 +182,16 @@ def _sphere(n, count, rng):
 
 
 def _parameter_samples(params, rng, count=6):
+    """The midpoint, a few corners and a few random points of the parameter boxes."""
     p = np.array(params, float).reshape(-1, 2)
+    if len(p) == 0:
+        return np.zeros((1, 0))
     mid = 0.5 * (p[:, 0] + p[:, 1])
-    corners = [mid] + [p[np.arange(len(p)), np.array(bits)]
-                       for bits in product((0, 1), repeat=len(p))][:count]
-    corners += list(p[:, 0] + rng.random((count, len(p))) * (p[:, 1] - p[:, 0]))
-    return np.unique(np.array(corners).reshape(-1, len(p)), axis=0)
+    rows = np.arange(len(p))
+    corners = [p[rows, np.array(bits, int)] for bits in
+               islice(product((0, 1), repeat=len(p)), count)]
+    randoms = list(p[:, 0] + rng.random((count, len(p))) * (p[:, 1] - p[:, 0]))
+    return np.unique(np.array([mid] + corners + randoms).reshape(-1, len(p)), axis=0)
 
 
 def _level_ok(programs, samples, centre, matrix, factor, level, dirs):

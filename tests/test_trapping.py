@@ -13,8 +13,6 @@ References named beside the checks:
   ``(-1/2 +- i sqrt(15)/2) / 2``, a stable focus at 0).
 """
 
-import gzip
-import json
 from fractions import Fraction
 from pathlib import Path
 
@@ -25,7 +23,8 @@ from scipy.integrate import solve_ivp
 
 from certify.certificate import certificate_data, write_certificate
 from certify.check import check_certificate
-from certify.container import fraction_text
+from certify.container import (decode_array, encode_array, fraction_text,
+                               load_certificate_json)
 from certify.evaluate import parameter_enclosures
 from certify.labels import label_cells
 from certify.model import load_model, parse_model
@@ -171,17 +170,6 @@ def oscillator_cert(tmp_path_factory):
     return proof, cert
 
 
-def _load(path):
-    with gzip.open(path, "rb") as fh:
-        return json.loads(fh.read())
-
-
-def _save(data, path):
-    with gzip.open(path, "wb") as fh:
-        fh.write(json.dumps(data).encode())
-    return path
-
-
 def test_oscillator_certificate_is_valid_and_uses_the_region(oscillator_cert):
     proof, cert = oscillator_cert
     trapped = proof.facts.trapped >= 0
@@ -196,9 +184,10 @@ def test_oscillator_certificate_is_valid_and_uses_the_region(oscillator_cert):
 
 
 def _tampered(cert, tmp_path, change):
-    data = _load(cert)
+    data = load_certificate_json(cert)
     change(data)
-    result = check_certificate(_save(data, tmp_path / "bad.json.gz"), jobs=1)
+    write_certificate(tmp_path / "bad.json.gz", data)
+    result = check_certificate(tmp_path / "bad.json.gz", jobs=1)
     assert not result.valid
     return " ".join(f["reason"] for f in result.failures)
 
@@ -218,12 +207,10 @@ def test_enlarged_level_is_rejected(oscillator_cert, tmp_path):
 
 
 def _cover(data, key):
-    from certify.container import decode_array
     return decode_array(data["regions"][0][key])
 
 
 def _put_cover(data, key, array):
-    from certify.container import encode_array
     data["regions"][0][key] = encode_array(np.asarray(array), "<i8")
 
 
@@ -247,7 +234,6 @@ def test_forged_trapped_cell_is_rejected(oscillator_cert, tmp_path):
     proof, cert = oscillator_cert
 
     def forge(data):
-        from certify.container import encode_array
         label = np.array(data["cells"]["label"])
         c = int(np.flatnonzero((label == "undecided"))[0])
         data["cells"]["label"][c] = "safe"

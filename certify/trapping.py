@@ -30,6 +30,7 @@ lies in ``R``.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from fractions import Fraction
 from itertools import islice, product
@@ -169,7 +170,9 @@ def lyapunov_matrix(jacobian, scale):
 
     s = np.asarray(scale, float)
     a = jacobian * s[None, :] / s[:, None]       # S^-1 A S
-    p = solve_continuous_lyapunov(a.T, -np.eye(len(s)))
+    with warnings.catch_warnings():  # nearly singular equations: the checks below decide
+        warnings.simplefilter("ignore", RuntimeWarning)
+        p = solve_continuous_lyapunov(a.T, -np.eye(len(s)))
     p = 0.5 * (p + p.T) / s[:, None] / s[None, :]  # S^-1 P_y S^-1
     if not np.all(np.isfinite(p)) or np.linalg.eigvalsh(p * s[:, None] * s[None, :]).min() <= 0:
         return None
@@ -357,7 +360,10 @@ def _candidates(programs, params, model, centre, rng):
 
 def _region_at(model, programs, params, point, rng, max_depth, max_boxes):
     """A region around the equilibrium estimate `point`, or a note why there is none."""
-    centre = _binary(point)
+    # on a binary grid 2^-40 of the window's sides: exact, and 0 stays 0
+    width = np.array([float(b - a) for a, b in model.window])
+    q = np.ldexp(1.0, np.frexp(width)[1] - 40)
+    centre = np.round(np.asarray(point, float) / q) * q
     candidates = _candidates(programs, params, model, centre, rng)
     if not candidates:
         return None, "no Lyapunov matrix passes the float check (dV/dt < 0 near the point)"

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from .points import points_summary
+from .trapping import trapping_summary
 
 __all__ = ["proof_summary", "summary_table", "SAFETY_NOTE"]
 
@@ -50,6 +51,7 @@ def proof_summary(proof, certificate_path=None):
         "seconds": round(proof.seconds, 3),
         "certificate": certificate_path,
         "note": SAFETY_NOTE,
+        "trapping": trapping_summary(proof.trapping, proof.facts),
         **points_summary(model),  # equilibria, complete, unresolved, limits
     }
 
@@ -79,6 +81,11 @@ def summary_table(summary):
     sides = [f"{face['state']} = {summary['window'][i // 2][i % 2]:g} {face['kind']}"
              for i, face in enumerate(summary["faces"])]
     lines.append(f"sides:     {', '.join(sides)}")
+    trap = summary.get("trapping") or {"regions": [], "notes": []}
+    if trap["regions"] or trap["notes"]:
+        lines.append(f"trapping:  {len(trap['regions'])} region(s) around stable equilibria, "
+                     f"{sum(r['cells'] for r in trap['regions'])} cells trapped"
+                     + "".join(f"; {note}" for note in trap["notes"]))
     if summary.get("crossing_time_max") is not None:
         unit = summary.get("time_unit") or "time units"
         lines.append(f"every doomed start crosses a limit within "

@@ -41,7 +41,7 @@ from . import interval as iv
 from .evaluate import evaluate_boxes, evaluate_limits
 
 __all__ = ["Region", "RegionSearch", "find_regions", "prove_region", "grid_box",
-           "trapped_cells", "lyapunov_matrix",
+           "trapped_cells", "trapping_summary", "lyapunov_matrix",
            "v_bounds", "v_rate_bounds", "classify", "ABOVE", "BELOW", "SHELL", "CLASSES"]
 
 ABOVE, BELOW, SHELL = 0, 1, 2
@@ -488,3 +488,15 @@ def trapping_cells(facts):
     whole = np.zeros(L, bool) if facts.trapped_whole is None else facts.trapped_whole
     return {"trapped": encode_array(np.asarray(trapped), "<i8"),
             "trapped_whole": [bool(x) for x in whole]}
+
+
+def trapping_summary(search, facts):
+    """The summary's ``trapping`` entry: each region and the cells it traps, and notes."""
+    if search is None:
+        return {"regions": [], "notes": []}
+    trapped = np.full(len(facts.outside), -1) if facts.trapped is None else facts.trapped
+    return {"regions": [{"centre": [float(x) for x in r.centre], "level": float(r.level),
+                         "sub_boxes": int(len(r.cover_depth)),
+                         "cells": int(np.sum(trapped == k))}
+                        for k, r in enumerate(search.regions)],
+            "notes": list(search.notes)}

@@ -11,9 +11,11 @@ arithmetic and nothing of the proof code:
    rational interval arithmetic on ``sum_i P_ii d_i^2 + sum_{i<j} 2 P_ij d_i d_j``,
    ``d = x - c``;
 4. every sub-box that is not ``above`` keeps every limit (``g >= 0``), and every
-   ``shell`` sub-box has ``dV/dt = sum_i w_i f_i < 0`` with ``w_i = sum_j 2 P_ij d_j``,
-   for every parameter value in the boxes (arb balls, then exact endpoints, then the
-   sub-box halved along every axis).
+   ``shell`` sub-box has ``W = dV/dt = sum_i w_i f_i < 0`` with ``w_i = sum_j 2 P_ij d_j``,
+   for every parameter value in the boxes: the natural interval extension or the
+   mean-value form ``W(m) + sum_k (dW/dx_k)(X) (X_k - m_k)`` at the exact midpoint ``m``
+   (``dW/dx_k = sum_i 2 P_ki f_i + sum_i w_i df_i/dx_k``) must be negative (arb balls,
+   then exact endpoints, then the sub-box halved along every axis).
 
 Then ``R`` is forward invariant and inside the limits (docs/proof-loop.md, "Trapping
 regions"). A cell claiming a region is safe when the cell lies in ``R``, or when its
@@ -160,18 +162,51 @@ def _proven(programs, params, region, lo, hi, shell, arithmetic):
         return ok
     f = evaluate(programs.field, ar, inputs)
     d = [ar.sub(X[i], ar.rational(region.centre[i], region.centre[i])) for i in range(n)]
-    rate = None
+    rate, w = _rate(ar, region, d, f)
+    up = _upper_list(ar, rate, len(lo))
+    jacobian = programs.field_jacobian
+    if jacobian is not None:
+        # mean-value form at the exact midpoint m: W(m) + sum_k (dW/dx_k)(X) (X_k - m_k)
+        mid = (lo + hi) / 2
+        M = [ar.rationals(mid[:, i], mid[:, i]) for i in range(n)]
+        point = M + [ar.rational(a, b) for a, b in params]
+        dm = [ar.sub(M[i], ar.rational(region.centre[i], region.centre[i])) for i in range(n)]
+        mv, _ = _rate(ar, region, dm, evaluate(programs.field, ar, point))
+        J = evaluate(jacobian, ar, inputs)
+        for k in range(n):
+            g = None
+            for i in range(n):
+                q = 2 * region.matrix[k][i]
+                term = ar.add(ar.mul(ar.rational(q, q), f[i]), ar.mul(w[i], J[i * n + k]))
+                g = term if g is None else ar.add(g, term)
+            mv = ar.add(mv, ar.mul(g, ar.sub(X[k], M[k])))
+        other = _upper_list(ar, mv, len(lo))
+        up = [a if b is None or (a is not None and a < b) else b for a, b in zip(up, other)]
+    negative = np.array([u is not None and bool(u < 0) for u in up])
+    return ok & (~shell | negative)
+
+
+def _rate(ar, region, d, f):
+    """``sum_i w_i f_i`` and the ``w_i = sum_j (2 P_ij) d_j``."""
+    n = len(d)
+    rate, w = None, []
     for i in range(n):
-        w = None
+        wi = None
         for j in range(n):
             q = 2 * region.matrix[i][j]
             term = ar.mul(ar.rational(q, q), d[j])
-            w = term if w is None else ar.add(w, term)
-        term = ar.mul(w, f[i])
+            wi = term if wi is None else ar.add(wi, term)
+        w.append(wi)
+        term = ar.mul(wi, f[i])
         rate = term if rate is None else ar.add(rate, term)
-    up = np.broadcast_to(ar.upper(rate), (len(lo),))
-    negative = ar.finite(rate) & np.array([bool(v < 0) for v in up])
-    return ok & (~shell | negative)
+    return rate, w
+
+
+def _upper_list(ar, a, count):
+    """Per row, the exact upper bound of an interval, or None where it is not usable."""
+    finite = np.broadcast_to(ar.finite(a), (count,))
+    up = np.broadcast_to(ar.upper(a), (count,))
+    return [u if ok else None for u, ok in zip(up, finite)]
 
 
 def _halves(lo, hi):

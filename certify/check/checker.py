@@ -27,12 +27,11 @@ import numpy as np
 
 from ..errors import CertificateError, CertifyError
 from ..model import load_model
-from ._cells import CellTask, CheckContext, cell_facts
+from ._cells import CellTask, CheckContext, cell_facts, exact_cells
 from ._faces import confirm_face
 from ._programs import derive_programs
 from ._read import LABELS, read_for_check
 from ._trapping import in_region, verify_region
-from ._cells import exact_cells
 
 __all__ = ["CheckResult", "check_certificate"]
 

@@ -16,6 +16,7 @@ from .container import (FORMAT, LABELS, VERSION, decode_array, encode_array, fra
                         load_certificate_json, write_certificate)
 from .errors import CertificateError
 from .graph import transition_graph
+from .trapping import regions_data, trapping_cells
 
 __all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write_certificate",
            "load_certificate_json", "read_certificate", "Certificate"]
@@ -270,6 +271,8 @@ def certificate_data(proof, summary):
             "step_E": encode_array(steps["E"]),
             "step_m": encode_array(steps["m"]),
             "step_A": encode_array(steps["A"]),
+            **trapping_cells(facts),
         },
+        "regions": regions_data(proof.trapping),
         "summary": summary,
     }

@@ -43,6 +43,11 @@ class CellFacts:
         the knowledge ends (flow failure, escape: the horizon); ``inf`` if all is kept.
     src, dst : ndarray of int
         Edges.
+    trapped : ndarray of int, optional
+        The trapping region (:mod:`certify.trapping`) holding the cell or the image of
+        its kept tube, -1 for none: such a cell is safe whatever its successors are.
+    trapped_whole : ndarray of bool, optional
+        The cell itself lies in its trapping region.
     """
 
     outside: np.ndarray
@@ -55,6 +60,8 @@ class CellFacts:
     first_unkept: np.ndarray
     src: np.ndarray
     dst: np.ndarray
+    trapped: np.ndarray | None = None
+    trapped_whole: np.ndarray | None = None
 
 
 @dataclass
@@ -93,8 +100,9 @@ def _reachable(n_nodes, src, dst, seeds):
 
 
 def _safe(facts, L):
-    candidate = ~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes
-    keep_edge = ~facts.outside[facts.dst]
+    trapped = np.zeros(L, bool) if facts.trapped is None else facts.trapped >= 0
+    candidate = (~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes) | trapped
+    keep_edge = ~facts.outside[facts.dst] & ~trapped[facts.src]
     seeds = ~candidate & ~facts.outside
     bad = _reachable(L, facts.src[keep_edge], facts.dst[keep_edge], seeds)
     return candidate & ~bad

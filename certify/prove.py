@@ -22,6 +22,7 @@ from .cells import CellTree
 from .flow import DeadlinePassed, flow_boxes, FlowResult
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .taylor import flow_programs
+from .trapping import find_regions, trapped_cells
 from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
 from .volumes import label_fractions
 from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
@@ -98,6 +99,8 @@ class Proof:
     stop_reason : str
     fractions : dict
     fractions_exact : bool
+    trapping : certify.trapping.RegionSearch or None
+        Trapping regions around stable equilibria (and why some have none).
     """
 
     model: object
@@ -118,6 +121,7 @@ class Proof:
     stop_reason: str
     fractions: dict = field(default_factory=dict)
     fractions_exact: bool = True
+    trapping: object = None
 
     @property
     def counts(self):
@@ -145,6 +149,7 @@ class _Prover:
         self.n = self.tree.n
         self.window_sides = self.tree.window_bounds()
         self.faces = analyse_faces(model, self.programs, self.tree, self.params)
+        self.regions = find_regions(model, self.programs, self.params)
         self.flows: list[FlowResult] = []
         size = 1
         self.flow_ref = np.full((size, 2), -1)
@@ -339,11 +344,16 @@ class _Prover:
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
         src = query_nodes[q]
         dst = number[leaf]
+        trapped, whole = trapped_cells(
+            self.regions.regions, self.tree.lo[leaves], self.tree.hi[leaves],
+            self.image_lo[leaves], self.image_hi[leaves],
+            usable & self.kept[leaves] & ~self.escapes[leaves])
         facts = CellFacts(outside=self.outside[leaves], flow_ok=self.flow_ok[leaves],
                           kept=self.kept[leaves], escapes=self.escapes[leaves],
                           crossing=self.crossing[leaves], horizon_lo=self.horizon_lo[leaves],
                           horizon_hi=self.horizon_hi[leaves],
-                          first_unkept=self.first_unkept[leaves], src=src, dst=dst)
+                          first_unkept=self.first_unkept[leaves], src=src, dst=dst,
+                          trapped=trapped, trapped_whole=whole)
         return leaves, facts, label_cells(facts)
 
 
@@ -523,7 +533,7 @@ def _prove(model, method, budget, progress, focus):
                   flows=prover.flows, flow_ref=prover.flow_ref[:len(tree)],
                   successors=(facts.src, facts.dst), rounds=snapshot.round,
                   seconds=time.monotonic() - start, interrupted=interrupted,
-                  stop_reason=stop_reason)
+                  stop_reason=stop_reason, trapping=prover.regions)
     proof.fractions, proof.fractions_exact = label_fractions(proof)
     return proof
 

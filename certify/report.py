@@ -6,6 +6,7 @@ import numpy as np
 
 from .container import narrowed_text, parameter_differences
 from .points import points_summary
+from .trapping import trapping_summary
 
 __all__ = ["proof_summary", "summary_table", "narrowed_parameters", "SAFETY_NOTE"]
 
@@ -52,6 +53,7 @@ def proof_summary(proof, certificate_path=None):
         "seconds": round(proof.seconds, 3),
         "certificate": certificate_path,
         "note": SAFETY_NOTE,
+        "trapping": trapping_summary(proof.trapping, proof.facts),
         **points_summary(model),  # equilibria, complete, unresolved, limits
     }
 
@@ -113,6 +115,11 @@ def summary_table(summary):
         lines.append(f"open:      the flow may leave the window at {', '.join(open_sides)}; "
                      f"trajectories are followed outside it, and cells whose trajectories "
                      f"stay away undecided: widen the window there to decide them")
+    trap = summary.get("trapping") or {"regions": [], "notes": []}
+    if trap["regions"] or trap["notes"]:
+        lines.append(f"trapping:  {len(trap['regions'])} region(s) around stable equilibria, "
+                     f"{sum(r['cells'] for r in trap['regions'])} cells trapped"
+                     + "".join(f"; {note}" for note in trap["notes"]))
     if summary["cells"]["doomed"] and summary.get("crossing_time_max") is not None:
         unit = summary.get("time_unit") or "time units"
         lines.append(f"every doomed start crosses a limit within "

@@ -254,10 +254,10 @@ def delete_cell(data):
     c = _first(cells["label"], "undecided")
     L = cells["count"]
     for key in ("depth", "index", "rank", "crossing_upper", "survival_lower", "horizon",
-                "set0_m", "set0_r"):
+                "set0_m", "set0_r", "trapped"):
         a = _cells(data, key)
         _put(data, key, np.delete(a, c, axis=0), "<i8" if a.dtype.kind == "i" else "<f8")
-    for key in ("label", "image_known"):
+    for key in ("label", "image_known", "trapped_whole"):
         del cells[key][c]
     start = _cells(data, "successor_start")
     succ = _cells(data, "successors")

@@ -351,7 +351,8 @@ def cell_facts(context, task, arithmetic):
         ``crossing_step`` (first verified step whose end box violates a limit, -1),
         ``image`` (0 not known, 1 known), ``escapes`` (bool), ``empty`` (the clipped image
         is empty), ``grid_lo``/``grid_hi`` (int arrays (N, n): the clipped image in units
-        of the finest grid, see :func:`grid_bounds`).
+        of the finest grid, see :func:`grid_bounds`), ``image_lo``/``image_hi`` (object
+        arrays (N, n) of Fractions: the clipped image; None where not known).
     """
     ar = ARITHMETICS[arithmetic]()
     ar.enter()
@@ -498,8 +499,9 @@ def _images(ar, context, task, tube_boxes, image, image_cells):
     grid_lo = np.zeros((N, n), np.int64)
     grid_hi = np.full((N, n), -1, np.int64)
     if len(image_cells) == 0:
+        none = np.full((N, n), None, dtype=object)
         return {"image": known, "escapes": escapes, "empty": empty, "grid_lo": grid_lo,
-                "grid_hi": grid_hi}
+                "grid_hi": grid_hi, "image_lo": none, "image_hi": none}
     usable = np.ones(len(image_cells), bool)
     for i in range(n):
         usable &= ar.finite(image[i])
@@ -512,16 +514,19 @@ def _images(ar, context, task, tube_boxes, image, image_cells):
                    for i in range(n)], dtype=object).T.reshape(len(sel), n)
     known[cells] = 1
     escapes[cells] = _escapes(ar, context, task, tube_boxes, cells, lo, hi)
+    clipped_lo = np.full((N, n), None, dtype=object)
+    clipped_hi = np.full((N, n), None, dtype=object)
     for c, row_lo, row_hi in zip(cells, lo, hi):
         for i, (a, b) in enumerate(context.window):
             row_lo[i] = max(row_lo[i], a)
             row_hi[i] = min(row_hi[i], b)
+        clipped_lo[c], clipped_hi[c] = row_lo, row_hi
         if any(x > y for x, y in zip(row_lo, row_hi)):
             empty[c] = True
             continue
         grid_lo[c], grid_hi[c] = grid_bounds(context.window, context.grid_depth, row_lo, row_hi)
     return {"image": known, "escapes": escapes, "empty": empty, "grid_lo": grid_lo,
-            "grid_hi": grid_hi}
+            "grid_hi": grid_hi, "image_lo": clipped_lo, "image_hi": clipped_hi}
 
 
 def grid_bounds(window, depth, lo, hi):

@@ -16,6 +16,7 @@ import numpy as np
 from ..container import decode_array, load_certificate_json
 from ..errors import CertificateError, CertifyError
 from ..model import parse_model
+from ._trapping import read_regions
 
 __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
 
@@ -92,6 +93,9 @@ class CertificateData:
     m: np.ndarray
     A: np.ndarray
     claim: object = None
+    regions: list = None
+    trapped: np.ndarray = None
+    trapped_whole: np.ndarray = None
 
 
 def read_for_check(path):
@@ -203,13 +207,15 @@ def _parse(path, data):
                    ("horizon", horizon)):
         if np.any(np.isnan(a)):
             rd.fail(f"cells.{key}", "holds NaN")
+    regions, trapped, whole = read_regions(rd, data, cells, n, L)
     return CertificateData(path=str(path), model=model, sha_ok=sha_ok, states=states,
                         params=params, window=tuple(window), order=order, faces=faces, n=n,
                         L=L, depth=depth, index=index, label=np.array(labels), rank=rank,
                         crossing_upper=crossing, survival_lower=survival, horizon=horizon,
                         image_known=np.array(known, bool), succ_start=succ_start, succ=succ,
                         set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A,
-                        claim=data.get("claim"))
+                         claim=data.get("claim"), regions=regions, trapped=trapped,
+                         trapped_whole=whole)
 
 
 def _read_faces(rd, data, n):

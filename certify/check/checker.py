@@ -28,11 +28,12 @@ import numpy as np
 from ..container import parameter_differences
 from ..errors import CertificateError, CertifyError
 from ..model import load_model
-from ._cells import CellTask, CheckContext, cell_facts
+from ._cells import CellTask, CheckContext, cell_facts, exact_cells
 from ._claim import read_claim, rederive_claim
 from ._faces import confirm_face
 from ._programs import derive_programs
 from ._read import LABELS, read_for_check
+from ._trapping import in_region, verify_region
 
 __all__ = ["CheckResult", "check_certificate"]
 
@@ -262,11 +263,13 @@ class _Facts:
         self.empty = np.zeros(L, bool)
         self.grid_lo = np.zeros((L, n), np.int64)
         self.grid_hi = np.full((L, n), -1, np.int64)
+        self.image_lo = np.full((L, n), None, dtype=object)
+        self.image_hi = np.full((L, n), None, dtype=object)
 
     def store(self, cells, facts):
         self.computed[cells] = True
         for key in ("outside", "n_valid", "first_unkept", "image", "escapes", "empty",
-                    "grid_lo", "grid_hi"):
+                    "grid_lo", "grid_hi", "image_lo", "image_hi"):
             getattr(self, key)[cells] = facts[key]
         self.crossing_step[cells] = facts["crossing_step"]
 
@@ -275,7 +278,8 @@ class _Facts:
 class _Judge:
     """Local checks of each cell's claims (docs/design.md, section 5)."""
 
-    def __init__(self, cert, facts, tree, succ_missing):
+    def __init__(self, cert, facts, tree, succ_missing, unproven_regions=()):
+        self.unproven_regions = set(unproven_regions)
         self.cert = cert
         self.facts = facts
         self.tree = tree
@@ -347,6 +351,8 @@ class _Judge:
 
     def _safe(self, c, K):
         cert, f = self.cert, self.facts
+        if cert.trapped[c] >= 0:
+            return self._trapped(c, K)
         out = self._image(c, K)
         if f.first_unkept[c] < K:
             out.append((f"limits are not proven kept on step {f.first_unkept[c]}", True))
@@ -354,6 +360,25 @@ class _Judge:
             if cert.label[d] not in ("safe", "outside"):
                 out.append((f"successor {d} is {cert.label[d]}", False))
                 break
+        return out
+
+    def _trapped(self, c, K):
+        """A safe cell that lies in, or whose kept tube ends in, a trapping region."""
+        cert, f = self.cert, self.facts
+        k = int(cert.trapped[c])
+        region = cert.regions[k]
+        if k in self.unproven_regions:
+            return [(f"its trapping region {k} is not proven", False)]
+        if cert.trapped_whole[c]:
+            lo, hi = exact_cells(cert.window, cert.depth[c:c + 1], cert.index[c:c + 1])
+            if not in_region(region, lo[0], hi[0]):
+                return [(f"the cell does not lie in trapping region {k}", False)]
+            return []
+        out = self._image(c, K)
+        if f.first_unkept[c] < K:
+            out.append((f"limits are not proven kept on step {f.first_unkept[c]}", True))
+        if not out and (f.empty[c] or not in_region(region, f.image_lo[c], f.image_hi[c])):
+            out.append((f"its image is not proven to lie in trapping region {k}", True))
         return out
 
     def _doomed(self, c, K, T):
@@ -424,7 +449,8 @@ class _Judge:
         """Successors whose claims the claims of cell c rely on."""
         cert = self.cert
         label = cert.label[c]
-        if label == "outside" or (label == "doomed" and cert.rank[c] == 0):
+        if label == "outside" or (label == "doomed" and cert.rank[c] == 0) or \
+                (label == "safe" and cert.trapped[c] >= 0):
             return []
         if label in ("safe", "doomed"):
             return list(self.successors(c))
@@ -438,6 +464,7 @@ def _needs_steps(cert):
     label = cert.label
     claims = (label == "safe") | (label == "doomed") | \
              ((label == "undecided") & (cert.survival_lower > 0))
+    claims &= ~((label == "safe") & cert.trapped_whole)
     return np.where(claims & (label != "outside"), K, 0)
 
 
@@ -540,6 +567,11 @@ def check_certificate(path, model=None, jobs=None, progress=None):
                            open_faces=tuple(open_faces), grid_depth=tree.max_depth,
                            invariant_faces=tuple(invariant_faces),
                            search_tubes=revised is not None)
+    unproven = []
+    for k, region in enumerate(cert.regions):
+        for problem in verify_region(region, programs, params, _tile):
+            unproven.append(k)
+            failures.append(_global(f"trapping region {k}: {problem}"))
     jobs = (os.cpu_count() or 1) if jobs is None else max(1, int(jobs))
     n_steps = _needs_steps(cert)
     if progress is not None and hasattr(progress, "total"):
@@ -548,7 +580,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     tasks = _tasks(cert, np.arange(cert.L), n_steps)
     for number, result in _compute(context, tasks, "ball", jobs, progress).items():
         facts.store(tasks[number].cells, result)
-    judge, local = _judge_all(cert, facts, tree, np.arange(cert.L))
+    judge, local = _judge_all(cert, facts, tree, np.arange(cert.L), unproven)
     recomputed = {}
     for arithmetic in ("fine", "endpoint"):
         retry = np.array(sorted(c for c, reasons in local.items()
@@ -559,7 +591,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
         tasks = _tasks(cert, retry, n_steps)
         for number, result in _compute(context, tasks, arithmetic, jobs, None).items():
             facts.store(tasks[number].cells, result)
-        _, again = _judge_all(cert, facts, tree, retry)
+        _, again = _judge_all(cert, facts, tree, retry, unproven)
         for c in retry:
             local.pop(c, None)
             if c in again:
@@ -596,7 +628,7 @@ def _with_parameters(cert):
         raise CertificateError(f"{cert.path}: key 'parameters': {exc}") from None
 
 
-def _judge_all(cert, facts, tree, cells):
+def _judge_all(cert, facts, tree, cells, unproven_regions=()):
     """Local checks of `cells`; returns the judge and ``{cell: [(reason, arithmetic)]}``."""
     use = facts.image.astype(bool) & ~facts.empty
     sel = np.asarray(cells)[use[cells]]
@@ -610,7 +642,7 @@ def _judge_all(cert, facts, tree, cells):
         for s, d in zip(src.tolist(), leaf.tolist()):
             if s * cert.L + d not in known and s not in missing:
                 missing[s] = d
-    judge = _Judge(cert, facts, tree, missing)
+    judge = _Judge(cert, facts, tree, missing, unproven_regions)
     local = {}
     for c in np.asarray(cells).tolist():
         reasons = judge.check(c)

@@ -1,0 +1,263 @@
+"""Trapping regions around stable equilibria (certify/trapping.py, certify/check/_trapping.py).
+
+References named beside the checks:
+
+* Lyapunov's direct method (Lyapunov 1892; Khalil, Nonlinear Systems, 2002, ch. 4
+  (mem)): a sublevel set of ``V`` on whose boundary ``dV/dt < 0`` is forward invariant;
+  ``A^T P + P A = -Q`` has a positive definite solution for Hurwitz ``A`` (Khalil 2002,
+  Theorem 4.6 (mem)).
+* Float checks beside the proofs: the model's equations evaluated by
+  ``sympy.lambdify`` (not by the project's program compiler) and trajectories by scipy
+  ``solve_ivp`` (DOP853, rtol 1e-10, atol 1e-12).
+* The damped linear oscillator ``x' = y, y' = -x - y/2`` (closed form: eigenvalues
+  ``(-1/2 +- i sqrt(15)/2) / 2``, a stable focus at 0).
+"""
+
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+import pytest
+import sympy
+from scipy.integrate import solve_ivp
+
+from certify.certificate import certificate_data, write_certificate
+from certify.check import check_certificate
+from certify.container import (decode_array, encode_array, fraction_text,
+                               load_certificate_json)
+from certify.evaluate import parameter_enclosures
+from certify.labels import label_cells
+from certify.model import load_model, parse_model
+from certify.prove import prove
+from certify.taylor import flow_programs
+from certify.trapping import ABOVE, BELOW, SHELL, find_regions, grid_box, prove_region
+
+ROOT = Path(__file__).resolve().parent.parent
+OSCILLATOR = """\
+[model]
+name = "damped linear oscillator"
+time_unit = "s"
+[states]
+x = { range = [-2, 2] }
+y = { range = [-2, 2] }
+[parameters]
+k = 1
+c = 0.5
+[equations]
+x = "y"
+y = "-k*x - c*y"
+[constraints]
+x_cap = "x <= 1.5"
+x_floor = "x >= -1.5"
+"""
+PENDULUM = ROOT / "tests" / "data" / "prove_damped_pendulum.toml"
+FOOD_CHAIN = ROOT / "models" / "microbial_food_chain.toml"
+
+
+def _oscillator():
+    return parse_model(OSCILLATOR)
+
+
+def _floats(model):
+    """f and the limits g as numpy functions of (x, p) by sympy.lambdify (float check)."""
+    xs, ps = model.state_symbols, model.parameter_symbols
+    f = sympy.lambdify([xs, ps], list(model.equations), "numpy")
+    g = sympy.lambdify([xs, ps], [c.g for c in model.constraints], "numpy")
+    mid = [float((p.lo + p.hi) / 2) for p in model.parameters]
+    return (lambda x: np.array(f(x.T, mid), float).reshape(len(xs), -1).T), \
+        (lambda x: np.array(g(x.T, mid), float).reshape(len(model.constraints), -1).T)
+
+
+def _region(model):
+    programs = flow_programs(model, 4)
+    search = find_regions(model, programs, parameter_enclosures(model))
+    assert search.regions, search.notes
+    return search.regions[0]
+
+
+def _on_level_set(region, count, rng):
+    """Points with V = level: x = c + sqrt(level) u L^-1 for unit rows u, P = L L^T."""
+    n = len(region.centre)
+    u = rng.standard_normal((count, n))
+    u /= np.linalg.norm(u, axis=1, keepdims=True)
+    factor = np.linalg.inv(np.linalg.cholesky(region.matrix))
+    return region.centre + np.sqrt(region.level) * u @ factor
+
+
+def _V(region, x):
+    d = x - region.centre
+    return np.einsum("ki,ij,kj->k", d, region.matrix, d)
+
+
+@pytest.fixture(scope="module", params=["oscillator", "pendulum", "food_chain"])
+def case(request):
+    model = {"oscillator": _oscillator, "pendulum": lambda: load_model(PENDULUM),
+             "food_chain": lambda: load_model(FOOD_CHAIN)}[request.param]()
+    return model, _region(model)
+
+
+def test_flow_points_inward_on_the_boundary(case):
+    model, region = case
+    f, g = _floats(model)
+    x = _on_level_set(region, 1000, np.random.default_rng(1))
+    assert np.allclose(_V(region, x), region.level, rtol=1e-9)
+    # the ellipsoid lies inside B, so its boundary in B is the level set itself
+    assert np.all((x > region.box_lo) & (x < region.box_hi))
+    rate = 2 * np.einsum("ki,ij,kj->k", x - region.centre, region.matrix, f(x))
+    assert np.all(rate < 0)  # Lyapunov 1892: the flow points inward (float check)
+    assert np.all(g(x) >= 0)  # the region lies inside the limits
+    assert np.all(np.linalg.eigvalsh(region.matrix) > 0)  # Khalil 2002, Thm 4.6 (mem)
+
+
+def test_trajectories_from_the_region_stay_in_it(case):
+    model, region = case
+    f, g = _floats(model)
+    rng = np.random.default_rng(2)
+    edge = _on_level_set(region, 40, rng)
+    starts = region.centre + (edge - region.centre) * rng.random((40, 1)) ** 0.5
+    for x0 in starts:
+        sol = solve_ivp(lambda t, x: f(x[None])[0], (0, 30), x0, method="DOP853",
+                        rtol=1e-10, atol=1e-12, dense_output=True)
+        xs = sol.sol(np.linspace(0, 30, 600)).T
+        assert np.all(_V(region, xs) <= region.level * (1 + 1e-8))  # scipy vs the proof
+        assert np.all(g(xs) >= 0)
+
+
+def test_cover_classes_hold_at_sampled_points(case):
+    """Every class agrees with float evaluation at random points of its sub-boxes."""
+    model, region = case
+    f, g = _floats(model)
+    rng = np.random.default_rng(3)
+    pick = rng.choice(len(region.cover_depth), size=min(2000, len(region.cover_depth)),
+                      replace=False)
+    width = (region.box_hi - region.box_lo) / 2.0 ** region.cover_depth[pick, None]
+    x = region.box_lo + (region.cover_index[pick] + rng.random((len(pick), 1))) * width
+    v = _V(region, x)
+    kind = region.cover_class[pick]
+    assert np.all(v[kind == ABOVE] > region.level)
+    assert np.all(v[kind == BELOW] < region.level)
+    shell = kind == SHELL
+    rate = 2 * np.einsum("ki,ij,kj->k", x[shell] - region.centre, region.matrix, f(x[shell]))
+    assert np.all(rate < 0)
+    assert np.all(g(x[kind != ABOVE]) >= 0)
+
+
+# -- a matrix that is not a Lyapunov function -----------------------------------------------
+BAD = np.array([[1.0, 0.875], [0.875, 1.0]])
+
+
+def test_a_wrong_matrix_yields_no_region():
+    model = _oscillator()
+    # float check that BAD is wrong: at (0, y) the rate 2 d^T P f is 2 (7/8 - 1/2) y^2 > 0
+    f, _ = _floats(model)
+    x = np.array([[0.0, 0.3]])
+    assert 2 * x[0] @ BAD @ f(x)[0] > 0
+    programs = flow_programs(model, 4)
+    lo, hi = grid_box(np.array([-0.9, -0.9]), np.array([0.9, 0.9]))
+    region = prove_region(programs, parameter_enclosures(model), np.zeros(2), BAD, 0.1, lo,
+                          hi, max_depth=8)
+    assert region is None
+
+
+@pytest.fixture(scope="module")
+def oscillator_cert(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("trap")
+    path = tmp / "model.toml"
+    path.write_text(OSCILLATOR)
+    proof = prove(load_model(path), max_depth=5)
+    cert = tmp / "cert.json.gz"
+    write_certificate(cert, certificate_data(proof, {}))
+    return proof, cert
+
+
+def test_oscillator_certificate_is_valid_and_uses_the_region(oscillator_cert):
+    proof, cert = oscillator_cert
+    trapped = proof.facts.trapped >= 0
+    assert trapped.any() and proof.facts.trapped_whole.any()
+    assert np.all(proof.labelling.label[trapped] == "safe")
+    # without the region the same facts prove fewer cells safe
+    with np.errstate(all="ignore"):  # as prove() does: NaN marks unusable bounds
+        plain = label_cells(type(proof.facts)(**{**proof.facts.__dict__, "trapped": None}))
+    assert (plain.label == "safe").sum() < (proof.labelling.label == "safe").sum()
+    result = check_certificate(cert, jobs=1)
+    assert result.valid, result.failures[:3]
+
+
+def _tampered(cert, tmp_path, change):
+    data = load_certificate_json(cert)
+    change(data)
+    write_certificate(tmp_path / "bad.json.gz", data)
+    result = check_certificate(tmp_path / "bad.json.gz", jobs=1)
+    assert not result.valid
+    return " ".join(f["reason"] for f in result.failures)
+
+
+def test_forged_wrong_matrix_is_rejected(oscillator_cert, tmp_path):
+    def forge(data):
+        data["regions"][0]["matrix"] = [[fraction_text(Fraction(v)) for v in row]
+                                        for row in BAD]
+    assert "trapping region 0" in _tampered(oscillator_cert[1], tmp_path, forge)
+
+
+def test_enlarged_level_is_rejected(oscillator_cert, tmp_path):
+    def forge(data):
+        level = Fraction(data["regions"][0]["level"])
+        data["regions"][0]["level"] = fraction_text(level * 4)
+    assert "trapping region 0" in _tampered(oscillator_cert[1], tmp_path, forge)
+
+
+def _cover(data, key):
+    return decode_array(data["regions"][0][key])
+
+
+def _put_cover(data, key, array):
+    data["regions"][0][key] = encode_array(np.asarray(array), "<i8")
+
+
+def test_changed_class_is_rejected(oscillator_cert, tmp_path):
+    def forge(data):
+        kind = _cover(data, "cover_class").copy()
+        kind[np.flatnonzero(kind == SHELL)[0]] = BELOW
+        _put_cover(data, "cover_class", kind)
+    assert "trapping region 0" in _tampered(oscillator_cert[1], tmp_path, forge)
+
+
+def test_removed_sub_box_is_rejected(oscillator_cert, tmp_path):
+    def forge(data):
+        keep = np.arange(len(_cover(data, "cover_depth"))) != 5
+        for key in ("cover_depth", "cover_index", "cover_class"):
+            _put_cover(data, key, _cover(data, key)[keep])
+    assert "does not tile" in _tampered(oscillator_cert[1], tmp_path, forge)
+
+
+def test_forged_trapped_cell_is_rejected(oscillator_cert, tmp_path):
+    proof, cert = oscillator_cert
+
+    def forge(data):
+        label = np.array(data["cells"]["label"])
+        c = int(np.flatnonzero((label == "undecided"))[0])
+        data["cells"]["label"][c] = "safe"
+        trapped = np.full(len(label), -1)
+        trapped[c] = 0
+        data["cells"]["trapped"] = encode_array(trapped, "<i8")
+        data["cells"]["trapped_whole"] = [i == c for i in range(len(label))]
+    assert "does not lie in trapping region 0" in _tampered(cert, tmp_path, forge)
+
+
+# -- the 3D food chain: safe cells at depth 4, checked and simulated ------------------------
+def test_food_chain_gains_safe_cells_that_simulation_confirms(tmp_path):
+    model = load_model(FOOD_CHAIN)
+    proof = prove(model, max_depth=4)
+    safe = proof.labelling.label == "safe"
+    assert safe.any() and np.all(proof.facts.trapped[safe] >= 0)
+    cert = tmp_path / "cert.json.gz"
+    write_certificate(cert, certificate_data(proof, {}))
+    assert check_certificate(cert, jobs=1).valid
+    f, g = _floats(model)
+    rng = np.random.default_rng(4)
+    nodes = proof.leaves[safe]
+    for node in rng.choice(nodes, size=min(20, len(nodes)), replace=False):
+        x0 = proof.tree.lo[node] + rng.random(3) * (proof.tree.hi[node] - proof.tree.lo[node])
+        sol = solve_ivp(lambda t, x: f(x[None])[0], (0, 200), x0, method="DOP853",
+                        rtol=1e-10, atol=1e-12, dense_output=True)
+        assert np.all(g(sol.sol(np.linspace(0, 200, 2000)).T) >= 0)  # scipy: limits kept

@@ -36,18 +36,7 @@ floor = "x >= 0.5"
 """
 # A stable spiral in a disc that is invariant (d(x^2+y^2)/dt = -2(x^2+y^2)): nothing is
 # doomed, so nothing may be said about crossing times.
-DISC = """
-[model]
-name = "spiral in a disc"
-[states]
-x = [-1.5, 1.5]
-y = [-1.5, 1.5]
-[equations]
-x = "-x + y"
-y = "-x - y"
-[constraints]
-disc = "x^2 + y^2 <= 1"
-"""
+DISC = (Path(__file__).parent / "data" / "spiral_disc.toml").read_text()
 
 
 def _one_line(err):

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 import re
+from pathlib import Path
 
 import matplotlib
 
@@ -30,18 +31,7 @@ from certify.plots import DRAW_SUBGRID, parse_slice, plot_map, save_figures  # n
 # A stable spiral inside a disc of radius 1 in the window [-1.5, 1.5]^2: d(x^2+y^2)/dt
 # = -2 (x^2+y^2), so the disc is invariant. Outside at t = 0 is the window minus the disc,
 # of area 9 - pi (closed form).
-DISC = """
-[model]
-name = "spiral in a disc"
-[states]
-x = [-1.5, 1.5]
-y = [-1.5, 1.5]
-[equations]
-x = "-x + y"
-y = "-x - y"
-[constraints]
-disc = "x^2 + y^2 <= 1"
-"""
+DISC = (Path(__file__).parent / "data" / "spiral_disc.toml").read_text()
 # The same spiral with a limit on one state: the window minus x <= 0.3, area 1.2 * 3.
 STRIP = DISC.replace('disc = "x^2 + y^2 <= 1"', 'right = "x <= 0.3"')
 # A 1D decay towards 0 with a floor at 0.5 in the window [0.2, 4]: outside is

@@ -67,9 +67,10 @@ class Region:
     level : float
     box_lo, box_hi : ndarray, shape (n,)
         The box ``B``.
-    cover_depth : ndarray of int, shape (k,)
+    cover_depth : ndarray of int, shape (k, n)
     cover_index : ndarray of int, shape (k, n)
-        Dyadic sub-boxes of ``B`` (like cells of the window).
+        Dyadic sub-boxes of ``B``: along axis ``i`` the sub-box is the ``index[i]``-th of
+        ``2^depth[i]`` equal parts of ``B``'s side (a k-d tree's leaves).
     cover_class : ndarray of int, shape (k,)
         :data:`ABOVE`, :data:`BELOW` or :data:`SHELL`.
     """
@@ -264,7 +265,7 @@ def _largest_level(programs, samples, centre, matrix, width, rng):
 def _sub_boxes(box_lo, box_hi, depth, index):
     """Float boxes enclosing the exact dyadic sub-boxes of ``B`` (outward rounded)."""
     wlo, whi = iv.sub(box_hi, box_hi, box_lo, box_lo)
-    scale = 2.0 ** -depth.astype(float)[:, None]
+    scale = 2.0 ** -depth.astype(float)
     wlo, whi = wlo * scale, whi * scale     # exact: powers of two
     lo, _ = iv.add(box_lo, box_lo, *iv.mul(wlo, whi, index, index))
     _, hi = iv.add(box_lo, box_lo, *iv.mul(wlo, whi, index + 1, index + 1))
@@ -290,7 +291,7 @@ def classify(programs, params, centre, matrix, level, box_lo, box_hi, depth, ind
     vlo, vhi = v_bounds(centre, matrix, lo, hi)
     glo, _ = evaluate_limits(programs, lo, hi, params)
     limits_ok = np.all(glo >= 0, axis=1)
-    edge = np.any((index == 0) | (index == (1 << depth)[:, None] - 1), axis=1)
+    edge = np.any((index == 0) | (index == (1 << depth) - 1), axis=1)
     out = np.full(len(lo), -1)
     inner = limits_ok & ~edge
     out[inner] = np.where(vhi[inner] < level, BELOW, -1)
@@ -302,11 +303,21 @@ def classify(programs, params, centre, matrix, level, box_lo, box_hi, depth, ind
     return out
 
 
+def _split_axis(matrix, lo, hi):
+    """Per box, the axis whose halving most reduces the overestimation of ``V``.
+
+    The interval form of ``V`` overestimates by about ``sum_ij |P_ij| w_i w_j`` (``w`` the
+    widths); halving axis ``a`` removes about ``w_a sum_j |P_aj| w_j`` of it.
+    """
+    w = hi - lo
+    return np.argmax(w * (w @ np.abs(matrix)), axis=1)
+
+
 def _cover(programs, params, centre, matrix, level, box_lo, box_hi, max_depth, max_boxes):
+    """A k-d cover: sub-boxes not proven are halved along one axis (:func:`_split_axis`)."""
     n = len(centre)
-    offsets = np.array(list(product((0, 1), repeat=n)), np.int64)
-    depth = np.ones(len(offsets), np.int64)
-    index = offsets.copy()
+    depth = np.zeros((1, n), np.int64)
+    index = np.zeros((1, n), np.int64)
     done_depth, done_index, done_class = [], [], []
     total = 0
     while len(depth):
@@ -319,10 +330,18 @@ def _cover(programs, params, centre, matrix, level, box_lo, box_hi, max_depth, m
         depth, index = depth[~ok], index[~ok]
         if len(depth) == 0:
             break
-        if depth.max() >= max_depth or total + len(depth) * len(offsets) > max_boxes:
+        if total + 2 * len(depth) > max_boxes:
             return None
-        index = (2 * index[:, None, :] + offsets[None]).reshape(-1, n)
-        depth = np.repeat(depth + 1, len(offsets))
+        lo, hi = _sub_boxes(box_lo, box_hi, depth, index)
+        axis = _split_axis(matrix, lo, hi)
+        rows = np.arange(len(depth))
+        if depth[rows, axis].max() >= max_depth:
+            return None
+        depth = np.repeat(depth, 2, axis=0)
+        index = np.repeat(index, 2, axis=0)
+        rows, axis = np.arange(len(depth)), np.repeat(axis, 2)
+        depth[rows, axis] += 1
+        index[rows, axis] = 2 * index[rows, axis] + (rows & 1)
     return (np.concatenate(done_depth), np.concatenate(done_index),
             np.concatenate(done_class))
 
@@ -345,7 +364,8 @@ def prove_region(programs, params, centre, matrix, level, box_lo, box_hi, *, max
     Returns
     -------
     Region or None
-        None when no cover within `max_depth` halvings and `max_boxes` sub-boxes proves it.
+        None when no cover within `max_depth` halvings per axis and `max_boxes` sub-boxes
+        proves it.
     """
     if not np.array_equal(matrix, matrix.T):
         raise ValueError("the matrix must be symmetric")
@@ -413,7 +433,7 @@ def _region_at(model, programs, params, point, rng, max_depth, max_boxes):
     return None, "no level set was proven invariant within the cover budget"
 
 
-def find_regions(model, programs, params, *, max_depth=None, max_boxes=200_000):
+def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000):
     """Trapping regions around the stable equilibria inside the limits.
 
     Parameters
@@ -423,8 +443,8 @@ def find_regions(model, programs, params, *, max_depth=None, max_boxes=200_000):
         Of Taylor order at least 2 (the Jacobian is needed).
     params : sequence of (float, float)
         Parameter enclosures.
-    max_depth : int, optional
-        Deepest halving of the box ``B`` (default ``24 // n``).
+    max_depth : int
+        Most halvings of the box ``B`` along one axis.
     max_boxes : int
         Largest number of sub-boxes in a cover.
 
@@ -436,8 +456,6 @@ def find_regions(model, programs, params, *, max_depth=None, max_boxes=200_000):
 
     if programs.jacobian is None or model.uses_kinks:
         return RegionSearch((), ("the model has no Jacobian (abs, min or max)",))
-    n = programs.n
-    max_depth = max_depth or max(24 // n, 4)
     rng = np.random.default_rng(20261204)
     regions, notes = [], []
     with np.errstate(all="ignore"):
@@ -506,7 +524,7 @@ def regions_data(search):
                     "matrix": [[fraction_text(x) for x in row] for row in matrix],
                     "level": fraction_text(level),
                     "box": [[fraction_text(a), fraction_text(b)] for a, b in box],
-                    "cover_depth": encode_array(r.cover_depth, "<i8"),
+                    "cover_depths": encode_array(r.cover_depth, "<i8"),
                     "cover_index": encode_array(r.cover_index, "<i8"),
                     "cover_class": encode_array(r.cover_class, "<i8")})
     return out

@@ -41,7 +41,7 @@ from . import interval as iv
 from .evaluate import evaluate_boxes, evaluate_limits
 
 __all__ = ["Region", "RegionSearch", "find_regions", "prove_region", "grid_box",
-           "trapped_cells", "trapping_summary", "lyapunov_matrix",
+           "trapped_cells", "in_regions", "trapping_summary", "lyapunov_matrix",
            "v_bounds", "v_rate_bounds", "classify", "ABOVE", "BELOW", "SHELL", "CLASSES"]
 
 ABOVE, BELOW, SHELL = 0, 1, 2
@@ -476,6 +476,14 @@ def _inside(region, lo, hi):
     within = np.all((lo >= region.box_lo) & (hi <= region.box_hi), axis=1)
     _, vhi = v_bounds(region.centre, region.matrix, lo, hi)
     return within & (vhi <= region.level)
+
+
+def in_regions(regions, lo, hi):
+    """Bool per box: it lies in some region (inside its ``B``, upper bound of ``V`` <= level)."""
+    out = np.zeros(len(lo), bool)
+    for r in regions:
+        out |= _inside(r, lo, hi)
+    return out
 
 
 def trapped_cells(regions, cell_lo, cell_hi, image_lo, image_hi, image_usable):

@@ -256,8 +256,9 @@ def test_first_format_cover_with_one_depth_per_sub_box_is_read(tmp_path):
     from certify.trapping import classify
     n, d = 2, 6
     grid = np.stack(np.meshgrid(*[np.arange(1 << d)] * n, indexing="ij"), -1).reshape(-1, n)
-    kind = classify(flow_programs(model, 4), parameter_enclosures(model), region.centre, region.matrix, region.level,
-                    region.box_lo, region.box_hi, np.full((len(grid), n), d), grid)
+    kind = classify(flow_programs(model, 4), parameter_enclosures(model), region.centre,
+                    region.matrix, region.level, region.box_lo, region.box_hi,
+                    np.full((len(grid), n), d), grid)
     assert np.all(kind >= 0)
     entry = data["regions"][0]
     del entry["cover_depths"]

@@ -227,11 +227,15 @@ def _exact_boxes(box, depth, index):
     k, n = index.shape
     lo = np.empty((k, n), dtype=object)
     hi = np.empty((k, n), dtype=object)
-    for c in range(k):
-        for i, (a, b) in enumerate(box):
-            part = Fraction(b - a, 1 << int(depth[c, i]))
-            lo[c, i] = a + part * int(index[c, i])
-            hi[c, i] = lo[c, i] + part
+    for i, (a, b) in enumerate(box):
+        # sub-boxes share sides: compute each (depth, index) pair once
+        pairs, where = np.unique(np.stack([depth[:, i], index[:, i]], 1), axis=0,
+                                 return_inverse=True)
+        ends = [(a + Fraction(b - a, 1 << int(e)) * int(j),
+                 a + Fraction(b - a, 1 << int(e)) * (int(j) + 1)) for e, j in pairs]
+        side = np.empty((len(ends), 2), dtype=object)
+        side[:] = ends
+        lo[:, i], hi[:, i] = side[where.reshape(-1), 0], side[where.reshape(-1), 1]
     return lo, hi
 
 

@@ -22,7 +22,7 @@ from .cells import CellTree
 from .flow import DeadlinePassed, flow_boxes, FlowResult
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .taylor import flow_programs
-from .trapping import find_regions, trapped_cells
+from .trapping import find_regions, in_regions, trapped_cells
 from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
 from .volumes import label_fractions
 from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
@@ -208,7 +208,8 @@ class _Prover:
             # they come back into the window or cross a limit out there
             ones = np.ones(len(ids), bool)
             away = self._clip(end_lo, end_hi, ones, ones)[2]
-            return ((left | inside) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
+            trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
+            return ((left | inside | trapped) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,

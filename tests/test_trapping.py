@@ -130,8 +130,8 @@ def test_cover_classes_hold_at_sampled_points(case):
     rng = np.random.default_rng(3)
     pick = rng.choice(len(region.cover_depth), size=min(2000, len(region.cover_depth)),
                       replace=False)
-    width = (region.box_hi - region.box_lo) / 2.0 ** region.cover_depth[pick, None]
-    x = region.box_lo + (region.cover_index[pick] + rng.random((len(pick), 1))) * width
+    width = (region.box_hi - region.box_lo) / 2.0 ** region.cover_depth[pick]
+    x = region.box_lo + (region.cover_index[pick] + rng.random(width.shape)) * width
     v = _V(region, x)
     kind = region.cover_class[pick]
     assert np.all(v[kind == ABOVE] > region.level)
@@ -224,10 +224,89 @@ def test_changed_class_is_rejected(oscillator_cert, tmp_path):
 
 def test_removed_sub_box_is_rejected(oscillator_cert, tmp_path):
     def forge(data):
-        keep = np.arange(len(_cover(data, "cover_depth"))) != 5
-        for key in ("cover_depth", "cover_index", "cover_class"):
+        keep = np.arange(len(_cover(data, "cover_depths"))) != 5
+        for key in ("cover_depths", "cover_index", "cover_class"):
             _put_cover(data, key, _cover(data, key)[keep])
     assert "does not tile" in _tampered(oscillator_cert[1], tmp_path, forge)
+
+
+def test_overlapping_sub_box_is_rejected(oscillator_cert, tmp_path):
+    def forge(data):
+        # replace sub-box 5 by its parent along axis 0: it overlaps its sibling, and a
+        # copy of another sub-box keeps the volumes adding up
+        depth, index = _cover(data, "cover_depths").copy(), _cover(data, "cover_index").copy()
+        row = int(np.flatnonzero(depth[:, 0] > 0)[0])
+        depth[row, 0] -= 1
+        index[row, 0] //= 2
+        _put_cover(data, "cover_depths", depth)
+        _put_cover(data, "cover_index", index)
+    assert "does not tile" in _tampered(oscillator_cert[1], tmp_path, forge)
+
+
+def test_first_format_cover_with_one_depth_per_sub_box_is_read(tmp_path):
+    """Covers by cubic sub-boxes (``cover_depth`` of shape (k,)) still check."""
+    path = tmp_path / "model.toml"
+    path.write_text(OSCILLATOR)
+    model = load_model(path)
+    proof = prove(model, max_depth=4)
+    data = certificate_data(proof, {})
+    region = proof.trapping.regions[0]
+    # the same region with a cover halved along every axis at once, down to depth 6
+    # (classes re-proven by the prover's own classify at the finer, cubic level)
+    from certify.trapping import classify
+    n, d = 2, 6
+    grid = np.stack(np.meshgrid(*[np.arange(1 << d)] * n, indexing="ij"), -1).reshape(-1, n)
+    kind = classify(flow_programs(model, 4), parameter_enclosures(model), region.centre,
+                    region.matrix, region.level, region.box_lo, region.box_hi,
+                    np.full((len(grid), n), d), grid)
+    assert np.all(kind >= 0)
+    entry = data["regions"][0]
+    del entry["cover_depths"]
+    entry["cover_depth"] = encode_array(np.full(len(grid), d), "<i8")
+    entry["cover_index"] = encode_array(grid, "<i8")
+    entry["cover_class"] = encode_array(kind, "<i8")
+    write_certificate(tmp_path / "old.json.gz", data)
+    result = check_certificate(tmp_path / "old.json.gz", jobs=1)
+    assert result.valid, result.failures[:3]
+
+
+def _brute_tiles(depth, index, d):
+    """Reference: count how often each cell of the 2^d grid is covered (must be once)."""
+    n = depth.shape[1]
+    count = np.zeros((1 << d,) * n, int)
+    for dep, ind in zip(depth, index):
+        sl = tuple(slice(i << (d - e), (i + 1) << (d - e)) for e, i in zip(dep, ind))
+        count[sl] += 1
+    return bool(np.all(count == 1))
+
+
+def test_tiling_check_agrees_with_counting_on_random_covers():
+    """k-d covers, and the same with one box dropped, moved or duplicated, against a count."""
+    from certify.check._trapping import tiling_problem
+    rng = np.random.default_rng(7)
+    for trial in range(60):
+        n = 1 + trial % 3
+        depth, index = np.zeros((1, n), np.int64), np.zeros((1, n), np.int64)
+        for _ in range(6):
+            row = rng.integers(len(depth))
+            a = rng.integers(n)
+            kids_d = np.repeat(depth[row:row + 1], 2, 0)
+            kids_i = np.repeat(index[row:row + 1], 2, 0)
+            kids_d[:, a] += 1
+            kids_i[:, a] = 2 * kids_i[:, a] + np.array([0, 1])
+            depth = np.concatenate([np.delete(depth, row, 0), kids_d])
+            index = np.concatenate([np.delete(index, row, 0), kids_i])
+        assert tiling_problem(depth, index) is None and _brute_tiles(depth, index, 7)
+        k = rng.integers(len(depth))
+        variants = [(np.delete(depth, k, 0), np.delete(index, k, 0)),
+                    (np.concatenate([depth, depth[k:k + 1]]),
+                     np.concatenate([index, index[k:k + 1]]))]
+        moved = index.copy()
+        moved[k] = rng.integers(0, 1 << depth[k])
+        variants.append((depth, moved))
+        for dep, ind in variants:
+            if len(dep):
+                assert (tiling_problem(dep, ind) is None) == _brute_tiles(dep, ind, 7)
 
 
 def test_forged_trapped_cell_is_rejected(oscillator_cert, tmp_path):

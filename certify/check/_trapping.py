@@ -5,11 +5,12 @@ with exact rationals, and a cover of ``B`` by dyadic sub-boxes, each with a clas
 (docs/certificate-format.md, "Trapping regions"). The checker verifies, with its own
 arithmetic and nothing of the proof code:
 
-1. the sub-boxes tile ``B`` exactly (the same descent that checks the cells' tiling);
+1. the sub-boxes tile ``B`` exactly (:func:`tiling_problem`: their volumes add up to
+   ``B``'s and a k-d descent puts each alone in its own node);
 2. every sub-box touching the boundary of ``B`` is ``above``;
-3. ``above``: ``V > level`` on the sub-box; ``below``: ``V < level``; both with exact
-   rational interval arithmetic on ``sum_i P_ii d_i^2 + sum_{i<j} 2 P_ij d_i d_j``,
-   ``d = x - c``;
+3. ``above``: ``V > level`` on the sub-box; ``below``: ``V < level``; both with interval
+   arithmetic on ``sum_i P_ii d_i^2 + sum_{i<j} 2 P_ij d_i d_j``, ``d = x - c`` (arb
+   balls, then exact rationals where the balls do not decide);
 4. every sub-box that is not ``above`` keeps every limit (``g >= 0``), and every
    ``shell`` sub-box has ``W = dV/dt = sum_i w_i f_i < 0`` with ``w_i = sum_j 2 P_ij d_j``,
    for every parameter value in the boxes: the natural interval extension or the
@@ -26,15 +27,14 @@ recomputed tube keeps the limits and its recomputed image lies in ``R`` (inside 
 from __future__ import annotations
 
 import itertools
+from fractions import Fraction
 from dataclasses import dataclass
-from types import SimpleNamespace
 
 import numpy as np
 
 from ._arith import ARITHMETICS, evaluate
-from ._cells import exact_cells
 
-__all__ = ["CheckRegion", "read_regions", "verify_region", "in_region"]
+__all__ = ["CheckRegion", "read_regions", "verify_region", "in_region", "tiling_problem"]
 
 ABOVE, BELOW, SHELL = 0, 1, 2
 
@@ -91,12 +91,16 @@ def read_regions(rd, data, cells, n, L):
         if not all(a < b for a, b in B):
             rd.fail(f"{where}.box", "lo must be below hi")
         level = rd.fraction(rd.get(obj, "level", f"{where}.level"), f"{where}.level")
-        depth = rd.array(obj, "cover_depth", f"{where}.cover_depth", "i", (None,))
-        k_boxes = len(depth)
-        index = rd.array(obj, "cover_index", f"{where}.cover_index", "i", (k_boxes, n))
+        index = rd.array(obj, "cover_index", f"{where}.cover_index", "i", (None, n))
+        k_boxes = len(index)
+        if "cover_depths" in obj:
+            depth = rd.array(obj, "cover_depths", f"{where}.cover_depths", "i", (k_boxes, n))
+        else:  # one depth per sub-box, for every axis (the first format)
+            depth = rd.array(obj, "cover_depth", f"{where}.cover_depth", "i", (k_boxes,))
+            depth = np.repeat(depth[:, None], n, axis=1)
         kind = rd.array(obj, "cover_class", f"{where}.cover_class", "i", (k_boxes,))
         if k_boxes == 0 or np.any(depth < 0) or np.any(depth > 62) or np.any(index < 0) \
-                or np.any(index >= (np.int64(1) << depth)[:, None]):
+                or np.any(index >= (np.int64(1) << depth)):
             rd.fail(f"{where}.cover_index", "an index lies outside its depth's range")
         if np.any((kind < ABOVE) | (kind > SHELL)):
             rd.fail(f"{where}.cover_class", "classes are 0 (above), 1 (below), 2 (shell)")
@@ -135,6 +139,30 @@ def _v_range(region, lo, hi):
     return acc_lo, acc_hi
 
 
+def _classes_in_balls(region, lo, hi):
+    """Per sub-box: arb balls prove its class ``above`` or ``below`` (False for ``shell``).
+
+    The same form of ``V`` as :func:`_v_range`, with ``d_i^2`` as an even power; the
+    sub-boxes where the balls do not decide are left to the exact rationals.
+    """
+    ar = ARITHMETICS["ball"]()
+    ar.enter()
+    n, count = len(region.centre), len(lo)
+    c, P = region.centre, region.matrix
+    d = [ar.sub(ar.rationals(lo[:, i], hi[:, i]), ar.rational(c[i], c[i])) for i in range(n)]
+    level = region.level
+    v = ar.rational(-level, -level)
+    for i in range(n):
+        v = ar.add(v, ar.mul(ar.rational(P[i][i], P[i][i]), ar.pow_int(d[i], 2)))
+        for j in range(i + 1, n):
+            q = 2 * P[i][j]
+            v = ar.add(v, ar.mul(ar.rational(q, q), ar.mul(d[i], d[j])))
+    finite = np.broadcast_to(ar.finite(v), (count,))
+    above = np.array([bool(x > 0) for x in np.broadcast_to(ar.lower(v), (count,))])
+    below = np.array([bool(x < 0) for x in np.broadcast_to(ar.upper(v), (count,))])
+    return finite & np.where(region.kind == ABOVE, above, (region.kind == BELOW) & below)
+
+
 def in_region(region, lo, hi):
     """Exact test that a box of Fractions lies in ``R`` (inside ``B``, ``V <= level``)."""
     if any(x < a or y > b for x, y, (a, b) in zip(lo, hi, region.box)):
@@ -142,8 +170,77 @@ def in_region(region, lo, hi):
     return _v_range(region, lo, hi)[1] <= region.level
 
 
+def tiling_problem(depth, index):
+    """Why dyadic boxes do not tile the unit box, or None when they do.
+
+    Box ``k`` is, along axis ``i``, the ``index[k, i]``-th of ``2^depth[k, i]`` equal parts.
+    A descent keeps every box in a node (a dyadic box containing it; all start in the
+    whole box). A box that equals its node and is alone in it is done; a node holding
+    more boxes is halved along the first axis along which all of them are finer than it,
+    each box going to the half containing it. Nodes present at one time have disjoint
+    interiors, so the boxes do not overlap; with volumes adding up to the whole, they
+    cover it. Covers made by halving along one axis at a time always pass.
+
+    Parameters
+    ----------
+    depth, index : ndarray of int, shape (k, n)
+        ``0 <= index < 2^depth``.
+
+    Returns
+    -------
+    str or None
+    """
+    k, n = depth.shape
+    sums = [int(s) for s in depth.sum(axis=1)]
+    top = max(sums)
+    if sum(1 << (top - s) for s in sums) != 1 << top:
+        return "the sub-boxes' volumes do not add up to the box's"
+    node_depth = np.zeros((k, n), np.int64)
+    node_index = np.zeros((k, n), np.int64)
+    active = np.arange(k)
+    while len(active):
+        d, nd = depth[active], node_depth[active]
+        _, group, size = np.unique(np.concatenate([nd, node_index[active]], axis=1), axis=0,
+                                   return_inverse=True, return_counts=True)
+        group = group.reshape(-1)
+        equal = np.all(d == nd, axis=1)
+        if np.any(equal & (size[group] > 1)):
+            return f"sub-box {int(active[np.flatnonzero(equal & (size[group] > 1))[0]])} " \
+                   "overlaps another"
+        active, d, nd, group = active[~equal], d[~equal], nd[~equal], group[~equal]
+        if len(active) == 0:
+            break
+        finer = np.ones((len(size), n), bool)
+        np.logical_and.at(finer, group, d > nd)
+        if not np.all(finer.any(axis=1)[group]):
+            return "the sub-boxes are not the leaves of halvings along one axis at a time"
+        axis = np.argmax(finer, axis=1)[group]
+        rows = active
+        bit = (index[rows, axis] >> (depth[rows, axis] - node_depth[rows, axis] - 1)) & 1
+        node_depth[rows, axis] += 1
+        node_index[rows, axis] = 2 * node_index[rows, axis] + bit
+    return None
+
+
+def _exact_boxes(box, depth, index):
+    """Exact sides of dyadic sub-boxes of `box` as object arrays of Fractions, (k, n)."""
+    k, n = index.shape
+    lo = np.empty((k, n), dtype=object)
+    hi = np.empty((k, n), dtype=object)
+    for i, (a, b) in enumerate(box):
+        # sub-boxes share sides: compute each (depth, index) pair once
+        pairs, where = np.unique(np.stack([depth[:, i], index[:, i]], 1), axis=0,
+                                 return_inverse=True)
+        ends = [(a + Fraction(b - a, 1 << int(e)) * int(j),
+                 a + Fraction(b - a, 1 << int(e)) * (int(j) + 1)) for e, j in pairs]
+        side = np.empty((len(ends), 2), dtype=object)
+        side[:] = ends
+        lo[:, i], hi[:, i] = side[where.reshape(-1), 0], side[where.reshape(-1), 1]
+    return lo, hi
+
+
 def _edge(region):
-    top = (np.int64(1) << region.depth)[:, None] - 1
+    top = (np.int64(1) << region.depth) - 1
     return np.any((region.index == 0) | (region.index == top), axis=1)
 
 
@@ -223,7 +320,7 @@ def _halves(lo, hi):
             np.array(out_hi, dtype=object).reshape(-1, n), np.array(parent))
 
 
-def verify_region(region, programs, params, tile):
+def verify_region(region, programs, params):
     """Problems with a region's claims (empty when it is proven).
 
     Parameters
@@ -231,24 +328,21 @@ def verify_region(region, programs, params, tile):
     region : CheckRegion
     programs : certify.check._programs.CheckPrograms
     params : sequence of (Fraction, Fraction)
-    tile : callable
-        The checker's tiling test (``tile(cover) -> (tree, problems)``).
 
     Returns
     -------
     list of str
     """
     n = len(region.centre)
-    cover = SimpleNamespace(n=n, L=len(region.depth), depth=region.depth, index=region.index)
-    _, problems = tile(cover)
-    if problems:
-        return [f"its cover does not tile its box: {problems[0]}"]
+    problem = tiling_problem(region.depth, region.index)
+    if problem:
+        return [f"its cover does not tile its box: {problem}"]
     edge = _edge(region)
     if np.any(edge & (region.kind != ABOVE)):
         k = int(np.flatnonzero(edge & (region.kind != ABOVE))[0])
         return [f"cover box {k} touches the boundary of the box but is not 'above'"]
-    lo, hi = exact_cells(region.box, region.depth, region.index)
-    for k in range(len(lo)):
+    lo, hi = _exact_boxes(region.box, region.depth, region.index)
+    for k in np.flatnonzero((region.kind != SHELL) & ~_classes_in_balls(region, lo, hi)):
         v_lo, v_hi = _v_range(region, lo[k], hi[k])
         kind = region.kind[k]
         if (kind == ABOVE and not v_lo > region.level) or \

@@ -569,7 +569,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
                            search_tubes=revised is not None)
     unproven = []
     for k, region in enumerate(cert.regions):
-        for problem in verify_region(region, programs, params, _tile):
+        for problem in verify_region(region, programs, params):
             unproven.append(k)
             failures.append(_global(f"trapping region {k}: {problem}"))
     jobs = (os.cpu_count() or 1) if jobs is None else max(1, int(jobs))

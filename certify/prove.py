@@ -18,7 +18,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from . import interval as iv
-from .cells import CellTree
+from .cells import CellTree, index_dtype
 from .flow import DeadlinePassed, flow_boxes
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .steps import StepStore
@@ -330,12 +330,13 @@ class _Prover:
     # -- labelling ---------------------------------------------------------------------
     def label(self):
         leaves = self.tree.leaves()
-        number = np.full(len(self.tree), -1)
+        # edges can outnumber the cells a hundredfold: leaf numbers as narrow as they fit
+        number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
         number[leaves] = np.arange(len(leaves))
         usable = self.flow_ok[leaves] & ~self.outside[leaves]
         qlo, qhi = self.image_lo[leaves[usable]], self.image_hi[leaves[usable]]
         nonempty = np.all(qlo <= qhi, axis=1)
-        query_nodes = np.flatnonzero(usable)[nonempty]
+        query_nodes = np.flatnonzero(usable)[nonempty].astype(number.dtype)
         qlo, qhi = qlo[nonempty], qhi[nonempty]
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
         src = query_nodes[q]

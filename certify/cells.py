@@ -168,7 +168,7 @@ class CellTree:
         # once would take gigabytes (each query's pairs do not depend on the others)
         dtype = index_dtype(max(len(qlo), len(self.depth)))
         out_q, out_leaf = [np.zeros(0, dtype)], [np.zeros(0, dtype)]
-        first, size = 0, 1024
+        first, size = 0, min(1024, FRONTIER)
         while first < len(qlo):
             block = np.arange(first, min(first + size, len(qlo)))
             query, leaf, widest = self._meeting_block(block, qlo, qhi, strict)

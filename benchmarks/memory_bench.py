@@ -4,6 +4,7 @@ Run from the repository root::
 
     .venv/bin/python benchmarks/memory_bench.py [--save runs.json] [--before old.json]
                                                 [--runs fermenter:10 ...] [--no-write]
+                                                [--load runs.json]
 
 Each run proves one model to one maximum depth (no time limit) and writes its
 certificate, in a fresh Python process, so that the peak resident set size
@@ -92,11 +93,13 @@ def main(argv=None):
     parser.add_argument("--runs", nargs="+", default=list(RUNS), metavar="MODEL:DEPTH")
     parser.add_argument("--save", type=Path, help="keep the measurements as JSON")
     parser.add_argument("--before", type=Path, help="measurements of an earlier commit")
+    parser.add_argument("--load", type=Path, help="write results.md from saved measurements "
+                        "instead of running (the machine line is then today's)")
     parser.add_argument("--no-write", action="store_true", help="leave results.md alone")
     args = parser.parse_args(argv)
     info = machine()
-    rows = []
-    for run in args.runs:
+    rows = json.loads(args.load.read_text()) if args.load else []
+    for run in [] if args.load else args.runs:
         name, depth = run.split(":")
         rows.append(measure(name, int(depth)))
         print(json.dumps(rows[-1]), flush=True)

@@ -63,7 +63,7 @@ def measure(name, depth):
     done = subprocess.run([sys.executable, "-c", CHILD, str(model), str(depth)],
                           capture_output=True, text=True, check=True, env=os.environ.copy())
     row = json.loads(done.stdout.strip().splitlines()[-1])
-    row.update(model=name, depth=depth)
+    row.update(model=name, depth=depth, commit=machine()["commit"])
     return row
 
 
@@ -109,7 +109,7 @@ def main(argv=None):
     if args.no_write:
         return
     load_end = ", ".join(f"{v:.1f}" for v in os.getloadavg())
-    arrow = " (earlier commit → this one)" if before else ""
+    arrow = f" (commit `{before[0].get('commit', '?')}` → this one)" if before else ""
     text = (f"## {SECTION}\n\n"
             f"Peak resident set size (`ru_maxrss`) of one proof in a fresh process, "
             f"after the proof and after writing its certificate{arrow}.\n\n"

@@ -79,7 +79,8 @@ class StepBatch:
 
 def _runs(first, count):
     """The integers ``first[i], ..., first[i] + count[i] - 1``, run after run."""
-    return np.repeat(first, count) + np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
+    within = np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
+    return np.repeat(first, count) + within
 
 
 class StepStore:

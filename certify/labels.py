@@ -118,7 +118,8 @@ def _doomed(facts, L, safe):
     upper[zero] = np.where(facts.outside[zero], 0.0, facts.crossing[zero])
     eligible = facts.flow_ok & ~facts.escapes & ~safe & ~zero
     out_degree = np.bincount(facts.src, minlength=L)
-    reverse = sp.csr_matrix((np.ones(len(facts.src)), (facts.dst, facts.src)), shape=(L, L))
+    # only the structure is used: one byte an edge
+    reverse = sp.csr_matrix((np.ones(len(facts.src), bool), (facts.dst, facts.src)), shape=(L, L))
     remaining = out_degree - np.bincount(facts.src[zero[facts.dst]], minlength=L)
     # a cell whose whole image lies where it is harmless has crossed by its horizon
     new = eligible & (remaining == 0)

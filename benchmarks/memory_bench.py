@@ -112,7 +112,9 @@ def main(argv=None):
     arrow = f" (commit `{before[0].get('commit', '?')}` → this one)" if before else ""
     text = (f"## {SECTION}\n\n"
             f"Peak resident set size (`ru_maxrss`) of one proof in a fresh process, "
-            f"after the proof and after writing its certificate{arrow}.\n\n"
+            f"after the proof and after writing its certificate{arrow}. What is kept per "
+            f"cell, and why the numbers do not change, is in docs/proof-loop.md "
+            f"(\"Memory\").\n\n"
             f"{table(rows, before)}\n\n{measured_on(info, load_end, 'memory_bench.py')}\n")
     write_section(SECTION, text)
 

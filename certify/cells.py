@@ -19,7 +19,15 @@ import numpy as np
 
 from .interval import enclose_fraction
 
-__all__ = ["CellTree"]
+__all__ = ["CellTree", "index_dtype"]
+
+#: Pairs (query, node) tried at once by :meth:`CellTree.leaves_meeting`, roughly.
+FRONTIER = 1 << 19
+
+
+def index_dtype(size):
+    """The narrowest of int32 and int64 that numbers `size` things (halves edge lists)."""
+    return np.int32 if size < 2 ** 31 else np.int64
 
 
 class CellTree:
@@ -143,7 +151,7 @@ class CellTree:
 
         Returns
         -------
-        query, leaf : ndarray of int
+        query, leaf : ndarray of int (int32 when the tree is small enough)
             Pairs, sorted by query.
 
         Notes
@@ -154,12 +162,30 @@ class CellTree:
         union of those leaves is closed. Marking only the thick axes keeps this true for
         flat boxes, within the hyperplane they lie in.
         """
-        q = np.arange(len(qlo))
-        node = np.zeros(len(qlo), int)
+        strict = np.zeros(qlo.shape, bool) if strict is None else strict
+        # queries are taken in blocks sized so that the pairs tried at one level stay
+        # near FRONTIER: wide boxes meet thousands of leaves, and all their pairs at
+        # once would take gigabytes (each query's pairs do not depend on the others)
+        dtype = index_dtype(max(len(qlo), len(self.depth)))
+        out_q, out_leaf = [np.zeros(0, dtype)], [np.zeros(0, dtype)]
+        first, size = 0, min(1024, FRONTIER)
+        while first < len(qlo):
+            block = np.arange(first, min(first + size, len(qlo)))
+            query, leaf, widest = self._meeting_block(block, qlo, qhi, strict)
+            out_q.append(query.astype(dtype))
+            out_leaf.append(leaf.astype(dtype))
+            first += len(block)
+            size = int(np.clip(size * FRONTIER / max(widest, 1), 1, 1 << 16))
+        return np.concatenate(out_q), np.concatenate(out_leaf)
+
+    def _meeting_block(self, q, qlo, qhi, strict):
+        """:meth:`leaves_meeting` for the queries `q`; also the most pairs at one level."""
+        node = np.zeros(len(q), int)
         out_q, out_leaf = [np.zeros(0, int)], [np.zeros(0, int)]
         k = len(self._offsets)
-        strict = np.zeros(qlo.shape, bool) if strict is None else strict
+        widest = 0
         while len(q):
+            widest = max(widest, len(q))
             below = np.where(strict[q], self.lo[node] < qhi[q], self.lo[node] <= qhi[q])
             above = np.where(strict[q], self.hi[node] > qlo[q], self.hi[node] >= qlo[q])
             meet = np.all(below & above, axis=1)
@@ -173,7 +199,7 @@ class CellTree:
         query = np.concatenate(out_q)
         leaf = np.concatenate(out_leaf)
         order = np.argsort(query, kind="stable")
-        return query[order], leaf[order]
+        return query[order], leaf[order], widest
 
     def leaf_containing(self, points):
         """For each point, one leaf whose float box contains it (-1 if outside the window).

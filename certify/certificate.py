@@ -16,6 +16,7 @@ from .container import (FORMAT, LABELS, VERSION, decode_array, encode_array, fra
                         load_certificate_json, write_certificate)
 from .errors import CertificateError
 from .graph import transition_graph
+from .steps import STEP_KEYS
 from .trapping import regions_data, trapping_cells
 
 __all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write_certificate",
@@ -182,40 +183,6 @@ def _rebuild_tree(tree, depth, index):
     return node_to_leaf
 
 
-def _leaf_steps(proof):
-    """Gather the step records of every leaf, in leaf order (vectorized per batch)."""
-    leaves = proof.leaves
-    n = proof.tree.n
-    ref = proof.flow_ref[leaves]
-    counts = np.zeros(len(leaves), int)
-    for b, flow in enumerate(proof.flows):
-        sel = ref[:, 0] == b
-        counts[sel] = flow.n_steps[ref[sel, 1]]
-    start = np.concatenate([[0], np.cumsum(counts)])
-    S = int(start[-1])
-    out = {"h": np.zeros(S), "E": np.zeros((S, n, 2)), "m": np.zeros((S, n)),
-           "A": np.zeros((S, n, n))}
-    set0_m = np.zeros((len(leaves), n))
-    set0_r = np.zeros((len(leaves), n, 2))
-    for b, flow in enumerate(proof.flows):
-        sel = np.flatnonzero(ref[:, 0] == b)
-        if len(sel) == 0:
-            continue
-        boxes = ref[sel, 1]
-        set0_m[sel] = flow.set0_m[boxes]
-        set0_r[sel, :, 0] = flow.set0_r_lo[boxes]
-        set0_r[sel, :, 1] = flow.set0_r_hi[boxes]
-        k = flow.n_steps[boxes]
-        within = np.arange(k.sum()) - np.repeat(np.cumsum(k) - k, k)
-        src = np.repeat(flow.step_start[boxes], k) + within
-        dst = np.repeat(start[sel], k) + within
-        out["h"][dst] = flow.h[src]
-        out["E"][dst, :, 0], out["E"][dst, :, 1] = flow.e_lo[src], flow.e_hi[src]
-        out["m"][dst] = flow.m[src]
-        out["A"][dst] = flow.A[src]
-    return start, out, set0_m, set0_r
-
-
 def certificate_data(proof, summary):
     """Build the certificate dictionary of a proof (see docs/certificate-format.md).
 
@@ -233,8 +200,8 @@ def certificate_data(proof, summary):
 
     model = proof.model
     lab, facts = proof.labelling, proof.facts
-    start, steps, set0_m, set0_r = _leaf_steps(proof)
     leaves = proof.leaves
+    set0_m, set0_r, start = proof.steps.starts(leaves)
     succ_order = np.argsort(facts.src, kind="stable")
     src, dst = facts.src[succ_order], facts.dst[succ_order]
     succ_start = np.searchsorted(src, np.arange(len(leaves) + 1))
@@ -267,10 +234,9 @@ def certificate_data(proof, summary):
             "set0_m": encode_array(set0_m),
             "set0_r": encode_array(set0_r),
             "step_start": encode_array(start, "<i8"),
-            "step_h": encode_array(steps["h"]),
-            "step_E": encode_array(steps["E"]),
-            "step_m": encode_array(steps["m"]),
-            "step_A": encode_array(steps["A"]),
+            # one gathered array at a time: each is freed once encoded
+            **{f"step_{key}": encode_array(proof.steps.gather(leaves, key))
+               for key in STEP_KEYS},
             **trapping_cells(facts),
         },
         "regions": regions_data(proof.trapping),

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import base64
 import gzip
+import io
 import json
 import zlib
 from fractions import Fraction
@@ -16,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import CertificateError
-from .files import write_atomic
+from .files import atomic_writer
 
 __all__ = ["FORMAT", "VERSION", "CERTIFICATE_NAME", "certificate_path", "LABELS",
            "encode_array", "decode_array", "fraction_text", "parameter_differences",
@@ -109,8 +110,12 @@ def write_certificate(path, data):
     data : dict
         JSON-serialisable content (arrays already encoded).
     """
-    text = json.dumps(data, separators=(",", ":")).encode("utf-8")
-    write_atomic(path, gzip.compress(text, compresslevel=6, mtime=0))
+    # streamed: the JSON text (several times the size of the step arrays) is never held whole
+    with atomic_writer(path) as raw, \
+            gzip.GzipFile(filename="", mode="wb", fileobj=raw, compresslevel=6, mtime=0) as gz, \
+            io.TextIOWrapper(gz, encoding="utf-8", newline="") as text:
+        for chunk in json.JSONEncoder(separators=(",", ":")).iterencode(data):
+            text.write(chunk)
 
 
 def certificate_path(path):

@@ -4,11 +4,37 @@ from __future__ import annotations
 
 import os
 import tempfile
+from contextlib import contextmanager
 from pathlib import Path
 
 from .errors import UsageError
 
-__all__ = ["write_atomic", "output_folder"]
+__all__ = ["atomic_writer", "write_atomic", "output_folder"]
+
+
+@contextmanager
+def atomic_writer(path):
+    """A binary file handle whose content appears at `path` only once it is complete.
+
+    The content goes to a temporary file in the same folder, renamed to `path` when
+    the block ends without an exception (and removed otherwise).
+
+    Parameters
+    ----------
+    path : str or Path
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}-", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            yield handle
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
 
 
 def write_atomic(path, data):
@@ -19,18 +45,8 @@ def write_atomic(path, data):
     path : str or Path
     data : bytes
     """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}-", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_writer(path) as handle:
+        handle.write(data)
 
 
 def output_folder(path, option="--out"):

@@ -459,14 +459,18 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
 
 
 def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0, r0lo, r0hi):
-    if records:
-        cols = [np.concatenate(c) for c in zip(*records)]
-    else:
-        cols = [np.zeros((0,) + s) for s in [(), (), (), (), (n,), (n,), (n,), (n,), (n,),
-                                              (n, n), (n,), (n,), (n,), (n,)]]
-        cols[0] = cols[0].astype(int)
-    order = np.argsort(cols[0], kind="stable")
-    cols = [c[order] for c in cols]
+    shapes = [(), (), (), (), (n,), (n,), (n,), (n,), (n,), (n, n), (n,), (n,), (n,), (n,)]
+    parts = [list(c) for c in zip(*records)] if records else [[np.zeros((0,) + s)]
+                                                              for s in shapes]
+    records.clear()
+    order = np.argsort(np.concatenate(parts[0]), kind="stable")
+    cols = []
+    for j in range(len(parts)):
+        # one column at a time, its parts freed as soon as it is joined: the peak is
+        # the records and one column, not twice all of them
+        joined = np.concatenate(parts[j])
+        parts[j] = None
+        cols.append(joined[order])
     step_start = np.concatenate([[0], np.cumsum(n_steps)[:-1]]).astype(int)
     (_, h, t0lo, t0hi, xlo, xhi, elo, ehi, m, A, rlo, rhi, endlo, endhi) = cols
     return FlowResult(status=status, n_steps=n_steps, step_start=step_start, t_lo=t_lo,

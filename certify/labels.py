@@ -90,8 +90,9 @@ def _reachable(n_nodes, src, dst, seeds):
     if not seeds.any():
         return np.zeros(n_nodes, bool)
     super_node = n_nodes
-    rows = np.concatenate([dst, np.full(seeds.sum(), super_node)])
-    cols = np.concatenate([src, np.flatnonzero(seeds)])
+    # edge lists stay in their (narrow) index type: they can hold a hundred edges a cell
+    rows = np.concatenate([dst, np.full(seeds.sum(), super_node, dst.dtype)])
+    cols = np.concatenate([src, np.flatnonzero(seeds).astype(src.dtype)])
     g = sp.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_nodes + 1, n_nodes + 1))
     order = breadth_first_order(g, super_node, directed=True, return_predecessors=False)
     out = np.zeros(n_nodes + 1, bool)
@@ -117,7 +118,8 @@ def _doomed(facts, L, safe):
     upper[zero] = np.where(facts.outside[zero], 0.0, facts.crossing[zero])
     eligible = facts.flow_ok & ~facts.escapes & ~safe & ~zero
     out_degree = np.bincount(facts.src, minlength=L)
-    reverse = sp.csr_matrix((np.ones(len(facts.src)), (facts.dst, facts.src)), shape=(L, L))
+    # only the structure is used: one byte an edge
+    reverse = sp.csr_matrix((np.ones(len(facts.src), bool), (facts.dst, facts.src)), shape=(L, L))
     remaining = out_degree - np.bincount(facts.src[zero[facts.dst]], minlength=L)
     # a cell whose whole image lies where it is harmless has crossed by its horizon
     new = eligible & (remaining == 0)
@@ -146,8 +148,8 @@ def _survival(facts, L, label):
     finite = np.isfinite(source)
     super_node = L
     # weights shifted by 1 so that zero weights survive the sparse format
-    rows = np.concatenate([dst, np.full(finite.sum(), super_node)])
-    cols = np.concatenate([src, np.flatnonzero(finite)])
+    rows = np.concatenate([dst, np.full(finite.sum(), super_node, dst.dtype)])
+    cols = np.concatenate([src, np.flatnonzero(finite).astype(src.dtype)])
     w = np.concatenate([facts.horizon_lo[src], source[finite] + 1.0])
     if len(rows) == 0:
         return np.where(finite, source, np.inf)

@@ -18,9 +18,10 @@ import numpy as np
 import scipy.sparse as sp
 
 from . import interval as iv
-from .cells import CellTree
-from .flow import DeadlinePassed, flow_boxes, FlowResult
+from .cells import CellTree, index_dtype
+from .flow import DeadlinePassed, flow_boxes
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
+from .steps import StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
 from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
@@ -68,7 +69,7 @@ class _Snapshot:
     labelling: Labelling
     facts: CellFacts
     round: int
-    n_flows: int
+    steps: tuple
 
 
 @dataclass
@@ -90,9 +91,9 @@ class Proof:
     faces : list of dict
         Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``open``) and its
         cover.
-    flows : list of FlowResult
-    flow_ref : ndarray of int, shape (n_nodes, 2)
-        (flow batch, box in batch) per node, -1 where no flow was computed.
+    steps : certify.steps.StepStore
+        The starting sets and step records of the leaves' flows (what the certificate
+        stores).
     rounds : int
     seconds : float
     interrupted : bool
@@ -112,8 +113,7 @@ class Proof:
     labelling: Labelling
     facts: CellFacts
     faces: list
-    flows: list
-    flow_ref: np.ndarray
+    steps: StepStore
     successors: tuple
     rounds: int
     seconds: float
@@ -150,9 +150,8 @@ class _Prover:
         self.window_sides = self.tree.window_bounds()
         self.faces = analyse_faces(model, self.programs, self.tree, self.params)
         self.regions = find_regions(model, self.programs, self.params)
-        self.flows: list[FlowResult] = []
+        self.steps = StepStore(self.n)
         size = 1
-        self.flow_ref = np.full((size, 2), -1)
         self.outside = np.zeros(size, bool)
         self.flow_ok = np.zeros(size, bool)
         self.kept = np.zeros(size, bool)
@@ -168,7 +167,6 @@ class _Prover:
         extra = len(self.tree) - len(self.outside)
         if extra <= 0:
             return
-        self.flow_ref = np.concatenate([self.flow_ref, np.full((extra, 2), -1)])
         self.outside = np.concatenate([self.outside, np.zeros(extra, bool)])
         self.flow_ok = np.concatenate([self.flow_ok, np.zeros(extra, bool)])
         self.kept = np.concatenate([self.kept, np.zeros(extra, bool)])
@@ -217,10 +215,8 @@ class _Prover:
                             step=m.step, max_step=m.max_step, min_step=m.min_step,
                             max_steps=m.max_steps, should_stop=should_stop,
                             deadline=self.deadline)
-        batch = len(self.flows)
-        self.flows.append(result)
-        self.flow_ref[todo] = np.stack([np.full(len(todo), batch), np.arange(len(todo))], 1)
         self._tube_facts(todo, result)
+        self.steps.add(todo, result)
 
     def _tube_facts(self, todo, result):
         S = len(result.h)
@@ -335,12 +331,13 @@ class _Prover:
     # -- labelling ---------------------------------------------------------------------
     def label(self):
         leaves = self.tree.leaves()
-        number = np.full(len(self.tree), -1)
+        # edges can outnumber the cells a hundredfold: leaf numbers as narrow as they fit
+        number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
         number[leaves] = np.arange(len(leaves))
         usable = self.flow_ok[leaves] & ~self.outside[leaves]
         qlo, qhi = self.image_lo[leaves[usable]], self.image_hi[leaves[usable]]
         nonempty = np.all(qlo <= qhi, axis=1)
-        query_nodes = np.flatnonzero(usable)[nonempty]
+        query_nodes = np.flatnonzero(usable)[nonempty].astype(number.dtype)
         qlo, qhi = qlo[nonempty], qhi[nonempty]
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
         src = query_nodes[q]
@@ -484,8 +481,10 @@ def _prove(model, method, budget, progress, focus):
                 raise DeadlinePassed
             leaves, facts, labelling = prover.label()
             rounds += 1
+            # the steps of split cells are no longer needed (the proof is the leaves')
+            prover.steps.forget_all_but(leaves)
             snapshot = _Snapshot(len(tree), tree.first_child.copy(), leaves, labelling, facts,
-                                 rounds, len(prover.flows))
+                                 rounds, prover.steps.snapshot())
             elapsed = time.monotonic() - start
             if progress is not None:
                 undecided = labelling.label == UNDECIDED
@@ -527,11 +526,11 @@ def _prove(model, method, budget, progress, focus):
             raise
         tree.first_child = snapshot.first_child
         _truncate(tree, snapshot.n_nodes)
-        del prover.flows[snapshot.n_flows:]
+        prover.steps.restore(snapshot.steps)
     leaves, facts, labelling = snapshot.leaves, snapshot.facts, snapshot.labelling
     proof = Proof(model=model, method=method, budget=budget, params=prover.params, tree=tree,
                   leaves=leaves, labelling=labelling, facts=facts, faces=prover.faces,
-                  flows=prover.flows, flow_ref=prover.flow_ref[:len(tree)],
+                  steps=prover.steps,
                   successors=(facts.src, facts.dst), rounds=snapshot.round,
                   seconds=time.monotonic() - start, interrupted=interrupted,
                   stop_reason=stop_reason, trapping=prover.regions)

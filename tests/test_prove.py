@@ -697,15 +697,10 @@ def _random_boxes(rng, grid, count):
 
 def _tube_reaches(proof, axis, value):
     """Per leaf: some a-priori box of its tube reaches below ``x_axis = value``."""
-    out = np.zeros(len(proof.leaves), bool)
-    ref = proof.flow_ref[proof.leaves]
-    for b, flow in enumerate(proof.flows):
-        below = flow.e_lo[:, axis] < value
-        owner = np.repeat(np.arange(len(flow.status)), flow.n_steps)
-        reached = np.bincount(owner, weights=below, minlength=len(flow.status)) > 0
-        sel = ref[:, 0] == b
-        out[sel] = reached[ref[sel, 1]]
-    return out
+    _, _, start = proof.steps.starts(proof.leaves)
+    below = proof.steps.gather(proof.leaves, "E")[:, axis, 0] < value
+    owner = np.repeat(np.arange(len(proof.leaves)), np.diff(start))
+    return np.bincount(owner, weights=below, minlength=len(proof.leaves)) > 0
 
 
 def test_trajectories_that_leave_the_window_are_followed(certified, capsys):

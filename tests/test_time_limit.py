@@ -60,8 +60,11 @@ def test_round_past_the_limit_keeps_the_last_finished_round(late_flow):
     np.testing.assert_array_equal(proof.labelling.label, first.labelling.label)
     np.testing.assert_array_equal(proof.labelling.crossing_upper, first.labelling.crossing_upper)
     assert proof.fractions == first.fractions
-    # no flow batch of the abandoned round is kept
-    assert len(proof.flows) == len(first.flows)
+    # no step of the abandoned round is kept
+    assert len(proof.steps.batches) == len(first.steps.batches)
+    for key in ("h", "E", "m", "A"):
+        np.testing.assert_array_equal(proof.steps.gather(proof.leaves, key),
+                                      first.steps.gather(first.leaves, key))
     assert _valid(proof)
 
 

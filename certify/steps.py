@@ -1,0 +1,171 @@
+"""The step records a proof keeps for its certificate, stored compactly.
+
+A :class:`certify.flow.FlowResult` holds, per step, everything the prover's analysis
+needs (the boxes at the start and end of each step, the start times, the set's
+coordinates ``r``). Once a round's facts are drawn from it, the certificate needs only
+the starting set of each cell and, per step, ``h``, the a-priori box ``E``, ``m`` and
+``A`` (docs/certificate-format.md). :class:`StepStore` keeps just these, one batch per
+round, and forgets the steps of cells that were split, so that memory grows with the
+cells kept rather than with every cell ever analysed. Values are copied, never
+recomputed: the certificate is the same bit for bit.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["StepBatch", "StepStore", "STEP_KEYS"]
+
+#: Per-step arrays kept, with the certificate's key for each.
+STEP_KEYS = ("h", "E", "m", "A")
+
+#: A batch is compacted once less than this share of its steps belongs to kept cells.
+COMPACT_BELOW = 0.75
+
+
+@dataclass
+class StepBatch:
+    """The steps of one batch of cells: box ``b`` owns ``step_start[b]`` and on.
+
+    Attributes
+    ----------
+    n_steps, step_start : ndarray of int, shape (N,)
+    set0_m : ndarray, shape (N, n)
+    set0_r : ndarray, shape (N, n, 2)
+        The starting set ``m0 + [r0]`` of each box.
+    h : ndarray, shape (S,)
+    E : ndarray, shape (S, n, 2)
+    m : ndarray, shape (S, n)
+    A : ndarray, shape (S, n, n)
+    """
+
+    n_steps: np.ndarray
+    step_start: np.ndarray
+    set0_m: np.ndarray
+    set0_r: np.ndarray
+    h: np.ndarray
+    E: np.ndarray
+    m: np.ndarray
+    A: np.ndarray
+
+    @classmethod
+    def from_flow(cls, result):
+        """Keep of a :class:`certify.flow.FlowResult` what the certificate needs."""
+        return cls(n_steps=result.n_steps, step_start=result.step_start,
+                   set0_m=result.set0_m,
+                   set0_r=np.stack([result.set0_r_lo, result.set0_r_hi], -1),
+                   h=result.h, E=np.stack([result.e_lo, result.e_hi], -1),
+                   m=result.m, A=result.A)
+
+    @property
+    def size(self):
+        """Number of steps held."""
+        return len(self.h)
+
+    def rows(self, boxes):
+        """Step rows of `boxes`, box after box in step order."""
+        return _runs(self.step_start[boxes], self.n_steps[boxes])
+
+    def keep(self, boxes):
+        """A batch of only `boxes`: box ``i`` of it is ``boxes[i]`` of this one."""
+        rows = self.rows(boxes)
+        k = self.n_steps[boxes]
+        return StepBatch(n_steps=k, step_start=np.cumsum(k) - k,
+                         set0_m=self.set0_m[boxes], set0_r=self.set0_r[boxes],
+                         **{key: getattr(self, key)[rows] for key in STEP_KEYS})
+
+
+def _runs(first, count):
+    """The integers ``first[i], ..., first[i] + count[i] - 1``, run after run."""
+    within = np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
+    return np.repeat(first, count) + within
+
+
+class StepStore:
+    """The step records of the analysed cells, one batch per round.
+
+    Parameters
+    ----------
+    n : int
+        Dimension of the state space.
+    """
+
+    def __init__(self, n):
+        self.n = n
+        self.batches: list[StepBatch] = []
+        self.ref = np.full((0, 2), -1)   # (batch, box in batch) per node, -1 where none
+
+    def add(self, nodes, result):
+        """Keep the steps of a flow of the cells `nodes` (a FlowResult, box order)."""
+        top = int(nodes.max(initial=-1)) + 1
+        if top > len(self.ref):
+            self.ref = np.concatenate([self.ref, np.full((top - len(self.ref), 2), -1)])
+        self.batches.append(StepBatch.from_flow(result))
+        self.ref[nodes] = np.stack([np.full(len(nodes), len(self.batches) - 1),
+                                    np.arange(len(nodes))], 1)
+
+    def forget_all_but(self, nodes):
+        """Drop the steps of every cell not in `nodes`; compact batches left sparse."""
+        keep = np.zeros(len(self.ref), bool)
+        keep[nodes[nodes < len(self.ref)]] = True
+        self.ref[~keep] = -1
+        for b, batch in enumerate(self.batches):
+            mine = np.flatnonzero(self.ref[:, 0] == b)
+            used = int(batch.n_steps[self.ref[mine, 1]].sum())
+            if used < COMPACT_BELOW * batch.size:
+                self.batches[b] = batch.keep(self.ref[mine, 1])
+                self.ref[mine, 1] = np.arange(len(mine))
+
+    def snapshot(self):
+        """What :meth:`restore` needs to undo later additions."""
+        return len(self.batches), len(self.ref)
+
+    def restore(self, snapshot):
+        """Forget the batches and cells added since `snapshot`."""
+        n_batches, n_nodes = snapshot
+        del self.batches[n_batches:]
+        self.ref = self.ref[:n_nodes]
+
+    def starts(self, nodes):
+        """Per node its starting set ``(set0_m, set0_r)`` and the offsets of its steps.
+
+        Returns
+        -------
+        set0_m : ndarray, shape (N, n)
+        set0_r : ndarray, shape (N, n, 2)
+        start : ndarray of int, shape (N + 1,)
+            Node ``i`` owns rows ``start[i]:start[i + 1]`` of :meth:`gather`.
+        """
+        n = self.n
+        ref = self._ref(nodes)
+        counts = np.zeros(len(nodes), int)
+        set0_m, set0_r = np.zeros((len(nodes), n)), np.zeros((len(nodes), n, 2))
+        for b, batch in enumerate(self.batches):
+            sel = np.flatnonzero(ref[:, 0] == b)
+            boxes = ref[sel, 1]
+            counts[sel] = batch.n_steps[boxes]
+            set0_m[sel], set0_r[sel] = batch.set0_m[boxes], batch.set0_r[boxes]
+        return set0_m, set0_r, np.concatenate([[0], np.cumsum(counts)])
+
+    def gather(self, nodes, key):
+        """One per-step array (``h``, ``E``, ``m`` or ``A``) of `nodes`, node after node."""
+        ref = self._ref(nodes)
+        _, _, start = self.starts(nodes)
+        n = self.n
+        shape = {"h": (), "E": (n, 2), "m": (n,), "A": (n, n)}[key]
+        out = np.zeros((int(start[-1]),) + shape)
+        for b, batch in enumerate(self.batches):
+            sel = np.flatnonzero(ref[:, 0] == b)
+            if len(sel) == 0:
+                continue
+            boxes = ref[sel, 1]
+            out[_runs(start[sel], batch.n_steps[boxes])] = getattr(batch, key)[batch.rows(boxes)]
+        return out
+
+    def _ref(self, nodes):
+        ref = np.full((len(nodes), 2), -1)
+        inside = nodes < len(self.ref)
+        ref[inside] = self.ref[nodes[inside]]
+        return ref

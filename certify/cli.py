@@ -22,14 +22,16 @@ from certify.errors import CertifyError
 __all__ = ["COMMANDS", "build_parser", "main"]
 
 #: Subcommands in the order ``certify --help`` lists them.
-COMMANDS = ["show", "prove", "check", "points", "sweep", "claim", "diff", "demo"]
+COMMANDS = ["import", "show", "prove", "check", "points", "sweep", "claim", "diff", "demo"]
+#: Command modules named otherwise than their command (``import`` is a Python keyword).
+_MODULE_NAMES = {"import": "import_sbml"}
 
 
 def _available_commands():
     """The command modules that exist, in :data:`COMMANDS` order."""
     modules = {}
     for name in COMMANDS:
-        module_name = f"certify.commands.{name}"
+        module_name = f"certify.commands.{_MODULE_NAMES.get(name, name)}"
         if importlib.util.find_spec(module_name) is not None:
             modules[name] = importlib.import_module(module_name)
     return modules

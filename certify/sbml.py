@@ -308,6 +308,7 @@ class _Translation:
         self.parameters = {}  # certify name -> (lo, hi, unit)
         self.values = {}  # certify name -> exact value, for parameters
         self.definitions = {}  # certify name -> (SBML math, element)
+        self.sizes = {}  # certify name -> size of a compartment (a number), as text
         self.rated = {}  # SBML id of a state with a rate rule -> the rule
         self.states = []  # SBML species or parameters that are states, in file order
 
@@ -333,6 +334,13 @@ class _Translation:
                        for name, (math, element) in self.definitions.items()}
         definitions.update(rates)
         equations = {self.names[item.getId()]: self.equation(item, context) for item in self.states}
+        texts = " ".join([*definitions.values(), *equations.values()])
+        sizes = {name: size for name, size in self.sizes.items()
+                 if re.search(rf"\b{name}\b", texts)}
+        definitions = sizes | definitions
+        if sizes:
+            self.notes.append("Compartment sizes are definitions (fixed numbers); equations of "
+                              "concentrations divide by them.")
         self.apply_params(params)
         states = self.state_ranges(ranges)
         return Imported(
@@ -384,7 +392,7 @@ class _Translation:
 
     def declared(self):
         """SBML id -> certify name of what math may refer to."""
-        known = set(self.parameters) | set(self.definitions) \
+        known = set(self.parameters) | set(self.definitions) | set(self.sizes) \
             | {self.names[item.getId()] for item in self.states}
         return {sid: name for sid, name in self.names.items() if name in known}
 
@@ -450,9 +458,13 @@ class _Translation:
         if compartment.getId() in self.rules:
             raise self.error(element, "a rule changes its size; certify imports compartments "
                              "of constant size only")
-        unit = compartment.getUnits() or (self.model.getVolumeUnits() if self.level3 else "")
-        if compartment.isSetSize() or compartment.getId() in self.initial:
-            self.quantity(compartment, element, unit)
+        if compartment.getId() in self.initial:
+            self.quantity(compartment, element, "")
+        elif compartment.isSetSize() and _finite(compartment.getSize()):
+            name, size = self.names[compartment.getId()], exact_number(compartment.getSize())
+            self.parameter(name, size, element, "")  # checks the number, keeps the value
+            del self.parameters[name]
+            self.sizes[name] = format_number(size)
 
     def species(self, species):
         sid = species.getId()
@@ -482,7 +494,7 @@ class _Translation:
         """The certify name of the species' compartment (its size), for concentrations."""
         cid = species.getCompartment()
         name = self.names.get(cid)
-        if name not in self.parameters and name not in self.definitions:
+        if name not in self.sizes and name not in self.definitions:
             raise self.error(element, f"its compartment {cid!r} has no size, so its "
                              "concentration is undefined")
         return name
@@ -568,7 +580,8 @@ class _Translation:
         total = "".join(_signed_term(c, name, first=i == 0) for i, (c, name) in enumerate(changes))
         if self.amount_symbol(item):
             return total
-        return f"({total}) / {self.volume(item, f'species {sid!r}')}"
+        total = total if len(changes) == 1 else f"({total})"
+        return f"{total} / {self.volume(item, f'species {sid!r}')}"
 
     # -- ranges and overrides -----------------------------------------------------------
     def state_ranges(self, ranges):

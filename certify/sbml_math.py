@@ -129,7 +129,7 @@ class _Writer:
         return self.context.error(self.element, message)
 
     def text(self, node, bound, calls):
-        """``node`` as text; ``bound`` maps lambda variables to argument texts."""
+        """``node`` as text; ``bound`` maps lambda variables to argument terms."""
         return self.term(node, bound, calls)[0]
 
     def term(self, node, bound, calls):
@@ -141,7 +141,7 @@ class _Writer:
         if kind in _NUMBERS:
             return self.number(node)
         if kind == libsbml.AST_NAME:
-            return self.name(node.getName(), bound), _ATOM
+            return self.name(node.getName(), bound)
         if kind == libsbml.AST_CONSTANT_PI:
             return "pi", _ATOM
         if kind == libsbml.AST_CONSTANT_E:
@@ -186,11 +186,9 @@ class _Writer:
         return joined, (level if len(args) > 1 else args[0][1])
 
     def root(self, args):
-        degree = "2" if len(args) == 1 else args[0][0]
-        radicand = args[-1][0]
-        if degree == "2":
-            return f"sqrt({radicand})", _ATOM
-        return f"({radicand})^(1 / ({degree}))", _POWER
+        if len(args) == 1 or args[0][0] == "2":
+            return f"sqrt({args[-1][0]})", _ATOM
+        return f"{_wrap(args[-1], _ATOM)}^(1 / {_wrap(args[0], _NEGATIVE)})", _POWER
 
     def unknown(self, node):
         shown = node.getName() or libsbml.formulaToL3String(node)
@@ -225,12 +223,13 @@ class _Writer:
         return args
 
     def name(self, name, bound):
+        """``(text, precedence)`` of a name: a lambda variable's argument, or a certify name."""
         if name in bound:
             return bound[name]
         if name not in self.context.names:
             raise self.refuse(f"refers to {name!r}, which is no species, compartment or "
                               "parameter certify can read here")
-        return self.context.names[name]
+        return self.context.names[name], _ATOM
 
     def call(self, node, children, bound, calls):
         """Expand a call of a function definition (its lambda) with the arguments given."""
@@ -244,7 +243,7 @@ class _Writer:
         if len(variables) != len(children):
             raise self.refuse(f"calls {name!r} with {len(children)} arguments; it takes "
                               f"{len(variables)}")
-        values = [f"({self.text(child, bound, calls)})" for child in children]
+        values = [self.term(child, bound, calls) for child in children]
         body = lam.getChild(lam.getNumChildren() - 1)
         element, self.element = self.element, f"{self.element} (in function definition {name!r})"
         try:

@@ -625,6 +625,8 @@ class _Translation:
                 raise UsageError(f"{self.label}: --param {name}: no parameter of this name; "
                                  f"the parameters are: {known}")
             lo, hi = (Fraction(b) for b in bounds)
+            if lo > hi:
+                raise UsageError(f"{self.label}: --param {name}: lo is above hi")
             self.parameters[name] = (lo, hi, self.parameters[name][2])
 
 

@@ -10,6 +10,7 @@ The rules (amounts and concentrations, compartment volumes, what is refused) are
 """
 
 import hashlib
+import itertools
 import json
 import keyword
 import re
@@ -23,7 +24,7 @@ import sympy
 from certify.errors import ModelError, UsageError
 from certify.expr import RESERVED_NAMES, format_number
 from certify.model import TEXT_LENGTHS, parse_model
-from certify.sbml_math import MathContext, exact_number, math_text
+from certify.sbml_math import MathContext, exact_number, math_text, names_in
 
 __all__ = ["MAX_SBML_BYTES", "Imported", "ImportedState", "import_sbml", "is_sbml",
            "load_model_file", "read_sbml", "toml_text"]
@@ -281,11 +282,11 @@ def _usable(name):
 
 
 def _free_name(wanted, taken):
-    """`wanted`, or it with ``_`` appended, so that it is a usable name not in `taken`."""
-    name = wanted[:60]
-    while not _usable(name) or name in taken:
-        name += "_"
-    return name
+    """`wanted` if it is a usable name not in `taken`, else it (cut short) with ``_1``, ``_2``..."""
+    if _usable(wanted) and wanted not in taken:
+        return wanted
+    return next(name for name in (f"{wanted[:56]}_{i}" for i in itertools.count(1))
+                if name not in taken)
 
 
 def _limited(text, field):
@@ -330,6 +331,7 @@ class _Translation:
             self.species(species)
         rates = self.reaction_rates()
         context = MathContext(self.label, self.declared(), self.functions)
+        self.check_initial_assignments()
         definitions = {name: math_text(math, context, element)
                        for name, (math, element) in self.definitions.items()}
         definitions.update(rates)
@@ -374,6 +376,23 @@ class _Translation:
         if lam is None or not lam.isLambda():
             raise self.error(f"function definition {function.getId()!r}", "has no lambda")
         return lam
+
+    def check_initial_assignments(self):
+        """Refuse an initial assignment of a constant that uses what changes in time.
+
+        Such a constant becomes a definition, evaluated at every time, so its math may
+        use only constants (numbers, parameters, sizes and other such definitions).
+        """
+        changing = {item.getId() for item in self.states} | \
+            {sid for sid, rule in self.rules.items() if rule.isAssignment()}
+        for sid, assignment in self.initial.items():
+            if self.names.get(sid) not in self.definitions or sid in self.rules:
+                continue
+            used = sorted(names_in(assignment.getMath(), self.functions) & changing)
+            if used:
+                raise self.error(f"initial assignment for {sid!r}", f"uses {used[0]!r}, which "
+                                 "changes in time; certify reads initial assignments of "
+                                 "constants from constants only")
 
     # -- names --------------------------------------------------------------------------
     def global_names(self):

@@ -18,7 +18,7 @@ import libsbml
 from certify.errors import ModelError
 from certify.expr import format_number
 
-__all__ = ["MathContext", "exact_number", "math_text"]
+__all__ = ["MathContext", "exact_number", "math_text", "names_in"]
 
 #: libsbml node types written as a certify function of one argument.
 _ONE_ARGUMENT = {
@@ -118,6 +118,36 @@ def math_text(node, context, element):
     if node is None:
         raise context.error(element, "has no math")
     return _Writer(context, element).text(node, {}, ())
+
+
+def names_in(node, functions):
+    """The SBML ids a formula refers to, through the function definitions it calls.
+
+    Parameters
+    ----------
+    node : libsbml.ASTNode or None
+    functions : dict[str, libsbml.ASTNode]
+        Function definition id -> its lambda.
+
+    Returns
+    -------
+    set of str
+    """
+    found, seen, todo = set(), set(), [(node, frozenset())]
+    while todo:
+        item, bound = todo.pop()
+        if item is None:
+            continue
+        if item.getType() == libsbml.AST_NAME and item.getName() not in bound:
+            found.add(item.getName())
+        name = item.getName()
+        if item.getType() == libsbml.AST_FUNCTION and name in functions and name not in seen:
+            seen.add(name)
+            lam = functions[name]
+            variables = frozenset(lam.getChild(i).getName() for i in range(lam.getNumBvars()))
+            todo.append((lam.getChild(lam.getNumChildren() - 1), variables))
+        todo.extend((item.getChild(i), bound) for i in range(item.getNumChildren()))
+    return found
 
 
 class _Writer:

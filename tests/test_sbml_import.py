@@ -232,6 +232,14 @@ ALGEBRAIC = '<listOfRules><algebraicRule>' + MATH.format(
     "<apply><minus/><ci>A</ci><cn>1</cn></apply>") + '</algebraicRule></listOfRules>'
 PIECEWISE = f"<piecewise><piece>{A}<apply><gt/>{A}<cn>1</cn></apply></piece><otherwise><cn>0</cn></otherwise></piecewise>"
 
+def _initial(symbol, math):
+    """Parameters k = 2 and `symbol` (no value), and an initial assignment of `symbol`."""
+    return (f'<listOfParameters><parameter id="k" value="2" constant="true"/><parameter '
+            f'id="{symbol}" constant="true"/></listOfParameters><listOfInitialAssignments>'
+            f'<initialAssignment symbol="{symbol}">{MATH.format(math)}</initialAssignment>'
+            '</listOfInitialAssignments>')
+
+
 BAD = [  # (file text, words of the one-line message)
     ("just some text, no markup\n", "not well-formed XML"),
     ("<html><body>a web page</body></html>\n", "not a valid SBML document"),
@@ -243,12 +251,14 @@ BAD = [  # (file text, words of the one-line message)
     (_decay(PIECEWISE), "reaction 'R1' kinetic law: uses piecewise()"),
     (_decay(f"<apply><times/>{A}<ci>q</ci></apply>"), "refers to 'q'"),
     (_decay(A).replace('fast="false"', 'fast="true"'), "reaction 'R1': fast reactions"),
+    (_decay(f"<apply><times/><ci>k0</ci>{A}</apply>", extra=_initial("k0", A)),
+     "initial assignment for 'k0': uses 'A', which changes in time"),
 ]
 
 
 @pytest.mark.parametrize("text, message", BAD, ids=[
     "not_xml", "not_sbml", "event", "delay", "algebraic_rule", "time", "no_initial_value",
-    "piecewise", "unknown_name", "fast_reaction"])
+    "piecewise", "unknown_name", "fast_reaction", "initial_assignment_of_a_state"])
 def test_bad_input_is_one_clear_line_and_exit_2(text, message, tmp_path, capsys):
     path = tmp_path / "bad.xml"
     path.write_text(text)
@@ -268,3 +278,16 @@ def test_a_given_range_stands_in_for_a_missing_initial_value(tmp_path):
     path.write_text(_decay(A, initial=""))
     model = import_sbml(path, ranges={"A": (0, 2)}, limits=["A <= 2"])
     assert model.window == ((0, 2),) and not model.warnings
+
+
+def test_reserved_ids_are_renamed_and_constant_initial_assignments_kept(tmp_path):
+    """An id that is a reserved word of certify's expressions (here 'lambda') gets a new
+    name; an initial assignment of a constant from constants is a definition: with
+    lambda = 2*k and k = 2, A -> 0 at rate lambda*A gives dA/dt = -4*A."""
+    path = tmp_path / "renamed.xml"
+    path.write_text(_decay(f"<apply><times/><ci>lambda</ci>{A}</apply>",
+                           extra=_initial("lambda", "<apply><times/><cn>2</cn><ci>k</ci></apply>")))
+    model = import_sbml(path, limits=["A <= 2"])
+    assert model.definitions["lambda_1"] == 2 * sympy.Symbol("k", real=True)
+    assert _exact(model) == [-4 * sympy.Symbol("A", real=True)]
+    assert "SBML id 'lambda' is named 'lambda_1' here" in model.text

@@ -21,6 +21,7 @@ from pathlib import Path
 import libsbml
 import sympy
 
+from certify.conservation import conserved_caps
 from certify.errors import ModelError, UsageError
 from certify.expr import RESERVED_NAMES, format_number
 from certify.model import TEXT_LENGTHS, parse_model
@@ -604,15 +605,39 @@ class _Translation:
 
     # -- ranges and overrides -----------------------------------------------------------
     def state_ranges(self, ranges):
+        self.caps = self.conserved_caps()
         states = tuple(self.state_range(item, ranges) for item in self.states)
         if ranges:
             known = ", ".join(state.name for state in states) or "none"
             raise UsageError(f"{self.label}: --range {next(iter(ranges))}: no state of this "
                              f"name; the states are: {known}")
         if any(state.guess for state in states):
-            self.notes += ["Ranges marked 'guess = true' are guesses: [0, 2 x the initial value],",
-                           "[0, 1] when it is 0. Set the states you mean to study."]
+            self.notes += ["Ranges marked 'guess = true' are guesses: [0, the conserved total]",
+                           "where a conservation law caps the state, else [0, 2 x the initial",
+                           "value] ([0, 1] when it is 0). Set the states you mean to study."]
         return states
+
+    def conserved_caps(self):
+        """State SBML id -> (cap, the conserved sum as text), from conservation laws."""
+        rows = [item for item in self.states if item.getId() in self.changes
+                and item.getId() not in self.rated]
+        columns = sorted({name for item in rows for _, name in self.changes[item.getId()]})
+        matrix = [[sum((c for c, rate in self.changes[item.getId()] if rate == column),
+                       Fraction(0)) for column in columns] for item in rows]
+        weights, starts = [], []
+        for item in rows:
+            size = self.values.get(self.names.get(item.getCompartment()))
+            weights.append(Fraction(1) if self.amount_symbol(item) else size)
+            try:
+                starts.append(None if item.getId() in self.initial
+                              else self.initial_value(item, ""))
+            except ModelError:
+                starts.append(None)
+        caps = conserved_caps(matrix, weights, starts)
+        return {rows[i].getId(): (cap.value, " + ".join(
+                    _signed_term(c, self.names[rows[j].getId()], first=True)
+                    for j, c in cap.law.items()))
+                for i, cap in caps.items()}
 
     def state_range(self, item, ranges):
         sid = item.getId()
@@ -634,6 +659,10 @@ class _Translation:
             start = exact_number(item.getValue())
         else:
             raise self.error(element, "has no initial value; give its range with --range")
+        if sid in self.caps and start >= 0:
+            cap, law = self.caps[sid]
+            self.notes.append(f"The range of {name} ends at the conserved total of {law}.")
+            return ImportedState(name, Fraction(0), cap, True, unit, about)
         lo, hi = sorted((Fraction(0), 2 * start)) if start else (Fraction(0), Fraction(1))
         return ImportedState(name, lo, hi, True, unit, about)
 

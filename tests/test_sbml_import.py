@@ -106,8 +106,22 @@ def test_compartment_sizes_divide_concentration_rates():
     k = sympy.Rational(3, 10)
     rate = k * sympy.Rational(1, 2) * A  # k * nucleus * A, amount per second
     assert _exact(model) == [-rate / sympy.Rational(1, 2), rate / 2, 2 * rate]
-    assert dict(zip([s.name for s in model.states], model.window))["B"] == (0, 4)
+    # guessed ranges from conserved amounts (amount = concentration x size): 0.5*A + 2*B
+    # = 0.5*3 + 2*2 = 5.5 caps B at 5.5/2; 0.5*A + P/2 = 1.5 + 0.5 = 2 caps A at 2/0.5
+    # = 4 and P at 4
+    assert dict(zip([s.name for s in model.states], model.window)) == \
+        {"A": (0, 4), "B": (0, Fraction(11, 4)), "P": (0, 4)}
     assert [s.unit for s in model.states] == ["mole/litre", "mole/litre", "mole"]
+
+
+def test_guessed_ranges_end_at_conserved_totals():
+    """E + S <-> ES -> E + P keeps E + ES (= 1) and S + ES + P (= 10) constant
+    (Michaelis & Menten 1913 scheme; common practice), so these cap the guessed ranges."""
+    model = import_sbml(DATA / "enzyme_mass_action.xml", limits=["P <= 9"])
+    assert dict(zip([s.name for s in model.states], model.window)) == \
+        {"E": (0, 1), "S": (0, 10), "ES": (0, 1), "P": (0, 10)}
+    assert "conserved total of S + ES + P" in model.text
+    assert sum(1 for w in model.warnings if "is a guess" in w) == 4
 
 
 def test_local_parameter_shadows_the_global():

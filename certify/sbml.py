@@ -35,6 +35,10 @@ MAX_SBML_BYTES = 20_000_000
 #: File name endings read as SBML.
 SBML_SUFFIXES = (".xml", ".sbml")
 _NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]{0,63}")
+#: libsbml error codes below this one are about the XML, not the SBML in it.
+_FIRST_SBML_ERROR = 10000
+#: libsbml's error for an XML declaration without an encoding: harmless, UTF-8 is read.
+_NO_ENCODING = 1002
 
 
 @dataclass(frozen=True)
@@ -250,15 +254,18 @@ def _parse_document(label, data):
         raise ModelError(f"{label}: not UTF-8 text (invalid byte at offset {exc.start})") from None
     document = libsbml.readSBMLFromString(text)
     errors = [document.getError(i) for i in range(document.getNumErrors())
-              if document.getError(i).getSeverity() >= libsbml.LIBSBML_SEV_ERROR]
-    if errors and errors[0].getErrorId() < 10000:  # libsbml's XML-level error codes
-        raise ModelError(f"{label}: not well-formed XML (line {errors[0].getLine()}: "
-                         f"{_one_line(errors[0].getShortMessage())})")
-    if errors or document.getModel() is None:
-        why = (f"line {errors[0].getLine()}: {_one_line(errors[0].getMessage())}" if errors
-               else "the document has no <model>")
-        raise ModelError(f"{label}: not a valid SBML document ({why[:300]})")
-    return document
+              if document.getError(i).getSeverity() >= libsbml.LIBSBML_SEV_ERROR
+              and document.getError(i).getErrorId() != _NO_ENCODING]
+    if not errors and document.getModel() is not None:
+        return document
+    first = errors[0] if errors else None
+    why = f"line {first.getLine()}: {_one_line(first.getShortMessage())}" if first \
+        else "the document has no <model>"
+    if first is not None and first.getErrorId() < _FIRST_SBML_ERROR:
+        raise ModelError(f"{label}: not well-formed XML ({why})")
+    if document.getLevel() == 0:
+        raise ModelError(f"{label}: not an SBML document ({why})")
+    raise ModelError(f"{label}: not a valid SBML document ({why})")
 
 
 def _one_line(text):

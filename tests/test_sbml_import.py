@@ -256,7 +256,9 @@ def _initial(symbol, math):
 
 BAD = [  # (file text, words of the one-line message)
     ("just some text, no markup\n", "not well-formed XML"),
-    ("<html><body>a web page</body></html>\n", "not a valid SBML document"),
+    ("<html><body>a web page</body></html>\n", "not an SBML document"),
+    (HEAD + "</sbml>", "not well-formed XML"),  # <model> is never closed
+    (_decay(A).replace(' compartment="c"', ""), "not a valid SBML document (line 2: Missing"),
     (_decay(A, extra=EVENT), "event 'dose': events change the state"),
     (_decay(f"<apply>{DELAY}{A}<cn>1</cn></apply>"), "reaction 'R1' kinetic law: uses delay()"),
     (_decay(A, extra=ALGEBRAIC), "algebraic rule: algebraic rules"),
@@ -271,7 +273,7 @@ BAD = [  # (file text, words of the one-line message)
 
 
 @pytest.mark.parametrize("text, message", BAD, ids=[
-    "not_xml", "not_sbml", "event", "delay", "algebraic_rule", "time", "no_initial_value",
+    "not_xml", "not_sbml", "bad_xml", "invalid_sbml", "event", "delay", "algebraic_rule", "time", "no_initial_value",
     "piecewise", "unknown_name", "fast_reaction", "initial_assignment_of_a_state"])
 def test_bad_input_is_one_clear_line_and_exit_2(text, message, tmp_path, capsys):
     path = tmp_path / "bad.xml"
@@ -305,3 +307,9 @@ def test_reserved_ids_are_renamed_and_constant_initial_assignments_kept(tmp_path
     assert model.definitions["lambda_1"] == 2 * sympy.Symbol("k", real=True)
     assert _exact(model) == [-4 * sympy.Symbol("A", real=True)]
     assert "SBML id 'lambda' is named 'lambda_1' here" in model.text
+
+
+def test_an_xml_declaration_without_encoding_is_read_as_utf8(tmp_path):
+    path = tmp_path / "plain.xml"
+    path.write_text(_decay(A).replace(' encoding="UTF-8"', ""))
+    assert import_sbml(path, limits=["A <= 2"]).equations == (-sympy.Symbol("A", real=True),)

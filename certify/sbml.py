@@ -11,7 +11,6 @@ The rules (amounts and concentrations, compartment volumes, what is refused) are
 
 import hashlib
 import itertools
-import json
 import keyword
 import re
 from dataclasses import dataclass
@@ -19,11 +18,10 @@ from fractions import Fraction
 from pathlib import Path
 
 import libsbml
-import sympy
 
 from certify.conservation import conserved_caps
 from certify.errors import ModelError, UsageError
-from certify.expr import RESERVED_NAMES, format_number
+from certify.expr import RESERVED_NAMES, format_number, is_number_in_range
 from certify.model import TEXT_LENGTHS, parse_model
 from certify.sbml_math import MathContext, exact_number, math_text, names_in
 
@@ -315,7 +313,7 @@ class _Translation:
         self.level3 = model.getLevel() >= 3
         self.notes = []
         self.parameters = {}  # certify name -> (lo, hi, unit)
-        self.values = {}  # certify name -> exact value, for parameters
+        self.values = {}  # certify name -> exact value, of parameters and compartment sizes
         self.definitions = {}  # certify name -> (SBML math, element)
         self.sizes = {}  # certify name -> size of a compartment (a number), as text
         self.rated = {}  # SBML id of a state with a rate rule -> the rule
@@ -450,20 +448,21 @@ class _Translation:
 
     # -- roles --------------------------------------------------------------------------
     def value(self, item, name, element, unit):
-        """Declare `item` a parameter holding its SBML value."""
-        compartment = isinstance(item, libsbml.Compartment)
-        value = item.getSize() if compartment else item.getValue()
-        if not (item.isSetSize() if compartment else item.isSetValue()) or not _finite(value):
-            raise self.error(element, "has no size" if compartment else "has no value")
-        self.parameter(name, exact_number(value), element, unit)
+        """Declare `item` (a parameter) a certify parameter holding its SBML value."""
+        if not item.isSetValue() or not _finite(item.getValue()):
+            raise self.error(element, "has no value")
+        self.parameter(name, exact_number(item.getValue()), element, unit)
 
     def parameter(self, name, value, element, unit):
-        from certify.expr import is_number_in_range
+        self.parameters[name] = (self.number(value, element), value, _limited(unit or "", "unit"))
+        self.values[name] = value
+
+    def number(self, value, element):
+        """`value`, refused when certify cannot hold it."""
         if not is_number_in_range(value):
             raise self.error(element, f"the value {float(value)!r} is out of certify's range "
                              "(1e-300 to 1e301 in absolute value, or 0)")
-        self.parameters[name] = (value, value, _limited(unit or "", "unit"))
-        self.values[name] = value
+        return value
 
     def quantity(self, item, element, unit):
         """A compartment or parameter: a state (rate rule), a definition or a parameter."""
@@ -488,10 +487,9 @@ class _Translation:
         if compartment.getId() in self.initial:
             self.quantity(compartment, element, "")
         elif compartment.isSetSize() and _finite(compartment.getSize()):
-            name, size = self.names[compartment.getId()], exact_number(compartment.getSize())
-            self.parameter(name, size, element, "")  # checks the number, keeps the value
-            del self.parameters[name]
-            self.sizes[name] = format_number(size)
+            name = self.names[compartment.getId()]
+            self.values[name] = self.number(exact_number(compartment.getSize()), element)
+            self.sizes[name] = format_number(self.values[name])
 
     def species(self, species):
         sid = species.getId()

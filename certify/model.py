@@ -279,6 +279,10 @@ def load_model(path):
     if data[:2] == b"\x1f\x8b":
         raise ModelError(f"{label}: a gzip-compressed file (a certificate?), not a model "
                          "file; expected TOML text (see docs/model-format.md)")
+    if data.removeprefix(b"\xef\xbb\xbf").lstrip().startswith(b"<"):
+        raise ModelError(f"{label}: XML, not a certify model file (TOML); for SBML, run "
+                         f"'certify import {label}' or 'certify prove {label} --limit ...' "
+                         "(see docs/sbml.md)")
     if len(data) > MAX_FILE_BYTES:
         raise ModelError(f"{label}: the file is larger than {MAX_FILE_BYTES:,} bytes; a "
                          "model file is TOML text (see docs/model-format.md)")

@@ -525,7 +525,7 @@ class _Translation:
         return name
 
     def initial_value(self, species, element):
-        """The species' initial value in the units of its symbol, or None when unset."""
+        """The species' initial value in the units of its symbol (refused when unset)."""
         if species.isSetInitialAmount():
             value, amount = species.getInitialAmount(), True
         elif species.isSetInitialConcentration():

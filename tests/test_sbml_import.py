@@ -313,3 +313,10 @@ def test_an_xml_declaration_without_encoding_is_read_as_utf8(tmp_path):
     path = tmp_path / "plain.xml"
     path.write_text(_decay(A).replace(' encoding="UTF-8"', ""))
     assert import_sbml(path, limits=["A <= 2"]).equations == (-sympy.Symbol("A", real=True),)
+
+
+def test_other_commands_point_an_sbml_file_to_import(capsys):
+    source = DATA / "lotka_volterra.xml"
+    assert main(["show", str(source)]) == 2
+    err = capsys.readouterr().err
+    assert f"XML, not a certify model file (TOML); for SBML, run 'certify import {source}'" in err

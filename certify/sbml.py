@@ -149,10 +149,11 @@ def import_sbml(path, *, ranges=None, limits=(), params=None):
     UsageError
         For no limits, or ranges or parameters of unknown names.
     """
-    if not limits:
-        raise UsageError(f"{path}: an SBML model has no limits; give at least one "
-                         "(--limit \"EXPR\", e.g. --limit \"S1 <= 2\")")
     imported = read_sbml(path, ranges=ranges, params=params)
+    if not limits:
+        example = f"{imported.states[0].name} <= {format_number(imported.states[0].hi)}"
+        raise UsageError(f"{path}: an SBML model has no limits; give at least one "
+                         f"(--limit \"EXPR\", e.g. --limit \"{example}\")")
     return parse_model(toml_text(imported, limits), path=str(path))
 
 
@@ -335,6 +336,9 @@ class _Translation:
             self.quantity(parameter, f"parameter {parameter.getId()!r}", parameter.getUnits())
         for species in model.getListOfSpecies():
             self.species(species)
+        if not self.states:
+            raise self.error(f"model {model.getId() or '(no id)'!r}", "nothing in it changes "
+                             "in time (no species or parameter becomes a state)")
         rates = self.reaction_rates()
         context = MathContext(self.label, self.declared(), self.functions)
         self.check_initial_assignments()

@@ -267,6 +267,8 @@ BAD = [  # (file text, words of the one-line message)
     (_decay(PIECEWISE), "reaction 'R1' kinetic law: uses piecewise()"),
     (_decay(f"<apply><times/>{A}<ci>q</ci></apply>"), "refers to 'q'"),
     (_decay(A).replace('fast="false"', 'fast="true"'), "reaction 'R1': fast reactions"),
+    (_decay(A).replace('boundaryCondition="false"', 'boundaryCondition="true"'),
+     "model 'bad': nothing in it changes in time"),
     (_decay(f"<apply><times/><ci>k0</ci>{A}</apply>", extra=_initial("k0", A)),
      "initial assignment for 'k0': uses 'A', which changes in time"),
 ]
@@ -274,7 +276,7 @@ BAD = [  # (file text, words of the one-line message)
 
 @pytest.mark.parametrize("text, message", BAD, ids=[
     "not_xml", "not_sbml", "bad_xml", "invalid_sbml", "event", "delay", "algebraic_rule", "time", "no_initial_value",
-    "piecewise", "unknown_name", "fast_reaction", "initial_assignment_of_a_state"])
+    "piecewise", "unknown_name", "fast_reaction", "no_state", "initial_assignment_of_a_state"])
 def test_bad_input_is_one_clear_line_and_exit_2(text, message, tmp_path, capsys):
     path = tmp_path / "bad.xml"
     path.write_text(text)

@@ -322,3 +322,10 @@ def test_other_commands_point_an_sbml_file_to_import(capsys):
     assert main(["show", str(source)]) == 2
     err = capsys.readouterr().err
     assert f"XML, not a certify model file (TOML); for SBML, run 'certify import {source}'" in err
+
+
+def test_names_with_quotes_and_backslashes_survive_the_toml(tmp_path):
+    path = tmp_path / "named.xml"
+    path.write_text(_decay(A).replace('<model id="bad">',
+                                      '<model id="bad" name="Say &quot;hi&quot; \\ there">'))
+    assert import_sbml(path, limits=["A <= 2"]).name == 'Say "hi" \\ there'

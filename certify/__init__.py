@@ -19,6 +19,7 @@ _LAZY = {
     "Model": "certify.model",
     "load_model": "certify.model",
     "parse_model": "certify.model",
+    "import_sbml": "certify.sbml",
     "Proof": "certify.prove",
     "prove": "certify.prove",
     "SweepResult": "certify.sweep",

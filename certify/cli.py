@@ -19,19 +19,25 @@ import sys
 
 from certify.errors import CertifyError
 
-__all__ = ["COMMANDS", "build_parser", "main"]
+__all__ = ["COMMANDS", "build_parser", "main", "module_name"]
 
 #: Subcommands in the order ``certify --help`` lists them.
-COMMANDS = ["show", "prove", "check", "points", "sweep", "claim", "diff", "demo"]
+COMMANDS = ["import", "show", "prove", "check", "points", "sweep", "claim", "diff", "demo"]
+#: Command modules named otherwise than their command (``import`` is a Python keyword).
+_MODULE_NAMES = {"import": "import_sbml"}
+
+
+def module_name(command):
+    """The module of a subcommand, e.g. ``"certify.commands.show"``."""
+    return f"certify.commands.{_MODULE_NAMES.get(command, command)}"
 
 
 def _available_commands():
     """The command modules that exist, in :data:`COMMANDS` order."""
     modules = {}
     for name in COMMANDS:
-        module_name = f"certify.commands.{name}"
-        if importlib.util.find_spec(module_name) is not None:
-            modules[name] = importlib.import_module(module_name)
+        if importlib.util.find_spec(module_name(name)) is not None:
+            modules[name] = importlib.import_module(module_name(name))
     return modules
 
 

@@ -279,6 +279,10 @@ def load_model(path):
     if data[:2] == b"\x1f\x8b":
         raise ModelError(f"{label}: a gzip-compressed file (a certificate?), not a model "
                          "file; expected TOML text (see docs/model-format.md)")
+    if data.removeprefix(b"\xef\xbb\xbf").lstrip().startswith(b"<"):
+        raise ModelError(f"{label}: XML, not a certify model file (TOML); for SBML, run "
+                         f"'certify import {label}' or 'certify prove {label} --limit ...' "
+                         "(see docs/sbml.md)")
     if len(data) > MAX_FILE_BYTES:
         raise ModelError(f"{label}: the file is larger than {MAX_FILE_BYTES:,} bytes; a "
                          "model file is TOML text (see docs/model-format.md)")
@@ -498,7 +502,7 @@ class _Reader:
                 value = {"range": value}
             if not isinstance(value, dict):
                 raise self.error(where, f"expected {{ range = [lo, hi], unit = ... }}, got {_describe(value)}")
-            self.keys(value, ("range", "unit", "about"), where)
+            self.keys(value, ("range", "guess", "unit", "about"), where)
             if "range" not in value:
                 raise self.error(where, "missing key 'range'")
             lo, hi = self.pair(value["range"], f"{where}: range")
@@ -508,6 +512,12 @@ class _Reader:
                 raise self.error(where, f"the range {_range(lo, hi)} is reversed (write [lo, hi] with lo < hi)")
             unit = self.text(value.get("unit", ""), f"{where}: unit", field="unit")
             about = self.text(value.get("about", ""), f"{where}: about", field="about")
+            if value.get("guess", False) is not False:
+                if value["guess"] is not True:
+                    raise self.error(f"{where}: guess", f"expected true or false, got {_describe(value['guess'])}")
+                self.warnings.append(f"state {name!r}: the range {_range(lo, hi)} is a guess "
+                                     "(guess = true, written by certify import); set the "
+                                     "range you mean to study and remove the mark")
             states.append(State(name, lo, hi, unit, about))
         return tuple(states)
 

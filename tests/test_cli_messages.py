@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from certify.cli import COMMANDS, main
+from certify.cli import COMMANDS, main, module_name
 
 ROOT = Path(__file__).resolve().parent.parent
 DATA = Path(__file__).resolve().parent / "data"
@@ -47,7 +47,7 @@ def _one_line(err):
 
 @pytest.mark.parametrize("command", COMMANDS)
 def test_every_help_names_its_exit_codes(command, capsys):
-    module = importlib.import_module(f"certify.commands.{command}")
+    module = importlib.import_module(module_name(command))
     assert main([command, "--help"]) == 0
     text = " ".join(capsys.readouterr().out.split())
     assert f"Exit codes: {module.EXITS}." in text

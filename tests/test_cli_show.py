@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from certify.cli import COMMANDS, main
+from certify.cli import COMMANDS, main, module_name
 
 ROOT = Path(__file__).resolve().parent.parent
 MODELS = sorted((ROOT / "models").glob("*.toml"))
@@ -111,7 +111,7 @@ def test_error_in_a_real_process_has_no_traceback(tmp_path):
 def test_help_describes_every_existing_command(capsys):
     assert main(["--help"]) == 0
     out = capsys.readouterr().out
-    existing = [name for name in COMMANDS if importlib.util.find_spec(f"certify.commands.{name}")]
+    existing = [name for name in COMMANDS if importlib.util.find_spec(module_name(name))]
     assert "show" in existing
     for name in existing:
         assert f"    {name} " in out

@@ -15,8 +15,12 @@ EXITS = "0 done, 2 usage or input error, 130 interrupted (the last finished roun
 
 def add_arguments(parser):
     """Add the options of ``certify prove`` to ``parser``."""
-    parser.add_argument("model", metavar="MODEL", help="model file (TOML)")
+    from certify.commands.import_sbml import add_sbml_arguments
+
+    parser.add_argument("model", metavar="MODEL", help="model file (TOML), or an SBML file "
+                                                       "(.xml) with --limit")
     add_budget_arguments(parser)
+    add_sbml_arguments(parser)
 
 
 def add_budget_arguments(parser):
@@ -66,8 +70,10 @@ def check_depth(depth):
         raise UsageError(f"--max-depth must be between {rule.lo} and {rule.hi}")
 
 
-def parse_param(text):
+def parse_param(text, option="--param"):
     """Parse ``NAME=VALUE`` or ``NAME=LO:HI`` into ``(name, (lo, hi))`` with exact Fractions.
+
+    ``option`` names the command-line option in messages.
 
     Raises
     ------
@@ -78,17 +84,17 @@ def parse_param(text):
     name, sep, value = text.partition("=")
     name = name.strip()
     if not sep or not name:
-        raise UsageError(f"--param {text!r}: write NAME=VALUE or NAME=LO:HI")
+        raise UsageError(f"{option} {text!r}: write NAME=VALUE or NAME=LO:HI")
     parts = value.split(":")
     if len(parts) not in (1, 2):
-        raise UsageError(f"--param {text!r}: write NAME=VALUE or NAME=LO:HI")
+        raise UsageError(f"{option} {text!r}: write NAME=VALUE or NAME=LO:HI")
     try:
         nums = [Fraction(p.strip()) for p in parts]
     except (ValueError, ZeroDivisionError):
-        raise UsageError(f"--param {text!r}: {value!r} is not a number or LO:HI") from None
+        raise UsageError(f"{option} {text!r}: {value!r} is not a number or LO:HI") from None
     lo, hi = nums[0], nums[-1]
     if lo > hi:
-        raise UsageError(f"--param {text!r}: LO is above HI")
+        raise UsageError(f"{option} {text!r}: LO is above HI")
     return name, (lo, hi)
 
 
@@ -105,12 +111,11 @@ def run_proof(model_path, args, default_out=None):
     from pathlib import Path
 
     from certify.files import output_folder
-    from certify.model import load_model
     from certify.prove import prove, write_proof
     from certify.report import summary_table
 
     _check_budget(args)
-    model = load_model(model_path)
+    model = _load(model_path, args)
     if args.param:
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
     out = output_folder(args.out or default_out or Path("proofs_out") / Path(model_path).stem)
@@ -141,6 +146,15 @@ def run_proof(model_path, args, default_out=None):
         print("certify: interrupted; wrote the proof of the last finished round", file=sys.stderr)
         return 130
     return 0
+
+
+def _load(model_path, args):
+    """The model of a TOML file, or of an SBML file completed by --range and --limit."""
+    from certify.commands.import_sbml import sbml_options
+    from certify.sbml import load_model_file
+
+    ranges, limits = sbml_options(args)
+    return load_model_file(model_path, ranges=ranges, limits=limits)
 
 
 #: The files ``certify prove`` writes, in the order it writes them.

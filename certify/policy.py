@@ -113,8 +113,10 @@ class PolicyProof:
 
 def _provers(model, method, budget):
     """One prover per setting and one for the inclusion, sharing one tree."""
-    hold = hold_time(model)
-    held = replace(method, min_horizon=max(method.min_horizon, _float_at_least(hold)))
+    # every tube runs for the hold time at least, and for the method's shortest horizon
+    # (longer tubes re-grid less often; a model may lower min_horizon in [settings])
+    held = replace(method, min_horizon=max(method.min_horizon,
+                                           _float_at_least(hold_time(model))))
     provers = [_Prover(model.with_parameters(s), held, budget, None)
                for s in setting_combinations(model)]
     hull = model.with_parameters(control_hull(model))

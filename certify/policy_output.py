@@ -20,10 +20,6 @@ from .container import encode_array, fraction_text, write_certificate
 __all__ = ["write_policy", "policy_summary", "read_policy", "PolicyMap", "plot_policy"]
 
 INCLUSION_NAME = "inclusion.json.gz"
-#: Colours of the settings in ``policy.png`` (colour-blind safe, dark to light); the
-#: labels other than safe keep the map's colours.
-SETTING_COLOURS = ("#1b4f8a", "#3a9fb5", "#8fd3c1", "#5b3f8c", "#a37cc4", "#2f7d4f",
-                   "#85b86b", "#d6d36a")
 
 
 def _setting_text(setting):
@@ -124,8 +120,7 @@ def write_policy(pp, out_dir, *, figures=True):
     })
     (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
     if figures and pp.tree.n == 2:
-        plot_policy(pp.tree.lo[pp.leaves], pp.tree.hi[pp.leaves], pp.proof.labelling.label,
-                    pp.choice, pp.settings, model, out / "policy.png")
+        plot_policy(pp, out / "policy.png")
     return summary
 
 
@@ -199,39 +194,38 @@ def read_policy(path):
                      np.array(data["cells"]["choice"], int), settings)
 
 
-def plot_policy(lo, hi, labels, choice, settings, model, path):
-    """``policy.png``: safe cells coloured by their setting, the others as on the map."""
+def plot_policy(pp, path):
+    """``policy.png`` (2D): safe cells coloured by the setting they hold, the other labels
+    as on the map, clipped at the limits like the map (:func:`certify.plots.drawn_pieces`).
+    """
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    from matplotlib.collections import PatchCollection
-    from matplotlib.patches import Patch, Rectangle
+    from matplotlib.patches import Patch
 
-    from .palette import HATCH_COLOUR, LABEL_COLOURS, UNDECIDED_HATCH
+    from .palette import HATCH_COLOUR, LABEL_COLOURS, SETTING_COLOURS, UNDECIDED_HATCH
+    from .plots import _doomed_scale, _draw_labels, _draw_limits, _fill, _frame, drawn_pieces
 
-    fig, ax = plt.subplots(figsize=(7, 5.5))
-    colours = np.array([SETTING_COLOURS[c % len(SETTING_COLOURS)] if c >= 0
-                        else LABEL_COLOURS[str(l)] for c, l in zip(choice, labels)])
-    rects = [Rectangle((a[0], a[1]), b[0] - a[0], b[1] - a[1]) for a, b in zip(lo, hi)]
-    ax.add_collection(PatchCollection(rects, facecolors=colours, edgecolors="none"))
-    und = labels == "undecided"
-    if und.any():
-        ax.add_collection(PatchCollection([r for r, u in zip(rects, und) if u],
-                                          facecolors="none", edgecolors=HATCH_COLOUR,
-                                          hatch=UNDECIDED_HATCH, linewidths=0))
-    (x0, x1), (y0, y1) = [(float(a), float(b)) for a, b in model.window]
-    ax.set_xlim(x0, x1)
-    ax.set_ylim(y0, y1)
-    s, x = model.states
-    ax.set_xlabel(f"{s.name} ({s.unit})" if s.unit else s.name)
-    ax.set_ylabel(f"{x.name} ({x.unit})" if x.unit else x.name)
-    handles = [Patch(facecolor=SETTING_COLOURS[j % len(SETTING_COLOURS)],
-                     label=f"safe, hold {_setting_text(st)}") for j, st in enumerate(settings)]
+    proof = pp.proof
+    fig, ax = plt.subplots(figsize=(7.5, 5.5))
+    pieces = drawn_pieces(proof)
+    _draw_labels(ax, proof, pieces, _doomed_scale(proof))
+    safe = pieces.label == "safe"
+    colours = [SETTING_COLOURS[k % len(SETTING_COLOURS)] for k in pp.choice[pieces.cell[safe]]]
+    _fill(ax, pieces, safe, colours)
+    handles = _draw_limits(ax, proof, (0, 1), 0.5 * (proof.tree.lo[0] + proof.tree.hi[0]))
+    _frame(ax, proof, (0, 1), [], None)
+    vol = pp.tree.volume_fraction(pp.leaves)
+    handles += [Patch(facecolor=SETTING_COLOURS[j % len(SETTING_COLOURS)],
+                      label=f"safe, hold {_setting_text(s)} "
+                            f"({100 * vol[pp.choice == j].sum():.1f} % of the window)")
+                for j, s in enumerate(pp.settings)]
     handles += [Patch(facecolor=LABEL_COLOURS[k], label=k) for k in ("doomed", "outside")]
     handles.append(Patch(facecolor=LABEL_COLOURS["undecided"], edgecolor=HATCH_COLOUR,
                          hatch=UNDECIDED_HATCH, label="undecided"))
-    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1), fontsize=8)
-    ax.set_title(f"{model.name}: a proven policy (the model, not the plant)", fontsize=9)
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1), fontsize=7)
+    ax.set_title(f"{pp.model.name}: a proven policy\n(about the model, not the plant)",
+                 fontsize=9)
     fig.tight_layout()
     fig.savefig(path, dpi=120)
     plt.close(fig)

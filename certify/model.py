@@ -144,8 +144,9 @@ class Constraint:
 class Control:
     """A parameter the operator may set: its admissible settings and minimum hold time.
 
-    ``settings`` are exact, distinct and increasing; a policy holds a chosen setting for
-    at least ``hold`` time units before it may switch.
+    ``settings`` are exact and distinct, in the order written (a policy prefers the
+    earlier ones); a policy holds a chosen setting for at least ``hold`` time units
+    before it may switch.
     """
 
     name: str
@@ -700,7 +701,7 @@ class _Reader:
         settings = [self.number(v, where) for v in value]
         if len(set(settings)) < len(settings):
             raise self.error(where, "lists a setting twice")
-        return tuple(sorted(settings))
+        return tuple(settings)
 
     def control_range(self, value, where):
         lo, hi = self.pair(value["range"], f"{where}: range")

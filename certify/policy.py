@@ -16,7 +16,7 @@ ends (a uniform refinement of the undecided cells, without the cause ordering of
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from fractions import Fraction
 from itertools import product
 
@@ -25,7 +25,7 @@ import numpy as np
 from .cells import CellTree
 from .labels import DOOMED, OUTSIDE, SAFE, UNDECIDED, Labelling, label_cells
 from .policy_labels import controlled_safe
-from .prove import Proof, _settings, _Prover
+from .prove import Proof, _settings, _Prover, prove
 from .volumes import label_fractions
 
 __all__ = ["PolicyProof", "prove_policy", "setting_combinations", "control_hull"]
@@ -82,8 +82,9 @@ class PolicyProof:
     rounds : int
     seconds : float
     stop_reason : str
-    constant_shares : list of float
-        Share of the window proven safe under each setting held constant.
+    constant_shares : list of float or None
+        Share of the window proven safe under each setting held constant, each by a
+        proof of its own with the same budget (``compare=True``); None otherwise.
     """
 
     model: object
@@ -98,7 +99,7 @@ class PolicyProof:
     rounds: int
     seconds: float
     stop_reason: str
-    constant_shares: list = field(default_factory=list)
+    constant_shares: list | None = None
 
     @property
     def fractions(self):
@@ -128,7 +129,7 @@ def _provers(model, method, budget):
     return provers, inclusion, tree
 
 
-def prove_policy(model, *, progress=None, **options):
+def prove_policy(model, *, progress=None, compare=True, **options):
     """Prove a policy map for a model with controls.
 
     Parameters
@@ -137,6 +138,9 @@ def prove_policy(model, *, progress=None, **options):
         A model with a ``[controls]`` section.
     progress : callable, optional
         ``progress(round, n_leaves, decided_fraction, seconds)`` after every round.
+    compare : bool
+        Also prove the map of every setting held constant (:func:`certify.prove.prove`
+        with the same budget) for ``constant_shares``: what switching buys.
     **options
         Method or budget fields by name, as for :func:`certify.prove.prove`.
 
@@ -148,7 +152,11 @@ def prove_policy(model, *, progress=None, **options):
         raise ValueError("prove_policy needs a model with [controls]")
     method, budget = _settings(model, None, None, options)
     with np.errstate(all="ignore"):
-        return _prove_policy(model, method, budget, progress)
+        pp = _prove_policy(model, method, budget, progress)
+    if compare:
+        pp.constant_shares = [prove(model.with_parameters(s), method=method, budget=budget)
+                              .fractions["safe"] for s in pp.settings]
+    return pp
 
 
 def _prove_policy(model, method, budget, progress):
@@ -233,5 +241,4 @@ def _result(model, method, budget, provers, inclusion, tree, labelled, hold, rou
     return PolicyProof(model=model, settings=setting_combinations(model), hold=hold,
                        tree=tree, leaves=leaves, per_setting=per_setting, inclusion=incl,
                        proof=proof, choice=policy.choice, rounds=rounds, seconds=seconds,
-                       stop_reason=stop_reason,
-                       constant_shares=[p.fractions["safe"] for p in per_setting])
+                       stop_reason=stop_reason)

@@ -57,7 +57,8 @@ def policy_summary(pp, path=None):
                     "cells": int(counts[j]),
                     "share": float(vol[pp.choice == j].sum())}
                    for j, s in enumerate(pp.settings)],
-        "safe_share_held_constant": [float(x) for x in pp.constant_shares],
+        "safe_share_held_constant": (None if pp.constant_shares is None
+                                     else [float(x) for x in pp.constant_shares]),
         "safe_share_policy": float(pp.fractions["safe"]),
         "depth_reached": int(pp.tree.depth[pp.leaves].max()),
         "rounds": pp.rounds,
@@ -72,7 +73,7 @@ def policy_table(summary):
     """Lines of the table: the share of the window safe per constant setting and under
     the policy (what switching buys)."""
     lines = [f"{'settings':<28} {'safe share':>10}"]
-    for s, share in zip(summary["settings"], summary["safe_share_held_constant"]):
+    for s, share in zip(summary["settings"], summary["safe_share_held_constant"] or ()):
         text = ", ".join(f"{k} = {v:g}" for k, v in s.items()) + " held constant"
         lines.append(f"{text:<28} {share:>9.1%}")
     lines.append(f"{'policy (switching)':<28} {summary['safe_share_policy']:>9.1%}")

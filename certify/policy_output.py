@@ -80,7 +80,7 @@ def policy_table(summary):
     return lines
 
 
-def write_policy(pp, out_dir, *, figures=True):
+def write_policy(pp, out_dir, *, figures=True, claim=None):
     """Write the certificates, ``summary.json`` and (optionally) ``policy.png``.
 
     Parameters
@@ -88,6 +88,8 @@ def write_policy(pp, out_dir, *, figures=True):
     pp : certify.policy.PolicyProof
     out_dir : str or Path
     figures : bool
+    claim : dict, optional
+        A claim record (:meth:`certify.policy_claim.PolicyClaim.record`) to store.
 
     Returns
     -------
@@ -118,6 +120,7 @@ def write_policy(pp, out_dir, *, figures=True):
                   "crossing_upper": encode_array(pp.proof.labelling.crossing_upper),
                   "survival_lower": encode_array(pp.proof.labelling.survival_lower)},
         "summary": summary,
+        **({"claim": claim} if claim is not None else {}),
     })
     (out / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
     if figures and pp.tree.n == 2:

@@ -387,3 +387,30 @@ def test_a_control_cannot_be_swept():
 
     with pytest.raises(UsageError, match="is a control"):
         sweep(parse_model(DOUBLE), {"u": (-1, 1, 2)})
+
+
+@pytest.mark.parametrize("region, verdict, code", [
+    ("x=-0.5:0.5", "proven", 0),     # inside the kernel [-1, 1] (closed form)
+    ("x=0.5:1.5", "refuted", 1),     # meets (1, 2], doomed under every control
+])
+def test_policy_claims(tmp_path, region, verdict, code):
+    model = tmp_path / "drift.toml"
+    model.write_text(DRIFT)
+    out = tmp_path / "claim"
+    assert main(["claim", str(model), "--region", region, "--expect", "safe",
+                 "--max-depth", "8", "--out", str(out), "--quiet"]) == code
+    assert json.loads((out / "claim.json").read_text())["verdict"] == verdict
+    assert check_policy(out, jobs=1).valid
+
+    def flip(data):
+        data["claim"]["verdict"] = "refuted" if verdict == "proven" else "proven"
+    _rewrite(out / "policy.json.gz", flip)
+    result = check_policy(out, jobs=1)
+    assert not result.valid and "does not follow" in result.message
+
+
+def test_policy_claims_expect_safe_only(tmp_path):
+    model = tmp_path / "drift.toml"
+    model.write_text(DRIFT)
+    assert main(["claim", str(model), "--region", "x=0:1", "--expect", "doomed",
+                 "--out", str(tmp_path / "o"), "--quiet"]) == 2

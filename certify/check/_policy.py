@@ -30,7 +30,7 @@ import numpy as np
 
 from ..errors import CertificateError, CertifyError
 from ..model import parse_model
-from ._cells import CheckContext
+from ._cells import CheckContext, exact_cells
 from ._programs import derive_programs
 from ._read import read_for_check
 from .checker import (CheckResult, _Facts, _Judge, _compute, _global, _leaves_meeting,
@@ -165,7 +165,32 @@ def check_policy(path, jobs=None):
     for k in range(len(settings)):
         failures += _safe_cells(certs[k], model.with_parameters(settings[k]),
                                 np.flatnonzero(choice == k), labels, hold, jobs, k)
+    if "claim" in data:
+        failures += _claim(data["claim"], certs[-1], model, labels, path)
     return _result(failures, len(labels), start)
+
+
+def _claim(record, cert, model, labels, path):
+    """Re-derive the verdict of a stored claim from the (checked) labels."""
+    try:
+        region = {k: (Fraction(a), Fraction(b)) for k, (a, b) in record["region"].items()}
+        stored = record["verdict"]
+        box = [region[s.name] for s in model.states]
+    except (KeyError, TypeError, ValueError, ZeroDivisionError):
+        raise CertificateError(f"{path}: key 'claim': malformed claim record") from None
+    if record.get("expect") != "safe":
+        return [_global("claim: a policy claim can only expect safe")]
+    lo, hi = exact_cells(cert.window, cert.depth, cert.index)
+    meets = np.ones(len(labels), bool)
+    for k, (a, b) in enumerate(box):
+        meets &= (lo[:, k] <= b) & (hi[:, k] >= a)
+    seen = set(labels[meets].tolist())
+    verdict = ("refuted" if seen & {"doomed", "outside"} else
+               "proven" if seen <= {"safe"} else "inconclusive")
+    if verdict != stored:
+        return [_global(f"claim: the stored verdict {stored!r} does not follow from the "
+                        f"cells meeting the region ({verdict})")]
+    return []
 
 
 def _labels(inclusion, labels, choice, n_settings, data, path):

@@ -58,6 +58,8 @@ def run(args):
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
     out = output_folder(args.out or Path("proofs_out") / f"{Path(args.model).stem}-claim")
     progress = None if args.quiet or args.json else progress_bar()
+    if model.controls:
+        return _policy_claim(model, region, args, out, progress)
     try:
         result = check_claim(model, region, args.expect, args.until, max_depth=args.max_depth,
                              time_limit=args.time_limit, progress=progress)
@@ -72,6 +74,28 @@ def run(args):
     if result.proof.interrupted:
         print("certify: interrupted; the verdict rests on the last finished round",
               file=sys.stderr)
+    return EXIT_CODES[result.verdict]
+
+
+def _policy_claim(model, region, args, out, progress):
+    """A model with [controls]: is there a policy for the region (certify.policy_claim)?"""
+    from certify.policy_claim import claim_policy, write_policy_claim
+
+    try:
+        result = claim_policy(model, region, args.expect, args.until, max_depth=args.max_depth,
+                              time_limit=args.time_limit, progress=progress)
+    finally:
+        if progress is not None:
+            progress.close()
+    result = write_policy_claim(result, out)
+    if args.json:
+        print(json.dumps(result.to_json(), indent=2))
+    else:
+        region = ", ".join(f"{k}={float(lo):g}:{float(hi):g}"
+                           for k, (lo, hi) in result.region.items())
+        print(f"{result.verdict.upper()}  claim: a policy keeps every start in {region} "
+              f"within the limits for all time\n{result.message}\n"
+              f"certificate {result.certificate}")
     return EXIT_CODES[result.verdict]
 
 

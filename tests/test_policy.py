@@ -7,6 +7,9 @@ References named beside the checks:
   ``v <= 0`` (the braking-distance parabolas; Saint-Pierre 1994 (mem)), a convex set of
   area ``16/3`` (integral of the two parabolas); its solutions under a constant ``u`` are
   ``x(t) = x0 + v0 t + u t^2 / 2`` (closed form), which every simulation here uses;
+* the policy of the fermenter with the dilution rate as a control
+  (``models/fermenter_dilution_control.toml``), simulated with scipy's ``solve_ivp``
+  (DOP853, tight tolerances), an integrator outside this project;
 * the unstable drift ``x' = x + u``, ``u in {-1, 1}``, limits ``|x| <= 2``: solutions
   ``x(t) = -u + (x0 + u) e^t`` (closed form); the viability kernel with switching is
   ``[-1, 1]`` (for ``x > 1`` even ``u = -1`` gives ``x' > 0``), while a constant ``u``
@@ -17,6 +20,7 @@ import gzip
 import json
 import shutil
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -25,7 +29,7 @@ from certify.check._policy import check_policy
 from certify.cli import main
 from certify.container import decode_array, encode_array
 from certify.errors import ModelError, UsageError
-from certify.model import parse_model
+from certify.model import load_model, parse_model
 from certify.policy import prove_policy
 from certify.policy_output import read_policy, write_policy
 
@@ -128,11 +132,11 @@ def test_double_integrator_safe_cells_cover_the_kernel(double):
     assert share >= 0.90, share
 
 
-def _policy_arrays(pp):
+def _policy_arrays(pp, name="u"):
     number = np.full(len(pp.tree), -1)
     number[pp.leaves] = np.arange(len(pp.leaves))
     horizon = np.stack([p.facts.horizon_lo for p in pp.per_setting])
-    values = np.array([float(s["u"]) for s in pp.settings])
+    values = np.array([float(s[name]) for s in pp.settings])
     return number, horizon, values
 
 
@@ -414,3 +418,43 @@ def test_policy_claims_expect_safe_only(tmp_path):
     model.write_text(DRIFT)
     assert main(["claim", str(model), "--region", "x=0:1", "--expect", "doomed",
                  "--out", str(tmp_path / "o"), "--quiet"]) == 2
+
+
+FERMENTER = Path(__file__).resolve().parent.parent / "models" / "fermenter_dilution_control.toml"
+
+
+def test_fermenter_policy_keeps_the_limits_in_simulation():
+    # scipy.integrate.solve_ivp (DOP853, rtol 1e-10): each setting held for its cell's
+    # horizon, then the setting of the cell reached, over 50 h
+    from scipy.integrate import solve_ivp
+
+    from certify.taylor import flow_programs
+
+    model = load_model(FERMENTER)
+    pp = prove_policy(model, max_depth=6, compare=False)
+    number, horizon, _ = _policy_arrays(pp, "D")
+    labels = pp.proof.labelling.label
+    programs = [flow_programs(model.with_parameters(s), 1) for s in pp.settings]
+    params = [[float(p.lo) for p in model.with_parameters(s).parameters] for s in pp.settings]
+    limits = flow_programs(model, 1).limits
+    rng = np.random.default_rng(2026)
+    starts, _ = _start_points(pp, "safe", 150, rng)
+    # a label speaks of the starts of its cell that keep the limits at t = 0
+    g0 = limits.point(np.concatenate([starts, np.tile(params[0], (len(starts), 1))], 1))
+    starts = starts[np.all(g0 >= 0, axis=1)][:100]
+    assert len(starts) == 100
+    for point in starts:
+        y, t = point.copy(), 0.0
+        while t < 50.0:
+            leaf = number[pp.tree.leaf_containing(y[None])[0]]
+            assert leaf >= 0 and labels[leaf] == "safe", (point, t, y)
+            k = pp.choice[leaf]
+            T = horizon[k, leaf]
+            field = programs[k].field
+            sol = solve_ivp(lambda _, z: field.point(np.concatenate([z, params[k]])[None])[0],
+                            (0.0, T), y, method="DOP853", rtol=1e-10, atol=1e-12,
+                            dense_output=True)
+            path = sol.sol(np.linspace(0.0, T, 50)).T
+            g = limits.point(np.concatenate([path, np.tile(params[0], (len(path), 1))], 1))
+            assert g.min() >= -1e-7, (point, t, g.min())
+            y, t = sol.y[:, -1], t + T

@@ -25,7 +25,7 @@ import numpy as np
 from .cells import CellTree
 from .labels import DOOMED, OUTSIDE, SAFE, UNDECIDED, Labelling, label_cells
 from .policy_labels import controlled_safe
-from .prove import Proof, _settings, _Prover, prove
+from .prove import Proof, _settings, _Prover, prove, split_room
 from .volumes import label_fractions
 
 __all__ = ["PolicyProof", "prove_policy", "setting_combinations", "control_hull"]
@@ -184,12 +184,9 @@ def _prove_policy(model, method, budget, progress):
             if len(undecided):
                 stop_reason = f"maximum depth {budget.max_depth} reached"
             break
-        if elapsed >= budget.time_limit:
-            stop_reason = f"time limit {budget.time_limit:g} s reached"
-            break
-        room = (budget.max_cells - len(leaves)) // (2 ** tree.n - 1)
-        if room <= 0:
-            stop_reason = f"cell limit {budget.max_cells} reached"
+        room, out_of_budget = split_room(budget, tree, len(leaves), elapsed)
+        if out_of_budget:
+            stop_reason = out_of_budget
             break
         wanted = wanted[np.argsort(tree.depth[wanted], kind="stable")][:room]
         new = tree.split(wanted)

@@ -23,6 +23,7 @@ from itertools import product
 import numpy as np
 
 from .cells import CellTree
+from .errors import UsageError
 from .labels import DOOMED, OUTSIDE, SAFE, UNDECIDED, Labelling, label_cells
 from .policy_labels import controlled_safe
 from .prove import Proof, _settings, _Prover, prove, split_room
@@ -149,7 +150,8 @@ def prove_policy(model, *, progress=None, compare=True, **options):
     PolicyProof
     """
     if not model.controls:
-        raise ValueError("prove_policy needs a model with [controls]")
+        raise UsageError(f"{model.path or model.name}: prove_policy needs a model with "
+                         f"[controls]")
     method, budget = _settings(model, None, None, options)
     with np.errstate(all="ignore"):
         pp = _prove_policy(model, method, budget, progress)
@@ -172,7 +174,7 @@ def _prove_policy(model, method, budget, progress):
             p.analyse(new)
         rounds += 1
         labelled = _label(provers, inclusion, _float_at_least(hold))
-        leaves, label = labelled[0], labelled[3]
+        leaves, label = labelled.leaves, labelled.label
         for p in provers + [inclusion]:
             p.steps.forget_all_but(leaves)
         elapsed = time.monotonic() - start
@@ -194,11 +196,23 @@ def _prove_policy(model, method, budget, progress):
                    time.monotonic() - start, stop_reason)
 
 
+@dataclass
+class _Round:
+    """The labelling of one round: leaves, per setting and for the inclusion the
+    ``(facts, labelling)`` of :mod:`certify.labels`, the labels with controls, the policy."""
+
+    leaves: np.ndarray
+    per_setting: list
+    inclusion: tuple
+    label: np.ndarray
+    policy: object
+
+
 def _label(provers, inclusion, hold):
-    """Leaves, per-setting (facts, labelling), the inclusion's, labels, policy."""
-    per = [p.label() for p in provers]
+    """Label the leaves of a round (:class:`_Round`)."""
+    per = [p.label()[1:] for p in provers]
     leaves, incl_facts, incl_lab = inclusion.label()
-    policy = controlled_safe([facts for _, facts, _ in per], hold)
+    policy = controlled_safe([facts for facts, _ in per], hold)
     doomed = incl_lab.label == DOOMED
     if np.any(policy.safe & doomed):
         raise RuntimeError("a cell is both safe under a policy and doomed under every "
@@ -208,7 +222,7 @@ def _label(provers, inclusion, hold):
     label[doomed] = DOOMED
     label[incl_facts.outside] = OUTSIDE
     label = label.astype(str)
-    return leaves, per, (incl_facts, incl_lab), label, policy
+    return _Round(leaves, per, (incl_facts, incl_lab), label, policy)
 
 
 def _proof(prover, leaves, facts, labelling, rounds, seconds, stop_reason):
@@ -223,9 +237,11 @@ def _proof(prover, leaves, facts, labelling, rounds, seconds, stop_reason):
 
 def _result(model, method, budget, provers, inclusion, tree, labelled, hold, rounds, seconds,
             stop_reason):
-    leaves, per, (incl_facts, incl_lab), label, policy = labelled
+    leaves, label, policy = labelled.leaves, labelled.label, labelled.policy
+    incl_facts, incl_lab = labelled.inclusion
     args = (rounds, seconds, stop_reason)
-    per_setting = [_proof(p, leaves, f, lab, *args) for p, (_, f, lab) in zip(provers, per)]
+    per_setting = [_proof(p, leaves, f, lab, *args)
+                   for p, (f, lab) in zip(provers, labelled.per_setting)]
     incl = _proof(inclusion, leaves, incl_facts, incl_lab, *args)
     doomed = label == DOOMED
     controlled = Labelling(label=label, rank=np.where(doomed, incl_lab.rank, -1),

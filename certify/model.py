@@ -2,7 +2,7 @@
 
 A model file is TOML with the sections ``[model]``, ``[states]``, ``[parameters]``,
 ``[definitions]``, ``[equations]``, ``[limits]`` (also read under its older name
-``[constraints]``) and ``[settings]``; the format
+``[constraints]``), ``[controls]`` and ``[settings]``; the format
 is documented in ``docs/model-format.md``. Every number is kept exact: TOML numbers
 become :class:`fractions.Fraction` and number literals inside expressions become
 ``sympy.Rational``.
@@ -42,6 +42,7 @@ __all__ = [
     "SECTIONS",
     "SETTINGS",
     "Constraint",
+    "Control",
     "Model",
     "Parameter",
     "Setting",
@@ -55,7 +56,10 @@ MAX_STATES = 6
 #: Largest model file accepted, in bytes.
 MAX_FILE_BYTES = 1_000_000
 #: Sections of a model file, in their usual order.
-SECTIONS = ("model", "states", "parameters", "definitions", "equations", "constraints", "settings")
+SECTIONS = ("model", "states", "parameters", "definitions", "equations", "constraints", "controls",
+            "settings")
+#: Most settings one control may list, and most combinations of settings of all controls.
+MAX_SETTINGS = 64
 _REQUIRED_SECTIONS = ("model", "states", "equations", "constraints")
 #: Longest free texts, in characters: a model names and describes, it is not a document.
 TEXT_LENGTHS = {"name": 200, "description": 5000, "time_unit": 40, "unit": 40, "about": 300}
@@ -137,6 +141,20 @@ class Constraint:
 
 
 @dataclass(frozen=True)
+class Control:
+    """A parameter the operator may set: its admissible settings and minimum hold time.
+
+    ``settings`` are exact and distinct, in the order written (a policy prefers the
+    earlier ones); a policy holds a chosen setting for at least ``hold`` time units
+    before it may switch.
+    """
+
+    name: str
+    settings: tuple[Fraction, ...]
+    hold: Fraction
+
+
+@dataclass(frozen=True)
 class Model:
     """A parsed model: ``x' = f(x, p)`` with limits ``g_i(x, p) >= 0``.
 
@@ -163,6 +181,7 @@ class Model:
     settings: dict
     warnings: tuple[str, ...]
     conditions: dict[str, tuple[DomainCondition, ...]]
+    controls: tuple[Control, ...] = ()
 
     @property
     def state_symbols(self):
@@ -392,6 +411,7 @@ class _Reader:
         )
         constraints = self.constraints(tables["constraints"], scope, expand)
         settings = self.settings(tables["settings"])
+        controls = self.controls(tables["controls"], parameters)
         self.check_use(states, parameters, definitions, equations, constraints)
         return Model(
             name=header["name"],
@@ -409,6 +429,7 @@ class _Reader:
             warnings=tuple(self.warnings),
             conditions={_canonical(where): self.kept[where] for where in self.kept
                         if where.startswith(("[equations]", "[constraints]", "[limits]"))},
+            controls=controls,
         )
 
     def limits_section(self, data):
@@ -646,6 +667,62 @@ class _Reader:
         if settings.get("min_horizon", 0) > settings.get("max_horizon", float("inf")):
             raise self.error("[settings]", "min_horizon is above max_horizon")
         return settings
+
+    def controls(self, table, parameters):
+        """Read ``[controls]``: ``NAME = { settings = [...], hold = T }`` or
+        ``NAME = { range = [lo, hi], settings = n, hold = T }``."""
+        names = [parameter.name for parameter in parameters]
+        controls, combinations = [], 1
+        for name, value in table.items():
+            where = f"[controls] {_key(name)}"
+            if name not in names:
+                close = difflib.get_close_matches(str(name), names, n=1)
+                hint = f" (did you mean {close[0]!r}?)" if close else ""
+                raise self.error(where, f"is not a parameter{hint}; a control sets a parameter "
+                                        f"of [parameters] ({', '.join(names) or 'none declared'})")
+            if not isinstance(value, dict):
+                raise self.error(where, f"expected {{ settings = [...], hold = ... }}, "
+                                        f"got {_describe(value)}")
+            self.keys(value, ("settings", "range", "hold"), where)
+            if "settings" not in value:
+                raise self.error(where, "missing key 'settings'")
+            if "range" in value:
+                settings = self.control_range(value, where)
+            else:
+                settings = self.control_list(value["settings"], f"{where}: settings")
+            hold = self.number(value.get("hold", 0), f"{where}: hold")
+            if hold < 0:
+                raise self.error(f"{where}: hold", f"must be 0 or more (a time), got "
+                                                   f"{format_number(hold)}")
+            combinations *= len(settings)
+            if combinations > MAX_SETTINGS:
+                raise self.error("[controls]", f"the controls have {combinations} combinations "
+                                               f"of settings; at most {MAX_SETTINGS} are allowed")
+            controls.append(Control(name, settings, hold))
+        return tuple(controls)
+
+    def control_list(self, value, where):
+        if not isinstance(value, list):
+            raise self.error(where, f"expected a list of numbers [a, b, ...], got {_describe(value)}")
+        if not value:
+            raise self.error(where, "is empty (list at least one setting)")
+        if len(value) > MAX_SETTINGS:
+            raise self.error(where, f"{len(value)} settings; at most {MAX_SETTINGS} are allowed")
+        settings = [self.number(v, where) for v in value]
+        if len(set(settings)) < len(settings):
+            raise self.error(where, "lists a setting twice")
+        return tuple(settings)
+
+    def control_range(self, value, where):
+        lo, hi = self.pair(value["range"], f"{where}: range")
+        if not lo < hi:
+            raise self.error(f"{where}: range", f"{_range(lo, hi)} must have lo below hi")
+        n = value["settings"]
+        if isinstance(n, bool) or not isinstance(n, int) or not 2 <= n <= MAX_SETTINGS:
+            raise self.error(f"{where}: settings", f"with a range, the number of settings: a "
+                                                   f"whole number from 2 to {MAX_SETTINGS}, got "
+                                                   f"{_describe(n)}")
+        return tuple(lo + (hi - lo) * Fraction(k, n - 1) for k in range(n))
 
     def check_use(self, states, parameters, definitions, equations, constraints):
         """Record warnings for things that are declared but play no part."""

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 __all__ = ["LABEL_COLOURS", "UNDECIDED_HATCH", "HATCH_COLOUR", "INK", "LIMIT_STYLES",
            "ARC_STYLES", "TRANSITION_COLOURS", "NO_SAFE_COLOUR", "doomed_colormap",
-           "time_colormap", "safe_share_colormap", "limit_style"]
+           "time_colormap", "safe_share_colormap", "limit_style", "SETTING_COLOURS"]
 
 LABEL_COLOURS = {"safe": "#3a6ea5", "doomed": "#c9782f", "outside": "#a9a9a9",
                  "undecided": "#f1e7bd"}
@@ -44,6 +44,10 @@ TRANSITION_COLOURS = {
     ("doomed", "outside"): "#7a5a1e", ("outside", "doomed"): "#d9b26f",
     ("undecided", "outside"): "#2e5e3a", ("outside", "undecided"): "#9cc79f",
 }
+#: Colours of the settings of a policy in ``policy.png`` (safe cells, by the setting
+#: held): blues, teals and purples, apart from the doomed browns and the outside grey.
+SETTING_COLOURS = ("#1b4f8a", "#3a9fb5", "#8fd3c1", "#5b3f8c", "#a37cc4", "#2f7d4f",
+                   "#85b86b", "#d6d36a")
 #: Hatching colour of sweep boxes proven to hold no safe state.
 NO_SAFE_COLOUR = "#7a1e12"
 

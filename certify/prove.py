@@ -505,12 +505,9 @@ def _prove(model, method, budget, progress, focus):
                 elif focus is not None:
                     stop_reason = "nothing left to refine for the focus"
                 break
-            if elapsed >= budget.time_limit:
-                stop_reason = f"time limit {budget.time_limit:g} s reached"
-                break
-            room = (budget.max_cells - len(leaves)) // (2 ** tree.n - 1)
-            if room <= 0:
-                stop_reason = f"cell limit {budget.max_cells} reached"
+            room, out_of_budget = split_room(budget, tree, len(leaves), elapsed)
+            if out_of_budget:
+                stop_reason = out_of_budget
                 break
             und = und[np.argsort(tree.depth[und], kind="stable")][:room]
             new = tree.split(und)
@@ -536,6 +533,23 @@ def _prove(model, method, budget, progress, focus):
                   stop_reason=stop_reason, trapping=prover.regions)
     proof.fractions, proof.fractions_exact = label_fractions(proof)
     return proof
+
+
+def split_room(budget, tree, n_leaves, elapsed):
+    """How many leaves the budget lets a round split, or why it lets none.
+
+    Returns
+    -------
+    room : int
+    reason : str or None
+        The stop reason when the time or cell limit is reached (then nothing is split).
+    """
+    if elapsed >= budget.time_limit:
+        return 0, f"time limit {budget.time_limit:g} s reached"
+    room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
+    if room <= 0:
+        return 0, f"cell limit {budget.max_cells} reached"
+    return room, None
 
 
 def _truncate(tree, n_nodes):

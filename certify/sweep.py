@@ -227,6 +227,9 @@ def _check_vary(model, vary):
         lo, hi, n = spec
         # with_parameters names the unknown parameter (with close names) and checks numbers
         varied = model.with_parameters({name: (lo, hi)})
+        if name in {c.name for c in model.controls}:
+            raise UsageError(f"parameter {name!r} is a control of the model ([controls]); "
+                             "the policy chooses its setting, a sweep cannot vary it")
         if given[name].is_interval:
             raise UsageError(
                 f"parameter {name!r} is already the interval [{format_number(given[name].lo)}, "

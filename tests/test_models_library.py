@@ -33,6 +33,10 @@ CHECKS = {
     "chemostat_competition.toml": (4, 80.0),
     "lake_plankton.toml": (4, 100.0),
     "two_generators.toml": (3, 20.0),
+    # models with [controls]: prove() maps the value in [parameters] (the policy is
+    # simulated in tests/test_policy.py)
+    "fermenter_dilution_control.toml": (6, 200.0),
+    "epidemic_contact_restrictions.toml": (6, 1500.0),
 }
 
 #: Starts simulated per model.

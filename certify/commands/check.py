@@ -78,6 +78,17 @@ def run(args):
 
     if args.jobs is not None and args.jobs < 1:
         raise UsageError("--workers must be at least 1")
+    from certify.check._policy import check_policy, is_policy
+    if is_policy(args.certificate):
+        if args.model is not None:
+            raise UsageError("--model: a policy certificate is checked against its own model")
+        result = check_policy(args.certificate, jobs=args.jobs)
+        print(json.dumps({"valid": result.valid, "cells_checked": result.cells_checked,
+                          "failures": result.failures, "seconds": round(result.seconds, 3)},
+                         indent=2) if args.json else
+              f"{'VALID' if result.valid else 'INVALID'}: {args.certificate}: "
+              f"{result.message} ({result.cells_checked} cells, {result.seconds:.1f} s)")
+        return result.status
     progress = None if args.quiet or args.json else _Progress()
     try:
         result = check_certificate(args.certificate, model=args.model, jobs=args.jobs,

@@ -58,12 +58,15 @@ def run(args):
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
     out = output_folder(args.out or Path("proofs_out") / f"{Path(args.model).stem}-claim")
     progress = None if args.quiet or args.json else progress_bar()
+    judge = _policy_claim if model.controls else check_claim
     try:
-        result = check_claim(model, region, args.expect, args.until, max_depth=args.max_depth,
-                             time_limit=args.time_limit, progress=progress)
+        result = judge(model, region, args.expect, args.until, max_depth=args.max_depth,
+                       time_limit=args.time_limit, progress=progress)
     finally:
         if progress is not None:
             progress.close()
+    if model.controls:
+        return _report_policy_claim(result, out, args)
     result = write_claim(result, out)
     if args.json:
         print(json.dumps(result.to_json(), indent=2))
@@ -72,6 +75,27 @@ def run(args):
     if result.proof.interrupted:
         print("certify: interrupted; the verdict rests on the last finished round",
               file=sys.stderr)
+    return EXIT_CODES[result.verdict]
+
+
+def _policy_claim(*args, **kwargs):
+    """A model with [controls]: is there a policy for the region (certify.policy_claim)?"""
+    from certify.policy_claim import claim_policy
+    return claim_policy(*args, **kwargs)
+
+
+def _report_policy_claim(result, out, args):
+    from certify.policy_claim import write_policy_claim
+
+    result = write_policy_claim(result, out)
+    if args.json:
+        print(json.dumps(result.to_json(), indent=2))
+    else:
+        region = ", ".join(f"{k}={float(lo):g}:{float(hi):g}"
+                           for k, (lo, hi) in result.region.items())
+        print(f"{result.verdict.upper()}  claim: a policy keeps every start in {region} "
+              f"within the limits for all time\n{result.message}\n"
+              f"certificate {result.certificate}")
     return EXIT_CODES[result.verdict]
 
 

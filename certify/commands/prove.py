@@ -126,6 +126,8 @@ def run_proof(model_path, args, default_out=None):
             raise UsageError("--slice: only models of 3 or more states are drawn in slices")
         slices = parse_slice(model, args.slice)
     progress = None if args.quiet else progress_bar()
+    if model.controls:
+        return _run_policy(model, out, args, progress)
     proof = prove(model, max_depth=args.max_depth, max_cells=args.max_cells,
                   time_limit=args.time_limit, progress=progress)
     if progress is not None:
@@ -155,6 +157,30 @@ def _load(model_path, args):
 
     ranges, limits = sbml_options(args)
     return load_model_file(model_path, ranges=ranges, limits=limits)
+
+
+def _run_policy(model, out, args, progress):
+    """A model with ``[controls]``: prove a policy map and write it (certify.policy)."""
+    from certify.policy import prove_policy
+    from certify.policy_output import policy_table, write_policy
+
+    controls = {c.name for c in model.controls}
+    overridden = sorted(controls & {parse_param(p)[0] for p in args.param})
+    if overridden:
+        raise UsageError(f"--param {overridden[0]}: a control's settings come from the "
+                         f"model's [controls]")
+    pp = prove_policy(model, max_depth=args.max_depth, max_cells=args.max_cells,
+                      time_limit=args.time_limit, progress=progress)
+    if progress is not None:
+        progress.close()
+    summary = write_policy(pp, out)
+    if args.json:
+        print(json.dumps(summary, indent=2))
+    elif not args.quiet:
+        counts = ", ".join(f"{n} {k}" for k, n in summary["cells"].items())
+        print(f"{model.name}: policy map in {out} ({counts}; {summary['stop_reason']})")
+        print("\n".join(policy_table(summary)))
+    return 0
 
 
 #: The files ``certify prove`` writes, in the order it writes them.

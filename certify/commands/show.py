@@ -80,6 +80,8 @@ def describe_model(model):
             for limit in model.constraints
         ],
         "settings": model.settings,
+        "controls": [{"name": c.name, "settings": [format_number(v) for v in c.settings],
+                      "hold": format_number(c.hold)} for c in model.controls],
         "warnings": list(model.warnings),
         "uses_kinks": model.uses_kinks,
         "sides": [dict(side, value=format_number(side["value"])) for side in window_sides(model)],
@@ -132,6 +134,11 @@ def _text(model):
                   "widen it there when cells stay undecided):"]
     lines += [f"  {side['state']} = {format_number(side['value'])}: {side['kind']}"
               for side in window_sides(model)]
+
+    if model.controls:
+        lines += ["", "controls (certify prove proves a policy map):"]
+        lines += [f"  {c.name} in {{{', '.join(format_number(v) for v in c.settings)}}}, "
+                  f"each held at least {format_number(c.hold)}" for c in model.controls]
 
     lines += ["", "settings:"]
     lines += [f"  {key} = {value}" for key, value in model.settings.items()] or ["  (defaults)"]

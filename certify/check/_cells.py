@@ -16,8 +16,11 @@ arithmetics of :mod:`certify.check._arith`. For step ``k`` of a cell (stored: st
   ``(grad g . f)(E) >= 0``;
 * the step end is crossing evidence when ``g_j(X_{k+1}) < 0`` for one ``j``.
 
-``X_0`` is the exact cell, ``m_0`` the stored start point, ``A_0 = I`` and ``r_0`` the
-cell minus ``m_0``. The stored ``r`` boxes are not used: the checker's own are proven.
+``X_0`` is the exact cell, ``m_0`` the stored start point (version 3 stores none: the
+float nearest the cell's midpoint), ``A_0 = I`` and ``r_0`` the cell minus ``m_0``. The
+stored ``r`` boxes are not used: the checker's own are proven. Version 3 stores no frames
+``m``, ``A`` either: the checker chooses its own (:func:`_own_frame`), as any frame is
+sound.
 """
 
 from __future__ import annotations
@@ -82,12 +85,13 @@ class CellTask:
     n_steps : ndarray of int, shape (N,)
         Steps to recompute per cell (0: only the outside test).
     image_known : ndarray of bool, shape (N,)
-    m0 : ndarray, shape (N, n)
+    m0 : ndarray, shape (N, n), or None
     h : ndarray, shape (S,)
     E : ndarray, shape (S, n, 2)
-    m : ndarray, shape (S, n)
-    A : ndarray, shape (S, n, n)
-        Step records of the cells, concatenated in cell order.
+    m : ndarray, shape (S, n), or None
+    A : ndarray, shape (S, n, n), or None
+        Step records of the cells, concatenated in cell order. Without start points and
+        frames (version 3) the checker chooses its own.
     """
 
     cells: np.ndarray
@@ -149,11 +153,12 @@ def _matvec(ar, P, v):
     return [row[0] for row in _matmul(ar, P, [[x] for x in v])]
 
 
-def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
+def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=None):
     """One step for the active cells; returns the new box, coordinates and facts.
 
     `X_bounds` are exact lower and upper bounds of the box ``X`` (per axis), which the
-    Picard test uses: a ball's own bounds may be a little wider.
+    Picard test uses: a ball's own bounds may be a little wider. Without a stored frame
+    (`m_next`, `A_next` None) the step end's frame is the checker's own.
     """
     progs = context.programs
     n, q = progs.n, progs.order
@@ -197,6 +202,8 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     M = _matmul(ar, D, Ae)
     V = _matvec(ar, M, r)
     image = [ar.add(Y[i], V[i]) for i in range(n)]
+    if m_next is None:
+        m_next, A_next = _own_frame(ar, Y, M, r)
     B = ar.inverse(A_next)
     new_m = [ar.exact(m_next[:, k]) for k in range(n)]
     a = _matvec(ar, B, [ar.sub(Y[i], new_m[i]) for i in range(n)])
@@ -215,7 +222,38 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return ok, kept, crossed, X_next, new_r, E, E_bounds
+    return ok, kept, crossed, X_next, new_r, E, E_bounds, m_next, A_next
+
+
+def _floats(values):
+    """Nearest floats of an object array of exact numbers (arb)."""
+    return np.asarray(values, dtype=object).astype(float)
+
+
+def _own_frame(ar, Y, M, r):
+    """The checker's own coordinates ``m_{k+1}``, ``A_{k+1}`` of a step end (plain floats).
+
+    Any float frame is sound: ``B`` encloses the inverse of the matrix used, and
+    ``r_{k+1}`` is proven for this frame. It is chosen as the prover chooses its own
+    (Lohner's QR method): ``m`` the midpoint of ``Y``, ``A`` the orthogonal factor of
+    ``mid(M)`` with the columns ordered by their spread ``|mid(M)_j| width(r_j)``.
+    """
+    n = len(Y)
+
+    def mid(a):
+        return 0.5 * (_floats(ar.lower(a)) + _floats(ar.upper(a)))
+
+    new_m = np.stack([mid(y) for y in Y], 1)
+    middle = np.stack([np.stack([mid(M[i][j]) for j in range(n)], 1) for i in range(n)], 1)
+    width = np.stack([_floats(ar.upper(x)) - _floats(ar.lower(x)) for x in r], 1)
+    with np.errstate(invalid="ignore", over="ignore"):
+        spread = np.linalg.norm(middle, axis=1) * width
+    order = np.argsort(-np.nan_to_num(spread, nan=0.0), axis=1, kind="stable")
+    cols = np.take_along_axis(middle, order[:, None, :], axis=2)
+    bad = ~np.all(np.isfinite(cols), axis=(1, 2))
+    cols[bad] = np.eye(n)
+    Q, _ = np.linalg.qr(cols)
+    return new_m, Q
 
 
 def _picard(ar, progs, params, hh, X_bounds, E_bounds):
@@ -371,7 +409,7 @@ def cell_facts(context, task, arithmetic):
     X = [ar.take(x, ids) for x in cell]
     X_bounds = ([ar.lower(ar.rationals(lo_q[ids, k], lo_q[ids, k])) for k in range(n)],
                 [ar.upper(ar.rationals(hi_q[ids, k], hi_q[ids, k])) for k in range(n)])
-    m = task.m0[ids]
+    m = _cell_midpoints(lo_q, hi_q)[ids] if task.m0 is None else task.m0[ids]
     A = np.broadcast_to(np.eye(n), (len(ids), n, n))
     m_q = [np.array([Fraction(float(v)) for v in m[:, k]], dtype=object) for k in range(n)]
     r = [ar.rationals(lo_q[ids, k] - m_q[k], hi_q[ids, k] - m_q[k]) for k in range(n)]
@@ -380,8 +418,9 @@ def cell_facts(context, task, arithmetic):
     k = 0
     while len(ids):
         s = start[ids] + k
-        ok, kept, crossed, X_next, r_next, E, E_used = _step(
-            ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], task.m[s], task.A[s])
+        stored = (None, None) if task.m is None else (task.m[s], task.A[s])
+        ok, kept, crossed, X_next, r_next, E, E_used, m_next, A_next = _step(
+            ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], *stored)
         tube_boxes[s] = E_used
         n_valid[ids[ok]] = k + 1
         unkept = ok & ~kept & (first_unkept[ids] < 0)
@@ -401,7 +440,7 @@ def cell_facts(context, task, arithmetic):
         X = [ar.take(x, keep) for x in X_next]
         X_bounds = ([ar.lower(x) for x in X], [ar.upper(x) for x in X])
         r = [ar.take(x, keep) for x in r_next]
-        m, A = task.m[s[keep]], task.A[s[keep]]
+        m, A = m_next[keep], A_next[keep]
         ids = ids[keep]
         k += 1
     if len(image_cells):
@@ -413,6 +452,12 @@ def cell_facts(context, task, arithmetic):
              "crossing_step": crossing}
     facts.update(_images(ar, context, task, tube_boxes, image, image_cells))
     return facts
+
+
+def _cell_midpoints(lo, hi):
+    """The floats nearest the midpoints of exact cells (object arrays of Fractions)."""
+    return np.array([[float((a + b) / 2) for a, b in zip(row_lo, row_hi)]
+                     for row_lo, row_hi in zip(lo, hi)], float).reshape(lo.shape)
 
 
 def _drift(ar, context, task, tube_boxes, cells):

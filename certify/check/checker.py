@@ -219,9 +219,11 @@ def _task(cert, cells, n_steps):
     rows = np.concatenate([np.arange(s, s + k) for s, k in zip(start, K)]) if len(cells) \
         else np.zeros(0, int)
     rows = rows.astype(int)
+    stored = cert.m is not None     # version 2: start points and frames stored
     return CellTask(cells=cells, depth=cert.depth[cells], index=cert.index[cells],
-                    n_steps=K, image_known=cert.image_known[cells], m0=cert.set0_m[cells],
-                    h=cert.h[rows], E=cert.E[rows], m=cert.m[rows], A=cert.A[rows])
+                    n_steps=K, image_known=cert.image_known[cells],
+                    m0=cert.set0_m[cells] if stored else None, h=cert.h[rows], E=cert.E[rows],
+                    m=cert.m[rows] if stored else None, A=cert.A[rows] if stored else None)
 
 
 def _compute(context, tasks, arithmetic, jobs, progress):

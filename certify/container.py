@@ -95,9 +95,13 @@ def _unpack(text, item, count):
         raw = inflate.decompress(base64.b64decode(text, validate=True), expected + 1)
     except zlib.error as exc:
         raise ValueError(f"compressed data damaged ({exc})") from None
-    if len(raw) != expected or not inflate.eof:
-        raise ValueError(f"holds {len(raw) // size} values where the shape needs {count}"
-                         if len(raw) != expected else "compressed data truncated")
+    if len(raw) != expected:
+        raise ValueError(f"truncated or too long: {len(raw) / size:g} values where the shape "
+                         f"needs {count}")
+    if not inflate.eof:
+        raise ValueError("the compressed data is truncated")
+    if inflate.unused_data:
+        raise ValueError("data after the compressed stream")
     grouped = np.frombuffer(raw, np.uint8).reshape(size, count).T
     return np.ascontiguousarray(grouped).view(item).reshape(-1)
 

@@ -153,6 +153,36 @@ def _matvec(ar, P, v):
     return [row[0] for row in _matmul(ar, P, [[x] for x in v])]
 
 
+@dataclass
+class StepOutcome:
+    """What one step proves for the active cells (see :func:`_step`).
+
+    Attributes
+    ----------
+    ok, kept, crossed : ndarray of bool
+        The step verified; every limit is kept on it; its end box violates a limit.
+    X_next, r_next, E : list of intervals
+        The end box, the coordinates of the end set, the a-priori box (per axis).
+    E_bounds : ndarray, shape (N, n, 2)
+        The a-priori boxes used (a regression check may have replaced stored ones).
+    m_next, A_next : ndarray
+        The frame of the end set (stored or the checker's own).
+    moved : list of intervals
+        ``h f(E)`` per axis: encloses how far a solution moves during the step.
+    """
+
+    ok: np.ndarray
+    kept: np.ndarray
+    crossed: np.ndarray
+    X_next: list
+    r_next: list
+    E: list
+    E_bounds: np.ndarray
+    m_next: np.ndarray
+    A_next: np.ndarray
+    moved: list
+
+
 def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=None):
     """One step for the active cells; returns the new box, coordinates and facts.
 
@@ -222,7 +252,9 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=No
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return ok, kept, crossed, X_next, new_r, E, E_bounds, m_next, A_next
+    return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, r_next=new_r, E=E,
+                       E_bounds=E_bounds, m_next=m_next, A_next=A_next,
+                       moved=[ar.mul(hh, f) for f in field])
 
 
 def _floats(values):
@@ -402,6 +434,7 @@ def cell_facts(context, task, arithmetic):
     K = task.n_steps
     start = np.concatenate([[0], np.cumsum(K)]).astype(int)
     tube_boxes = task.E.copy()
+    moved = [ar.exact(np.zeros(len(task.h))) for _ in range(n)]
     n_valid = np.zeros(N, int)
     first_unkept = np.full(N, -1)
     crossing = np.full(N, -1)
@@ -419,9 +452,10 @@ def cell_facts(context, task, arithmetic):
     while len(ids):
         s = start[ids] + k
         stored = (None, None) if task.m is None else (task.m[s], task.A[s])
-        ok, kept, crossed, X_next, r_next, E, E_used, m_next, A_next = _step(
-            ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], *stored)
-        tube_boxes[s] = E_used
+        out = _step(ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], *stored)
+        ok, kept, crossed, X_next, E = out.ok, out.kept, out.crossed, out.X_next, out.E
+        tube_boxes[s] = out.E_bounds
+        moved = [ar.put(a, s, b) for a, b in zip(moved, out.moved)]
         n_valid[ids[ok]] = k + 1
         unkept = ok & ~kept & (first_unkept[ids] < 0)
         first_unkept[ids[unkept]] = k
@@ -439,12 +473,12 @@ def cell_facts(context, task, arithmetic):
         keep = np.flatnonzero(go)
         X = [ar.take(x, keep) for x in X_next]
         X_bounds = ([ar.lower(x) for x in X], [ar.upper(x) for x in X])
-        r = [ar.take(x, keep) for x in r_next]
-        m, A = m_next[keep], A_next[keep]
+        r = [ar.take(x, keep) for x in out.r_next]
+        m, A = out.m_next[keep], out.A_next[keep]
         ids = ids[keep]
         k += 1
     if len(image_cells):
-        drift = _drift(ar, context, task, tube_boxes, image_cells)
+        drift = _drift(ar, context, task, tube_boxes, image_cells, moved)
         image = [ar.intersect(image[i], ar.add(ar.take(cell[i], image_cells), drift[i]))
                  for i in range(n)]
     first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
@@ -460,20 +494,23 @@ def _cell_midpoints(lo, hi):
                      for row_lo, row_hi in zip(lo, hi)], float).reshape(lo.shape)
 
 
-def _drift(ar, context, task, tube_boxes, cells):
+def _drift(ar, context, task, tube_boxes, cells, moved):
     """Per cell of `cells`, an enclosure of ``x(T) - x(0)``: the sum of ``h f(E)``.
 
     Each tube box ``E`` is first cut at the invariant faces where
-    :func:`_cut_at_invariant_faces` allows it.
+    :func:`_cut_at_invariant_faces` allows it; `moved` holds ``h f(E)`` of the steps'
+    own boxes (:class:`StepOutcome`), recomputed here only for the boxes cut.
     """
     n = context.programs.n
     owner = np.repeat(np.arange(len(task.cells)), task.n_steps)
     E = _cut_at_invariant_faces(context, tube_boxes, owner, len(task.cells))
-    box = [ar.box(E[:, k, 0], E[:, k, 1]) for k in range(n)]
-    params = _params(ar, context)
-    f = _joined(ar, context.programs.field, ar.cover(box, ar.pieces.tube), params)
-    hh = ar.exact(task.h)
-    moved = [ar.mul(hh, f[i]) for i in range(n)]
+    cut = np.flatnonzero(np.any(E != tube_boxes, axis=(1, 2)))
+    if len(cut):
+        box = [ar.box(E[cut, k, 0], E[cut, k, 1]) for k in range(n)]
+        f = _joined(ar, context.programs.field, ar.cover(box, ar.pieces.tube),
+                    _params(ar, context))
+        hh = ar.exact(task.h[cut])
+        moved = [ar.put(moved[i], cut, ar.mul(hh, f[i])) for i in range(n)]
     start = np.concatenate([[0], np.cumsum(task.n_steps)]).astype(int)
     steps = task.n_steps[cells]
     drift = [ar.exact(np.zeros(len(cells))) for _ in range(n)]

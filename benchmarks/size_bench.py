@@ -107,7 +107,7 @@ def render(rows, info, load_end):
         lines.append(f"| {r['name']} | " + " | ".join(
             f"{r['keys'].get(k, 0) / 1e3:.0f}" for k in rows[0]["keys"]) + " |")
     lines += ["", "The tubes `step_E` dominate what is left; version 2's frames "
-              "(`step_m`, `step_A`) and start sets, three fifths of its bytes, are gone "
+              "(`step_m`, `step_A`) and start sets, about half of its bytes, are gone "
               "(the checker chooses its own frames, docs/certificate-format.md).", "", ""]
     return "\n".join(lines)
 

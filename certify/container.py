@@ -32,7 +32,7 @@ READABLE_VERSIONS = (2, 3)
 LABELS = ("safe", "doomed", "outside", "undecided")
 
 
-#: The stored types of the compact codecs.
+#: The stored types of the compact codecs (``<f8`` only in float patches).
 ITEMS = ("<i1", "<i2", "<i4", "<i8", "<f4", "<f8")
 
 
@@ -71,7 +71,7 @@ def encode_array(a, dtype="<f8"):
             out["patch_at"] = encode_array(at, "<i8")
             out["patch"] = _pack(a.reshape(-1)[at])
         return out
-    steps = np.diff(a, axis=0, prepend=np.zeros((1,) + a.shape[1:], a.dtype)) if a.ndim else a
+    steps = np.diff(a, axis=0, prepend=np.zeros((1,) + a.shape[1:], a.dtype))
     item = next(t for t in ("<i1", "<i2", "<i4", "<i8")
                 if steps.size == 0 or (np.iinfo(t).min <= steps.min()
                                        and steps.max() <= np.iinfo(t).max))

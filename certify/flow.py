@@ -341,11 +341,15 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
 STEP_BITS = 8
 
 
-def _coarse(h):
-    """`h` rounded up to :data:`STEP_BITS` significant bits (any step size is sound:
-    each step's a-priori box is proven for the size it has)."""
+def _coarse(h, rest):
+    """The step size: `rest` (the time left to the horizon) where `h` reaches it, else `h`
+    rounded down to :data:`STEP_BITS` significant bits.
+
+    Any step size is sound (each step's a-priori box is proven for the size it has).
+    """
     mant, exp = np.frexp(h)
-    return np.ldexp(np.ceil(np.ldexp(mant, STEP_BITS)), exp - STEP_BITS)
+    return np.where(h >= rest, rest, np.ldexp(np.floor(np.ldexp(mant, STEP_BITS)),
+                                              exp - STEP_BITS))
 
 
 class DeadlinePassed(Exception):
@@ -411,7 +415,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     rlo, rhi = r0lo.copy(), r0hi.copy()
     xlo, xhi = lo.copy(), hi.copy()
     # the first step obeys the same caps as later ones
-    h = _coarse(np.minimum(min(float(step), max_step), np.maximum(max_h, min_step)))
+    h = _coarse(min(float(step), max_step), np.maximum(max_h, min_step))
     records = []
     for _ in range(max_steps):
         if len(ids) == 0:
@@ -463,8 +467,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         m, A, rlo, rhi = new_m[keep], new_A[keep], nrlo[keep], nrhi[keep]
         xlo, xhi = endlo[keep], endhi[keep]
         # never step past the largest horizon by much
-        h = np.minimum(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
-        h = _coarse(h)
+        h = _coarse(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
     status[ids] = STEP_LIMIT
     # boxes that ran out of steps keep the image at the time they reached
     image_lo[ids], image_hi[ids] = xlo, xhi

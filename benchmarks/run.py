@@ -14,13 +14,14 @@ import dimensions_bench  # noqa: E402
 import flow_bench  # noqa: E402
 import library_bench  # noqa: E402
 import prove_bench  # noqa: E402
+import size_bench  # noqa: E402
 import sweep_bench  # noqa: E402
 
 
 def main():
     """Run the benchmarks in turn; return the largest exit code."""
-    return max(bench.main([]) for bench in (flow_bench, prove_bench, check_bench, library_bench,
-                                            sweep_bench, dimensions_bench))
+    return max(bench.main([]) for bench in (flow_bench, prove_bench, check_bench, size_bench,
+                                            library_bench, sweep_bench, dimensions_bench))
 
 
 if __name__ == "__main__":

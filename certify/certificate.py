@@ -1,8 +1,9 @@
 """Writing and reading certificates (``certificate.json.gz``).
 
 The format is documented in docs/certificate-format.md. Exact numbers are stored as
-rational strings ``"p/q"``; float arrays as base64 of little-endian IEEE binary64,
-which is exact. Files are written atomically (temporary file, then rename).
+rational strings ``"p/q"``; arrays exactly in the compact binary form of
+:func:`certify.container.encode_array` (version 3; version 2 files are still read).
+Files are written atomically (temporary file, then rename).
 """
 
 from __future__ import annotations
@@ -16,7 +17,6 @@ from .container import (FORMAT, LABELS, VERSION, decode_array, encode_array, fra
                         load_certificate_json, write_certificate)
 from .errors import CertificateError
 from .graph import transition_graph
-from .steps import STEP_KEYS
 from .trapping import regions_data, trapping_cells
 
 __all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write_certificate",
@@ -183,6 +183,11 @@ def _rebuild_tree(tree, depth, index):
     return node_to_leaf
 
 
+#: The step records a certificate stores (version 3): the frames ``m``, ``A`` of the
+#: steps are not stored, the checker chooses its own (docs/certificate-format.md).
+STORED_STEP_KEYS = ("h", "E")
+
+
 def certificate_data(proof, summary):
     """Build the certificate dictionary of a proof (see docs/certificate-format.md).
 
@@ -201,7 +206,7 @@ def certificate_data(proof, summary):
     model = proof.model
     lab, facts = proof.labelling, proof.facts
     leaves = proof.leaves
-    set0_m, set0_r, start = proof.steps.starts(leaves)
+    _, _, start = proof.steps.starts(leaves)
     succ_order = np.argsort(facts.src, kind="stable")
     src, dst = facts.src[succ_order], facts.dst[succ_order]
     succ_start = np.searchsorted(src, np.arange(len(leaves) + 1))
@@ -231,12 +236,10 @@ def certificate_data(proof, summary):
             "image_known": [bool(x) for x in facts.flow_ok],
             "successor_start": encode_array(succ_start, "<i8"),
             "successors": encode_array(dst, "<i8"),
-            "set0_m": encode_array(set0_m),
-            "set0_r": encode_array(set0_r),
             "step_start": encode_array(start, "<i8"),
             # one gathered array at a time: each is freed once encoded
             **{f"step_{key}": encode_array(proof.steps.gather(leaves, key))
-               for key in STEP_KEYS},
+               for key in STORED_STEP_KEYS},
             **trapping_cells(facts),
         },
         "regions": regions_data(proof.trapping),

@@ -19,40 +19,139 @@ import numpy as np
 from .errors import CertificateError
 from .files import atomic_writer
 
-__all__ = ["FORMAT", "VERSION", "CERTIFICATE_NAME", "certificate_path", "LABELS",
+__all__ = ["FORMAT", "VERSION", "READABLE_VERSIONS", "CERTIFICATE_NAME", "certificate_path", "LABELS",
            "encode_array", "decode_array", "fraction_text", "parameter_differences",
            "narrowed_text", "write_certificate", "load_certificate_json"]
 
 FORMAT = "certify-certificate"
 #: File name of a certificate inside an output folder.
 CERTIFICATE_NAME = "certificate.json.gz"
-VERSION = 2
+VERSION = 3
+#: Versions this tool reads (version 2 stores every step's frame; docs/certificate-format.md).
+READABLE_VERSIONS = (2, 3)
 LABELS = ("safe", "doomed", "outside", "undecided")
 
 
+#: The stored types of the compact codecs (``<f8`` only in float patches).
+ITEMS = ("<i1", "<i2", "<i4", "<i8", "<f4", "<f8")
+
+
 def encode_array(a, dtype="<f8"):
-    """Encode an array exactly as ``{"dtype", "shape", "data"}`` (base64)."""
+    """Encode an array exactly and compactly (docs/certificate-format.md, "Arrays").
+
+    Floats are stored as binary32 where that is exact and as binary64 patches elsewhere;
+    integers as differences along the first axis in the narrowest integer type; the bytes
+    are grouped by significance and compressed with zlib. :func:`decode_array` gives back
+    the same values, bit for bit, with dtype `dtype`.
+
+    Parameters
+    ----------
+    a : array_like
+    dtype : {"<f8", "<i8"}
+        The type of the decoded array.
+
+    Returns
+    -------
+    dict
+        ``{"dtype", "shape", "codec", "item", "data"}`` and, for floats with values
+        binary32 cannot hold, ``"patch_at"`` and ``"patch"``.
+    """
     a = np.ascontiguousarray(np.asarray(a), dtype=dtype)
-    return {"dtype": dtype, "shape": list(a.shape),
-            "data": base64.b64encode(a.tobytes()).decode("ascii")}
+    out = {"dtype": dtype, "shape": list(a.shape)}
+    if a.dtype.kind == "f":
+        with np.errstate(over="ignore"):
+            narrow = a.astype("<f4")
+        wide = narrow.astype("<f8")
+        exact = (wide == a) | (np.isnan(wide) & np.isnan(a))
+        # a NaN keeps its bits only in a patch
+        exact &= ~np.isnan(a) | (wide.view("<i8") == a.view("<i8"))
+        at = np.flatnonzero(~exact.reshape(-1))
+        out.update(codec="zlib-float32", item="<f4", data=_pack(narrow))
+        if len(at):
+            out["patch_at"] = encode_array(at, "<i8")
+            out["patch"] = _pack(a.reshape(-1)[at])
+        return out
+    steps = np.diff(a, axis=0, prepend=np.zeros((1,) + a.shape[1:], a.dtype))
+    item = next(t for t in ("<i1", "<i2", "<i4", "<i8")
+                if steps.size == 0 or (np.iinfo(t).min <= steps.min()
+                                       and steps.max() <= np.iinfo(t).max))
+    out.update(codec="zlib-delta", item=item, data=_pack(steps.astype(item)))
+    return out
+
+
+def _pack(a):
+    """Base64 of the zlib-compressed bytes of `a`, grouped by byte significance."""
+    size = a.dtype.itemsize
+    grouped = np.ascontiguousarray(a).reshape(-1).view(np.uint8).reshape(-1, size).T
+    return base64.b64encode(zlib.compress(grouped.tobytes(), 6)).decode("ascii")
+
+
+def _unpack(text, item, count):
+    """Inverse of :func:`_pack`: `count` values of dtype `item` (errors: ValueError)."""
+    size = np.dtype(item).itemsize
+    expected = count * size
+    inflate = zlib.decompressobj()
+    try:
+        raw = inflate.decompress(base64.b64decode(text, validate=True), expected + 1)
+    except zlib.error as exc:
+        raise ValueError(f"compressed data damaged ({exc})") from None
+    if len(raw) != expected:
+        raise ValueError(f"truncated or too long: {len(raw) / size:g} values where the shape "
+                         f"needs {count}")
+    if not inflate.eof:
+        raise ValueError("the compressed data is truncated")
+    if inflate.unused_data:
+        raise ValueError("data after the compressed stream")
+    grouped = np.frombuffer(raw, np.uint8).reshape(size, count).T
+    return np.ascontiguousarray(grouped).view(item).reshape(-1)
 
 
 def decode_array(obj, where="array"):
-    """Decode an array written by :func:`encode_array`.
+    """Decode an array written by :func:`encode_array` (or by version 2's plain form).
+
+    Returns
+    -------
+    ndarray
+        Of dtype ``<f8`` or ``<i8``.
 
     Raises
     ------
     CertificateError
-        When the object is malformed.
+        When the object is malformed: an unknown type or codec, data that do not fit
+        the shape (truncated arrays), damaged compressed data.
     """
     try:
+        if obj["dtype"] not in ("<f8", "<i8"):
+            raise ValueError(f"dtype {obj['dtype']!r}")
         dtype = np.dtype(obj["dtype"])
-        if dtype.kind not in "fi" or dtype.itemsize != 8:
-            raise ValueError("dtype")
         shape = tuple(int(s) for s in obj["shape"])
-        raw = base64.b64decode(obj["data"], validate=True)
-        return np.frombuffer(raw, dtype=dtype).reshape(shape).copy()
-    except (KeyError, TypeError, ValueError) as exc:
+        if any(s < 0 for s in shape):
+            raise ValueError("negative shape")
+        if "codec" not in obj:      # version 2: plain little-endian bytes
+            raw = base64.b64decode(obj["data"], validate=True)
+            return np.frombuffer(raw, dtype=dtype).reshape(shape).copy()
+        count = int(np.prod(shape, dtype=np.int64))
+        codec, item = obj["codec"], obj["item"]
+        if item not in ITEMS:
+            raise ValueError(f"item {item!r}")
+        item = np.dtype(item)
+        if codec == "zlib-float32" and dtype.kind == "f" and item == np.dtype("<f4"):
+            flat = _unpack(obj["data"], item, count).astype(dtype)
+            if "patch_at" in obj:
+                at = decode_array(obj["patch_at"], f"{where}.patch_at")
+                if not isinstance(obj["patch"], str):
+                    raise ValueError("patch")
+                if at.ndim != 1 or np.any(at < 0) or np.any(at >= count):
+                    raise ValueError("a patch lies outside the array")
+                flat[at] = _unpack(obj["patch"], dtype, len(at))
+            return flat.reshape(shape)
+        if codec == "zlib-delta" and dtype.kind == "i" and item.kind == "i":
+            steps = _unpack(obj["data"], item, count).astype(dtype).reshape(shape)
+            return np.cumsum(steps, axis=0, dtype=dtype) if len(shape) else steps
+        raise ValueError(f"codec {codec!r} with item {item.str} does not fit dtype {dtype.str}")
+    except CertificateError:
+        raise
+    except (KeyError, TypeError, ValueError, OverflowError) as exc:
         raise CertificateError(f"malformed {where} in the certificate ({exc})") from None
 
 
@@ -170,7 +269,8 @@ def load_certificate_json(path):
         raise CertificateError(f"{path}: {_what_it_is(path)}; {expected}") from None
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise CertificateError(f"{path}: not a certify certificate (key 'format')")
-    if data.get("version") != VERSION:
+    if data.get("version") not in READABLE_VERSIONS:
         raise CertificateError(f"{path}: unknown certificate version {data.get('version')!r} "
-                               f"(this tool reads version {VERSION})")
+                               f"(this tool reads versions "
+                               f"{', '.join(map(str, READABLE_VERSIONS))})")
     return data

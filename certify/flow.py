@@ -240,6 +240,8 @@ def _apriori(programs, xlo, xhi, h, params, iterations=4):
     blo = np.minimum(tlo, iv.round_down(tlo + BLEND * (out_lo - tlo)))
     bhi = np.maximum(thi, iv.round_up(thi + BLEND * (out_hi - thi)))
     blo, bhi = np.maximum(blo, out_lo), np.minimum(bhi, out_hi)
+    # bounds binary32 holds: the certificate stores them in half the bytes
+    blo, bhi = iv.outward_single(blo, bhi)
     nlo, nhi = _reach(programs, xlo, xhi, hh, blo, bhi, params)
     blended = ok & _is_apriori(programs, nlo, nhi, blo, bhi, params)
     out_lo[tight], out_hi[tight] = tlo[tight], thi[tight]
@@ -335,6 +337,21 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
     return new_m, Q, nrlo, nrhi, endlo, endhi, usable, growth
 
 
+#: Significant bits of a step size: few distinct sizes make a small certificate.
+STEP_BITS = 8
+
+
+def _coarse(h, rest):
+    """The step size: `rest` (the time left to the horizon) where `h` reaches it, else `h`
+    rounded down to :data:`STEP_BITS` significant bits.
+
+    Any step size is sound (each step's a-priori box is proven for the size it has).
+    """
+    mant, exp = np.frexp(h)
+    return np.where(h >= rest, rest, np.ldexp(np.floor(np.ldexp(mant, STEP_BITS)),
+                                              exp - STEP_BITS))
+
+
 class DeadlinePassed(Exception):
     """:func:`flow_boxes` was given a deadline and it passed before the batch was done."""
 
@@ -398,7 +415,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     rlo, rhi = r0lo.copy(), r0hi.copy()
     xlo, xhi = lo.copy(), hi.copy()
     # the first step obeys the same caps as later ones
-    h = np.minimum(min(float(step), max_step), np.maximum(max_h, min_step))
+    h = _coarse(min(float(step), max_step), np.maximum(max_h, min_step))
     records = []
     for _ in range(max_steps):
         if len(ids) == 0:
@@ -450,7 +467,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         m, A, rlo, rhi = new_m[keep], new_A[keep], nrlo[keep], nrhi[keep]
         xlo, xhi = endlo[keep], endhi[keep]
         # never step past the largest horizon by much
-        h = np.minimum(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
+        h = _coarse(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
     status[ids] = STEP_LIMIT
     # boxes that ran out of steps keep the image at the time they reached
     image_lo[ids], image_hi[ids] = xlo, xhi

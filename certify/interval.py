@@ -36,7 +36,7 @@ __all__ = [
     "sqrt", "exp", "log", "sin", "cos", "tan", "atan", "tanh", "sinh", "cosh",
     "iabs", "imin", "imax", "hull", "intersect", "enclose_fraction", "enclose_constant",
     "certainly_lt", "certainly_le", "possibly_lt", "possibly_le", "is_usable",
-    "round_down", "round_up",
+    "round_down", "round_up", "outward_single",
 ]
 
 _INF = np.inf
@@ -71,6 +71,25 @@ def round_up(x):
     d *= _ULP
     d += _TINY
     return x + d
+
+
+def outward_single(lo, hi):
+    """Widen ``[lo, hi]`` to the nearest bounds that binary32 holds exactly.
+
+    A certificate stores such bounds in half the bytes (docs/certificate-format.md).
+    Bounds beyond binary32's range, and NaN, are returned unchanged.
+
+    Returns
+    -------
+    lo, hi : ndarray
+        ``lo' <= lo`` and ``hi' >= hi``, both float64 arrays.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        down, up = lo.astype(np.float32), hi.astype(np.float32)
+        down = np.where(down > lo, np.nextafter(down, np.float32(-_INF)), down)
+        up = np.where(up < hi, np.nextafter(up, np.float32(_INF)), up)
+    down, up = down.astype(float), up.astype(float)
+    return (np.where(np.isfinite(down), down, lo), np.where(np.isfinite(up), up, hi))
 
 
 def _sum_error(a, b):

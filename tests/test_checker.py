@@ -255,6 +255,8 @@ def delete_cell(data):
     L = cells["count"]
     for key in ("depth", "index", "rank", "crossing_upper", "survival_lower", "horizon",
                 "set0_m", "set0_r", "trapped"):
+        if key not in cells:        # version 3 stores no start sets
+            continue
         a = _cells(data, key)
         _put(data, key, np.delete(a, c, axis=0), "<i8" if a.dtype.kind == "i" else "<f8")
     for key in ("label", "image_known", "trapped_whole"):
@@ -271,7 +273,8 @@ def delete_cell(data):
     steps = _cells(data, "step_start")
     s0, s1 = int(steps[c]), int(steps[c + 1])
     for key in ("step_h", "step_E", "step_m", "step_A"):
-        _put(data, key, np.delete(_cells(data, key), np.arange(s0, s1), axis=0))
+        if key in cells:            # version 3 stores no frames m, A
+            _put(data, key, np.delete(_cells(data, key), np.arange(s0, s1), axis=0))
     steps = np.concatenate([steps[:c], steps[c + 1:] - (s1 - s0)])
     _put(data, "step_start", steps, "<i8")
     cells["count"] = L - 1
@@ -344,6 +347,32 @@ def drop_key(data):
     del data["cells"]["step_E"]
 
 
+def truncate_array(data):
+    # the tube boxes hold one step fewer than their stated shape
+    E = _cells(data, "step_E")
+    _put(data, "step_E", E[:-1])
+    data["cells"]["step_E"]["shape"] = list(E.shape)
+
+
+def truncate_compressed_data(data):
+    text = data["cells"]["step_h"]["data"]
+    data["cells"]["step_h"]["data"] = text[:len(text) // 8 * 4]
+
+
+def successor_offset_out_of_range(data):
+    start = _cells(data, "successor_start")
+    start[len(start) // 2] = start[-1] + 1
+    _put(data, "successor_start", start, "<i8")
+
+
+def step_count_mismatch(data):
+    # one step dropped from the step arrays; the offsets still count it
+    steps = _cells(data, "step_start")
+    assert steps[-1] > 0
+    for key in ("step_h", "step_E"):
+        _put(data, key, _cells(data, key)[:-1])
+
+
 MUTATIONS = [
     ("logistic", relabel_undecided_safe, {1}),
     ("logistic", relabel_doomed_safe, {1}),
@@ -363,6 +392,10 @@ MUTATIONS = [
     ("sir", remove_successors_of_a_safe_cell, {1}),
     ("logistic", unknown_version, {2}),
     ("logistic", drop_key, {2}),
+    ("logistic", truncate_array, {2}),
+    ("logistic", truncate_compressed_data, {2}),
+    ("logistic", successor_offset_out_of_range, {2}),
+    ("logistic", step_count_mismatch, {2}),
 ]
 
 

@@ -107,9 +107,10 @@ def _forge(data, cell):
     new = {
         "step_h": np.insert(decode_array(cells["step_h"])[rows], at, 1 / 8),
         "step_E": np.insert(decode_array(cells["step_E"])[rows], at, [[[7 / 8, 1.0]]], 0),
-        "step_m": np.insert(decode_array(cells["step_m"])[rows], at, [[15 / 16]], 0),
-        "step_A": np.insert(decode_array(cells["step_A"])[rows], at, [[[1.0]]], 0),
     }
+    if "step_m" in cells:      # version 2 stores the frames; version 3 leaves them to the checker
+        new["step_m"] = np.insert(decode_array(cells["step_m"])[rows], at, [[15 / 16]], 0)
+        new["step_A"] = np.insert(decode_array(cells["step_A"])[rows], at, [[[1.0]]], 0)
     counts = np.diff(start)
     counts[cell] = 1
     new["step_start"] = np.concatenate([[0], np.cumsum(counts)])

@@ -16,8 +16,11 @@ arithmetics of :mod:`certify.check._arith`. For step ``k`` of a cell (stored: st
   ``(grad g . f)(E) >= 0``;
 * the step end is crossing evidence when ``g_j(X_{k+1}) < 0`` for one ``j``.
 
-``X_0`` is the exact cell, ``m_0`` the stored start point, ``A_0 = I`` and ``r_0`` the
-cell minus ``m_0``. The stored ``r`` boxes are not used: the checker's own are proven.
+``X_0`` is the exact cell, ``m_0`` the stored start point (version 3 stores none: the
+float nearest the cell's midpoint), ``A_0 = I`` and ``r_0`` the cell minus ``m_0``. The
+stored ``r`` boxes are not used: the checker's own are proven. Version 3 stores no frames
+``m``, ``A`` either: the checker chooses its own (:func:`_own_frame`), as any frame is
+sound.
 """
 
 from __future__ import annotations
@@ -82,12 +85,13 @@ class CellTask:
     n_steps : ndarray of int, shape (N,)
         Steps to recompute per cell (0: only the outside test).
     image_known : ndarray of bool, shape (N,)
-    m0 : ndarray, shape (N, n)
+    m0 : ndarray, shape (N, n), or None
     h : ndarray, shape (S,)
     E : ndarray, shape (S, n, 2)
-    m : ndarray, shape (S, n)
-    A : ndarray, shape (S, n, n)
-        Step records of the cells, concatenated in cell order.
+    m : ndarray, shape (S, n), or None
+    A : ndarray, shape (S, n, n), or None
+        Step records of the cells, concatenated in cell order. Without start points and
+        frames (version 3) the checker chooses its own.
     """
 
     cells: np.ndarray
@@ -149,11 +153,42 @@ def _matvec(ar, P, v):
     return [row[0] for row in _matmul(ar, P, [[x] for x in v])]
 
 
-def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
+@dataclass
+class StepOutcome:
+    """What one step proves for the active cells (see :func:`_step`).
+
+    Attributes
+    ----------
+    ok, kept, crossed : ndarray of bool
+        The step verified; every limit is kept on it; its end box violates a limit.
+    X_next, r_next, E : list of intervals
+        The end box, the coordinates of the end set, the a-priori box (per axis).
+    E_bounds : ndarray, shape (N, n, 2)
+        The a-priori boxes used (a regression check may have replaced stored ones).
+    m_next, A_next : ndarray
+        The frame of the end set (stored or the checker's own).
+    moved : list of intervals
+        ``h f(E)`` per axis: encloses how far a solution moves during the step.
+    """
+
+    ok: np.ndarray
+    kept: np.ndarray
+    crossed: np.ndarray
+    X_next: list
+    r_next: list
+    E: list
+    E_bounds: np.ndarray
+    m_next: np.ndarray
+    A_next: np.ndarray
+    moved: list
+
+
+def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=None):
     """One step for the active cells; returns the new box, coordinates and facts.
 
     `X_bounds` are exact lower and upper bounds of the box ``X`` (per axis), which the
-    Picard test uses: a ball's own bounds may be a little wider.
+    Picard test uses: a ball's own bounds may be a little wider. Without a stored frame
+    (`m_next`, `A_next` None) the step end's frame is the checker's own.
     """
     progs = context.programs
     n, q = progs.n, progs.order
@@ -197,6 +232,8 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
     M = _matmul(ar, D, Ae)
     V = _matvec(ar, M, r)
     image = [ar.add(Y[i], V[i]) for i in range(n)]
+    if m_next is None:
+        m_next, A_next = _own_frame(ar, Y, M, r)
     B = ar.inverse(A_next)
     new_m = [ar.exact(m_next[:, k]) for k in range(n)]
     a = _matvec(ar, B, [ar.sub(Y[i], new_m[i]) for i in range(n)])
@@ -215,7 +252,40 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next, A_next):
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return ok, kept, crossed, X_next, new_r, E, E_bounds
+    return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, r_next=new_r, E=E,
+                       E_bounds=E_bounds, m_next=m_next, A_next=A_next,
+                       moved=[ar.mul(hh, f) for f in field])
+
+
+def _floats(values):
+    """Nearest floats of an object array of exact numbers (arb)."""
+    return np.asarray(values, dtype=object).astype(float)
+
+
+def _own_frame(ar, Y, M, r):
+    """The checker's own coordinates ``m_{k+1}``, ``A_{k+1}`` of a step end (plain floats).
+
+    Any float frame is sound: ``B`` encloses the inverse of the matrix used, and
+    ``r_{k+1}`` is proven for this frame. It is chosen as the prover chooses its own
+    (Lohner's QR method): ``m`` the midpoint of ``Y``, ``A`` the orthogonal factor of
+    ``mid(M)`` with the columns ordered by their spread ``|mid(M)_j| width(r_j)``.
+    """
+    n = len(Y)
+
+    def mid(a):
+        return 0.5 * (_floats(ar.lower(a)) + _floats(ar.upper(a)))
+
+    new_m = np.stack([mid(y) for y in Y], 1)
+    middle = np.stack([np.stack([mid(M[i][j]) for j in range(n)], 1) for i in range(n)], 1)
+    width = np.stack([_floats(ar.upper(x)) - _floats(ar.lower(x)) for x in r], 1)
+    with np.errstate(invalid="ignore", over="ignore"):
+        spread = np.linalg.norm(middle, axis=1) * width
+    order = np.argsort(-np.nan_to_num(spread, nan=0.0), axis=1, kind="stable")
+    cols = np.take_along_axis(middle, order[:, None, :], axis=2)
+    bad = ~np.all(np.isfinite(cols), axis=(1, 2))
+    cols[bad] = np.eye(n)
+    Q, _ = np.linalg.qr(cols)
+    return new_m, Q
 
 
 def _picard(ar, progs, params, hh, X_bounds, E_bounds):
@@ -364,6 +434,7 @@ def cell_facts(context, task, arithmetic):
     K = task.n_steps
     start = np.concatenate([[0], np.cumsum(K)]).astype(int)
     tube_boxes = task.E.copy()
+    moved = [ar.exact(np.zeros(len(task.h))) for _ in range(n)]
     n_valid = np.zeros(N, int)
     first_unkept = np.full(N, -1)
     crossing = np.full(N, -1)
@@ -371,7 +442,7 @@ def cell_facts(context, task, arithmetic):
     X = [ar.take(x, ids) for x in cell]
     X_bounds = ([ar.lower(ar.rationals(lo_q[ids, k], lo_q[ids, k])) for k in range(n)],
                 [ar.upper(ar.rationals(hi_q[ids, k], hi_q[ids, k])) for k in range(n)])
-    m = task.m0[ids]
+    m = _cell_midpoints(lo_q, hi_q)[ids] if task.m0 is None else task.m0[ids]
     A = np.broadcast_to(np.eye(n), (len(ids), n, n))
     m_q = [np.array([Fraction(float(v)) for v in m[:, k]], dtype=object) for k in range(n)]
     r = [ar.rationals(lo_q[ids, k] - m_q[k], hi_q[ids, k] - m_q[k]) for k in range(n)]
@@ -380,9 +451,11 @@ def cell_facts(context, task, arithmetic):
     k = 0
     while len(ids):
         s = start[ids] + k
-        ok, kept, crossed, X_next, r_next, E, E_used = _step(
-            ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], task.m[s], task.A[s])
-        tube_boxes[s] = E_used
+        stored = (None, None) if task.m is None else (task.m[s], task.A[s])
+        out = _step(ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], *stored)
+        ok, kept, crossed, X_next, E = out.ok, out.kept, out.crossed, out.X_next, out.E
+        tube_boxes[s] = out.E_bounds
+        moved = [ar.put(a, s, b) for a, b in zip(moved, out.moved)]
         n_valid[ids[ok]] = k + 1
         unkept = ok & ~kept & (first_unkept[ids] < 0)
         first_unkept[ids[unkept]] = k
@@ -400,12 +473,12 @@ def cell_facts(context, task, arithmetic):
         keep = np.flatnonzero(go)
         X = [ar.take(x, keep) for x in X_next]
         X_bounds = ([ar.lower(x) for x in X], [ar.upper(x) for x in X])
-        r = [ar.take(x, keep) for x in r_next]
-        m, A = task.m[s[keep]], task.A[s[keep]]
+        r = [ar.take(x, keep) for x in out.r_next]
+        m, A = out.m_next[keep], out.A_next[keep]
         ids = ids[keep]
         k += 1
     if len(image_cells):
-        drift = _drift(ar, context, task, tube_boxes, image_cells)
+        drift = _drift(ar, context, task, tube_boxes, image_cells, moved)
         image = [ar.intersect(image[i], ar.add(ar.take(cell[i], image_cells), drift[i]))
                  for i in range(n)]
     first_unkept = np.where(first_unkept < 0, n_valid, first_unkept)
@@ -415,20 +488,29 @@ def cell_facts(context, task, arithmetic):
     return facts
 
 
-def _drift(ar, context, task, tube_boxes, cells):
+def _cell_midpoints(lo, hi):
+    """The floats nearest the midpoints of exact cells (object arrays of Fractions)."""
+    return np.array([[float((a + b) / 2) for a, b in zip(row_lo, row_hi)]
+                     for row_lo, row_hi in zip(lo, hi)], float).reshape(lo.shape)
+
+
+def _drift(ar, context, task, tube_boxes, cells, moved):
     """Per cell of `cells`, an enclosure of ``x(T) - x(0)``: the sum of ``h f(E)``.
 
     Each tube box ``E`` is first cut at the invariant faces where
-    :func:`_cut_at_invariant_faces` allows it.
+    :func:`_cut_at_invariant_faces` allows it; `moved` holds ``h f(E)`` of the steps'
+    own boxes (:class:`StepOutcome`), recomputed here only for the boxes cut.
     """
     n = context.programs.n
     owner = np.repeat(np.arange(len(task.cells)), task.n_steps)
     E = _cut_at_invariant_faces(context, tube_boxes, owner, len(task.cells))
-    box = [ar.box(E[:, k, 0], E[:, k, 1]) for k in range(n)]
-    params = _params(ar, context)
-    f = _joined(ar, context.programs.field, ar.cover(box, ar.pieces.tube), params)
-    hh = ar.exact(task.h)
-    moved = [ar.mul(hh, f[i]) for i in range(n)]
+    cut = np.flatnonzero(np.any(E != tube_boxes, axis=(1, 2)))
+    if len(cut):
+        box = [ar.box(E[cut, k, 0], E[cut, k, 1]) for k in range(n)]
+        f = _joined(ar, context.programs.field, ar.cover(box, ar.pieces.tube),
+                    _params(ar, context))
+        hh = ar.exact(task.h[cut])
+        moved = [ar.put(moved[i], cut, ar.mul(hh, f[i])) for i in range(n)]
     start = np.concatenate([[0], np.cumsum(task.n_steps)]).astype(int)
     steps = task.n_steps[cells]
     drift = [ar.exact(np.zeros(len(cells))) for _ in range(n)]

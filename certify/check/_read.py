@@ -92,6 +92,7 @@ class CertificateData:
     E: np.ndarray
     m: np.ndarray
     A: np.ndarray
+    version: int = 3
     claim: object = None
     regions: list = None
     trapped: np.ndarray = None
@@ -188,17 +189,21 @@ def _parse(path, data):
     _check_offsets(rd, "cells.successor_start", succ_start, len(succ))
     if np.any(succ < 0) or np.any(succ >= L):
         rd.fail("cells.successors", "a successor is not a leaf number")
-    set0_m = arr("set0_m", "f", (L, n))
-    arr("set0_r", "f", (L, n, 2))
+    version = data["version"]
     step_start = arr("step_start", "i", (L + 1,))
     h = arr("step_h", "f", (None,))
     S = len(h)
     _check_offsets(rd, "cells.step_start", step_start, S)
     E = arr("step_E", "f", (S, n, 2))
-    m = arr("step_m", "f", (S, n))
-    A = arr("step_A", "f", (S, n, n))
-    for key, a in (("step_h", h), ("step_E", E), ("step_m", m), ("step_A", A),
-                   ("set0_m", set0_m)):
+    stored = {"step_h": h, "step_E": E}
+    set0_m = m = A = None
+    if version == 2:
+        # version 2 also stores the start points and every step's frame (m, A)
+        set0_m = stored["set0_m"] = arr("set0_m", "f", (L, n))
+        arr("set0_r", "f", (L, n, 2))
+        m = stored["step_m"] = arr("step_m", "f", (S, n))
+        A = stored["step_A"] = arr("step_A", "f", (S, n, n))
+    for key, a in stored.items():
         if not np.all(np.isfinite(a)):
             rd.fail(f"cells.{key}", "holds a value that is not a finite number")
     if np.any(h <= 0):
@@ -214,6 +219,7 @@ def _parse(path, data):
                         crossing_upper=crossing, survival_lower=survival, horizon=horizon,
                         image_known=np.array(known, bool), succ_start=succ_start, succ=succ,
                         set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A,
+                        version=version,
                          claim=data.get("claim"), regions=regions, trapped=trapped,
                          trapped_whole=whole)
 

@@ -179,8 +179,8 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
     ``seconds``. A certificate speaks about the model, not the plant.
     """
     start = time.monotonic()
-    names, ranges = _check_vary(model, vary)
-    _check_options(max_depth, time_limit_each, executor, scheduler, workers)
+    names, ranges = check_vary(model, vary)
+    check_options(max_depth, time_limit_each, executor, scheduler, workers)
     boxes = _boxes(names, ranges)
     settings = _settings(model, names, ranges, max_depth, time_limit_each, keep_certificates)
     out = Path(out) if out is not None else default_sweep_dir(model)
@@ -196,11 +196,11 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
                  len(done), len(boxes))
     except KeyboardInterrupt:
         status = 1
-    entries = tuple(_read_json(path) for path in
+    entries = tuple(read_json(path) for path in
                     (out / "boxes" / f"{box.key}.json" for box in boxes) if path.is_file())
     if status == 0:
         data = _sweep_data(model, names, settings, entries)
-        _write_json(out / "sweep.json", data)
+        write_json(out / "sweep.json", data)
         from certify.sweep_plots import plot_sweep
 
         plot_sweep(data, out / "sweep.png")
@@ -212,7 +212,8 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
 # ------------------------------------------------------------------------- validation
 
 
-def _check_vary(model, vary):
+def check_vary(model, vary):
+    """Check ``{NAME: (lo, hi, n)}``; return ``(names, ((lo, hi, n), ...))`` with Fractions."""
     if not isinstance(vary, dict):
         raise UsageError(f"vary must be a dict {{NAME: (lo, hi, n)}}, got {type(vary).__name__}")
     if not vary:
@@ -248,7 +249,8 @@ def _check_vary(model, vary):
     return tuple(names), tuple(ranges)
 
 
-def _check_options(max_depth, time_limit_each, executor, scheduler, workers):
+def check_options(max_depth, time_limit_each, executor, scheduler, workers):
+    """Check the budget and executor options of a sweep; raise UsageError naming the option."""
     from certify.model import SETTINGS
 
     rule = SETTINGS["max_depth"]  # the range [settings] accepts
@@ -301,7 +303,7 @@ def _claim_folder(out, settings):
     path = out / _SETTINGS_FILE
     if path.is_file():
         try:
-            found = _read_json(path)
+            found = read_json(path)
         except (OSError, ValueError) as exc:
             raise UsageError(f"{path}: cannot read the settings of the sweep there ({exc})") from None
         if found != settings:
@@ -313,7 +315,7 @@ def _claim_folder(out, settings):
     if (out / "boxes").exists():
         raise UsageError(f"{out}: has a boxes/ folder but no {_SETTINGS_FILE}; "
                          "choose another --out folder or delete that one")
-    _write_json(path, settings)
+    write_json(path, settings)
 
 
 # -------------------------------------------------------------------------- execution
@@ -549,7 +551,7 @@ def _save_box(out, box, answer):
                          for name, (lo, hi) in box.bounds.items()},
         **answer["result"],
     }
-    _write_json(folder / f"{box.key}.json", entry)
+    write_json(folder / f"{box.key}.json", entry)
 
 
 # ------------------------------------------------------------------------------ files
@@ -571,11 +573,13 @@ def _sweep_data(model, names, settings, entries):
     }
 
 
-def _read_json(path):
+def read_json(path):
+    """The JSON data of a file."""
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
-def _write_json(path, data):
+def write_json(path, data):
+    """Write JSON data to a file atomically (indented, one trailing newline)."""
     write_atomic(path, (json.dumps(data, indent=1) + "\n").encode("utf-8"))
 
 

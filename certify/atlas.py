@@ -169,14 +169,15 @@ def _claim_folder(out, settings):
     write_json(path, settings)
 
 
-def _task(model, box, ranges, settings):
+def _task(model, box, ranges, settings, top):
     from certify.certificate import fraction_text
 
     parameters = dict(settings["parameters"])
     for name, (lo, hi) in box.bounds(ranges).items():
         parameters[name] = [fraction_text(lo), fraction_text(hi)]
     return (model.text, model.path, parameters, settings["max_depth"],
-            settings["time_limit_each"], settings["map"], settings["fractions"])
+            settings["time_limit_each"], settings["map"], settings["fractions"],
+            max(box.levels) >= top)
 
 
 def _entry(box, ranges, answer):
@@ -249,7 +250,7 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
     try:
         with Runner(executor, scheduler, workers) as runner:
             while todo:
-                done, n_new, stopped = _level(model, todo, ranges, settings, runner, out,
+                done, n_new, stopped = _level(model, todo, ranges, settings, top, runner, out,
                                               progress, started, time_budget)
                 n_analysed += n_new
                 leaves.update(done)
@@ -281,7 +282,7 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
     return result
 
 
-def _level(model, todo, ranges, settings, runner, out, progress, started, time_budget):
+def _level(model, todo, ranges, settings, top, runner, out, progress, started, time_budget):
     """Analyse the boxes of one level; reuse the ones already in the folder."""
     from certify.sweep import read_json, write_json
 
@@ -292,7 +293,7 @@ def _level(model, todo, ranges, settings, runner, out, progress, started, time_b
         if path.is_file():
             done[box.key] = read_json(path)
         else:
-            tasks[box.key] = _task(model, box, ranges, settings)
+            tasks[box.key] = _task(model, box, ranges, settings, top)
             by_key[box.key] = box
     if progress is not None:
         progress(len(done), len(todo))

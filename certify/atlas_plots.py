@@ -80,7 +80,7 @@ def plot_atlas(data, path):
     for hatch, pick in ((MULTISTABLE_HATCH, lambda s: s["stable"] >= 2 and not s["changes"]),
                         (CHANGES_HATCH, lambda s: s["changes"])):
         patches = [Rectangle(r[:2], r[2], r[3]) for r, e in zip(rects, boxes)
-                   if pick(e["structure"])]
+                   if e["structure"] is not None and pick(e["structure"])]
         ax.add_collection(PatchCollection(patches, facecolor="none", edgecolor=INK,
                                           hatch=hatch, linewidth=0))
     (xlo, xhi) = (float(v) for v in _range(data, names[0]))
@@ -88,7 +88,7 @@ def plot_atlas(data, path):
     for r, e in zip(rects, boxes):
         big = r[2] >= _TEXT_SHARE * (xhi - xlo) * 0.999 and (not two or
                                                               r[3] >= _TEXT_SHARE * (yhi - ylo) * 0.999)
-        if big and not e["structure"]["changes"]:
+        if big and e["structure"] is not None and not e["structure"]["changes"]:
             ax.text(r[0] + r[2] / 2, r[1] + r[3] / 2, str(e["structure"]["stable_inside"]),
                     ha="center", va="center", fontsize=8, color=INK,
                     bbox={"facecolor": "white", "edgecolor": "none", "pad": 0.8, "alpha": 0.8})

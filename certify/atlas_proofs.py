@@ -38,9 +38,11 @@ VERDICTS = ("safe", "none", "undetermined")
 #: fails here is split, and its halves are easier).
 REGION_DEPTH = 12
 REGION_BOXES = 40_000
+#: Depth of the equilibrium search of each box (the structure drawn in the atlas).
+EQUILIBRIUM_DEPTH = 8
 #: Budget of the cover of the window in the limit-rate test.
-RATE_DEPTH = 24
-RATE_BOXES = 200_000
+RATE_DEPTH = 16
+RATE_BOXES = 20_000
 
 
 def equilibrium_structure(result):
@@ -81,37 +83,77 @@ def _window_in_limits(model, point):
     return all(lo <= Fraction(x) <= hi for x, (lo, hi) in zip(point, model.window))
 
 
-def safe_by_region(model, equilibria):
+def _resting_points(model, programs, mid):
+    """Float estimates of equilibria at `mid` and whether one keeps every limit there."""
+    from certify.atlas_regions import float_equilibria
+
+    points = float_equilibria(model, programs, mid)
+    inside = []
+    for point in points:
+        inputs = np.concatenate([point, mid])
+        limits = programs.limits.point(inputs) if programs.limits.n_outputs else np.ones(1)
+        inside.append(bool(np.all(limits > 0)))
+    return points, inside
+
+
+def safe_by_region(model):
     """A trapping region proving that a safe state exists, or None.
+
+    Around each float estimate of a stable equilibrium inside the limits at the
+    parameter midpoint (:func:`certify.atlas_regions.float_equilibria`), a parallelotope
+    along the eigenvectors (:func:`certify.atlas_regions.find_box_region`, for real
+    eigenvalues); where some such equilibrium is a spiral, also the quadratic Lyapunov
+    regions of :func:`certify.trapping.find_regions`. Soundness rests on the region's own
+    proof only: the estimates just say where to look.
 
     Parameters
     ----------
     model : certify.model.Model
         With the parameter box as intervals.
-    equilibria : certify.points.EquilibriumResult
-        Of `model`.
 
     Returns
     -------
-    certify.trapping.Region or None
+    region : certify.atlas_regions.BoxRegion or certify.trapping.Region or None
         A region proven forward invariant and inside the limits for every parameter
         value, whose centre lies in the window.
+    resting : bool
+        Some float estimate of an equilibrium keeps every limit at the midpoint (then
+        the limit-rate test cannot succeed and is skipped).
     """
+    from certify.atlas_regions import find_box_region
     from certify.evaluate import parameter_enclosures
     from certify.taylor import flow_programs
     from certify.trapping import find_regions
 
-    if model.uses_kinks or not any(p.stability == "stable" and p.limits == "inside"
-                                   for p in equilibria.equilibria):
-        return None
+    if model.uses_kinks:
+        return None, False
     programs = flow_programs(model, 2)
-    search = find_regions(model, programs, parameter_enclosures(model),
-                          max_depth=REGION_DEPTH, max_boxes=REGION_BOXES,
-                          equilibria=equilibria)
+    params = parameter_enclosures(model)
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    rng = np.random.default_rng(20261204)
+    spirals = False
+    with np.errstate(all="ignore"):
+        points, inside = _resting_points(model, programs, mid)
+        for point, keeps in zip(points, inside):
+            n = len(point)
+            values = np.linalg.eigvals(
+                programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n))
+            if np.any(values.real >= 0) or not keeps:
+                continue
+            if np.any(values.imag != 0):
+                spirals = True
+                continue
+            region = find_box_region(model, programs, params, point, rng)
+            if region is not None and _window_in_limits(model, region.centre):
+                return region, True
+        if not spirals:
+            return None, any(inside)
+        search = find_regions(model, programs, params, max_depth=REGION_DEPTH,
+                              max_boxes=REGION_BOXES)
     for region in search.regions:
         if _window_in_limits(model, region.centre):
-            return region
-    return None
+            return region, True
+    return None, any(inside)
 
 
 def _rate_cover(programs, params, lo, hi, k):
@@ -201,14 +243,29 @@ def _map_facts(model, max_depth, time_limit):
 
 
 def _region_record(region):
+    """What proves a ``safe`` box: the region's exact numbers."""
+    from certify.atlas_regions import BoxRegion
+    from certify.certificate import fraction_text
+
+    def texts(values):
+        return [fraction_text(Fraction(float(v))) for v in values]
+
+    if isinstance(region, BoxRegion):
+        return {"region": "parallelotope {centre + frame u : |u_i| <= radii_i}",
+                "centre": texts(region.centre),
+                "frame": [texts(row) for row in region.frame],
+                "radii": texts(region.radii), "pieces": int(region.pieces)}
     centre, matrix, level, box = region.exact()
-    return {"centre": [str(x) for x in centre], "matrix": [[str(x) for x in row] for row in matrix],
-            "level": str(level), "box": [[str(a), str(b)] for a, b in box],
-            "cover_boxes": int(len(region.cover_class))}
+    return {"region": "ellipsoid {x in box : (x - centre)^T matrix (x - centre) <= level}",
+            "centre": [fraction_text(x) for x in centre],
+            "matrix": [[fraction_text(x) for x in row] for row in matrix],
+            "level": fraction_text(level), "box": [[fraction_text(a), fraction_text(b)]
+                                                   for a, b in box],
+            "pieces": int(len(region.cover_class))}
 
 
 def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_limit, use_map,
-                          fractions):
+                          fractions, finest):
     """The verdict of one parameter box (the worker of an atlas).
 
     Takes and returns plain data only, so that it runs in any process or on any machine
@@ -223,17 +280,21 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
     max_depth, time_limit : int or None, float or None
         Budget of the map of fates, when one is run.
     use_map : bool
-        Run the map of fates where the cheap tests do not decide.
+        Run the map of fates where the cheap tests do not decide a box at the finest
+        level.
     fractions : bool
         Also run the map for the safe-fraction bounds, whatever the verdict.
+    finest : bool
+        The box is at the resolution: it will not be split.
 
     Returns
     -------
     dict
         ``verdict`` (one of :data:`VERDICTS`), ``by`` (``"trapping region"``,
         ``"limit rate"``, ``"map"`` or None), ``proof`` (what proves it), ``structure``
-        (:func:`equilibrium_structure`), ``seconds`` and, with a map, ``safe_bounds``
-        and ``fractions``.
+        (:func:`equilibrium_structure`; None for an undetermined box above the finest
+        level, which is split), ``seconds`` and, with a map, ``safe_bounds`` and
+        ``fractions``.
     """
     from certify.points import find_equilibria
     from certify.sweep import parsed_model
@@ -241,25 +302,30 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
     started = time.monotonic()
     model = parsed_model(model_text, model_path).with_parameters(
         {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
-    with np.errstate(all="ignore"):
-        equilibria = find_equilibria(model)
-    out = {"verdict": "undetermined", "by": None, "proof": None,
-           "structure": equilibrium_structure(equilibria)}
-    region = safe_by_region(model, equilibria)
+    out = {"verdict": "undetermined", "by": None, "proof": None, "structure": None}
+    region, resting = safe_by_region(model)
     if region is not None:
         out.update(verdict="safe", by="trapping region", proof=_region_record(region))
-    else:
+    elif not resting:
         rate = none_by_limit_rate(model)
         if rate is not None:
             out.update(verdict="none", by="limit rate", proof=rate)
-    if fractions or (use_map and out["verdict"] == "undetermined"):
-        facts = _map_facts(model, max_depth, time_limit)
-        out["safe_bounds"] = facts["safe_bounds"]
-        out["fractions"] = facts["fractions"]
-        if out["verdict"] == "undetermined" and (facts["no_safe_state"]
-                                                 or facts["safe_state_exists"]):
-            out.update(verdict="none" if facts["no_safe_state"] else "safe", by="map",
-                       proof={"cells": facts["cells"], "depth_reached": facts["depth_reached"],
-                              "stop_reason": facts["stop_reason"]})
+    if out["verdict"] != "undetermined" or finest or fractions:
+        with np.errstate(all="ignore"):
+            equilibria = find_equilibria(model, max_depth=EQUILIBRIUM_DEPTH)
+        out["structure"] = equilibrium_structure(equilibria)
+        # an equilibrium inside the limits is itself a safe state: no map can show "none"
+        resting = resting or any(p.limits == "inside" for p in equilibria.equilibria)
+        if fractions or (use_map and finest and out["verdict"] == "undetermined"
+                         and not resting):
+            facts = _map_facts(model, max_depth, time_limit)
+            out["safe_bounds"] = facts["safe_bounds"]
+            out["fractions"] = facts["fractions"]
+            if out["verdict"] == "undetermined" and (facts["no_safe_state"]
+                                                     or facts["safe_state_exists"]):
+                out.update(verdict="none" if facts["no_safe_state"] else "safe", by="map",
+                           proof={"cells": facts["cells"],
+                                  "depth_reached": facts["depth_reached"],
+                                  "stop_reason": facts["stop_reason"]})
     out["seconds"] = round(time.monotonic() - started, 3)
     return out

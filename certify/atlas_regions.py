@@ -350,9 +350,11 @@ def find_box_region(model, programs, params, point, rng):
     sensitivity = None
     if positions and not model.uses_kinks:
         sensitivity = (_programs(model).param_jacobian, positions)
-    floor = 2.0 ** -20
+    # a direction the equilibrium does not move along still needs room for the
+    # overestimation of interval arithmetic
+    moved = moved + 0.25 * np.max(moved) + 2.0 ** -20
     for factor in FACTORS:
-        radii = _binary(factor * moved + floor, 20)
+        radii = _binary(factor * moved, 20)
         region = prove_box_region(programs, params, centre, frame, radii,
                                   sensitivity=sensitivity)
         if region is not None:

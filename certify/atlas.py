@@ -134,7 +134,8 @@ def _check_vary(model, vary, resolution, start):
     return names, tuple((name, lo, hi) for name, (lo, hi, _) in zip(names, ranges)), top, first
 
 
-def _settings(model, ranges, resolution, start, use_map, max_depth, time_limit_each, fractions):
+def _settings(model, ranges, resolution, start, use_map, structure, max_depth, time_limit_each,
+              fractions):
     from certify.certificate import fraction_text
 
     return {
@@ -146,6 +147,7 @@ def _settings(model, ranges, resolution, start, use_map, max_depth, time_limit_e
         "resolution": resolution,
         "start": start,
         "map": bool(use_map),
+        "structure": bool(structure),
         "max_depth": max_depth,
         "time_limit_each": None if time_limit_each is None else float(time_limit_each),
         "fractions": bool(fractions),
@@ -177,7 +179,7 @@ def _task(model, box, ranges, settings, top):
         parameters[name] = [fraction_text(lo), fraction_text(hi)]
     return (model.text, model.path, parameters, settings["max_depth"],
             settings["time_limit_each"], settings["map"], settings["fractions"],
-            max(box.levels) >= top)
+            max(box.levels) >= top, settings["structure"])
 
 
 def _entry(box, ranges, answer):
@@ -192,7 +194,8 @@ def _entry(box, ranges, answer):
 
 
 def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True,
-          max_depth=None, time_limit_each=None, fractions=False, executor="local",
+          structure=True, max_depth=None, time_limit_each=None, fractions=False,
+          executor="local",
           scheduler=None, workers=None, out=None, progress=None):
     """Prove where in a parameter rectangle a safe state exists and where none does.
 
@@ -208,7 +211,10 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
     time_budget : float, optional
         Seconds after which no box is split any more (the boxes running then finish).
     use_map : bool
-        Prove a map of fates where the cheap tests do not decide a box.
+        Prove a map of fates where the cheap tests do not decide a box at the finest
+        level (unless an equilibrium inside the limits shows that a safe state exists).
+    structure : bool
+        Prove the equilibrium structure of every leaf (the costliest part of wide boxes).
     max_depth, time_limit_each : int or float, optional
         Budget of each such map (as in :func:`certify.sweep.sweep`).
     fractions : bool
@@ -239,8 +245,8 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
     if time_budget is not None and not (isinstance(time_budget, (int, float))
                                         and 0 < time_budget < float("inf")):
         raise UsageError("time_budget (--time-budget) must be a positive number of seconds")
-    settings = _settings(model, ranges, resolution, start, use_map, max_depth, time_limit_each,
-                         fractions)
+    settings = _settings(model, ranges, resolution, start, use_map, structure, max_depth,
+                         time_limit_each, fractions)
     out = Path(out) if out is not None else default_atlas_dir(model)
     _claim_folder(out, settings)
     roots = [_Box((first,) * len(names), index)

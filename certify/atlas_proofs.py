@@ -265,7 +265,7 @@ def _region_record(region):
 
 
 def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_limit, use_map,
-                          fractions, finest):
+                          fractions, finest, structure=True):
     """The verdict of one parameter box (the worker of an atlas).
 
     Takes and returns plain data only, so that it runs in any process or on any machine
@@ -286,6 +286,9 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
         Also run the map for the safe-fraction bounds, whatever the verdict.
     finest : bool
         The box is at the resolution: it will not be split.
+    structure : bool
+        Prove the equilibrium structure of a box that will not be split (the costliest
+        part for wide boxes).
 
     Returns
     -------
@@ -310,22 +313,20 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
         rate = none_by_limit_rate(model)
         if rate is not None:
             out.update(verdict="none", by="limit rate", proof=rate)
-    if out["verdict"] != "undetermined" or finest or fractions:
+    if structure and (out["verdict"] != "undetermined" or finest):
         with np.errstate(all="ignore"):
             equilibria = find_equilibria(model, max_depth=EQUILIBRIUM_DEPTH)
         out["structure"] = equilibrium_structure(equilibria)
         # an equilibrium inside the limits is itself a safe state: no map can show "none"
         resting = resting or any(p.limits == "inside" for p in equilibria.equilibria)
-        if fractions or (use_map and finest and out["verdict"] == "undetermined"
-                         and not resting):
-            facts = _map_facts(model, max_depth, time_limit)
-            out["safe_bounds"] = facts["safe_bounds"]
-            out["fractions"] = facts["fractions"]
-            if out["verdict"] == "undetermined" and (facts["no_safe_state"]
-                                                     or facts["safe_state_exists"]):
-                out.update(verdict="none" if facts["no_safe_state"] else "safe", by="map",
-                           proof={"cells": facts["cells"],
-                                  "depth_reached": facts["depth_reached"],
-                                  "stop_reason": facts["stop_reason"]})
+    if fractions or (use_map and finest and out["verdict"] == "undetermined" and not resting):
+        facts = _map_facts(model, max_depth, time_limit)
+        out["safe_bounds"] = facts["safe_bounds"]
+        out["fractions"] = facts["fractions"]
+        if out["verdict"] == "undetermined" and (facts["no_safe_state"]
+                                                 or facts["safe_state_exists"]):
+            out.update(verdict="none" if facts["no_safe_state"] else "safe", by="map",
+                       proof={"cells": facts["cells"], "depth_reached": facts["depth_reached"],
+                              "stop_reason": facts["stop_reason"]})
     out["seconds"] = round(time.monotonic() - started, 3)
     return out

@@ -53,6 +53,9 @@ def add_arguments(parser):
                        help="split no box after S seconds (default: none)")
     atlas.add_argument("--fractions", action="store_true",
                        help="also prove each box's map for its safe-fraction bounds")
+    atlas.add_argument("--no-structure", action="store_true",
+                       help="do not prove the equilibrium structure of each box (faster; "
+                            "the picture then shows the verdicts only)")
     atlas.add_argument("--no-map", action="store_true",
                        help="only the cheap tests (equilibria, trapping regions, limit rates); "
                             "no map of fates where they do not decide")
@@ -256,6 +259,7 @@ def _run_atlas(args, model, vary):
     try:
         result = atlas(model, vary, resolution=args.resolution, start=args.start,
                        time_budget=args.time_budget, use_map=not args.no_map,
+                       structure=not args.no_structure,
                        max_depth=args.max_depth, time_limit_each=args.time_limit_each,
                        fractions=args.fractions, executor=args.executor,
                        scheduler=args.scheduler, workers=args.workers, out=out,

@@ -17,6 +17,7 @@ Run ``python benchmarks/atlas_bench.py --help`` for the options.
 """
 
 import argparse
+import dataclasses
 import datetime
 import os
 import platform
@@ -44,9 +45,14 @@ def run_atlas(resolution, workers, budget, out):
     from certify.atlas import atlas
     from certify.model import load_model
 
+    model = load_model(FERMENTER)
+    # the model file gives no units; name them for the picture's axes
+    units = {"D": "1/h", "s_in": "g/L"}
+    model = dataclasses.replace(model, parameters=tuple(
+        dataclasses.replace(p, unit=units.get(p.name, p.unit)) for p in model.parameters))
     load = os.getloadavg()[0]
     start = time.perf_counter()
-    result = atlas(load_model(FERMENTER), RECTANGLE, resolution=resolution, start=4,
+    result = atlas(model, RECTANGLE, resolution=resolution, start=4,
                    time_budget=budget, use_map=False, workers=workers, out=out)
     return result, time.perf_counter() - start, load
 

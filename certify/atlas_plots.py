@@ -1,10 +1,10 @@
 """The atlas picture (matplotlib is imported inside the functions).
 
 The parameter plane (or line) coloured by proven verdict, with the proven equilibrium
-structure over it: hatching where there are two or more stable equilibria, dots where
-the structure changes inside the box (a fold or an exchange of stability runs through
-it), and in boxes large enough to hold it the number of stable equilibria inside the
-limits. Colours and hatches come from :mod:`certify.palette`; the legend sits below.
+structure over it: hatching where two or more stable equilibria are proven, dots where
+the equilibria are not all resolved (every box through which a fold or an exchange of
+stability runs is such a box: equilibria that meet cannot be isolated), and in boxes
+large enough to hold it the number of stable equilibria inside the limits. Colours and hatches come from :mod:`certify.palette`; the legend sits below.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ _TEXT_SHARE = 1 / 16
 
 def _axis_label(data, name):
     unit = data["units"].get(name)
-    return f"{name} [{unit}]" if unit else name
+    return f"{name} [{unit}]" if unit else f"{name} (the model gives no unit)"
 
 
 def _rectangles(data):
@@ -34,18 +34,19 @@ def _rectangles(data):
     return out
 
 
-def _legend(ax):
+def _legend(ax, structure):
     from matplotlib.patches import Patch
 
     handles = [Patch(facecolor=VERDICT_COLOURS[v], edgecolor=INK, linewidth=0.5,
                      label=VERDICT_LABELS[v]) for v in VERDICT_COLOURS]
-    handles += [Patch(facecolor="white", edgecolor=INK, hatch=MULTISTABLE_HATCH, linewidth=0.5,
-                      label="two or more stable equilibria (proven)"),
-                Patch(facecolor="white", edgecolor=INK, hatch=CHANGES_HATCH, linewidth=0.5,
-                      label="equilibrium structure changes in the box (fold or exchange of "
-                            "stability)"),
-                Patch(facecolor="white", edgecolor="white",
-                      label="digit: stable equilibria inside the limits")]
+    if structure:
+        handles += [Patch(facecolor="white", edgecolor=INK, hatch=MULTISTABLE_HATCH,
+                          linewidth=0.5, label="two or more stable equilibria (proven)"),
+                    Patch(facecolor="white", edgecolor=INK, hatch=CHANGES_HATCH,
+                          linewidth=0.5, label="equilibria not all resolved (holds every "
+                                               "fold and exchange of stability)"),
+                    Patch(facecolor="white", edgecolor="white",
+                          label="digit: stable equilibria inside the limits (\u2265: at least)")]
     ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.13), ncol=2,
               fontsize=8, frameon=False)
 
@@ -77,7 +78,7 @@ def plot_atlas(data, path):
                    if e["verdict"] == verdict]
         ax.add_collection(PatchCollection(patches, facecolor=colour, edgecolor="white",
                                           linewidth=0.2))
-    for hatch, pick in ((MULTISTABLE_HATCH, lambda s: s["stable"] >= 2 and not s["changes"]),
+    for hatch, pick in ((MULTISTABLE_HATCH, lambda s: s["stable"] >= 2),
                         (CHANGES_HATCH, lambda s: s["changes"])):
         patches = [Rectangle(r[:2], r[2], r[3]) for r, e in zip(rects, boxes)
                    if e["structure"] is not None and pick(e["structure"])]
@@ -88,8 +89,10 @@ def plot_atlas(data, path):
     for r, e in zip(rects, boxes):
         big = r[2] >= _TEXT_SHARE * (xhi - xlo) * 0.999 and (not two or
                                                               r[3] >= _TEXT_SHARE * (yhi - ylo) * 0.999)
-        if big and e["structure"] is not None and not e["structure"]["changes"]:
-            ax.text(r[0] + r[2] / 2, r[1] + r[3] / 2, str(e["structure"]["stable_inside"]),
+        if big and e["structure"] is not None:
+            count = e["structure"]["stable_inside"]
+            text = f"\u2265{count}" if e["structure"]["changes"] else str(count)
+            ax.text(r[0] + r[2] / 2, r[1] + r[3] / 2, text,
                     ha="center", va="center", fontsize=8, color=INK,
                     bbox={"facecolor": "white", "edgecolor": "none", "pad": 0.8, "alpha": 0.8})
     ax.set_xlim(xlo, xhi)
@@ -103,7 +106,7 @@ def plot_atlas(data, path):
                        for v in VERDICT_COLOURS)
     ax.set_title(f"{data['model']}: proven atlas of {' and '.join(names)}\n({shares} of the "
                  "area)", fontsize=10)
-    _legend(ax)
+    _legend(ax, any(e["structure"] is not None for e in boxes))
     fig.savefig(path, dpi=110, bbox_inches="tight")
     plt.close(fig)
 

@@ -79,7 +79,7 @@ def equilibrium_structure(result):
             "changes": bool(changes)}
 
 
-def _window_in_limits(model, point):
+def _in_window(model, point):
     return all(lo <= Fraction(x) <= hi for x, (lo, hi) in zip(point, model.window))
 
 
@@ -144,14 +144,14 @@ def safe_by_region(model):
                 spirals = True
                 continue
             region = find_box_region(model, programs, params, point, rng)
-            if region is not None and _window_in_limits(model, region.centre):
+            if region is not None and _in_window(model, region.centre):
                 return region, True
         if not spirals:
             return None, any(inside)
         search = find_regions(model, programs, params, max_depth=REGION_DEPTH,
                               max_boxes=REGION_BOXES)
     for region in search.regions:
-        if _window_in_limits(model, region.centre):
+        if _in_window(model, region.centre):
             return region, True
     return None, any(inside)
 

@@ -153,7 +153,9 @@ def _at_midpoint(programs, sensitivity, params, nlo, nhi, mlo, mhi):
         return out_lo, out_hi
     program, positions = sensitivity
     p0 = [0.5 * (a + b) for a, b in params]
-    mid = [(a, a) for a in p0]
+    # only the interval parameters move to their midpoint: the others keep their
+    # enclosures, which hold their exact values
+    mid = [(p0[k], p0[k]) if k in positions else tuple(params[k]) for k in range(len(params))]
     flo, fhi = evaluate_boxes(programs.field, mlo, mhi, mid)
     acc_lo, acc_hi = _dot(nlo, nhi, flo, fhi)
     dlo, dhi = evaluate_boxes(program, mlo, mhi, params)

@@ -242,3 +242,29 @@ def test_cli_refuses_box_count_with_adaptive(tmp_path):
                          capture_output=True, text=True)
     assert run.returncode == 2
     assert "NAME=LO:HI" in run.stderr and "Traceback" not in run.stderr
+
+
+LEAVING = """
+[model]
+name = "Leaves the window before it turns"
+[states]
+x = [0, 0.9]
+y = [0, 1]
+[equations]
+x = "1"
+y = "x - 1"
+[constraints]
+ground = "y >= 0"
+"""
+
+
+def test_limit_rate_needs_closed_window_faces():
+    # On the window dy/dt = x - 1 <= -0.1, yet y(t) = y0 - t + t^2/2 (from x0 = 0,
+    # closed form) never falls below y0 - 1/2: the start (0, 1) is safe. Its trajectory
+    # leaves the window through the open face x = 0.9, so the limit-rate test must not
+    # claim "none".
+    from certify.atlas_proofs import none_by_limit_rate
+
+    assert none_by_limit_rate(parse_model(LEAVING)) is None
+    t = np.linspace(0, 50, 5001)
+    assert np.min(1 - t + t ** 2 / 2) >= 0.5

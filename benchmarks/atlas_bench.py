@@ -10,8 +10,9 @@ the area classified is measured. In the same run, plain simulation answers the s
 question per parameter pixel: RK4 (`certify.simulate.simulate`) from a grid of starts
 inside the limits, "a safe state exists" when some start keeps the limits up to the
 horizon. The simulation is timed on every `stride`-th pixel per axis and scaled to all
-pixels. Writes the section "Parameter atlas" of ``benchmarks/results.md`` and, with
-``--figure``, copies the picture to ``docs/atlas-fermenter.png``.
+pixels. Writes the section "Parameter atlas" (with ``--no-structure``) or "Parameter
+atlas with structure" of ``benchmarks/results.md`` and, with ``--figure``, copies the
+picture to ``docs/atlas-fermenter.png``.
 
 Run ``python benchmarks/atlas_bench.py --help`` for the options.
 """
@@ -40,7 +41,7 @@ SECTION = "Parameter atlas"
 RECTANGLE = {"D": ("0.05", "0.35"), "s_in": ("3", "13")}
 
 
-def run_atlas(resolution, workers, budget, out):
+def run_atlas(resolution, workers, budget, out, structure=True):
     """The atlas of the rectangle; returns ``(result, seconds, load before)``."""
     from certify.atlas import atlas
     from certify.model import load_model
@@ -53,7 +54,8 @@ def run_atlas(resolution, workers, budget, out):
     load = os.getloadavg()[0]
     start = time.perf_counter()
     result = atlas(model, RECTANGLE, resolution=resolution, start=4,
-                   time_budget=budget, use_map=False, workers=workers, out=out)
+                   time_budget=budget, use_map=False, structure=structure, workers=workers,
+                   out=out)
     return result, time.perf_counter() - start, load
 
 
@@ -67,11 +69,14 @@ def _pixels(resolution, stride):
 def run_simulation(resolution, stride, starts, t_end, dt):
     """Simulated verdicts on every `stride`-th pixel; returns ``(verdicts, seconds)``."""
     from certify.model import load_model
+    from certify.program import compile_program
     from certify.simulate import simulate
-    from certify.taylor import flow_programs
 
     model = load_model(FERMENTER)
-    programs = flow_programs(model, 1)
+    # every parameter an input (the proof programs have the numbers built in)
+    inputs = tuple(model.state_symbols) + tuple(model.parameter_symbols)
+    field = compile_program(list(model.equations), inputs)
+    limits = compile_program([c.g for c in model.constraints], inputs)
     names = [p.name for p in model.parameters]
     base = [float(p.lo) for p in model.parameters]
     # starts strictly inside the limits s <= 9, 1 <= x <= 9
@@ -83,8 +88,8 @@ def run_simulation(resolution, stride, starts, t_end, dt):
     for D, s_in in _pixels(resolution, stride):
         params = list(base)
         params[names.index("D")], params[names.index("s_in")] = D, s_in
-        run = simulate(programs.field, x0, params, t_end, dt=dt, events=programs.limits)
-        verdicts[(D, s_in)] = "safe" if np.any(~run.crossed) else "none"
+        run = simulate(field, x0, params, t_end, dt=dt, events=limits)
+        verdicts[(D, s_in)] = "safe" if np.any(~run.crossed & run.finite) else "none"
     return verdicts, time.perf_counter() - start
 
 
@@ -113,14 +118,15 @@ def section_text(args, result, seconds, load, sim, sim_seconds, commit):
         by[key] = by.get(key, 0) + 1
     classified = result.areas["safe"] + result.areas["none"]
     lines = [
-        f"## {SECTION}",
+        f"## {_section(args)}",
         "",
         f"`benchmarks/atlas_bench.py`: `certify sweep --adaptive` on the demo fermenter over "
         f"D in [{RECTANGLE['D'][0]}, {RECTANGLE['D'][1]}] 1/h and s_in in "
         f"[{RECTANGLE['s_in'][0]}, {RECTANGLE['s_in'][1]}] g/L, resolution 1/{args.resolution} "
         f"of each range, starting grid 4 x 4, {args.workers} local workers, time budget "
-        f"{args.budget:.0f} s, no maps (the cheap tests only), equilibrium structure proven "
-        "for every leaf.",
+        f"{args.budget:.0f} s, no maps (the cheap tests only), "
+        + ("no equilibrium structure (`--no-structure`)." if args.no_structure
+           else "equilibrium structure proven for every leaf."),
         "",
         f"- machine: {_cpu_name()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
         f"{platform.system()}; load average {load:.1f} before the run (shared machine)",
@@ -153,6 +159,10 @@ def section_text(args, result, seconds, load, sim, sim_seconds, commit):
     return "\n".join(lines)
 
 
+def _section(args):
+    return SECTION if args.no_structure else f"{SECTION} with structure"
+
+
 def main(argv=None):
     """Run the benchmark and write its section of ``benchmarks/results.md``.
 
@@ -172,20 +182,26 @@ def main(argv=None):
     parser.add_argument("--horizon", type=float, default=200.0, help="hours (default 200)")
     parser.add_argument("--dt", type=float, default=0.15,
                         help="RK4 step in hours (default 0.15)")
+    parser.add_argument("--no-structure", action="store_true",
+                        help="verdicts only (the structure proofs cost most of the time)")
+    parser.add_argument("--keep", metavar="DIR",
+                        help="write the atlas folder to DIR (a new folder) and keep it")
     parser.add_argument("--figure", action="store_true",
                         help=f"copy atlas.png to {FIGURE.relative_to(ROOT)}")
     args = parser.parse_args(argv)
     commit = _commit()
     with tempfile.TemporaryDirectory(prefix="certify-atlas-bench-") as tmp:
-        result, seconds, load = run_atlas(args.resolution, args.workers, args.budget,
-                                          Path(tmp) / "atlas")
+        out = Path(args.keep) if args.keep else Path(tmp) / "atlas"
+        result, seconds, load = run_atlas(args.resolution, args.workers, args.budget, out,
+                                          not args.no_structure)
         print(f"atlas: {seconds:.1f} s, {result.areas}", file=sys.stderr)
         if args.figure:
             shutil.copyfile(result.out / "atlas.png", FIGURE)
     sim, sim_seconds = run_simulation(args.resolution, args.stride, args.starts, args.horizon,
                                       args.dt)
-    write_section(SECTION, section_text(args, result, seconds, load, sim, sim_seconds, commit))
-    print(f"wrote the section '{SECTION}' of benchmarks/results.md", file=sys.stderr)
+    write_section(_section(args), section_text(args, result, seconds, load, sim, sim_seconds,
+                                               commit))
+    print(f"wrote the section '{_section(args)}' of benchmarks/results.md", file=sys.stderr)
     return 0
 
 

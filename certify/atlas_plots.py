@@ -43,8 +43,8 @@ def _legend(ax, structure):
         handles += [Patch(facecolor="white", edgecolor=INK, hatch=MULTISTABLE_HATCH,
                           linewidth=0.5, label="two or more stable equilibria (proven)"),
                     Patch(facecolor="white", edgecolor=INK, hatch=CHANGES_HATCH,
-                          linewidth=0.5, label="equilibria not all resolved (holds every "
-                                               "fold and exchange of stability)"),
+                          linewidth=0.5, label="structure not resolved or not uniform "
+                                               "(holds every fold and exchange of stability)"),
                     Patch(facecolor="white", edgecolor="white",
                           label="digit: stable equilibria inside the limits (\u2265: at least)")]
     ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.13), ncol=2,

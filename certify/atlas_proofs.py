@@ -41,8 +41,8 @@ REGION_BOXES = 40_000
 #: Depth of the equilibrium search of each box (the structure drawn in the atlas).
 EQUILIBRIUM_DEPTH = 8
 #: Budget of the cover of the window in the limit-rate test.
-RATE_DEPTH = 16
-RATE_BOXES = 20_000
+RATE_DEPTH = 24
+RATE_BOXES = 100_000
 
 
 def equilibrium_structure(result):

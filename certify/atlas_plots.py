@@ -4,7 +4,8 @@ The parameter plane (or line) coloured by proven verdict, with the proven equili
 structure over it: hatching where two or more stable equilibria are proven, dots where
 the equilibria are not all resolved (every box through which a fold or an exchange of
 stability runs is such a box: equilibria that meet cannot be isolated), and in boxes
-large enough to hold it the number of stable equilibria inside the limits. Colours and hatches come from :mod:`certify.palette`; the legend sits below.
+large enough to hold it the number of stable equilibria inside the limits. Colours and
+hatches come from :mod:`certify.palette`; the legend sits below.
 """
 
 from __future__ import annotations
@@ -84,11 +85,11 @@ def plot_atlas(data, path):
                    if e["structure"] is not None and pick(e["structure"])]
         ax.add_collection(PatchCollection(patches, facecolor="none", edgecolor=INK,
                                           hatch=hatch, linewidth=0))
-    (xlo, xhi) = (float(v) for v in _range(data, names[0]))
+    xlo, xhi = (float(v) for v in _range(data, names[0]))
     ylo, yhi = (float(v) for v in _range(data, names[1])) if two else (0.0, 1.0)
+    min_w, min_h = 0.999 * _TEXT_SHARE * (xhi - xlo), 0.999 * _TEXT_SHARE * (yhi - ylo)
     for r, e in zip(rects, boxes):
-        big = r[2] >= _TEXT_SHARE * (xhi - xlo) * 0.999 and (not two or
-                                                              r[3] >= _TEXT_SHARE * (yhi - ylo) * 0.999)
+        big = r[2] >= min_w and (not two or r[3] >= min_h)
         if big and e["structure"] is not None:
             count = e["structure"]["stable_inside"]
             text = f"\u2265{count}" if e["structure"]["changes"] else str(count)

@@ -268,3 +268,19 @@ def test_limit_rate_needs_closed_window_faces():
     assert none_by_limit_rate(parse_model(LEAVING)) is None
     t = np.linspace(0, 50, 5001)
     assert np.min(1 - t + t ** 2 / 2) >= 0.5
+
+
+def test_leaves_tile_the_range_and_a_rerun_reuses_them(tmp_path):
+    # the leaves partition the range exactly (exact rational ends, common practice for a
+    # binary tree); a rerun with the same folder analyses nothing again
+    model = parse_model(HARVEST)
+    first = _run(model, {"H": ("20", "180")}, tmp_path, 8)
+    ends = sorted((_ends(e, "H") for e in first.boxes))
+    assert ends[0][0] == 20 and ends[-1][1] == 180
+    assert all(a[1] == b[0] for a, b in zip(ends, ends[1:]))
+    assert sum(first.areas.values()) == pytest.approx(1.0)
+    again = _run(model, {"H": ("20", "180")}, tmp_path, 8)
+    assert again.n_analysed == 0
+    assert [e["verdict"] for e in again.boxes] == [e["verdict"] for e in first.boxes]
+    with pytest.raises(UsageError, match="other settings"):
+        _run(model, {"H": ("20", "180")}, tmp_path, 16)

@@ -9,7 +9,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import check_bench  # noqa: E402  (the folder above is not a package)
+import atlas_bench  # noqa: E402  (the folder above is not a package)
+import check_bench  # noqa: E402
 import dimensions_bench  # noqa: E402
 import flow_bench  # noqa: E402
 import library_bench  # noqa: E402
@@ -21,7 +22,8 @@ import sweep_bench  # noqa: E402
 def main():
     """Run the benchmarks in turn; return the largest exit code."""
     return max(bench.main([]) for bench in (flow_bench, prove_bench, check_bench, size_bench,
-                                            library_bench, sweep_bench, dimensions_bench))
+                                            library_bench, sweep_bench, dimensions_bench,
+                                            atlas_bench))
 
 
 if __name__ == "__main__":

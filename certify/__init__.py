@@ -12,6 +12,8 @@ from types import ModuleType
 from certify.errors import CertificateError, CertifyError, ModelError, UsageError
 
 _LAZY = {
+    "AtlasResult": "certify.atlas",
+    "atlas": "certify.atlas",
     "Certificate": "certify.certificate",
     "read_certificate": "certify.certificate",
     "CheckResult": "certify.check",
@@ -35,7 +37,8 @@ __all__ = sorted(["CertificateError", "CertifyError", "ModelError", "UsageError"
 
 
 class _Package(ModuleType):
-    """The package module, keeping ``certify.prove`` and ``certify.sweep`` the functions.
+    """The package module, keeping ``certify.prove``, ``certify.sweep`` and ``certify.atlas``
+    the functions.
 
     Importing a submodule sets the package attribute of the same name to the module;
     the functions of that name must win, as with an eager ``from .prove import prove``.

@@ -14,7 +14,8 @@ from __future__ import annotations
 
 __all__ = ["LABEL_COLOURS", "UNDECIDED_HATCH", "HATCH_COLOUR", "INK", "LIMIT_STYLES",
            "ARC_STYLES", "TRANSITION_COLOURS", "NO_SAFE_COLOUR", "doomed_colormap",
-           "time_colormap", "safe_share_colormap", "limit_style", "SETTING_COLOURS"]
+           "time_colormap", "safe_share_colormap", "limit_style", "SETTING_COLOURS",
+           "VERDICT_COLOURS", "VERDICT_LABELS", "MULTISTABLE_HATCH", "CHANGES_HATCH"]
 
 LABEL_COLOURS = {"safe": "#3a6ea5", "doomed": "#c9782f", "outside": "#a9a9a9",
                  "undecided": "#f1e7bd"}
@@ -50,6 +51,18 @@ SETTING_COLOURS = ("#1b4f8a", "#3a9fb5", "#8fd3c1", "#5b3f8c", "#a37cc4", "#2f7d
                    "#85b86b", "#d6d36a")
 #: Hatching colour of sweep boxes proven to hold no safe state.
 NO_SAFE_COLOUR = "#7a1e12"
+
+#: Fill of atlas boxes by proven verdict: safe states exist (the safe colour), no safe
+#: state (a mid tone of the doomed ramp), undetermined (the undecided straw).
+VERDICT_COLOURS = {"safe": LABEL_COLOURS["safe"], "none": "#d38a45",
+                   "undetermined": LABEL_COLOURS["undecided"]}
+VERDICT_LABELS = {"safe": "proven: a safe state exists", "none": "proven: no safe state",
+                  "undetermined": "undetermined"}
+#: Hatching (in ink) over atlas boxes with two or more stable equilibria, and dots over
+#: boxes where the proven equilibrium structure changes (a fold or an exchange of
+#: stability runs through the box).
+MULTISTABLE_HATCH = "//"
+CHANGES_HATCH = ".."
 
 _DOOMED_RAMP = ("#6e3208", "#a85a1c", "#d38a45", "#f2c58f")
 _TIME_RAMP = ("#fbf3d5", "#e3cb7e", "#ad9249", "#6e5a2b", "#3a2c17")

@@ -36,6 +36,7 @@ __all__ = [
     "MAX_BOXES",
     "MAX_VARIED",
     "MESSAGES",
+    "Runner",
     "SWEEP_FORMAT",
     "SweepResult",
     "analyse_box",
@@ -178,8 +179,8 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
     ``seconds``. A certificate speaks about the model, not the plant.
     """
     start = time.monotonic()
-    names, ranges = _check_vary(model, vary)
-    _check_options(max_depth, time_limit_each, executor, scheduler, workers)
+    names, ranges = check_vary(model, vary)
+    check_options(max_depth, time_limit_each, executor, scheduler, workers)
     boxes = _boxes(names, ranges)
     settings = _settings(model, names, ranges, max_depth, time_limit_each, keep_certificates)
     out = Path(out) if out is not None else default_sweep_dir(model)
@@ -195,11 +196,11 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
                  len(done), len(boxes))
     except KeyboardInterrupt:
         status = 1
-    entries = tuple(_read_json(path) for path in
+    entries = tuple(read_json(path) for path in
                     (out / "boxes" / f"{box.key}.json" for box in boxes) if path.is_file())
     if status == 0:
         data = _sweep_data(model, names, settings, entries)
-        _write_json(out / "sweep.json", data)
+        write_json(out / "sweep.json", data)
         from certify.sweep_plots import plot_sweep
 
         plot_sweep(data, out / "sweep.png")
@@ -211,7 +212,8 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
 # ------------------------------------------------------------------------- validation
 
 
-def _check_vary(model, vary):
+def check_vary(model, vary):
+    """Check ``{NAME: (lo, hi, n)}``; return ``(names, ((lo, hi, n), ...))`` with Fractions."""
     if not isinstance(vary, dict):
         raise UsageError(f"vary must be a dict {{NAME: (lo, hi, n)}}, got {type(vary).__name__}")
     if not vary:
@@ -250,7 +252,8 @@ def _check_vary(model, vary):
     return tuple(names), tuple(ranges)
 
 
-def _check_options(max_depth, time_limit_each, executor, scheduler, workers):
+def check_options(max_depth, time_limit_each, executor, scheduler, workers):
+    """Check the budget and executor options of a sweep; raise UsageError naming the option."""
     from certify.model import SETTINGS
 
     rule = SETTINGS["max_depth"]  # the range [settings] accepts
@@ -303,7 +306,7 @@ def _claim_folder(out, settings):
     path = out / _SETTINGS_FILE
     if path.is_file():
         try:
-            found = _read_json(path)
+            found = read_json(path)
         except (OSError, ValueError) as exc:
             raise UsageError(f"{path}: cannot read the settings of the sweep there ({exc})") from None
         if found != settings:
@@ -315,7 +318,7 @@ def _claim_folder(out, settings):
     if (out / "boxes").exists():
         raise UsageError(f"{out}: has a boxes/ folder but no {_SETTINGS_FILE}; "
                          "choose another --out folder or delete that one")
-    _write_json(path, settings)
+    write_json(path, settings)
 
 
 # -------------------------------------------------------------------------- execution
@@ -354,12 +357,12 @@ def analyse_box(model_text, model_path, parameters, max_depth, time_limit, keep_
     from certify.prove import prove
 
     started = time.monotonic()
-    model = _parsed_model(model_text, model_path).with_parameters(
+    model = parsed_model(model_text, model_path).with_parameters(
         {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
     proof = prove(model, max_depth=max_depth, time_limit=time_limit)
     if proof.interrupted:
         raise KeyboardInterrupt
-    result = _box_facts(proof)
+    result = box_facts(proof)
     result["equilibria"] = _equilibria_counts(model)
     files = _certificate_files(proof) if keep_certificate else {}
     result["seconds"] = round(time.monotonic() - started, 3)
@@ -367,14 +370,15 @@ def analyse_box(model_text, model_path, parameters, max_depth, time_limit, keep_
 
 
 @lru_cache(maxsize=4)
-def _parsed_model(text, path):
+def parsed_model(text, path):
+    """The model parsed from its text, cached per process (workers reuse it box to box)."""
     from certify.model import parse_model
 
     return parse_model(text, path=path)
 
 
-def _box_facts(proof):
-    """Fractions, proven safe bounds and flags of one box's proof."""
+def box_facts(proof):
+    """Fractions, proven safe bounds and flags of one box's proof (see :func:`sweep`)."""
     from certify.evaluate import evaluate_limits
     from certify.taylor import flow_programs
 
@@ -442,12 +446,8 @@ def _task(model, box, settings):
 def _run(model, todo, settings, executor, scheduler, workers, out, progress, n_done, n_boxes):
     tasks = {box.key: _task(model, box, settings) for box in todo}
     by_key = {box.key: box for box in todo}
-    if executor == "local":
-        results = _local_results(tasks, workers)
-    else:
-        results = _dask_results(tasks, scheduler, workers)
-    with contextlib.closing(results):
-        for key, answer in results:
+    with Runner(executor, scheduler, min(workers or os.cpu_count() or 1, len(tasks))) as runner:
+        for key, answer in runner.results(analyse_box, tasks):
             _save_box(out, by_key[key], answer)
             n_done += 1
             if progress is not None:
@@ -459,47 +459,84 @@ def _start_method():
     return "forkserver" if "forkserver" in methods else "spawn"
 
 
-def _local_results(tasks, workers):
-    """Yield ``(key, answer)`` from a process pool as boxes finish."""
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+class Runner:
+    """Runs batches of tasks in a local process pool or on a Dask cluster.
 
-    n = min(workers or os.cpu_count() or 1, len(tasks))
-    pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context(_start_method()))
-    try:
-        futures = {pool.submit(analyse_box, *args): key for key, args in tasks.items()}
-        for future in as_completed(futures):
-            yield futures[future], future.result()
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+    One runner serves many batches (the levels of an adaptive atlas), so the processes
+    and their compiled model programs are kept from batch to batch.
 
+    Parameters
+    ----------
+    executor : {"local", "dask"}
+    scheduler : str or None
+        Address of a running Dask scheduler; None starts a ``LocalCluster`` on 127.0.0.1.
+    workers : int or None
+        Processes of the local pool or of the ``LocalCluster`` (default: all cores).
+    """
 
-def _dask_results(tasks, scheduler, workers):
-    """Yield ``(key, answer)`` from a Dask scheduler (or a loopback LocalCluster)."""
-    try:
-        from distributed import Client, LocalCluster, as_completed
-    except ImportError:
-        raise UsageError("the dask executor needs dask.distributed: "
-                         "pip install 'dask[distributed]'") from None
-    with contextlib.ExitStack() as stack:
-        if scheduler is None:
-            cluster = stack.enter_context(LocalCluster(
-                n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                host="127.0.0.1", dashboard_address=None))
-            address = cluster.scheduler_address
-        else:
-            address = scheduler
+    def __init__(self, executor, scheduler, workers):
+        self.executor, self.scheduler, self.workers = executor, scheduler, workers
+        self._stack = contextlib.ExitStack()
+        self._pool = self._client = None
+
+    def __enter__(self):
+        n = self.workers or os.cpu_count() or 1
+        if self.executor == "local":
+            from concurrent.futures import ProcessPoolExecutor
+
+            self._pool = ProcessPoolExecutor(
+                max_workers=n, mp_context=multiprocessing.get_context(_start_method()))
+            self._stack.callback(self._pool.shutdown, wait=True, cancel_futures=True)
+            return self
         try:
-            client = stack.enter_context(Client(address, timeout="20s"))
-        except (OSError, TimeoutError, ValueError) as exc:
-            raise UsageError(f"cannot reach the Dask scheduler at {address}: {exc}") from None
+            from distributed import Client, LocalCluster
+        except ImportError:
+            raise UsageError("the dask executor needs dask.distributed: "
+                             "pip install 'dask[distributed]'") from None
+        with contextlib.ExitStack() as stack:
+            if self.scheduler is None:
+                cluster = stack.enter_context(LocalCluster(
+                    n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                    dashboard_address=None))
+                address = cluster.scheduler_address
+            else:
+                address = self.scheduler
+            try:
+                self._client = stack.enter_context(Client(address, timeout="20s"))
+            except (OSError, TimeoutError, ValueError) as exc:
+                raise UsageError(f"cannot reach the Dask scheduler at {address}: {exc}") from None
+            self._stack = stack.pop_all()
+        return self
+
+    def __exit__(self, *exc):
+        return self._stack.__exit__(*exc)
+
+    def results(self, function, tasks):
+        """Yield ``(key, function(*args))`` for ``tasks = {key: args}`` as they finish.
+
+        Closing the generator early cancels the tasks not yet started.
+        """
+        if self._pool is not None:
+            from concurrent.futures import as_completed
+
+            futures = {self._pool.submit(function, *args): key for key, args in tasks.items()}
+            try:
+                for future in as_completed(futures):
+                    yield futures[future], future.result()
+            finally:
+                for future in futures:
+                    future.cancel()
+            return
+        from distributed import as_completed
+
         token = uuid.uuid4().hex[:12]
-        futures = {client.submit(analyse_box, *args, key=f"certify-box-{key}-{token}", pure=False): key
-                   for key, args in tasks.items()}
+        futures = {self._client.submit(function, *args, key=f"certify-box-{key}-{token}",
+                                       pure=False): key for key, args in tasks.items()}
         try:
             for future in as_completed(futures):
                 yield futures[future], future.result()
         finally:
-            client.cancel(list(futures))
+            self._client.cancel(list(futures))
 
 
 def _save_box(out, box, answer):
@@ -517,7 +554,7 @@ def _save_box(out, box, answer):
                          for name, (lo, hi) in box.bounds.items()},
         **answer["result"],
     }
-    _write_json(folder / f"{box.key}.json", entry)
+    write_json(folder / f"{box.key}.json", entry)
 
 
 # ------------------------------------------------------------------------------ files
@@ -539,11 +576,13 @@ def _sweep_data(model, names, settings, entries):
     }
 
 
-def _read_json(path):
+def read_json(path):
+    """The JSON data of a file."""
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
-def _write_json(path, data):
+def write_json(path, data):
+    """Write JSON data to a file atomically (indented, one trailing newline)."""
     write_atomic(path, (json.dumps(data, indent=1) + "\n").encode("utf-8"))
 
 

@@ -253,7 +253,14 @@ def _largest_level(programs, samples, centre, matrix, width, rng):
     top = float(np.max(np.diag(matrix) * width ** 2))
     lo, hi = np.log(top) - 40.0, np.log(top)
     if not _level_ok(programs, samples, centre, matrix, factor, np.exp(lo), dirs):
-        return None
+        # with interval parameters the equilibrium moves: small levels fail, so take
+        # the largest passing level of a coarse grid below the top instead
+        grid = np.log(top) - np.arange(1.0, 40.0)
+        passing = [g for g in grid
+                   if _level_ok(programs, samples, centre, matrix, factor, np.exp(g), dirs)]
+        if not passing:
+            return None
+        lo, hi = passing[0], passing[0] + 1.0
     for _ in range(40):
         mid = 0.5 * (lo + hi)
         if _level_ok(programs, samples, centre, matrix, factor, np.exp(mid), dirs):
@@ -458,7 +465,8 @@ def _region_at(model, programs, params, point, rng, max_depth, max_boxes):
     return None, "no level set was proven invariant within the cover budget"
 
 
-def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000):
+def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000,
+                 equilibria=None):
     """Trapping regions around the stable equilibria inside the limits.
 
     Parameters
@@ -472,6 +480,8 @@ def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000):
         Most halvings of the box ``B`` along one axis.
     max_boxes : int
         Largest number of sub-boxes in a cover.
+    equilibria : certify.points.EquilibriumResult, optional
+        Of `model`, when already found.
 
     Returns
     -------
@@ -484,7 +494,8 @@ def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000):
     rng = np.random.default_rng(20261204)
     regions, notes = [], []
     with np.errstate(all="ignore"):
-        for eq in find_equilibria(model).equilibria:
+        for eq in (equilibria if equilibria is not None
+                   else find_equilibria(model)).equilibria:
             if eq.stability != "stable" or eq.limits != "inside":
                 continue
             region, note = _region_at(model, programs, params, eq.centre, rng,

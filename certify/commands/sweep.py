@@ -6,7 +6,8 @@ import sys
 from certify.commands.prove import add_depth_argument, parse_param
 from certify.errors import UsageError
 
-__all__ = ["HELP", "EXITS", "add_arguments", "run", "parse_vary", "sweep_table"]
+__all__ = ["HELP", "EXITS", "add_arguments", "run", "parse_vary", "parse_range",
+           "sweep_table", "atlas_table"]
 
 HELP = "prove the map of fates for every box of a range of one or two parameters"
 EXITS = "0 done, 2 usage or input error, 130 interrupted (rerun the command to resume)"
@@ -38,7 +39,28 @@ def add_arguments(parser):
                              "rerunning with the same folder resumes")
     parser.add_argument("--keep-certificates", action="store_true",
                         help="also write each box's certificate under DIR/boxes/<key>/")
-    parser.add_argument("--json", action="store_true", help="print sweep.json on stdout")
+    atlas = parser.add_argument_group(
+        "adaptive atlas (--adaptive): where a safe state exists, where none does")
+    atlas.add_argument("--adaptive", action="store_true",
+                       help="prove a verdict per box and halve only undetermined boxes; "
+                            "give --vary NAME=LO:HI; writes atlas.json and atlas.png")
+    atlas.add_argument("--resolution", type=int, default=64, metavar="N",
+                       help="finest box: 1/N of each range, N a power of two (default 64)")
+    atlas.add_argument("--start", type=int, default=4, metavar="N",
+                       help="boxes per parameter of the starting grid, a power of two "
+                            "(default 4)")
+    atlas.add_argument("--time-budget", type=float, metavar="S",
+                       help="split no box after S seconds (default: none)")
+    atlas.add_argument("--fractions", action="store_true",
+                       help="also prove each box's map for its safe-fraction bounds")
+    atlas.add_argument("--no-structure", action="store_true",
+                       help="do not prove the equilibrium structure of each box (faster; "
+                            "the picture then shows the verdicts only)")
+    atlas.add_argument("--no-map", action="store_true",
+                       help="only the cheap tests (equilibria, trapping regions, limit rates); "
+                            "no map of fates where they do not decide")
+    parser.add_argument("--json", action="store_true",
+                        help="print sweep.json (atlas.json with --adaptive) on stdout")
     parser.add_argument("--quiet", action="store_true", help="no progress bar, no table")
 
 
@@ -78,14 +100,31 @@ def parse_vary(text):
     return name, (lo, hi, int(n_text))
 
 
-def _vary(texts):
+def parse_range(text):
+    """Parse ``NAME=LO:HI`` (the ``--vary`` of an adaptive atlas) into ``(name, (lo, hi))``.
+
+    Raises
+    ------
+    UsageError
+        When the text does not have that shape or a bound is not a number.
+    """
+    _, sep, value = text.partition("=")
+    if not sep or len(value.split(":")) != 2:
+        raise UsageError(f"--vary {text!r}: with --adaptive write NAME=LO:HI, e.g. "
+                         "D=0.05:0.35 (the boxes come from --start and --resolution)")
+    name, (lo, hi, _) = parse_vary(f"{text}:1")
+    return name, (lo, hi)
+
+
+def _vary(texts, adaptive=False):
+    form = "NAME=LO:HI" if adaptive else "NAME=LO:HI:N"
     if not texts:
-        raise UsageError("give the parameter to sweep with --vary NAME=LO:HI:N")
+        raise UsageError(f"give the parameter to sweep with --vary {form}")
     if len(texts) > 2:
         raise UsageError(f"--vary: at most 2 parameters can be swept, got {len(texts)}")
     vary = {}
     for text in texts:
-        name, spec = parse_vary(text)
+        name, spec = parse_range(text) if adaptive else parse_vary(text)
         if name in vary:
             raise UsageError(f"--vary: parameter {name!r} is given twice")
         vary[name] = spec
@@ -104,6 +143,9 @@ class _ProgressBar:
 
             self.bar = tqdm(total=n_boxes, initial=n_done, unit="box", file=sys.stderr,
                             leave=False, desc="parameter boxes")
+        elif self.bar.total != n_boxes:  # the next level of an atlas
+            self.bar.reset(total=n_boxes)
+            self.bar.update(n_done)
         else:
             self.bar.update(n_done - self.bar.n)
 
@@ -150,7 +192,7 @@ def run(args):
     from certify.model import load_model
     from certify.sweep import default_sweep_dir, sweep
 
-    vary = _vary(args.vary)
+    vary = _vary(args.vary, args.adaptive)
     model = load_model(args.model)
     if args.param:
         fixed = dict(parse_param(p) for p in args.param)
@@ -158,6 +200,8 @@ def run(args):
         if both:
             raise UsageError(f"--param {both[0]}: the parameter is also given to --vary")
         model = model.with_parameters(fixed)
+    if args.adaptive:
+        return _run_atlas(args, model, vary)
     out = output_folder(args.out or default_sweep_dir(model))
     progress = None if args.quiet else _ProgressBar()
     try:
@@ -176,4 +220,59 @@ def run(args):
         print((result.out / "sweep.json").read_text(encoding="utf-8"), end="")
     elif not args.quiet:
         print(sweep_table(result))
+    return 0
+
+
+def atlas_table(result):
+    """A short human-readable summary of an atlas.
+
+    Parameters
+    ----------
+    result : certify.atlas.AtlasResult
+
+    Returns
+    -------
+    str
+    """
+    from certify.palette import VERDICT_LABELS
+
+    by = {}
+    for e in result.boxes:
+        by.setdefault((e["verdict"], e["by"]), []).append(e["area"])
+    rows = [("verdict", "proven by", "boxes", "area %")]
+    for (verdict, how), areas in sorted(by.items(), key=lambda kv: (kv[0][0], str(kv[0][1]))):
+        rows.append((VERDICT_LABELS[verdict], how or "-", str(len(areas)), f"{100 * sum(areas):.2f}"))
+    widths = [max(len(r[k]) for r in rows) for k in range(4)]
+    lines = ["  ".join(cell.rjust(w) if k >= 2 else cell.ljust(w)
+                       for k, (cell, w) in enumerate(zip(row, widths))).rstrip() for row in rows]
+    lines.append(f"{result.message} {len(result.boxes)} boxes, {result.n_analysed} analysed now, "
+                 f"{result.seconds:.1f} s; written to {result.out}")
+    return "\n".join(lines)
+
+
+def _run_atlas(args, model, vary):
+    from certify.atlas import atlas, default_atlas_dir
+    from certify.files import output_folder
+
+    out = output_folder(args.out or default_atlas_dir(model))
+    progress = None if args.quiet else _ProgressBar()
+    try:
+        result = atlas(model, vary, resolution=args.resolution, start=args.start,
+                       time_budget=args.time_budget, use_map=not args.no_map,
+                       structure=not args.no_structure,
+                       max_depth=args.max_depth, time_limit_each=args.time_limit_each,
+                       fractions=args.fractions, executor=args.executor,
+                       scheduler=args.scheduler, workers=args.workers, out=out,
+                       progress=progress)
+    finally:
+        if progress is not None:
+            progress.close()
+    if result.status == 2:
+        print(f"certify: interrupted; rerun the same command to resume in {result.out}",
+              file=sys.stderr)
+        return 130
+    if args.json:
+        print((result.out / "atlas.json").read_text(encoding="utf-8"), end="")
+    elif not args.quiet:
+        print(atlas_table(result))
     return 0

@@ -1,0 +1,286 @@
+"""The adaptive parameter atlas (`certify sweep --adaptive`): verdicts against closed forms.
+
+Every ``safe`` box must hold, for every parameter value in it, a stable equilibrium
+above the floor; every ``none`` box must hold none. The equilibria come from closed
+forms checked at the box ends (the roots move monotonically with the parameter).
+"""
+
+import math
+import subprocess
+import sys
+from fractions import Fraction
+
+import numpy as np
+import pytest
+from scipy.integrate import solve_ivp
+
+from certify.atlas import atlas
+from certify.atlas_proofs import analyse_parameter_box
+from certify.certificate import fraction_text
+from certify.errors import UsageError
+from certify.model import load_model, parse_model
+
+MONOD = """
+[model]
+name = "Monod chemostat"
+time_unit = "h"
+[states]
+s = { range = [0, 10], unit = "g/L" }
+x = { range = [0, 7], unit = "g/L" }
+[parameters]
+mu_max = 0.5
+K = 1
+D = { value = 0.2, unit = "1/h" }
+s_in = 10
+Y = 0.5
+[definitions]
+mu = "mu_max*s/(K + s)"
+[equations]
+s = "D*(s_in - s) - mu*x/Y"
+x = "(mu - D)*x"
+[constraints]
+floor = "x >= 1"
+cap = "x <= 6"
+"""
+
+HARVEST = """
+[model]
+name = "Logistic stock under a constant catch"
+time_unit = "yr"
+[states]
+x = { range = [0, 1000], unit = "kt" }
+[parameters]
+r = 0.4
+K = 1000
+H = { value = 50, unit = "kt/yr" }
+[equations]
+x = "r*x*(1 - x/K) - H"
+[constraints]
+floor = "x >= 200"
+"""
+
+
+def _run(model, vary, tmp_path, resolution, **options):
+    return atlas(model, vary, resolution=resolution, start=2, workers=1, use_map=False,
+                 out=tmp_path / "atlas", **options)
+
+
+def _ends(box, name):
+    lo, hi = box["params_exact"][name]
+    return Fraction(lo), Fraction(hi)
+
+
+def test_monod_chemostat_washout(tmp_path):
+    # Monod 1950; Novick & Szilard 1950: the biomass steady state has mu(s*) = D, so
+    # s* = K D / (mu_max - D), x* = Y (s_in - s*), stable when 0 < s* < s_in; else only
+    # the washout state (s_in, 0) remains.
+    model = parse_model(MONOD)
+    result = _run(model, {"D": ("0.05", "0.55")}, tmp_path, 16)
+    mu_max, K, s_in, Y, floor, cap = 0.5, 1.0, 10.0, 0.5, 1.0, 6.0
+
+    def x_star(D):
+        s = K * D / (mu_max - D) if D < mu_max else math.inf
+        return Y * (s_in - s) if s < s_in else -math.inf
+
+    verdicts = {e["verdict"] for e in result.boxes}
+    assert {"safe", "none"} <= verdicts
+    width = 0.5 / 16
+    for box in result.boxes:
+        lo, hi = (float(v) for v in _ends(box, "D"))
+        if box["verdict"] == "safe":   # x* falls with D: the worst value is the top end
+            assert floor < x_star(hi) <= x_star(lo) < cap
+        elif box["verdict"] == "none":  # no steady state keeps the floor at the low end
+            assert x_star(lo) < floor
+        else:  # only around the thresholds x*(D) = floor (D = 4/9) and D = mu(s_in)
+            assert 4 / 9 - 2 * width < hi and lo < 5 / 11 + 2 * width
+    # washout: every D above mu(s_in) = 5/11 is proven to have no safe state
+    assert all(e["verdict"] == "none" for e in result.boxes
+               if float(_ends(e, "D")[0]) > 5 / 11)
+
+
+def test_andrews_fermenter_fold(tmp_path):
+    # Andrews 1968 (mem) kinetics mu = mu_max s/(Ks + s + s^2/Ki): mu(s) = D is the
+    # quadratic (D/Ki) s^2 + (D - mu_max) s + D Ks = 0; its smaller root is the stable
+    # operating point, x* = Y (s_in - s1); past the fold D > max mu there is no root.
+    model = load_model("models/fermenter.toml")
+    result = _run(model, {"D": ("0.05", "0.35")}, tmp_path, 16)
+    mu_max, Ks, Ki, s_in, Y = 0.5, 0.5, 2.0, 10.0, 0.5
+
+    def operating(D):
+        a, b, c = D / Ki, D - mu_max, D * Ks
+        disc = b * b - 4 * a * c
+        if disc < 0:
+            return None
+        s1 = (-b - math.sqrt(disc)) / (2 * a)
+        return s1, Y * (s_in - s1)
+
+    assert {e["verdict"] for e in result.boxes} >= {"safe", "none"}
+    for box in result.boxes:
+        lo, hi = (float(v) for v in _ends(box, "D"))
+        if box["verdict"] == "safe":
+            s1, x = operating(hi)   # s1 rises and x* falls with D
+            assert 0 < s1 < 9 and 1 < x < 9
+            assert operating(lo)[1] < 9
+        elif box["verdict"] == "none":
+            assert operating(lo) is None   # the fold: max mu = 0.25 at s = 1
+            assert lo > 0.25
+        else:
+            assert lo < 0.25 + 2 * 0.3 / 16 and hi > 0.25 - 2 * 0.3 / 16
+
+
+def test_logistic_harvest_matches_box_by_box(tmp_path):
+    # Schaefer 1954; Clark 1990: x' = r x (1 - x/K) - H has the positive equilibria
+    # K/2 (1 +- sqrt(1 - 4H/(rK))), none when H > rK/4 = 100 kt/yr.
+    model = parse_model(HARVEST)
+    result = _run(model, {"H": ("20", "180")}, tmp_path, 16)
+    r, K, floor = 0.4, 1000.0, 200.0
+    threshold = r * K / 4
+    width = 160 / 16
+    for box in result.boxes:
+        lo, hi = (float(v) for v in _ends(box, "H"))
+        if hi < threshold:
+            upper = K / 2 * (1 + math.sqrt(1 - 4 * hi / (r * K)))
+            assert upper > floor
+            assert box["verdict"] == "safe" or lo > threshold - 2 * width
+        elif lo > threshold:
+            assert box["verdict"] == "none" or hi < threshold + 2 * width
+        else:
+            assert box["verdict"] == "undetermined"   # holds both regimes
+        if box["verdict"] == "none":
+            assert lo > threshold
+        if box["verdict"] == "safe":
+            assert hi <= threshold
+    assert result.areas["undetermined"] <= 3 / 16
+
+
+def _box_answer(model, bounds):
+    parameters = {p.name: [fraction_text(p.lo), fraction_text(p.hi)] for p in model.parameters}
+    for name, (lo, hi) in bounds.items():
+        parameters[name] = [lo, hi]
+    return analyse_parameter_box(model.text, model.path, parameters, None, None, False, False,
+                                 True)
+
+
+def test_safe_region_confirmed_by_simulation():
+    # scipy solve_ivp (tight tolerances) from points on the boundary of the proven
+    # region, at corners and random values of the parameter box: every trajectory
+    # stays in the region and within the limits.
+    model = load_model("models/fermenter.toml")
+    answer = _box_answer(model, {"D": ["13/80", "29/160"], "s_in": ["8", "69/8"]})
+    assert answer["verdict"] == "safe" and answer["by"] == "trapping region"
+    proof = answer["proof"]
+    centre = np.array([float(Fraction(v)) for v in proof["centre"]])
+    frame = np.array([[float(Fraction(v)) for v in row] for row in proof["frame"]])
+    radii = np.array([float(Fraction(v)) for v in proof["radii"]])
+    rng = np.random.default_rng(7)
+    starts = []
+    for i in range(2):
+        for side in (-1, 1):
+            for t in np.linspace(-1, 1, 7):
+                u = np.zeros(2)
+                u[i] = side * radii[i]
+                u[1 - i] = t * radii[1 - i]
+                starts.append(centre + frame @ u)
+    ds = [0.1625, 0.18125] + list(rng.uniform(0.1625, 0.18125, 2))
+    feeds = [8.0, 8.625] + list(rng.uniform(8.0, 8.625, 2))
+    for D in ds:
+        for s_in in feeds:
+            def f(t, y, D=D, s_in=s_in):
+                s, x = y
+                mu = 0.5 * s / (0.5 + s + s * s / 2.0)
+                return [D * (s_in - s) - mu * x / 0.5, (mu - D) * x]
+
+            for x0 in starts:
+                sol = solve_ivp(f, (0, 200), x0, rtol=1e-10, atol=1e-12, max_step=0.5)
+                u = np.linalg.solve(frame, (sol.y.T - centre).T).T
+                assert np.all(np.abs(u) <= radii * (1 + 1e-6) + 1e-9)
+                assert np.all(sol.y[1] >= 1) and np.all(sol.y[1] <= 9) and np.all(sol.y[0] <= 9)
+
+
+def test_none_box_is_doomed_by_simulation():
+    # scipy solve_ivp: past the fold every start keeping the limits crosses one before
+    # the proven deadline (washout, Monod 1950 / Andrews 1968 (mem)).
+    model = load_model("models/fermenter.toml")
+    answer = _box_answer(model, {"D": ["3/10", "7/20"], "s_in": ["8", "9"]})
+    assert answer["verdict"] == "none" and answer["by"] == "limit rate"
+    deadline = answer["proof"]["deadline"]
+
+    def f(t, y, D=0.3, s_in=8.5):
+        s, x = y
+        mu = 0.5 * s / (0.5 + s + s * s / 2.0)
+        return [D * (s_in - s) - mu * x / 0.5, (mu - D) * x]
+
+    def crossed(t, y):
+        return min(y[1] - 1, 9 - y[1], 9 - y[0])
+
+    crossed.terminal = True
+    for s0 in (0.0, 1.0, 4.0, 8.9):
+        for x0 in (1.0, 5.0, 8.9):
+            sol = solve_ivp(f, (0, deadline), [s0, x0], rtol=1e-10, atol=1e-12,
+                            events=crossed)
+            assert sol.status == 1 and sol.t[-1] <= deadline
+
+
+@pytest.mark.parametrize("vary, options, words", [
+    ({"nope": ("0", "1")}, {}, "unknown parameter"),
+    ({"D": ("0.2", "0.2")}, {}, "empty"),
+    ({"D": ("0.1", "0.3")}, {"resolution": 48}, "power of two"),
+    ({"D": ("0.1", "0.3")}, {"resolution": 8, "start": 16}, "exceed"),
+    ({"D": ("0.1", "0.3", 4)}, {}, "(lo, hi)"),
+    ({"D": ("0.1", "0.3")}, {"time_budget": -1}, "time_budget"),
+])
+def test_bad_input(tmp_path, vary, options, words):
+    model = load_model("models/fermenter.toml")
+    options = {"resolution": 8, **options}
+    with pytest.raises(UsageError, match=words.replace("(", r"\(").replace(")", r"\)")):
+        atlas(model, vary, out=tmp_path / "a", workers=1, **options)
+
+
+def test_cli_refuses_box_count_with_adaptive(tmp_path):
+    run = subprocess.run([sys.executable, "-m", "certify.cli", "sweep", "models/fermenter.toml",
+                          "--vary", "D=0.1:0.3:4", "--adaptive", "--out", str(tmp_path / "a")],
+                         capture_output=True, text=True)
+    assert run.returncode == 2
+    assert "NAME=LO:HI" in run.stderr and "Traceback" not in run.stderr
+
+
+LEAVING = """
+[model]
+name = "Leaves the window before it turns"
+[states]
+x = [0, 0.9]
+y = [0, 1]
+[equations]
+x = "1"
+y = "x - 1"
+[constraints]
+ground = "y >= 0"
+"""
+
+
+def test_limit_rate_needs_closed_window_faces():
+    # On the window dy/dt = x - 1 <= -0.1, yet y(t) = y0 - t + t^2/2 (from x0 = 0,
+    # closed form) never falls below y0 - 1/2: the start (0, 1) is safe. Its trajectory
+    # leaves the window through the open face x = 0.9, so the limit-rate test must not
+    # claim "none".
+    from certify.atlas_proofs import none_by_limit_rate
+
+    assert none_by_limit_rate(parse_model(LEAVING)) is None
+    t = np.linspace(0, 50, 5001)
+    assert np.min(1 - t + t ** 2 / 2) >= 0.5
+
+
+def test_leaves_tile_the_range_and_a_rerun_reuses_them(tmp_path):
+    # the leaves partition the range exactly (exact rational ends, common practice for a
+    # binary tree); a rerun with the same folder analyses nothing again
+    model = parse_model(HARVEST)
+    first = _run(model, {"H": ("20", "180")}, tmp_path, 8)
+    ends = sorted((_ends(e, "H") for e in first.boxes))
+    assert ends[0][0] == 20 and ends[-1][1] == 180
+    assert all(a[1] == b[0] for a, b in zip(ends, ends[1:]))
+    assert sum(first.areas.values()) == pytest.approx(1.0)
+    again = _run(model, {"H": ("20", "180")}, tmp_path, 8)
+    assert again.n_analysed == 0
+    assert [e["verdict"] for e in again.boxes] == [e["verdict"] for e in first.boxes]
+    with pytest.raises(UsageError, match="other settings"):
+        _run(model, {"H": ("20", "180")}, tmp_path, 16)

@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import contextlib
 import json
-import multiprocessing
 import os
 import re
 import tempfile
@@ -28,6 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from certify.errors import UsageError
+from certify.executors import EXECUTORS, check_executor, dask_client, local_pool
 from certify.files import write_atomic
 from certify.expr import format_number
 
@@ -49,8 +49,6 @@ SWEEP_FORMAT = "certify-sweep/1"
 MAX_VARIED = 2
 #: Largest number of parameter boxes in one sweep.
 MAX_BOXES = 10_000
-#: Where the boxes can run.
-EXECUTORS = ("local", "dask")
 #: Status codes of :class:`SweepResult` and their messages.
 MESSAGES = {
     0: "Every parameter box analysed.",
@@ -258,16 +256,7 @@ def _check_options(max_depth, time_limit_each, executor, scheduler, workers):
     if time_limit_each is not None and not (isinstance(time_limit_each, (int, float))
                                             and 0 < time_limit_each < float("inf")):
         raise UsageError("time_limit_each (--time-limit-each) must be a positive number of seconds")
-    if executor not in EXECUTORS:
-        raise UsageError(f"executor must be one of {', '.join(EXECUTORS)}, got {executor!r}")
-    if scheduler is not None and executor != "dask":
-        raise UsageError("a scheduler address (--scheduler) needs the dask executor (--executor dask)")
-    if workers is not None:
-        if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-            raise UsageError("workers (--workers) must be a whole number of at least 1")
-        if scheduler is not None:
-            raise UsageError("workers (--workers) applies to a local pool or a LocalCluster; "
-                             "a running Dask scheduler brings its own workers")
+    check_executor(executor, scheduler, workers)
 
 
 def _boxes(names, ranges):
@@ -451,17 +440,11 @@ def _run(model, todo, settings, executor, scheduler, workers, out, progress, n_d
                 progress(n_done, n_boxes)
 
 
-def _start_method():
-    methods = multiprocessing.get_all_start_methods()
-    return "forkserver" if "forkserver" in methods else "spawn"
-
-
 def _local_results(tasks, workers):
     """Yield ``(key, answer)`` from a process pool as boxes finish."""
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+    from concurrent.futures import as_completed
 
-    n = min(workers or os.cpu_count() or 1, len(tasks))
-    pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context(_start_method()))
+    pool = local_pool(min(workers or os.cpu_count() or 1, len(tasks)))
     try:
         futures = {pool.submit(analyse_box, *args): key for key, args in tasks.items()}
         for future in as_completed(futures):
@@ -472,23 +455,9 @@ def _local_results(tasks, workers):
 
 def _dask_results(tasks, scheduler, workers):
     """Yield ``(key, answer)`` from a Dask scheduler (or a loopback LocalCluster)."""
-    try:
-        from distributed import Client, LocalCluster, as_completed
-    except ImportError:
-        raise UsageError("the dask executor needs dask.distributed: "
-                         "pip install 'dask[distributed]'") from None
-    with contextlib.ExitStack() as stack:
-        if scheduler is None:
-            cluster = stack.enter_context(LocalCluster(
-                n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                host="127.0.0.1", dashboard_address=None))
-            address = cluster.scheduler_address
-        else:
-            address = scheduler
-        try:
-            client = stack.enter_context(Client(address, timeout="20s"))
-        except (OSError, TimeoutError, ValueError) as exc:
-            raise UsageError(f"cannot reach the Dask scheduler at {address}: {exc}") from None
+    with dask_client(scheduler, workers) as client:
+        from distributed import as_completed
+
         token = uuid.uuid4().hex[:12]
         futures = {client.submit(analyse_box, *args, key=f"certify-box-{key}-{token}", pure=False): key
                    for key, args in tasks.items()}

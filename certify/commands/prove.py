@@ -17,6 +17,16 @@ def add_arguments(parser):
     """Add the options of ``certify prove`` to ``parser``."""
     parser.add_argument("model", metavar="MODEL", help="model file (TOML)")
     add_budget_arguments(parser)
+    parser.add_argument("--executor", choices=["local", "dask"], default="local",
+                        help="where each round's flow batches run: this machine (default) "
+                             "or a Dask cluster; the certificate is the same")
+    parser.add_argument("--scheduler", metavar="ADDRESS",
+                        help="address of a running Dask scheduler, e.g. tcp://HOST:8786 "
+                             "(default with --executor dask: a LocalCluster on 127.0.0.1)")
+    parser.add_argument("--workers", type=int, metavar="N",
+                        help="processes of the LocalCluster (default: all cores); with "
+                             "--executor local, a process pool of N processes (default: "
+                             "none, the flows run in this process)")
 
 
 def add_budget_arguments(parser):
@@ -104,12 +114,16 @@ def run_proof(model_path, args, default_out=None):
     """Load, prove, write outputs; shared by ``prove`` and ``demo``. Returns exit code."""
     from pathlib import Path
 
+    from certify.executors import check_executor
     from certify.files import output_folder
     from certify.model import load_model
     from certify.prove import prove, write_proof
     from certify.report import summary_table
 
     _check_budget(args)
+    executor = getattr(args, "executor", "local")  # demo has no executor options
+    scheduler, workers = getattr(args, "scheduler", None), getattr(args, "workers", None)
+    check_executor(executor, scheduler, workers)
     model = load_model(model_path)
     if args.param:
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
@@ -122,7 +136,8 @@ def run_proof(model_path, args, default_out=None):
         slices = parse_slice(model, args.slice)
     progress = None if args.quiet else progress_bar()
     proof = prove(model, max_depth=args.max_depth, max_cells=args.max_cells,
-                  time_limit=args.time_limit, progress=progress)
+                  time_limit=args.time_limit, progress=progress, executor=executor,
+                  scheduler=scheduler, workers=workers)
     if progress is not None:
         progress.close()
     started = time.time()

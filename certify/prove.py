@@ -13,6 +13,7 @@ from __future__ import annotations
 import sys
 import time
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 import scipy.sparse as sp
@@ -154,10 +155,14 @@ class _Tubes:
     window_sides: tuple
     regions: object
 
-    @property
+    @cached_property
     def programs(self):
         """certify.taylor.FlowPrograms: the compiled programs of the model."""
         return flow_programs(self.model, self.method.order)
+
+    def __getstate__(self):
+        # compiled programs do not pickle: a worker compiles its own
+        return {k: v for k, v in self.__dict__.items() if k != "programs"}
 
     def flow(self, cell_lo, cell_hi, deadline=None):
         """The flows of the cells ``[cell_lo, cell_hi]`` (a :class:`FlowResult`).

@@ -245,9 +245,9 @@ def _level_ok(programs, samples, centre, matrix, factor, level, dirs):
     sample: the search calls this a few hundred times).
     """
     x = centre + np.sqrt(level) * dirs @ factor
-    k, m = len(x), samples.shape[1]
+    k = len(x)
     inputs = np.concatenate([np.tile(x, (len(samples), 1)),
-                             np.repeat(samples, k, axis=0).reshape(-1, m)], axis=1)
+                             np.repeat(samples, k, axis=0)], axis=1)
     f = programs.field.point(inputs)
     if programs.limits.n_outputs and not np.all(programs.limits.point(inputs) > 0):
         return False

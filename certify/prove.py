@@ -498,7 +498,7 @@ def _focused(tree, leaves, labelling, facts, focus):
     return leaves[mask[:L] & und]
 
 
-def _causes_first(tree, leaves, labelling, facts, wanted, room):
+def _causes_first(tree, leaves, labelling, facts, wanted, spare):
     """The leaves to split this round: where the graph is wrong first.
 
     An undecided leaf is a *cause* when its own facts fail (no image, a limit not kept,
@@ -506,8 +506,8 @@ def _causes_first(tree, leaves, labelling, facts, wanted, room):
     of wide images: scipy's strongly connected components), or when one of its successors
     is decided (it sits on a border). The other undecided leaves only wait for their
     undecided successors; they are split once no cause is left below the depth budget,
-    or with the causes when these are at least half of the leaves `wanted` and the
-    budget has `room` for all of them.
+    or with the causes when these are at least half of the leaves `wanted` and the cell
+    budget is `spare` (it could hold every wanted leaf refined to the maximum depth).
     """
     from scipy.sparse.csgraph import connected_components
 
@@ -533,8 +533,8 @@ def _causes_first(tree, leaves, labelling, facts, wanted, room):
     first = wanted[cause[number[wanted]]]
     # holding leaves back pays only when most of them wait: a round that splits half
     # of them anyway costs about what one splitting all does, and the leaves held back
-    # would need rounds of their own later (unless the cell budget has no room for all)
-    if len(first) == 0 or (2 * len(first) >= len(wanted) and len(wanted) <= room):
+    # would need rounds of their own later; a tight cell budget goes to the causes
+    if len(first) == 0 or (spare and 2 * len(first) >= len(wanted)):
         return wanted
     return first
 
@@ -576,9 +576,11 @@ def _prove(model, method, budget, progress, focus, runner):
             else:
                 wanted = _focused(tree, leaves, labelling, facts, focus)
             und = wanted[tree.depth[wanted] < budget.max_depth]
-            room = (budget.max_cells - len(leaves)) // (2 ** tree.n - 1)
             if focus is None:
-                und = _causes_first(tree, leaves, labelling, facts, und, room)
+                # the leaves a refinement of every wanted leaf to max_depth would add
+                full = np.sum(2.0 ** (tree.n * (budget.max_depth - tree.depth[und])))
+                und = _causes_first(tree, leaves, labelling, facts, und,
+                                    full <= budget.max_cells - len(leaves))
             if len(und) == 0:
                 if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"
@@ -588,6 +590,7 @@ def _prove(model, method, budget, progress, focus, runner):
             if elapsed >= budget.time_limit:
                 stop_reason = f"time limit {budget.time_limit:g} s reached"
                 break
+            room = (budget.max_cells - len(leaves)) // (2 ** tree.n - 1)
             if room <= 0:
                 stop_reason = f"cell limit {budget.max_cells} reached"
                 break

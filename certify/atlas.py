@@ -6,7 +6,7 @@ a verdict proven for every constant parameter value in it
 halved along every parameter (a binary tree over one parameter, a quadtree over two)
 until their side is ``1/resolution`` of the range or the time budget is spent. The
 leaves tile the rectangle. Boxes run in a local process pool or on a Dask cluster
-(:class:`certify.sweep.Runner`); each finished box is written to
+(:func:`certify.executors.open_runner`); each finished box is written to
 ``DIR/atlas-boxes/<key>.json`` at once, so a rerun with the same folder and settings
 reuses it. ``atlas.json`` and ``atlas.png`` are written at the end.
 """
@@ -237,7 +237,8 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
         For a bad parameter, range, resolution or option, or a folder holding an atlas
         with other settings.
     """
-    from certify.sweep import Runner, check_options
+    from certify.executors import open_runner
+    from certify.sweep import check_options
 
     started = time.monotonic()
     names, ranges, top, first = _check_vary(model, vary, resolution, start)
@@ -254,7 +255,7 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
     todo = roots
     leaves, n_analysed, status = {}, 0, 0
     try:
-        with Runner(executor, scheduler, workers) as runner:
+        with open_runner(executor, scheduler, workers, pooled=True) as runner:
             while todo:
                 done, n_new, stopped = _level(model, todo, ranges, settings, top, runner, out,
                                               progress, started, time_budget)

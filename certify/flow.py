@@ -28,7 +28,8 @@ import numpy as np
 from . import interval as iv
 from .evaluate import evaluate_boxes
 
-__all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set"]
+__all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
+           "join_results"]
 
 #: Target width of a step's Taylor remainder, as a share of the set's width.
 REMAINDER_SHARE = 0.01
@@ -495,3 +496,30 @@ def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0
                       set0_r_lo=r0lo, set0_r_hi=r0hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
                       x_lo=xlo, x_hi=xhi, e_lo=elo, e_hi=ehi, m=m, A=A, r_lo=rlo,
                       r_hi=rhi, end_lo=endlo, end_hi=endhi)
+
+
+#: The fields of :class:`FlowResult` with one row per step (the others have one per box).
+_STEP_FIELDS = ("h", "t0_lo", "t0_hi", "x_lo", "x_hi", "e_lo", "e_hi", "m", "A", "r_lo", "r_hi",
+                "end_lo", "end_hi")
+_BOX_FIELDS = ("status", "n_steps", "t_lo", "t_hi", "image_lo", "image_hi", "set0_m",
+               "set0_r_lo", "set0_r_hi")
+
+
+def join_results(parts):
+    """One :class:`FlowResult` of batches flowed apart, the boxes in the order of `parts`.
+
+    Parameters
+    ----------
+    parts : list of FlowResult
+        Results of consecutive pieces of one batch (at least one).
+
+    Returns
+    -------
+    FlowResult
+        The same records as :func:`flow_boxes` of the whole batch gives: every box's flow
+        depends on that box alone.
+    """
+    joined = {name: np.concatenate([getattr(p, name) for p in parts])
+              for name in _STEP_FIELDS + _BOX_FIELDS}
+    joined["step_start"] = np.concatenate([[0], np.cumsum(joined["n_steps"])[:-1]]).astype(int)
+    return FlowResult(**joined)

@@ -13,13 +13,15 @@ from __future__ import annotations
 import sys
 import time
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 import scipy.sparse as sp
 
 from . import interval as iv
 from .cells import CellTree, index_dtype
-from .flow import DeadlinePassed, flow_boxes
+from .executors import DeadlineReached, Runner, open_runner
+from .flow import DeadlinePassed, flow_boxes, join_results
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
@@ -32,6 +34,8 @@ __all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 
 #: A flow stops once its end box is this many times wider than its cell along some axis.
 GROWTH_LIMIT = 4.0
+#: Fewest cells in a piece of a round's batch sent to a worker.
+MIN_PIECE = 64
 
 
 @dataclass(frozen=True)
@@ -135,9 +139,97 @@ class Proof:
         return int(self.tree.depth[self.leaves].max())
 
 
+@dataclass(frozen=True)
+class _Tubes:
+    """What the flows of a batch of cells need besides the cells.
+
+    Picklable, so that the batches of a round can run in other processes or on other
+    machines (:mod:`certify.executors`); the compiled programs are rebuilt there from
+    the model, once per process (:func:`certify.taylor.flow_programs` caches them).
+    """
+
+    model: object
+    method: Method
+    params: list
+    faces: list
+    window_sides: tuple
+    regions: object
+
+    @cached_property
+    def programs(self):
+        """certify.taylor.FlowPrograms: the compiled programs of the model."""
+        return flow_programs(self.model, self.method.order)
+
+    def __getstate__(self):
+        # compiled programs do not pickle: a worker compiles its own
+        return {k: v for k, v in self.__dict__.items() if k != "programs"}
+
+    def flow(self, cell_lo, cell_hi, deadline=None):
+        """The flows of the cells ``[cell_lo, cell_hi]`` (a :class:`FlowResult`).
+
+        Each cell's flow depends on that cell alone, so a batch cut into pieces gives
+        the same records as the batch whole.
+        """
+        widths = cell_hi - cell_lo
+        min_horizon = self.method.min_horizon
+
+        def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
+            left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
+            # an image inside its own cell closes a self-loop: longer flows add nothing
+            inside = np.all((end_lo >= cell_lo[ids]) & (end_hi <= cell_hi[ids]), axis=1)
+            _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
+            crossed = np.any(gh < 0, axis=1)
+            too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
+            # an end box beyond an open side would escape: follow the trajectories until
+            # they come back into the window or cross a limit out there
+            ones = np.ones(len(ids), bool)
+            away = self.clip(end_lo, end_hi, ones, ones)[2]
+            trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
+            return ((left | inside | trapped) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
+
+        m = self.method
+        return flow_boxes(self.programs, cell_lo, cell_hi, self.params,
+                          min_horizon=0.0, max_horizon=m.max_horizon,
+                          step=m.step, max_step=m.max_step, min_step=m.min_step,
+                          max_steps=m.max_steps, should_stop=should_stop, deadline=deadline)
+
+    def clip(self, lo, hi, ok, tube_open):
+        """Cut images to the window; flag images whose outside parts may matter.
+
+        Without a tube box beyond an open face, a trajectory that keeps the limits
+        cannot have left the window (harmless faces cannot be crossed within the limits,
+        and the tube never reaches past the others): every outside part is harmless.
+        Otherwise each part beyond a face must violate a limit on the whole part.
+        """
+        lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
+        escapes = np.zeros(len(lo), bool)
+        check = ok & tube_open
+        for face in self.faces:
+            k, side = face["axis"], face["side"]
+            pokes = check & ((lo[:, k] < lo_hi[k]) if side == "lo" else (hi[:, k] > hi_lo[k]))
+            if not pokes.any():
+                continue
+            slo, shi = lo[pokes].copy(), hi[pokes].copy()
+            if side == "lo":
+                shi[:, k] = lo_hi[k]
+            else:
+                slo[:, k] = hi_lo[k]
+            _, gh = evaluate_limits(self.programs, slo, shi, self.params)
+            escapes[np.flatnonzero(pokes)[~np.any(gh < 0, axis=1)]] = True
+        return np.maximum(lo, lo_lo), np.minimum(hi, hi_hi), escapes
+
+
+def _flow_piece(tubes, cell_lo, cell_hi):
+    """The flows of one piece of a round's batch (a task of a worker)."""
+    with np.errstate(all="ignore"):
+        return tubes.flow(cell_lo, cell_hi)
+
+
 class _Prover:
-    def __init__(self, model, method, budget, progress):
+    def __init__(self, model, method, budget, progress, runner=None):
         self.model = model
+        # where the flow batches run (certify.executors.Runner; default: this process)
+        self.runner = runner or Runner()
         self.method = method
         self.budget = budget
         self.progress = progress
@@ -150,6 +242,8 @@ class _Prover:
         self.window_sides = self.tree.window_bounds()
         self.faces = analyse_faces(model, self.programs, self.tree, self.params)
         self.regions = find_regions(model, self.programs, self.params)
+        self.tubes = _Tubes(model, method, self.params, self.faces, self.window_sides,
+                            self.regions)
         self.steps = StepStore(self.n)
         size = 1
         self.outside = np.zeros(size, bool)
@@ -190,33 +284,22 @@ class _Prover:
         todo = nodes[~outside]
         if len(todo) == 0:
             return
-        cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
-        widths = cell_hi - cell_lo
-
-        min_horizon = self.method.min_horizon
-
-        def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
-            left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
-            # an image inside its own cell closes a self-loop: longer flows add nothing
-            inside = np.all((end_lo >= cell_lo[ids]) & (end_hi <= cell_hi[ids]), axis=1)
-            _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
-            crossed = np.any(gh < 0, axis=1)
-            too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
-            # an end box beyond an open side would escape: follow the trajectories until
-            # they come back into the window or cross a limit out there
-            ones = np.ones(len(ids), bool)
-            away = self._clip(end_lo, end_hi, ones, ones)[2]
-            trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
-            return ((left | inside | trapped) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
-
-        m = self.method
-        result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
-                            min_horizon=0.0, max_horizon=m.max_horizon,
-                            step=m.step, max_step=m.max_step, min_step=m.min_step,
-                            max_steps=m.max_steps, should_stop=should_stop,
-                            deadline=self.deadline)
+        result = self._flows(self.tree.lo[todo], self.tree.hi[todo])
         self._tube_facts(todo, result)
         self.steps.add(todo, result)
+
+    def _flows(self, cell_lo, cell_hi):
+        """The flows of a round's new cells, in pieces on the runner's workers if any."""
+        if not self.runner.parallel:
+            return self.tubes.flow(cell_lo, cell_hi, self.deadline)
+        n_pieces = max(1, min(2 * self.runner.n_workers, -(-len(cell_lo) // MIN_PIECE)))
+        pieces = np.array_split(np.arange(len(cell_lo)), n_pieces)
+        try:
+            parts = self.runner.map(_flow_piece, [(self.tubes, cell_lo[k], cell_hi[k])
+                                                  for k in pieces], self.deadline)
+        except DeadlineReached:
+            raise DeadlinePassed from None
+        return join_results(parts)
 
     def _tube_facts(self, todo, result):
         S = len(result.h)
@@ -254,7 +337,7 @@ class _Prover:
         raw_lo = np.where(ok[:, None], np.fmax(raw_lo, moved_lo), raw_lo)
         raw_hi = np.where(ok[:, None], np.fmin(raw_hi, moved_hi), raw_hi)
         tube_open = self._tube_past_open_faces(result, box_of_step, len(todo))
-        image_lo, image_hi, escapes = self._clip(raw_lo, raw_hi, ok, tube_open)
+        image_lo, image_hi, escapes = self.tubes.clip(raw_lo, raw_hi, ok, tube_open)
         # nothing is known after the time reached by a flow without an image
         first_unkept = np.where(ok, first_unkept, np.minimum(first_unkept, result.t_lo))
         first_unkept = np.where(escapes, np.minimum(first_unkept, result.t_lo), first_unkept)
@@ -293,31 +376,6 @@ class _Prover:
             past |= result.e_lo[:, k] < lo_hi[k] if face["side"] == "lo" \
                 else result.e_hi[:, k] > hi_lo[k]
         return np.bincount(box_of_step, weights=past, minlength=n_boxes) > 0
-
-    def _clip(self, lo, hi, ok, tube_open):
-        """Cut images to the window; flag images whose outside parts may matter.
-
-        Without a tube box beyond an open face, a trajectory that keeps the limits
-        cannot have left the window (harmless faces cannot be crossed within the limits,
-        and the tube never reaches past the others): every outside part is harmless.
-        Otherwise each part beyond a face must violate a limit on the whole part.
-        """
-        lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
-        escapes = np.zeros(len(lo), bool)
-        check = ok & tube_open
-        for face in self.faces:
-            k, side = face["axis"], face["side"]
-            pokes = check & ((lo[:, k] < lo_hi[k]) if side == "lo" else (hi[:, k] > hi_lo[k]))
-            if not pokes.any():
-                continue
-            slo, shi = lo[pokes].copy(), hi[pokes].copy()
-            if side == "lo":
-                shi[:, k] = lo_hi[k]
-            else:
-                slo[:, k] = hi_lo[k]
-            _, gh = evaluate_limits(self.programs, slo, shi, self.params)
-            escapes[np.flatnonzero(pokes)[~np.any(gh < 0, axis=1)]] = True
-        return np.maximum(lo, lo_lo), np.minimum(hi, hi_hi), escapes
 
     def _thick_axes(self, lo, hi):
         """Axes along which a clipped image meets the exact window in more than a point.
@@ -373,7 +431,8 @@ def _settings(model, method, budget, overrides):
     return method, budget
 
 
-def prove(model, *, method=None, budget=None, progress=None, focus=None, **options):
+def prove(model, *, method=None, budget=None, progress=None, focus=None, executor="local",
+          scheduler=None, workers=None, **options):
     """Prove a map of fates for a model.
 
     Parameters
@@ -391,6 +450,14 @@ def prove(model, *, method=None, budget=None, progress=None, focus=None, **optio
         ``focus(tree, leaves, labelling, facts) -> ndarray of int`` instead names the
         leaves (node ids, any label) to split after each round; refinement stops when
         it names none.
+    executor : {"local", "dask"}
+        Where the flow batches of each round run: ``local`` in this process (or, with
+        `workers`, a process pool of that many processes on this machine); ``dask`` a
+        Dask distributed scheduler (`scheduler`), or a ``LocalCluster`` of `workers`
+        processes on 127.0.0.1 when None. The certificate does not depend on it.
+    scheduler : str, optional
+        Address of a running Dask scheduler, such as ``tcp://10.0.0.5:8786``.
+    workers : int, optional
     **options
         Method or budget fields by name.
 
@@ -401,10 +468,16 @@ def prove(model, *, method=None, budget=None, progress=None, focus=None, **optio
         the one of the last finished round. The same holds when the time limit passes
         during a round after the first (``stop_reason`` says so; the first round always
         finishes, since a proof needs one).
+
+    Raises
+    ------
+    UsageError
+        For a bad choice of executor, scheduler or workers, or an unreachable scheduler.
     """
     method, budget = _settings(model, method, budget, options)
-    with np.errstate(all="ignore"):  # NaN marks unusable bounds; no warnings needed
-        return _prove(model, method, budget, progress, focus)
+    with open_runner(executor, scheduler, workers) as runner, \
+            np.errstate(all="ignore"):  # NaN marks unusable bounds; no warnings needed
+        return _prove(model, method, budget, progress, focus, runner)
 
 
 def _focused(tree, leaves, labelling, facts, focus):
@@ -426,14 +499,16 @@ def _focused(tree, leaves, labelling, facts, focus):
     return leaves[mask[:L] & und]
 
 
-def _causes_first(tree, leaves, labelling, facts, wanted):
+def _causes_first(tree, leaves, labelling, facts, wanted, spare):
     """The leaves to split this round: where the graph is wrong first.
 
     An undecided leaf is a *cause* when its own facts fail (no image, a limit not kept,
     an escape), when it lies on a cycle of undecided leaves (recurrence, often an artefact
     of wide images: scipy's strongly connected components), or when one of its successors
     is decided (it sits on a border). The other undecided leaves only wait for their
-    undecided successors; they are split once no cause is left below the depth budget.
+    undecided successors; they are split once no cause is left below the depth budget,
+    or with the causes when these are at least half of the leaves `wanted` and the cell
+    budget is `spare` (it could hold every wanted leaf refined to the maximum depth).
     """
     from scipy.sparse.csgraph import connected_components
 
@@ -457,12 +532,17 @@ def _causes_first(tree, leaves, labelling, facts, wanted):
     number = np.full(len(tree), -1)
     number[leaves] = np.arange(L)
     first = wanted[cause[number[wanted]]]
-    return first if len(first) else wanted
+    # holding leaves back pays only when most of them wait: a round that splits half
+    # of them anyway costs about what one splitting all does, and the leaves held back
+    # would need rounds of their own later; a tight cell budget goes to the causes
+    if len(first) == 0 or (spare and 2 * len(first) >= len(wanted)):
+        return wanted
+    return first
 
 
-def _prove(model, method, budget, progress, focus):
+def _prove(model, method, budget, progress, focus, runner):
     start = time.monotonic()
-    prover = _Prover(model, method, budget, progress)
+    prover = _Prover(model, method, budget, progress, runner)
     tree = prover.tree
     snapshot = None
     interrupted = False
@@ -498,7 +578,10 @@ def _prove(model, method, budget, progress, focus):
                 wanted = _focused(tree, leaves, labelling, facts, focus)
             und = wanted[tree.depth[wanted] < budget.max_depth]
             if focus is None:
-                und = _causes_first(tree, leaves, labelling, facts, und)
+                # the leaves a refinement of every wanted leaf to max_depth would add
+                full = np.sum(2.0 ** (tree.n * (budget.max_depth - tree.depth[und])))
+                und = _causes_first(tree, leaves, labelling, facts, und,
+                                    full <= budget.max_cells - len(leaves))
             if len(und) == 0:
                 if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"

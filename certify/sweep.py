@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import contextlib
 import json
-import multiprocessing
 import os
 import re
 import tempfile
@@ -28,6 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from certify.errors import UsageError
+from certify.executors import EXECUTORS, check_executor, open_runner
 from certify.files import write_atomic
 from certify.expr import format_number
 
@@ -36,7 +36,6 @@ __all__ = [
     "MAX_BOXES",
     "MAX_VARIED",
     "MESSAGES",
-    "Runner",
     "SWEEP_FORMAT",
     "SweepResult",
     "analyse_box",
@@ -50,8 +49,6 @@ SWEEP_FORMAT = "certify-sweep/1"
 MAX_VARIED = 2
 #: Largest number of parameter boxes in one sweep.
 MAX_BOXES = 10_000
-#: Where the boxes can run.
-EXECUTORS = ("local", "dask")
 #: Status codes of :class:`SweepResult` and their messages.
 MESSAGES = {
     0: "Every parameter box analysed.",
@@ -264,16 +261,7 @@ def check_options(max_depth, time_limit_each, executor, scheduler, workers):
     if time_limit_each is not None and not (isinstance(time_limit_each, (int, float))
                                             and 0 < time_limit_each < float("inf")):
         raise UsageError("time_limit_each (--time-limit-each) must be a positive number of seconds")
-    if executor not in EXECUTORS:
-        raise UsageError(f"executor must be one of {', '.join(EXECUTORS)}, got {executor!r}")
-    if scheduler is not None and executor != "dask":
-        raise UsageError("a scheduler address (--scheduler) needs the dask executor (--executor dask)")
-    if workers is not None:
-        if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-            raise UsageError("workers (--workers) must be a whole number of at least 1")
-        if scheduler is not None:
-            raise UsageError("workers (--workers) applies to a local pool or a LocalCluster; "
-                             "a running Dask scheduler brings its own workers")
+    check_executor(executor, scheduler, workers)
 
 
 def _boxes(names, ranges):
@@ -446,97 +434,13 @@ def _task(model, box, settings):
 def _run(model, todo, settings, executor, scheduler, workers, out, progress, n_done, n_boxes):
     tasks = {box.key: _task(model, box, settings) for box in todo}
     by_key = {box.key: box for box in todo}
-    with Runner(executor, scheduler, min(workers or os.cpu_count() or 1, len(tasks))) as runner:
+    workers = min(workers or os.cpu_count() or 1, len(tasks)) if scheduler is None else None
+    with open_runner(executor, scheduler, workers, pooled=True) as runner:
         for key, answer in runner.results(analyse_box, tasks):
             _save_box(out, by_key[key], answer)
             n_done += 1
             if progress is not None:
                 progress(n_done, n_boxes)
-
-
-def _start_method():
-    methods = multiprocessing.get_all_start_methods()
-    return "forkserver" if "forkserver" in methods else "spawn"
-
-
-class Runner:
-    """Runs batches of tasks in a local process pool or on a Dask cluster.
-
-    One runner serves many batches (the levels of an adaptive atlas), so the processes
-    and their compiled model programs are kept from batch to batch.
-
-    Parameters
-    ----------
-    executor : {"local", "dask"}
-    scheduler : str or None
-        Address of a running Dask scheduler; None starts a ``LocalCluster`` on 127.0.0.1.
-    workers : int or None
-        Processes of the local pool or of the ``LocalCluster`` (default: all cores).
-    """
-
-    def __init__(self, executor, scheduler, workers):
-        self.executor, self.scheduler, self.workers = executor, scheduler, workers
-        self._stack = contextlib.ExitStack()
-        self._pool = self._client = None
-
-    def __enter__(self):
-        n = self.workers or os.cpu_count() or 1
-        if self.executor == "local":
-            from concurrent.futures import ProcessPoolExecutor
-
-            self._pool = ProcessPoolExecutor(
-                max_workers=n, mp_context=multiprocessing.get_context(_start_method()))
-            self._stack.callback(self._pool.shutdown, wait=True, cancel_futures=True)
-            return self
-        try:
-            from distributed import Client, LocalCluster
-        except ImportError:
-            raise UsageError("the dask executor needs dask.distributed: "
-                             "pip install 'dask[distributed]'") from None
-        with contextlib.ExitStack() as stack:
-            if self.scheduler is None:
-                cluster = stack.enter_context(LocalCluster(
-                    n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                    dashboard_address=None))
-                address = cluster.scheduler_address
-            else:
-                address = self.scheduler
-            try:
-                self._client = stack.enter_context(Client(address, timeout="20s"))
-            except (OSError, TimeoutError, ValueError) as exc:
-                raise UsageError(f"cannot reach the Dask scheduler at {address}: {exc}") from None
-            self._stack = stack.pop_all()
-        return self
-
-    def __exit__(self, *exc):
-        return self._stack.__exit__(*exc)
-
-    def results(self, function, tasks):
-        """Yield ``(key, function(*args))`` for ``tasks = {key: args}`` as they finish.
-
-        Closing the generator early cancels the tasks not yet started.
-        """
-        if self._pool is not None:
-            from concurrent.futures import as_completed
-
-            futures = {self._pool.submit(function, *args): key for key, args in tasks.items()}
-            try:
-                for future in as_completed(futures):
-                    yield futures[future], future.result()
-            finally:
-                for future in futures:
-                    future.cancel()
-            return
-        from distributed import as_completed
-
-        token = uuid.uuid4().hex[:12]
-        futures = {self._client.submit(function, *args, key=f"certify-box-{key}-{token}",
-                                       pure=False): key for key, args in tasks.items()}
-        try:
-            for future in as_completed(futures):
-                yield futures[future], future.result()
-        finally:
-            self._client.cancel(list(futures))
 
 
 def _save_box(out, box, answer):

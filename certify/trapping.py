@@ -49,6 +49,11 @@ ABOVE, BELOW, SHELL = 0, 1, 2
 CLASSES = ("above", "below", "shell")
 #: Fractions of the largest level the float check allows, tried in turn.
 LEVEL_TRIES = (0.95, 0.8, 0.5, 0.25, 0.1)
+#: Width in log scale at which the bisection for that level stops (0.1 % of the level;
+#: the levels tried are 5 % and more below it).
+LEVEL_TOLERANCE = 1e-3
+#: Directions of the float check's first bisection (:func:`_largest_level`).
+COARSE_DIRECTIONS = 256
 #: Factors of the scale search for P (:func:`_candidates`).
 SCALE_STEPS = (2.0, 2.0 ** 0.5, 2.0 ** 0.25, 2.0 ** 0.125)
 #: The box B is the bounding box of the ellipsoid {V <= level} widened by this factor.
@@ -234,39 +239,58 @@ def _parameter_samples(params, rng, count=6):
 
 
 def _level_ok(programs, samples, centre, matrix, factor, level, dirs):
-    """Float check: on sampled points of {V = level}, dV/dt < 0 and every limit holds."""
+    """Float check: on sampled points of {V = level}, dV/dt < 0 and every limit holds.
+
+    All parameter samples are evaluated in one batch (one program call, not one per
+    sample: the search calls this a few hundred times).
+    """
     x = centre + np.sqrt(level) * dirs @ factor
-    for p in samples:
-        inputs = np.concatenate([x, np.broadcast_to(p, (len(x), len(p)))], axis=1)
-        f = programs.field.point(inputs)
-        g = programs.limits.point(inputs) if programs.limits.n_outputs else np.ones((1, 1))
-        rate = 2.0 * np.einsum("ki,ij,kj->k", x - centre, matrix, f)
-        if not (np.all(rate < 0) and np.all(g > 0)):
-            return False
-    return True
+    k = len(x)
+    inputs = np.concatenate([np.tile(x, (len(samples), 1)),
+                             np.repeat(samples, k, axis=0)], axis=1)
+    f = programs.field.point(inputs)
+    if programs.limits.n_outputs and not np.all(programs.limits.point(inputs) > 0):
+        return False
+    d = np.tile(x - centre, (len(samples), 1))
+    return bool(np.all(np.sum((d @ matrix) * f, axis=1) < 0))
 
 
 def _largest_level(programs, samples, centre, matrix, width, rng):
-    """Bisection (in log scale) for the largest level passing the float check."""
+    """Bisection (in log scale, to :data:`LEVEL_TOLERANCE`) for the largest level passing
+    the float check.
+
+    The bisection first checks :data:`COARSE_DIRECTIONS` of the 2000 directions; the
+    level found is then checked on all of them, and only when it fails there does the
+    bisection go on below it with all directions (from 10 % below it when that passes).
+    """
     factor = np.linalg.inv(np.linalg.cholesky(matrix))   # rows: x - c = u @ factor, V = |u|^2
     dirs = _sphere(len(centre), 2000, rng)
     top = float(np.max(np.diag(matrix) * width ** 2))
     lo, hi = np.log(top) - 40.0, np.log(top)
-    if not _level_ok(programs, samples, centre, matrix, factor, np.exp(lo), dirs):
+    def passes(log_level, d):
+        return _level_ok(programs, samples, centre, matrix, factor, np.exp(log_level), d)
+
+    if not passes(lo, dirs):
         # with interval parameters the equilibrium moves: small levels fail, so take
         # the largest passing level of a coarse grid below the top instead
-        grid = np.log(top) - np.arange(1.0, 40.0)
-        passing = [g for g in grid
-                   if _level_ok(programs, samples, centre, matrix, factor, np.exp(g), dirs)]
+        passing = [g for g in np.log(top) - np.arange(1.0, 40.0) if passes(g, dirs)]
         if not passing:
             return None
         lo, hi = passing[0], passing[0] + 1.0
-    for _ in range(40):
-        mid = 0.5 * (lo + hi)
-        if _level_ok(programs, samples, centre, matrix, factor, np.exp(mid), dirs):
-            lo = mid
-        else:
-            hi = mid
+    floor = lo
+    for d in (dirs[:COARSE_DIRECTIONS], dirs):
+        while hi - lo > LEVEL_TOLERANCE:
+            mid = 0.5 * (lo + hi)
+            if passes(mid, d):
+                lo = mid
+            else:
+                hi = mid
+        if d is dirs or passes(lo, dirs):
+            break
+        # a little below the coarse level usually passes: bisect from there
+        lo, hi = max(floor, lo - 0.1), lo
+        if not passes(lo, dirs):
+            lo = floor
     return float(np.exp(lo))
 
 

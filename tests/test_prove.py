@@ -769,13 +769,25 @@ def test_refinement_splits_cycles_failures_and_borders_first():
     expected |= {int(a) for a, b in zip(src, dst)
                  if label[a] == "undecided" and label[b] in ("safe", "doomed")}
     leaves = np.arange(L)
-    first = prove_module._causes_first(leaves, leaves, labelling, facts, und)
+    causes_first = prove_module._causes_first
+    # a tight cell budget: the causes alone
+    first = causes_first(leaves, leaves, labelling, facts, und, False)
     assert 0 < len(expected) < len(und)
     assert set(first.tolist()) == expected
     # with no cause left, every wanted leaf is split
     waiting = np.array(sorted(set(und.tolist()) - expected))
-    assert set(prove_module._causes_first(leaves, leaves, labelling, facts, waiting)) \
+    assert set(causes_first(leaves, leaves, labelling, facts, waiting, True)) \
         == set(waiting.tolist())
+    # with a spare budget, the waiting leaves are held back only while the causes are
+    # fewer than half of the wanted leaves
+    causes = np.array(sorted(expected))
+    few = np.sort(np.concatenate([causes[:len(waiting) // 3], waiting]))
+    many = np.sort(np.concatenate([causes, waiting[:len(causes) // 2]]))
+    assert 0 < 2 * len(causes[:len(waiting) // 3]) < len(few)
+    assert set(causes_first(leaves, leaves, labelling, facts, few, True)) \
+        == set(causes[:len(waiting) // 3].tolist())
+    assert set(causes_first(leaves, leaves, labelling, facts, many, True)) == set(many.tolist())
+    assert set(causes_first(leaves, leaves, labelling, facts, many, False)) == expected
 
 
 def test_successors_cover_the_image_and_touching_leaves_are_left_out():

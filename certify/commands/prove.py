@@ -21,6 +21,16 @@ def add_arguments(parser):
                                                        "(.xml) with --limit")
     add_budget_arguments(parser)
     add_sbml_arguments(parser)
+    parser.add_argument("--executor", choices=["local", "dask"], default="local",
+                        help="where each round's flow batches run: this machine (default) "
+                             "or a Dask cluster; the certificate is the same")
+    parser.add_argument("--scheduler", metavar="ADDRESS",
+                        help="address of a running Dask scheduler, e.g. tcp://HOST:8786 "
+                             "(default with --executor dask: a LocalCluster on 127.0.0.1)")
+    parser.add_argument("--workers", type=int, metavar="N",
+                        help="processes of the LocalCluster (default: all cores); with "
+                             "--executor local, a process pool of N processes (default: "
+                             "none, the flows run in this process)")
 
 
 def add_budget_arguments(parser):
@@ -110,11 +120,15 @@ def run_proof(model_path, args, default_out=None):
     """Load, prove, write outputs; shared by ``prove`` and ``demo``. Returns exit code."""
     from pathlib import Path
 
+    from certify.executors import check_executor
     from certify.files import output_folder
     from certify.prove import prove, write_proof
     from certify.report import summary_table
 
     _check_budget(args)
+    executor = getattr(args, "executor", "local")  # demo has no executor options
+    scheduler, workers = getattr(args, "scheduler", None), getattr(args, "workers", None)
+    check_executor(executor, scheduler, workers)
     model = _load(model_path, args)
     if args.param:
         model = model.with_parameters(dict(parse_param(p) for p in args.param))
@@ -129,7 +143,8 @@ def run_proof(model_path, args, default_out=None):
     if model.controls:
         return _run_policy(model, out, args, progress)
     proof = prove(model, max_depth=args.max_depth, max_cells=args.max_cells,
-                  time_limit=args.time_limit, progress=progress)
+                  time_limit=args.time_limit, progress=progress, executor=executor,
+                  scheduler=scheduler, workers=workers)
     if progress is not None:
         progress.close()
     started = time.time()

@@ -107,8 +107,8 @@ def _interval_minimum(a, b, curv, h):
 
 
 def _track(sim, x0, lower, upper, horizon):
-    """Over the grid: least margin bound before `lower` and overall, least grid margin up
-    to `upper` (all per start, over all limits)."""
+    """Over the grid: least margin bound before `lower` and overall, least margin at the
+    grid points and crossing bounds up to `upper` (all per start, over all limits)."""
     y0 = x0.T.ravel()
     solver = DOP853(sim.rhs, 0.0, y0, horizon, rtol=1e-10, atol=1e-12)
     grid = np.linspace(0.0, horizon, GRID_STEPS + 1)
@@ -117,6 +117,7 @@ def _track(sim, x0, lower, upper, horizon):
     before = np.full(len(x0), np.inf)
     overall = np.full(len(x0), np.inf)
     upto = m.min(axis=0)
+    ends = np.unique(upper[np.isfinite(upper)])
     k = 1
     while solver.status == "running":
         solver.step()
@@ -131,6 +132,10 @@ def _track(sim, x0, lower, upper, horizon):
                 overall = np.minimum(overall, low)
                 before = np.where(t_prev < lower, np.minimum(before, low), before)
                 upto = np.where(t <= upper, np.minimum(upto, m_new.min(axis=0)), upto)
+                # the bounds themselves, which need not fall on the grid
+                for u in ends[(ends > t_prev) & (ends <= t)]:
+                    upto = np.where(u <= upper, np.minimum(upto, sim.margins(dense(u))[0]
+                                                           .min(axis=0)), upto)
                 m, c = m_new, c_new
             k = j
     return before, upto, overall

@@ -32,6 +32,9 @@ __all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 
 #: A flow stops once its end box is this many times wider than its cell along some axis.
 GROWTH_LIMIT = 4.0
+#: A followed tube (:meth:`_Prover.extend`) stops once its end box is this many times
+#: wider than its cell along some axis, not where it leaves the cell.
+FOLLOW_GROWTH_LIMIT = 4.0
 
 
 @dataclass(frozen=True)
@@ -46,6 +49,9 @@ class Method:
     min_step: float = 1e-6
     max_steps: int = 400
     start_depth: int = 3
+    #: follow the tubes of the leaves undecided at ``max_depth`` one round longer
+    #: (docs/proof-loop.md); None: for models with three or more states
+    follow_undecided: bool | None = None
 
 
 @dataclass(frozen=True)
@@ -57,7 +63,8 @@ class Budget:
     time_limit: float = 300.0
 
 
-METHOD_KEYS = {"order", "min_horizon", "max_horizon", "step", "max_step", "start_depth"}
+METHOD_KEYS = {"order", "min_horizon", "max_horizon", "step", "max_step", "start_depth",
+               "follow_undecided"}
 BUDGET_KEYS = {"max_depth", "max_cells", "time_limit"}
 
 
@@ -135,6 +142,11 @@ class Proof:
         return int(self.tree.depth[self.leaves].max())
 
 
+#: The per-node facts of :class:`_Prover` that a tube determines.
+_FACT_ARRAYS = ("flow_ok", "kept", "escapes", "crossing", "horizon_lo", "horizon_hi",
+                "first_unkept", "image_lo", "image_hi")
+
+
 class _Prover:
     def __init__(self, model, method, budget, progress):
         self.model = model
@@ -181,6 +193,12 @@ class _Prover:
     # -- per-cell analysis -------------------------------------------------------------
     def analyse(self, nodes):
         """Compute the facts of new leaves."""
+        self._analyse(nodes)
+
+    def _analyse(self, nodes, follow=None):
+        """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
+        where they leave their cells and stop at the growth limit `follow`
+        (:meth:`extend`)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -194,6 +212,7 @@ class _Prover:
         widths = cell_hi - cell_lo
 
         min_horizon = self.method.min_horizon
+        growth_limit = follow or GROWTH_LIMIT
 
         def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
             left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
@@ -201,13 +220,14 @@ class _Prover:
             inside = np.all((end_lo >= cell_lo[ids]) & (end_hi <= cell_hi[ids]), axis=1)
             _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
             crossed = np.any(gh < 0, axis=1)
-            too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
+            too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > growth_limit
             # an end box beyond an open side would escape: follow the trajectories until
             # they come back into the window or cross a limit out there
             ones = np.ones(len(ids), bool)
             away = self._clip(end_lo, end_hi, ones, ones)[2]
             trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
-            return ((left | inside | trapped) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
+            moved = inside | trapped if follow else left | inside | trapped
+            return (moved & ~away & (t_lo >= min_horizon)) | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
@@ -328,6 +348,30 @@ class _Prover:
         _, lo_hi, hi_lo, _ = self.window_sides
         return (lo < hi) & (hi > lo_hi) & (lo < hi_lo)
 
+    def extend(self, nodes, growth_limit):
+        """Follow the tubes of undecided leaves further; keep the longer tubes that decide.
+
+        Replacing the facts of undecided leaves never undecides another leaf (a decided
+        leaf's successors are decided), so the leaves still undecided with their longer
+        tubes get their old tubes back, which may now decide them too.
+
+        Returns
+        -------
+        leaves, facts, labelling
+            As :meth:`label`.
+        """
+        saved = {k: getattr(self, k)[nodes].copy() for k in _FACT_ARRAYS}
+        refs = self.steps.refs(nodes)
+        self._analyse(nodes, follow=growth_limit)
+        leaves, _, labelling = self.label()
+        number = np.full(len(self.tree), -1)
+        number[leaves] = np.arange(len(leaves))
+        back = labelling.label[number[nodes]] == UNDECIDED
+        for k in _FACT_ARRAYS:
+            getattr(self, k)[nodes[back]] = saved[k][back]
+        self.steps.set_refs(nodes[back], refs[back])
+        return self.label()
+
     # -- labelling ---------------------------------------------------------------------
     def label(self):
         leaves = self.tree.leaves()
@@ -368,7 +412,8 @@ def _settings(model, method, budget, overrides):
             b[k] = v
         else:
             raise TypeError(f"prove() got an unexpected option {k!r}")
-    method = method or Method(**{k: type(getattr(Method, k))(v) for k, v in m.items()})
+    kinds = {k: type(getattr(Method, k)) for k in METHOD_KEYS} | {"follow_undecided": bool}
+    method = method or Method(**{k: kinds[k](v) for k, v in m.items()})
     budget = budget or Budget(**{k: type(getattr(Budget, k))(v) for k, v in b.items()})
     return method, budget
 
@@ -469,6 +514,9 @@ def _prove(model, method, budget, progress, focus):
     stop_reason = "nothing left undecided"
     rounds = 0
     deadline = start + budget.time_limit
+    follow = method.follow_undecided
+    follow = len(model.states) >= 3 if follow is None else follow
+    extend = None
     try:
         new = tree.split([0]) if method.start_depth > 0 else np.array([0])
         for _ in range(1, method.start_depth):
@@ -476,10 +524,15 @@ def _prove(model, method, budget, progress, focus):
         while True:
             # a proof needs one finished round: only later rounds are abandoned at the deadline
             prover.deadline = None if snapshot is None else deadline
-            prover.analyse(new)
+            if extend:
+                leaves, facts, labelling = prover.extend(new, extend)
+            else:
+                prover.analyse(new)
             if snapshot is not None and time.monotonic() >= deadline:
                 raise DeadlinePassed
-            leaves, facts, labelling = prover.label()
+            if not extend:
+                leaves, facts, labelling = prover.label()
+            extend = None
             rounds += 1
             # the steps of split cells are no longer needed (the proof is the leaves')
             prover.steps.forget_all_but(leaves)
@@ -499,6 +552,12 @@ def _prove(model, method, budget, progress, focus):
             und = wanted[tree.depth[wanted] < budget.max_depth]
             if focus is None:
                 und = _causes_first(tree, leaves, labelling, facts, und)
+            if len(und) == 0 and len(wanted) and focus is None and follow \
+                    and elapsed < budget.time_limit:
+                # one more round at the maximum depth: the undecided leaves' tubes followed
+                extend, follow = FOLLOW_GROWTH_LIMIT, False
+                new = wanted
+                continue
             if len(und) == 0:
                 if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"

@@ -19,7 +19,7 @@ import scipy.sparse as sp
 
 from . import interval as iv
 from .cells import CellTree, index_dtype
-from .flow import DeadlinePassed, flow_boxes
+from .flow import DeadlinePassed, STOPPED, flow_boxes
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
@@ -143,8 +143,8 @@ class Proof:
 
 
 #: The per-node facts of :class:`_Prover` that a tube determines.
-_FACT_ARRAYS = ("flow_ok", "kept", "escapes", "crossing", "horizon_lo", "horizon_hi",
-                "first_unkept", "image_lo", "image_hi")
+_FACT_ARRAYS = ("flow_ok", "kept", "escapes", "left_cell", "crossing", "horizon_lo",
+                "horizon_hi", "first_unkept", "image_lo", "image_hi")
 
 
 class _Prover:
@@ -168,6 +168,7 @@ class _Prover:
         self.flow_ok = np.zeros(size, bool)
         self.kept = np.zeros(size, bool)
         self.escapes = np.zeros(size, bool)
+        self.left_cell = np.zeros(size, bool)  # the tube stopped only where it left its cell
         self.crossing = np.full(size, np.inf)
         self.horizon_lo = np.zeros(size)
         self.horizon_hi = np.zeros(size)
@@ -183,6 +184,7 @@ class _Prover:
         self.flow_ok = np.concatenate([self.flow_ok, np.zeros(extra, bool)])
         self.kept = np.concatenate([self.kept, np.zeros(extra, bool)])
         self.escapes = np.concatenate([self.escapes, np.zeros(extra, bool)])
+        self.left_cell = np.concatenate([self.left_cell, np.zeros(extra, bool)])
         self.crossing = np.concatenate([self.crossing, np.full(extra, np.inf)])
         self.horizon_lo = np.concatenate([self.horizon_lo, np.zeros(extra)])
         self.horizon_hi = np.concatenate([self.horizon_hi, np.zeros(extra)])
@@ -213,6 +215,7 @@ class _Prover:
 
         min_horizon = self.method.min_horizon
         growth_limit = follow or GROWTH_LIMIT
+        left_cell = np.zeros(len(todo), bool)
 
         def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
             left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
@@ -227,7 +230,10 @@ class _Prover:
             away = self._clip(end_lo, end_hi, ones, ones)[2]
             trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
             moved = inside | trapped if follow else left | inside | trapped
-            return (moved & ~away & (t_lo >= min_horizon)) | crossed | too_wide
+            moved &= ~away & (t_lo >= min_horizon)
+            # only there would a followed tube go on (:meth:`extend`)
+            left_cell[ids] = moved & ~inside & ~trapped & ~crossed & ~too_wide
+            return moved | crossed | too_wide
 
         m = self.method
         result = flow_boxes(self.programs, cell_lo, cell_hi, self.params,
@@ -236,6 +242,8 @@ class _Prover:
                             max_steps=m.max_steps, should_stop=should_stop,
                             deadline=self.deadline)
         self._tube_facts(todo, result)
+        self.left_cell[nodes] = False
+        self.left_cell[todo] = left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
 
     def _tube_facts(self, todo, result):
@@ -355,11 +363,15 @@ class _Prover:
         leaf's successors are decided), so the leaves still undecided with their longer
         tubes get their old tubes back, which may now decide them too.
 
+        Only tubes that stopped where they left their cells are followed: the others
+        stopped for a reason that a followed tube shares (the same steps again).
+
         Returns
         -------
         leaves, facts, labelling
             As :meth:`label`.
         """
+        nodes = nodes[self.left_cell[nodes]]
         saved = {k: getattr(self, k)[nodes].copy() for k in _FACT_ARRAYS}
         refs = self.steps.refs(nodes)
         self._analyse(nodes, follow=growth_limit)

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import cached_property
 
 import numpy as np
@@ -21,7 +21,7 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .flow import DeadlinePassed, flow_boxes, join_results
+from .flow import DeadlinePassed, STOPPED, flow_boxes, join_results
 from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
@@ -36,6 +36,9 @@ __all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 GROWTH_LIMIT = 4.0
 #: Fewest cells in a piece of a round's batch sent to a worker.
 MIN_PIECE = 64
+#: A followed tube (:meth:`_Prover.extend`) stops once its end box is this many times
+#: wider than its cell along some axis, not where it leaves the cell.
+FOLLOW_GROWTH_LIMIT = 4.0
 
 
 @dataclass(frozen=True)
@@ -50,6 +53,9 @@ class Method:
     min_step: float = 1e-6
     max_steps: int = 400
     start_depth: int = 3
+    #: follow the tubes of the leaves undecided at ``max_depth`` one round longer
+    #: (docs/proof-loop.md); None: for models with three or more states
+    follow_undecided: bool | None = None
 
 
 @dataclass(frozen=True)
@@ -61,7 +67,8 @@ class Budget:
     time_limit: float = 300.0
 
 
-METHOD_KEYS = {"order", "min_horizon", "max_horizon", "step", "max_step", "start_depth"}
+METHOD_KEYS = {"order", "min_horizon", "max_horizon", "step", "max_step", "start_depth",
+               "follow_undecided"}
 BUDGET_KEYS = {"max_depth", "max_cells", "time_limit"}
 
 
@@ -140,6 +147,14 @@ class Proof:
 
 
 @dataclass(frozen=True)
+class _Stop:
+    """Per tube end: whether the tube stops there, and whether only for leaving its cell."""
+
+    stop: np.ndarray
+    left_cell: np.ndarray
+
+
+@dataclass(frozen=True)
 class _Tubes:
     """What the flows of a batch of cells need besides the cells.
 
@@ -154,6 +169,9 @@ class _Tubes:
     faces: list
     window_sides: tuple
     regions: object
+    #: None: tubes stop where they leave their cells (at GROWTH_LIMIT); a growth limit:
+    #: followed tubes (:meth:`_Prover.extend`) that go on there and stop at that limit
+    follow: float | None = None
 
     @cached_property
     def programs(self):
@@ -170,28 +188,40 @@ class _Tubes:
         Each cell's flow depends on that cell alone, so a batch cut into pieces gives
         the same records as the batch whole.
         """
-        widths = cell_hi - cell_lo
-        min_horizon = self.method.min_horizon
-
         def should_stop(ids, end_lo, end_hi, t_lo, t_hi):
-            left = np.any((end_hi < cell_lo[ids]) | (end_lo > cell_hi[ids]), axis=1)
-            # an image inside its own cell closes a self-loop: longer flows add nothing
-            inside = np.all((end_lo >= cell_lo[ids]) & (end_hi <= cell_hi[ids]), axis=1)
-            _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
-            crossed = np.any(gh < 0, axis=1)
-            too_wide = np.max((end_hi - end_lo) / widths[ids], axis=1) > GROWTH_LIMIT
-            # an end box beyond an open side would escape: follow the trajectories until
-            # they come back into the window or cross a limit out there
-            ones = np.ones(len(ids), bool)
-            away = self.clip(end_lo, end_hi, ones, ones)[2]
-            trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
-            return ((left | inside | trapped) & ~away & (t_lo >= min_horizon)) | crossed | too_wide
+            return self.stops(cell_lo[ids], cell_hi[ids], end_lo, end_hi, t_lo).stop
 
         m = self.method
         return flow_boxes(self.programs, cell_lo, cell_hi, self.params,
                           min_horizon=0.0, max_horizon=m.max_horizon,
                           step=m.step, max_step=m.max_step, min_step=m.min_step,
                           max_steps=m.max_steps, should_stop=should_stop, deadline=deadline)
+
+    def stops(self, cell_lo, cell_hi, end_lo, end_hi, t_lo):
+        """Where a tube from each cell, with the box `end` at time `t_lo`, stops, and why.
+
+        Returns
+        -------
+        _Stop
+            ``stop`` per cell, and ``left_cell``: it stops only because its image left
+            the cell (a followed tube, ``follow`` set, would go on there).
+        """
+        left = np.any((end_hi < cell_lo) | (end_lo > cell_hi), axis=1)
+        # an image inside its own cell closes a self-loop: longer flows add nothing
+        inside = np.all((end_lo >= cell_lo) & (end_hi <= cell_hi), axis=1)
+        _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
+        crossed = np.any(gh < 0, axis=1)
+        growth_limit = self.follow or GROWTH_LIMIT
+        too_wide = np.max((end_hi - end_lo) / (cell_hi - cell_lo), axis=1) > growth_limit
+        # an end box beyond an open side would escape: follow the trajectories until
+        # they come back into the window or cross a limit out there
+        ones = np.ones(len(end_lo), bool)
+        away = self.clip(end_lo, end_hi, ones, ones)[2]
+        trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
+        moved = (inside | trapped) if self.follow else (left | inside | trapped)
+        moved &= ~away & (t_lo >= self.method.min_horizon)
+        return _Stop(stop=moved | crossed | too_wide,
+                     left_cell=moved & ~inside & ~trapped & ~crossed & ~too_wide)
 
     def clip(self, lo, hi, ok, tube_open):
         """Cut images to the window; flag images whose outside parts may matter.
@@ -225,6 +255,11 @@ def _flow_piece(tubes, cell_lo, cell_hi):
         return tubes.flow(cell_lo, cell_hi)
 
 
+#: The per-node facts of :class:`_Prover` that a tube determines.
+_FACT_ARRAYS = ("flow_ok", "kept", "escapes", "left_cell", "crossing", "horizon_lo",
+                "horizon_hi", "first_unkept", "image_lo", "image_hi")
+
+
 class _Prover:
     def __init__(self, model, method, budget, progress, runner=None):
         self.model = model
@@ -250,6 +285,7 @@ class _Prover:
         self.flow_ok = np.zeros(size, bool)
         self.kept = np.zeros(size, bool)
         self.escapes = np.zeros(size, bool)
+        self.left_cell = np.zeros(size, bool)  # the tube stopped only where it left its cell
         self.crossing = np.full(size, np.inf)
         self.horizon_lo = np.zeros(size)
         self.horizon_hi = np.zeros(size)
@@ -265,6 +301,7 @@ class _Prover:
         self.flow_ok = np.concatenate([self.flow_ok, np.zeros(extra, bool)])
         self.kept = np.concatenate([self.kept, np.zeros(extra, bool)])
         self.escapes = np.concatenate([self.escapes, np.zeros(extra, bool)])
+        self.left_cell = np.concatenate([self.left_cell, np.zeros(extra, bool)])
         self.crossing = np.concatenate([self.crossing, np.full(extra, np.inf)])
         self.horizon_lo = np.concatenate([self.horizon_lo, np.zeros(extra)])
         self.horizon_hi = np.concatenate([self.horizon_hi, np.zeros(extra)])
@@ -275,6 +312,12 @@ class _Prover:
     # -- per-cell analysis -------------------------------------------------------------
     def analyse(self, nodes):
         """Compute the facts of new leaves."""
+        self._analyse(nodes)
+
+    def _analyse(self, nodes, follow=None):
+        """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
+        where they leave their cells and stop at the growth limit `follow`
+        (:meth:`extend`)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -284,18 +327,23 @@ class _Prover:
         todo = nodes[~outside]
         if len(todo) == 0:
             return
-        result = self._flows(self.tree.lo[todo], self.tree.hi[todo])
+        tubes = self.tubes if follow is None else replace(self.tubes, follow=follow)
+        cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
+        result = self._flows(tubes, cell_lo, cell_hi)
         self._tube_facts(todo, result)
+        ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
+        self.left_cell[nodes] = False
+        self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
 
-    def _flows(self, cell_lo, cell_hi):
+    def _flows(self, tubes, cell_lo, cell_hi):
         """The flows of a round's new cells, in pieces on the runner's workers if any."""
         if not self.runner.parallel:
-            return self.tubes.flow(cell_lo, cell_hi, self.deadline)
+            return tubes.flow(cell_lo, cell_hi, self.deadline)
         n_pieces = max(1, min(2 * self.runner.n_workers, -(-len(cell_lo) // MIN_PIECE)))
         pieces = np.array_split(np.arange(len(cell_lo)), n_pieces)
         try:
-            parts = self.runner.map(_flow_piece, [(self.tubes, cell_lo[k], cell_hi[k])
+            parts = self.runner.map(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
                                                   for k in pieces], self.deadline)
         except DeadlineReached:
             raise DeadlinePassed from None
@@ -386,6 +434,34 @@ class _Prover:
         _, lo_hi, hi_lo, _ = self.window_sides
         return (lo < hi) & (hi > lo_hi) & (lo < hi_lo)
 
+    def extend(self, nodes, growth_limit):
+        """Follow the tubes of undecided leaves further; keep the longer tubes that decide.
+
+        Replacing the facts of undecided leaves never undecides another leaf (a decided
+        leaf's successors are decided), so the leaves still undecided with their longer
+        tubes get their old tubes back, which may now decide them too.
+
+        Only tubes that stopped where they left their cells are followed: the others
+        stopped for a reason that a followed tube shares (the same steps again).
+
+        Returns
+        -------
+        leaves, facts, labelling
+            As :meth:`label`.
+        """
+        nodes = nodes[self.left_cell[nodes]]
+        saved = {k: getattr(self, k)[nodes].copy() for k in _FACT_ARRAYS}
+        refs = self.steps.refs(nodes)
+        self._analyse(nodes, follow=growth_limit)
+        leaves, _, labelling = self.label()
+        number = np.full(len(self.tree), -1)
+        number[leaves] = np.arange(len(leaves))
+        back = labelling.label[number[nodes]] == UNDECIDED
+        for k in _FACT_ARRAYS:
+            getattr(self, k)[nodes[back]] = saved[k][back]
+        self.steps.set_refs(nodes[back], refs[back])
+        return self.label()
+
     # -- labelling ---------------------------------------------------------------------
     def label(self):
         leaves = self.tree.leaves()
@@ -426,7 +502,8 @@ def _settings(model, method, budget, overrides):
             b[k] = v
         else:
             raise TypeError(f"prove() got an unexpected option {k!r}")
-    method = method or Method(**{k: type(getattr(Method, k))(v) for k, v in m.items()})
+    kinds = {k: type(getattr(Method, k)) for k in METHOD_KEYS} | {"follow_undecided": bool}
+    method = method or Method(**{k: kinds[k](v) for k, v in m.items()})
     budget = budget or Budget(**{k: type(getattr(Budget, k))(v) for k, v in b.items()})
     return method, budget
 
@@ -549,6 +626,9 @@ def _prove(model, method, budget, progress, focus, runner):
     stop_reason = "nothing left undecided"
     rounds = 0
     deadline = start + budget.time_limit
+    follow = method.follow_undecided
+    follow = len(model.states) >= 3 if follow is None else follow
+    extend = None
     try:
         new = tree.split([0]) if method.start_depth > 0 else np.array([0])
         for _ in range(1, method.start_depth):
@@ -556,10 +636,15 @@ def _prove(model, method, budget, progress, focus, runner):
         while True:
             # a proof needs one finished round: only later rounds are abandoned at the deadline
             prover.deadline = None if snapshot is None else deadline
-            prover.analyse(new)
+            if extend:
+                leaves, facts, labelling = prover.extend(new, extend)
+            else:
+                prover.analyse(new)
             if snapshot is not None and time.monotonic() >= deadline:
                 raise DeadlinePassed
-            leaves, facts, labelling = prover.label()
+            if not extend:
+                leaves, facts, labelling = prover.label()
+            extend = None
             rounds += 1
             # the steps of split cells are no longer needed (the proof is the leaves')
             prover.steps.forget_all_but(leaves)
@@ -582,6 +667,12 @@ def _prove(model, method, budget, progress, focus, runner):
                 full = np.sum(2.0 ** (tree.n * (budget.max_depth - tree.depth[und])))
                 und = _causes_first(tree, leaves, labelling, facts, und,
                                     full <= budget.max_cells - len(leaves))
+            if len(und) == 0 and len(wanted) and focus is None and follow \
+                    and elapsed < budget.time_limit:
+                # one more round at the maximum depth: the undecided leaves' tubes followed
+                extend, follow = FOLLOW_GROWTH_LIMIT, False
+                new = wanted
+                continue
             if len(und) == 0:
                 if len(wanted):
                     stop_reason = f"maximum depth {budget.max_depth} reached"

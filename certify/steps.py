@@ -119,14 +119,22 @@ class StepStore:
                 self.ref[mine, 1] = np.arange(len(mine))
 
     def snapshot(self):
-        """What :meth:`restore` needs to undo later additions."""
-        return len(self.batches), len(self.ref)
+        """What :meth:`restore` needs to undo later additions and replacements."""
+        return len(self.batches), self.ref.copy()
 
     def restore(self, snapshot):
-        """Forget the batches and cells added since `snapshot`."""
-        n_batches, n_nodes = snapshot
+        """Forget the batches and cells added (or steps replaced) since `snapshot`."""
+        n_batches, ref = snapshot
         del self.batches[n_batches:]
-        self.ref = self.ref[:n_nodes]
+        self.ref = ref
+
+    def refs(self, nodes):
+        """Where the steps of `nodes` are kept (for :meth:`set_refs`)."""
+        return self._ref(nodes)
+
+    def set_refs(self, nodes, refs):
+        """Give `nodes` back the steps that :meth:`refs` named (still held)."""
+        self.ref[nodes] = refs
 
     def starts(self, nodes):
         """Per node its starting set ``(set0_m, set0_r)`` and the offsets of its steps.

@@ -75,6 +75,26 @@ def test_store_keeps_what_it_is_given_and_forgets_split_cells():
     assert_holds_decay(store, 6, 5.0, 5.01)
 
 
+def test_replaced_steps_are_given_back_and_restored():
+    # a followed tube replaces a cell's steps (certify/prove.py, extend): set_refs gives
+    # the old ones back, restore() undoes a replacement made after the snapshot
+    store = StepStore(1)
+    short = decay_flow([1.0, 2.0], 0.01)
+    store.add(np.array([0, 1]), short)
+    old = store.refs(np.array([1]))
+    mark = store.snapshot()
+    longer = flow_boxes(_build((-x,), (x,), (), (), 4), np.array([[2.0]]), np.array([[2.01]]),
+                        [], min_horizon=3.0, max_horizon=3.0, step=0.1)
+    store.add(np.array([1]), longer)
+    np.testing.assert_array_equal(store.gather(np.array([1]), "h"), longer.h)
+    store.set_refs(np.array([1]), old)
+    np.testing.assert_array_equal(store.gather(np.array([1]), "h"), short.h[short.steps_of(1)])
+    store.add(np.array([1]), longer)
+    store.restore(mark)
+    np.testing.assert_array_equal(store.gather(np.array([1]), "h"), short.h[short.steps_of(1)])
+    assert_holds_decay(store, 1, 2.0, 2.01)
+
+
 def exact_cells(tree, leaves):
     """Exact Fraction boxes of the leaves, from their dyadic addresses."""
     out = []

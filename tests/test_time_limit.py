@@ -53,8 +53,9 @@ def test_round_past_the_limit_keeps_the_last_finished_round(late_flow):
     assert WITHIN.fullmatch(proof.stop_reason).groups() == ("2", "1")
     assert proof.rounds == 1 and not proof.interrupted
     assert proof.depth_reached == start_depth
-    # the same as the proof of the first round alone (the first round has no deadline)
-    first = prove(model, max_depth=start_depth)
+    # the same as the proof of the first round alone (the first round has no deadline;
+    # without the round that follows the undecided leaves' tubes at the maximum depth)
+    first = prove(model, max_depth=start_depth, follow_undecided=False)
     assert first.rounds == 1 and first.stop_reason.startswith("maximum depth")
     np.testing.assert_array_equal(proof.leaves, first.leaves)
     np.testing.assert_array_equal(proof.labelling.label, first.labelling.label)
@@ -62,6 +63,21 @@ def test_round_past_the_limit_keeps_the_last_finished_round(late_flow):
     assert proof.fractions == first.fractions
     # no step of the abandoned round is kept
     assert len(proof.steps.batches) == len(first.steps.batches)
+    for key in ("h", "E", "m", "A"):
+        np.testing.assert_array_equal(proof.steps.gather(proof.leaves, key),
+                                      first.steps.gather(first.leaves, key))
+    assert _valid(proof)
+
+
+def test_followed_round_past_the_limit_gives_the_old_tubes_back(late_flow):
+    # the round that follows undecided tubes replaces steps: abandoning it must restore
+    # them (certify/steps.py, restore), so the proof is round 1's, bit for bit
+    model = load_model(FOOD_CHAIN)
+    start_depth = prove_module.Method().start_depth
+    proof = prove(model, max_depth=start_depth, time_limit=600)
+    assert WITHIN.fullmatch(proof.stop_reason).groups() == ("2", "1")
+    first = prove(model, max_depth=start_depth, follow_undecided=False)
+    np.testing.assert_array_equal(proof.labelling.label, first.labelling.label)
     for key in ("h", "E", "m", "A"):
         np.testing.assert_array_equal(proof.steps.gather(proof.leaves, key),
                                       first.steps.gather(first.leaves, key))

@@ -1,0 +1,119 @@
+"""Followed tubes at the maximum depth (certify/prove.py, ``_Prover.extend``).
+
+After the last refinement round the tubes of the undecided leaves are followed past the
+point where they left their cells; the longer tubes that decide a leaf are kept, the
+others are given back. The checker verifies the stored tubes whatever their length, so
+these tests check that (a) no leaf decided without following loses or changes its label
+(the monotonicity argument of docs/proof-loop.md), (b) the certificate passes the
+independent checker and a tube with a step dropped is rejected, and (c) the new labels
+agree with scipy simulation of the model (DOP853, rtol 1e-10: common practice).
+"""
+
+from __future__ import annotations
+
+import gzip
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+import sympy
+from scipy.integrate import solve_ivp
+
+from certify.certificate import certificate_data, write_certificate
+from certify.check import check_certificate
+from certify.container import decode_array, encode_array
+from certify.model import load_model
+from certify.prove import prove
+
+ROOT = Path(__file__).resolve().parent.parent
+#: A 2D model keeps the test short; following is on by default from three states on.
+FERMENTER = ROOT / "models" / "fermenter.toml"
+DEPTH = 5
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory):
+    """The fermenter at depth 5 with and without followed tubes, and the certificate."""
+    model = load_model(FERMENTER)
+    plain = prove(model, max_depth=DEPTH, follow_undecided=False)
+    followed = prove(model, max_depth=DEPTH, follow_undecided=True)
+    path = tmp_path_factory.mktemp("follow") / "followed.json.gz"
+    write_certificate(path, certificate_data(followed, {}))
+    return model, plain, followed, path
+
+
+def test_following_keeps_every_decided_label_and_decides_more(runs):
+    _, plain, followed, _ = runs
+    np.testing.assert_array_equal(plain.leaves, followed.leaves)
+    before, after = plain.labelling.label, followed.labelling.label
+    decided = before != "undecided"
+    np.testing.assert_array_equal(before[decided], after[decided])
+    gained = ~decided & (after != "undecided")
+    assert gained.any()  # not vacuous: following decides leaves at this depth
+    assert followed.fractions["undecided"] < plain.fractions["undecided"]
+
+
+def _numeric(model, exprs):
+    """Float functions of the states (sympy lambdify; the fermenter's parameters are
+    numbers, ``lo == hi``)."""
+    values = {p.symbol if hasattr(p, "symbol") else sympy.Symbol(p.name, real=True):
+              sympy.Rational(p.lo) for p in model.parameters}
+    return sympy.lambdify(model.state_symbols, [sympy.sympify(e).subs(values) for e in exprs],
+                          "numpy")
+
+
+def test_cells_decided_by_following_agree_with_simulation(runs):
+    model, plain, followed, _ = runs
+    gained = (plain.labelling.label == "undecided") & (followed.labelling.label != "undecided")
+    cells = followed.leaves[gained]
+    lo, hi = followed.tree.lo[cells], followed.tree.hi[cells]
+    x0 = lo + np.random.default_rng(14).random(lo.shape) * (hi - lo)
+    labels = followed.labelling.label[gained]
+    upper = followed.labelling.crossing_upper[gained]
+    assert all(p.lo == p.hi for p in model.parameters)
+    field = _numeric(model, model.equations)
+    limits = _numeric(model, [c.g for c in model.constraints])
+
+    def f(_, x):
+        return field(*x)
+
+    for x, label, bound in zip(x0, labels, upper):
+        # scipy DOP853 at rtol 1e-10 (common practice for a reference trajectory)
+        horizon = 100.0 if label == "safe" else float(bound)
+        sol = solve_ivp(f, (0.0, horizon), x, method="DOP853", rtol=1e-10, atol=1e-12,
+                        dense_output=True)
+        path = sol.sol(np.linspace(0.0, horizon, 4001))
+        margins = np.min([np.broadcast_to(g, path.shape[1]) for g in limits(*path)], axis=0)
+        if label == "safe":
+            assert margins.min() > -1e-6, (x, label)
+        else:
+            assert margins.min() < 1e-6, (x, label, bound)
+
+
+def test_followed_certificate_passes_the_checker(runs):
+    result = check_certificate(runs[3], jobs=1)
+    assert result.valid, result.failures[:3]
+
+
+def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, tmp_path):
+    _, plain, followed, path = runs
+    gained = np.flatnonzero((plain.labelling.label == "undecided")
+                            & (followed.labelling.label != "undecided"))
+    with gzip.open(path, "rb") as f:
+        data = json.loads(f.read())
+    cells = data["cells"]
+    start = decode_array(cells["step_start"])
+    c = int(gained[0])
+    last = int(start[c + 1]) - 1
+    assert last > int(start[c])
+    for key in ("step_h", "step_E", "step_m", "step_A"):
+        a = decode_array(cells[key])
+        cells[key] = encode_array(np.delete(a, last, axis=0), "<f8")
+    start[c + 1:] -= 1
+    cells["step_start"] = encode_array(start, "<i8")
+    tampered = tmp_path / "dropped.json.gz"
+    with gzip.open(tampered, "wb") as f:
+        f.write(json.dumps(data).encode())
+    result = check_certificate(tampered, jobs=1)
+    assert not result.valid

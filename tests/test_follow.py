@@ -107,7 +107,7 @@ def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, tmp_path):
     c = int(gained[0])
     last = int(start[c + 1]) - 1
     assert last > int(start[c])
-    for key in ("step_h", "step_E", "step_m", "step_A"):
+    for key in [k for k in ("step_h", "step_E", "step_m", "step_A") if k in cells]:
         a = decode_array(cells[key])
         cells[key] = encode_array(np.delete(a, last, axis=0), "<f8")
     start[c + 1:] -= 1

@@ -154,23 +154,6 @@ def _settings(model, ranges, resolution, start, use_map, structure, max_depth, t
     }
 
 
-def _claim_folder(out, settings):
-    from certify.sweep import read_json, write_json
-
-    path = out / _SETTINGS_FILE
-    if path.is_file():
-        try:
-            found = read_json(path)
-        except (OSError, ValueError) as exc:
-            raise UsageError(f"{path}: cannot read the settings of the atlas there ({exc})") from None
-        if found != settings:
-            keys = [k for k in settings if not isinstance(found, dict) or found.get(k) != settings[k]]
-            raise UsageError(f"{out}: holds an atlas with other settings ({', '.join(keys)}); "
-                             "choose another --out folder or delete that one")
-        return
-    write_json(path, settings)
-
-
 def _task(model, box, ranges, settings, top):
     from certify.certificate import fraction_text
 
@@ -238,7 +221,7 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
         with other settings.
     """
     from certify.executors import open_runner
-    from certify.sweep import check_options
+    from certify.sweep import check_options, claim_folder
 
     started = time.monotonic()
     names, ranges, top, first = _check_vary(model, vary, resolution, start)
@@ -249,7 +232,8 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
     settings = _settings(model, ranges, resolution, start, use_map, structure, max_depth,
                          time_limit_each, fractions)
     out = Path(out) if out is not None else default_atlas_dir(model)
-    _claim_folder(out, settings)
+    claim_folder(out, settings, settings_file=_SETTINGS_FILE, boxes="atlas-boxes",
+                     what="an atlas")
     roots = [_Box((first,) * len(names), index)
              for index in product(range(2 ** first), repeat=len(names))]
     todo = roots

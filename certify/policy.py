@@ -26,7 +26,7 @@ from .cells import CellTree
 from .errors import UsageError
 from .labels import DOOMED, OUTSIDE, SAFE, UNDECIDED, Labelling, label_cells
 from .policy_labels import controlled_safe
-from .prove import Proof, _settings, _Prover, prove, split_room
+from .prove import Proof, _settings, _Prover, prove, split_shallowest
 from .volumes import label_fractions
 
 __all__ = ["PolicyProof", "prove_policy", "setting_combinations", "control_hull"]
@@ -186,12 +186,10 @@ def _prove_policy(model, method, budget, progress):
             if len(undecided):
                 stop_reason = f"maximum depth {budget.max_depth} reached"
             break
-        room, out_of_budget = split_room(budget, tree, len(leaves), elapsed)
+        new, out_of_budget = split_shallowest(tree, wanted, budget, len(leaves), elapsed)
         if out_of_budget:
             stop_reason = out_of_budget
             break
-        wanted = wanted[np.argsort(tree.depth[wanted], kind="stable")][:room]
-        new = tree.split(wanted)
     return _result(model, method, budget, provers, inclusion, tree, labelled, hold, rounds,
                    time.monotonic() - start, stop_reason)
 

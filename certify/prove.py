@@ -679,12 +679,10 @@ def _prove(model, method, budget, progress, focus, runner):
                 elif focus is not None:
                     stop_reason = "nothing left to refine for the focus"
                 break
-            room, out_of_budget = split_room(budget, tree, len(leaves), elapsed)
+            new, out_of_budget = split_shallowest(tree, und, budget, len(leaves), elapsed)
             if out_of_budget:
                 stop_reason = out_of_budget
                 break
-            und = und[np.argsort(tree.depth[und], kind="stable")][:room]
-            new = tree.split(und)
     except (KeyboardInterrupt, DeadlinePassed) as stop:
         # keep the last finished round
         interrupted = isinstance(stop, KeyboardInterrupt)
@@ -709,21 +707,23 @@ def _prove(model, method, budget, progress, focus, runner):
     return proof
 
 
-def split_room(budget, tree, n_leaves, elapsed):
-    """How many leaves the budget lets a round split, or why it lets none.
+def split_shallowest(tree, wanted, budget, n_leaves, elapsed):
+    """Split the shallowest of the leaves `wanted`, as many as the budget has room for.
 
     Returns
     -------
-    room : int
+    new : ndarray of int or None
+        The children made (None when nothing is split).
     reason : str or None
         The stop reason when the time or cell limit is reached (then nothing is split).
     """
     if elapsed >= budget.time_limit:
-        return 0, f"time limit {budget.time_limit:g} s reached"
+        return None, f"time limit {budget.time_limit:g} s reached"
     room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
     if room <= 0:
-        return 0, f"cell limit {budget.max_cells} reached"
-    return room, None
+        return None, f"cell limit {budget.max_cells} reached"
+    wanted = wanted[np.argsort(tree.depth[wanted], kind="stable")][:room]
+    return tree.split(wanted), None
 
 
 def _truncate(tree, n_nodes):

@@ -181,7 +181,7 @@ def sweep(model, vary, *, max_depth=None, time_limit_each=None, executor="local"
     boxes = _boxes(names, ranges)
     settings = _settings(model, names, ranges, max_depth, time_limit_each, keep_certificates)
     out = Path(out) if out is not None else default_sweep_dir(model)
-    _claim_folder(out, settings)
+    claim_folder(out, settings)
     done = {box.key for box in boxes if (out / "boxes" / f"{box.key}.json").is_file()}
     todo = [box for box in boxes if box.key not in done]
     status = 0
@@ -289,22 +289,39 @@ def _settings(model, names, ranges, max_depth, time_limit_each, keep_certificate
     }
 
 
-def _claim_folder(out, settings):
-    """Record the settings in a new folder, or check them against an existing sweep."""
-    path = out / _SETTINGS_FILE
+def claim_folder(out, settings, *, settings_file=_SETTINGS_FILE, boxes="boxes", what="a sweep"):
+    """Record the settings in a new folder, or check them against the run already there.
+
+    Parameters
+    ----------
+    out : Path
+    settings : dict
+        JSON-ready settings, written to ``out / settings_file``.
+    settings_file : str
+    boxes : str
+        The folder of finished boxes, refused when it exists without settings.
+    what : str
+        The kind of run, for messages ("a sweep", "an atlas").
+
+    Raises
+    ------
+    UsageError
+        When the folder holds a run with other settings, or boxes without settings.
+    """
+    path = out / settings_file
     if path.is_file():
         try:
             found = read_json(path)
         except (OSError, ValueError) as exc:
-            raise UsageError(f"{path}: cannot read the settings of the sweep there ({exc})") from None
+            raise UsageError(f"{path}: cannot read the settings of {what} there ({exc})") from None
         if found != settings:
             keys = [k for k in settings if found.get(k) != settings[k]] if isinstance(found, dict) \
                 else ["format"]
-            raise UsageError(f"{out}: holds a sweep with other settings ({', '.join(keys)}); "
+            raise UsageError(f"{out}: holds {what} with other settings ({', '.join(keys)}); "
                              "choose another --out folder or delete that one")
         return
-    if (out / "boxes").exists():
-        raise UsageError(f"{out}: has a boxes/ folder but no {_SETTINGS_FILE}; "
+    if (out / boxes).exists():
+        raise UsageError(f"{out}: has a {boxes}/ folder but no {settings_file}; "
                          "choose another --out folder or delete that one")
     write_json(path, settings)
 

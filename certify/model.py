@@ -262,6 +262,28 @@ def _override_bounds(name, value):
     return lo, hi
 
 
+def read_file_start(path, n_bytes):
+    """The first `n_bytes` bytes of a model file (all of it when shorter).
+
+    Raises
+    ------
+    ModelError
+        Naming the file, when it is missing, a directory or unreadable.
+    """
+    label = str(path)
+    try:
+        with open(path, "rb") as handle:
+            return handle.read(n_bytes)
+    except FileNotFoundError:
+        raise ModelError(f"{label}: no such file") from None
+    except IsADirectoryError:
+        raise ModelError(f"{label}: is a directory, not a model file") from None
+    except PermissionError:
+        raise ModelError(f"{label}: cannot read the file (permission denied)") from None
+    except OSError as exc:
+        raise ModelError(f"{label}: cannot read the file ({exc.strerror or exc})") from None
+
+
 def load_model(path):
     """Read and validate a model file.
 
@@ -284,17 +306,7 @@ def load_model(path):
     parse_model : the same from text.
     """
     label = str(path)
-    try:
-        with open(path, "rb") as handle:
-            data = handle.read(MAX_FILE_BYTES + 1)
-    except FileNotFoundError:
-        raise ModelError(f"{label}: no such file") from None
-    except IsADirectoryError:
-        raise ModelError(f"{label}: is a directory, not a model file") from None
-    except PermissionError:
-        raise ModelError(f"{label}: cannot read the file (permission denied)") from None
-    except OSError as exc:
-        raise ModelError(f"{label}: cannot read the file ({exc.strerror or exc})") from None
+    data = read_file_start(path, MAX_FILE_BYTES + 1)
     if data[:2] == b"\x1f\x8b":
         raise ModelError(f"{label}: a gzip-compressed file (a certificate?), not a model "
                          "file; expected TOML text (see docs/model-format.md)")

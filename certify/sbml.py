@@ -22,7 +22,7 @@ import libsbml
 from certify.conservation import conserved_caps
 from certify.errors import ModelError, UsageError
 from certify.expr import RESERVED_NAMES, format_number, is_number_in_range
-from certify.model import TEXT_LENGTHS, parse_model
+from certify.model import TEXT_LENGTHS, parse_model, read_file_start
 from certify.sbml_math import MathContext, exact_number, math_text, names_in
 
 __all__ = ["MAX_SBML_BYTES", "Imported", "ImportedState", "import_sbml", "is_sbml",
@@ -232,15 +232,7 @@ def read_sbml(path, *, ranges=None, params=None):
 
 
 def _read_bytes(label):
-    try:
-        with open(label, "rb") as handle:
-            data = handle.read(MAX_SBML_BYTES + 1)
-    except FileNotFoundError:
-        raise ModelError(f"{label}: no such file") from None
-    except IsADirectoryError:
-        raise ModelError(f"{label}: is a directory, not a model file") from None
-    except OSError as exc:
-        raise ModelError(f"{label}: cannot read the file ({exc.strerror or exc})") from None
+    data = read_file_start(label, MAX_SBML_BYTES + 1)
     if len(data) > MAX_SBML_BYTES:
         raise ModelError(f"{label}: the file is larger than {MAX_SBML_BYTES:,} bytes")
     return data

@@ -255,9 +255,15 @@ def _flow_piece(tubes, cell_lo, cell_hi):
         return tubes.flow(cell_lo, cell_hi)
 
 
-#: The per-node facts of :class:`_Prover` that a tube determines.
-_FACT_ARRAYS = ("flow_ok", "kept", "escapes", "left_cell", "crossing", "horizon_lo",
-                "horizon_hi", "first_unkept", "image_lo", "image_hi")
+#: The per-node facts of :class:`_Prover` and their value for a new node. All but
+#: ``outside`` are determined by the node's tube (:meth:`_Prover.extend` swaps them);
+#: ``left_cell``: the tube stopped only where it left its cell.
+_NODE_FACTS = {"outside": False, "flow_ok": False, "kept": False, "escapes": False,
+               "left_cell": False, "crossing": np.inf, "horizon_lo": 0.0, "horizon_hi": 0.0,
+               "first_unkept": 0.0, "image_lo": np.nan, "image_hi": np.nan}
+_TUBE_FACTS = tuple(name for name in _NODE_FACTS if name != "outside")
+#: Facts with one value per state.
+_BOX_FACTS = ("image_lo", "image_hi")
 
 
 class _Prover:
@@ -280,34 +286,23 @@ class _Prover:
         self.tubes = _Tubes(model, method, self.params, self.faces, self.window_sides,
                             self.regions)
         self.steps = StepStore(self.n)
-        size = 1
-        self.outside = np.zeros(size, bool)
-        self.flow_ok = np.zeros(size, bool)
-        self.kept = np.zeros(size, bool)
-        self.escapes = np.zeros(size, bool)
-        self.left_cell = np.zeros(size, bool)  # the tube stopped only where it left its cell
-        self.crossing = np.full(size, np.inf)
-        self.horizon_lo = np.zeros(size)
-        self.horizon_hi = np.zeros(size)
-        self.first_unkept = np.zeros(size)
-        self.image_lo = np.full((size, self.n), np.nan)
-        self.image_hi = np.full((size, self.n), np.nan)
+        follow = method.follow_undecided
+        # whether leaves undecided at max_depth get followed tubes (:meth:`extend`)
+        self.follows = len(model.states) >= 3 if follow is None else follow
+        for name in _NODE_FACTS:
+            setattr(self, name, self._new_facts(name, 1))
+
+    def _new_facts(self, name, count):
+        fill = _NODE_FACTS[name]
+        return np.full((count, self.n) if name in _BOX_FACTS else count, fill)
 
     def _grow(self):
         extra = len(self.tree) - len(self.outside)
         if extra <= 0:
             return
-        self.outside = np.concatenate([self.outside, np.zeros(extra, bool)])
-        self.flow_ok = np.concatenate([self.flow_ok, np.zeros(extra, bool)])
-        self.kept = np.concatenate([self.kept, np.zeros(extra, bool)])
-        self.escapes = np.concatenate([self.escapes, np.zeros(extra, bool)])
-        self.left_cell = np.concatenate([self.left_cell, np.zeros(extra, bool)])
-        self.crossing = np.concatenate([self.crossing, np.full(extra, np.inf)])
-        self.horizon_lo = np.concatenate([self.horizon_lo, np.zeros(extra)])
-        self.horizon_hi = np.concatenate([self.horizon_hi, np.zeros(extra)])
-        self.first_unkept = np.concatenate([self.first_unkept, np.zeros(extra)])
-        self.image_lo = np.concatenate([self.image_lo, np.full((extra, self.n), np.nan)])
-        self.image_hi = np.concatenate([self.image_hi, np.full((extra, self.n), np.nan)])
+        for name in _NODE_FACTS:
+            setattr(self, name, np.concatenate([getattr(self, name),
+                                                self._new_facts(name, extra)]))
 
     # -- per-cell analysis -------------------------------------------------------------
     def analyse(self, nodes):
@@ -331,9 +326,10 @@ class _Prover:
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
         result = self._flows(tubes, cell_lo, cell_hi)
         self._tube_facts(todo, result)
-        ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
-        self.left_cell[nodes] = False
-        self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
+        if self.follows:
+            ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
+            self.left_cell[nodes] = False
+            self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
 
     def _flows(self, tubes, cell_lo, cell_hi):
@@ -450,14 +446,14 @@ class _Prover:
             As :meth:`label`.
         """
         nodes = nodes[self.left_cell[nodes]]
-        saved = {k: getattr(self, k)[nodes].copy() for k in _FACT_ARRAYS}
+        saved = {k: getattr(self, k)[nodes].copy() for k in _TUBE_FACTS}
         refs = self.steps.refs(nodes)
         self._analyse(nodes, follow=growth_limit)
         leaves, _, labelling = self.label()
         number = np.full(len(self.tree), -1)
         number[leaves] = np.arange(len(leaves))
         back = labelling.label[number[nodes]] == UNDECIDED
-        for k in _FACT_ARRAYS:
+        for k in _TUBE_FACTS:
             getattr(self, k)[nodes[back]] = saved[k][back]
         self.steps.set_refs(nodes[back], refs[back])
         return self.label()
@@ -626,8 +622,7 @@ def _prove(model, method, budget, progress, focus, runner):
     stop_reason = "nothing left undecided"
     rounds = 0
     deadline = start + budget.time_limit
-    follow = method.follow_undecided
-    follow = len(model.states) >= 3 if follow is None else follow
+    follow = prover.follows
     extend = None
     try:
         new = tree.split([0]) if method.start_depth > 0 else np.array([0])

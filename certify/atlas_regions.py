@@ -35,6 +35,7 @@ import numpy as np
 from . import interval as iv
 from .evaluate import evaluate_boxes, evaluate_limits
 from .faces import _bisect_until_proven
+from .trapping import _binary
 
 __all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "FACTORS"]
 
@@ -66,11 +67,6 @@ class BoxRegion:
     def coordinates(self, x):
         """Float ``u = T^-1 (x - c)`` of points ``x`` (not rigorous; for checks)."""
         return np.linalg.solve(self.frame, (np.atleast_2d(x) - self.centre).T).T
-
-
-def _binary(x, bits=30):
-    m, e = np.frexp(np.asarray(x, float))
-    return np.ldexp(np.round(m * 2.0 ** bits), e - bits)
 
 
 def _idet(lo, hi):

@@ -21,7 +21,7 @@ from .files import atomic_writer
 
 __all__ = ["FORMAT", "VERSION", "READABLE_VERSIONS", "CERTIFICATE_NAME", "certificate_path", "LABELS",
            "encode_array", "decode_array", "fraction_text", "parameter_differences",
-           "narrowed_text", "write_certificate", "load_certificate_json"]
+           "narrowed_text", "write_certificate", "load_certificate_json", "read_gzip_json"]
 
 FORMAT = "certify-certificate"
 #: File name of a certificate inside an output folder.
@@ -240,6 +240,34 @@ def _what_it_is(path):
     return "data that is not gzip-compressed"
 
 
+def read_gzip_json(path, expected):
+    """The JSON data of a gzip-compressed file.
+
+    Parameters
+    ----------
+    path : Path
+    expected : str
+        What the file should be, for messages ("a certificate (...)").
+
+    Raises
+    ------
+    CertificateError
+        Missing or unreadable file, damaged compressed data, not gzip or not JSON.
+    """
+    try:
+        with gzip.open(path, "rb") as f:
+            return json.loads(f.read().decode("utf-8"))
+    except FileNotFoundError:
+        raise CertificateError(f"{path}: no such file") from None
+    except PermissionError:
+        raise CertificateError(f"{path}: cannot read the file (permission denied)") from None
+    except (EOFError, zlib.error):
+        raise CertificateError(f"{path}: the compressed data is truncated or damaged; "
+                               f"expected {expected}") from None
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile):
+        raise CertificateError(f"{path}: {_what_it_is(path)}; expected {expected}") from None
+
+
 def load_certificate_json(path):
     """Read the raw certificate dictionary, checking format and version.
 
@@ -252,21 +280,9 @@ def load_certificate_json(path):
     """
     given = Path(path)
     path = certificate_path(given)
-    expected = f"expected a certificate ({CERTIFICATE_NAME}, gzip-compressed JSON)"
-    try:
-        with gzip.open(path, "rb") as f:
-            data = json.loads(f.read().decode("utf-8"))
-    except FileNotFoundError:
-        if given.is_dir():
-            raise CertificateError(f"{given}: the folder holds no {CERTIFICATE_NAME}") from None
-        raise CertificateError(f"{path}: no such file") from None
-    except PermissionError:
-        raise CertificateError(f"{path}: cannot read the file (permission denied)") from None
-    except (EOFError, zlib.error):
-        raise CertificateError(f"{path}: the compressed data is truncated or damaged; "
-                               f"{expected}") from None
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError, gzip.BadGzipFile):
-        raise CertificateError(f"{path}: {_what_it_is(path)}; {expected}") from None
+    if given.is_dir() and not path.exists():
+        raise CertificateError(f"{given}: the folder holds no {CERTIFICATE_NAME}")
+    data = read_gzip_json(path, f"a certificate ({CERTIFICATE_NAME}, gzip-compressed JSON)")
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise CertificateError(f"{path}: not a certify certificate (key 'format')")
     if data.get("version") not in READABLE_VERSIONS:

@@ -74,7 +74,7 @@ def policy_table(summary):
     the policy (what switching buys)."""
     lines = [f"{'settings':<28} {'safe share':>10}"]
     for s, share in zip(summary["settings"], summary["safe_share_held_constant"] or ()):
-        text = ", ".join(f"{k} = {v:g}" for k, v in s.items()) + " held constant"
+        text = _setting_text(s) + " held constant"
         lines.append(f"{text:<28} {share:>9.1%}")
     lines.append(f"{'policy (switching)':<28} {summary['safe_share_policy']:>9.1%}")
     return lines

@@ -273,10 +273,10 @@ def _largest_level(programs, samples, centre, matrix, width, rng):
     if not passes(lo, dirs):
         # with interval parameters the equilibrium moves: small levels fail, so take
         # the largest passing level of a coarse grid below the top instead
-        passing = [g for g in np.log(top) - np.arange(1.0, 40.0) if passes(g, dirs)]
-        if not passing:
+        lo = next((g for g in np.log(top) - np.arange(1.0, 40.0) if passes(g, dirs)), None)
+        if lo is None:
             return None
-        lo, hi = passing[0], passing[0] + 1.0
+        hi = lo + 1.0
     floor = lo
     for d in (dirs[:COARSE_DIRECTIONS], dirs):
         while hi - lo > LEVEL_TOLERANCE:

@@ -18,9 +18,7 @@ over the hull of the settings (order 1), all on the same cells. The check:
 
 from __future__ import annotations
 
-import gzip
 import hashlib
-import json
 import time
 from fractions import Fraction
 from itertools import product
@@ -28,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..container import read_gzip_json
 from ..errors import CertificateError, CertifyError
 from ..model import parse_model
 from ._cells import CheckContext, exact_cells
@@ -50,13 +49,7 @@ def is_policy(path):
 
 
 def _load(path):
-    try:
-        with gzip.open(path, "rb") as f:
-            data = json.loads(f.read().decode("utf-8"))
-    except FileNotFoundError:
-        raise CertificateError(f"{path}: no such file") from None
-    except (OSError, EOFError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise CertificateError(f"{path}: not a readable policy certificate ({exc})") from None
+    data = read_gzip_json(path, f"a policy certificate ({POLICY_NAME}, gzip-compressed JSON)")
     if not isinstance(data, dict) or data.get("format") != POLICY_FORMAT:
         raise CertificateError(f"{path}: not a certify policy certificate (key 'format')")
     if data.get("version") != POLICY_VERSION:

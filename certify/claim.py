@@ -416,7 +416,8 @@ def _point_crossings(auditor, proof, points, horizon):
     with np.errstate(all="ignore"):
         result = flow_boxes(programs, lo, hi, proof.params, min_horizon=0.0,
                             max_horizon=float(horizon), step=m.step, max_step=m.max_step,
-                            min_step=m.min_step, max_steps=m.max_steps, should_stop=crossed)
+                            min_step=m.min_step, max_steps=m.max_steps, should_stop=crossed,
+                            frames="qr")  # one set: its frames are stored with the claim
         _, ghi = auditor._limits(result.end_lo, result.end_hi)
         _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
     out = []

@@ -10,9 +10,12 @@ One step of size ``h`` from a set ``S = {m + A r : r in [r]}`` with box hull ``X
        phi_h(x) in T(m) + DT(J) A [r] + h^q f^[q](E),   T(x) = sum_{k<q} h^k f^[k](x)
 
    with ``J`` the hull of ``X`` and ``m``.
-3. Wrapping control (Lohner's QR method): the new set is ``m' + A' [r']`` where ``A'``
-   is the orthogonal factor of ``mid(DT A)`` (columns ordered by their spread) and
-   ``[r'] = B (Y - m') + (B DT A) [r]`` with ``B`` a rigorous enclosure of ``A'^-1``.
+3. Wrapping control (Lohner 1987): the new set is ``m' + A' [r']`` with
+   ``[r'] = B (Y - m') + (B DT A) [r]`` and ``B`` a rigorous enclosure of ``A'^-1``,
+   ``A'`` the orthogonal QR factor of ``mid(DT A)`` (:func:`qr_frame`). Rule
+   ``"qr+parallelepiped"`` carries a second set beside it whose ``A'`` is ``mid(DT A)``
+   with unit columns (:func:`parallelepiped_frame`), which a rotating, shearing flow
+   does not wrap; the end box is the intersection of both sets' boxes.
 
 See docs/method.md for the exact order of operations, which the checker repeats.
 """
@@ -29,8 +32,13 @@ from . import interval as iv
 from .evaluate import evaluate_boxes
 
 __all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
-           "join_results"]
+           "join_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
 
+#: Which sets a flow carries and how their frames ``A'`` are chosen (``_FRAMES``); the
+#: certificate records the rule and the checker applies the same one.
+FRAME_RULES = ("qr+parallelepiped", "qr")
+#: A parallelepiped frame with a larger condition number is replaced by its QR factor.
+FRAME_CONDITION_LIMIT = 1e3
 #: Target width of a step's Taylor remainder, as a share of the set's width.
 REMAINDER_SHARE = 0.01
 
@@ -72,10 +80,11 @@ def hull_of_set(m, A, rlo, rhi):
 
 
 def interval_inverse(A):
-    """Rigorous enclosure of ``A^-1`` for a stack of float matrices close to orthogonal.
+    """Rigorous enclosure of ``A^-1`` for a stack of invertible float matrices.
 
-    With ``C = A^T`` and ``delta = ||I - C A||_inf < 1/2``,
-    ``|A^-1 - C| <= delta / (1 - delta) ||C||_inf`` entrywise.
+    With ``C`` the float inverse of ``A`` (any approximation would do) and
+    ``delta = ||I - C A||_inf < 1/2``, ``|A^-1 - C| <= delta / (1 - delta) ||C||_inf``
+    entrywise.
 
     Returns
     -------
@@ -84,7 +93,7 @@ def interval_inverse(A):
         False where ``delta`` is not below 1/2 (the enclosure is then unusable).
     """
     n = A.shape[-1]
-    C = np.swapaxes(A, -1, -2).copy()
+    C = np.linalg.inv(A)
     plo, phi = imatmul(C, C, A, A)
     eye = np.eye(n)
     rlo, rhi = iv.sub(eye, eye, plo, phi)
@@ -268,8 +277,64 @@ def _split_at_point(program, lo, hi, point, params):
     return vlo.min(axis=0), vhi.max(axis=0)
 
 
-def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
-    """One mean-value Taylor step; returns the new set, its box and a usable flag."""
+def _ordered_columns(mid, width):
+    """Columns of `mid` ordered by their spread ``|mid_j| width_j`` (non-finite: I)."""
+    n = mid.shape[-1]
+    with np.errstate(invalid="ignore", over="ignore"):
+        spread = np.linalg.norm(mid, axis=1) * width
+    order = np.argsort(-np.nan_to_num(spread, nan=0.0), axis=1, kind="stable")
+    cols = np.take_along_axis(mid, order[:, None, :], axis=2)
+    cols[~np.all(np.isfinite(cols), axis=(1, 2))] = np.eye(n)
+    return cols
+
+
+def qr_frame(mid, width):
+    """Lohner's QR frame: the orthogonal factor of the ordered columns of `mid`."""
+    return np.linalg.qr(_ordered_columns(mid, width))[0]
+
+
+def parallelepiped_frame(mid, width):
+    """The ordered columns of `mid` scaled to unit length (the QR frame where that matrix
+    has a condition number above ``FRAME_CONDITION_LIMIT``)."""
+    cols = _ordered_columns(mid, width)
+    length = np.linalg.norm(cols, axis=1, keepdims=True)
+    flat = ~np.all(length > 0, axis=(1, 2))
+    frame = cols / np.where(length > 0, length, 1.0)
+    frame[flat] = np.eye(cols.shape[-1])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        skewed = flat | ~(np.linalg.cond(frame) <= FRAME_CONDITION_LIMIT)
+    if skewed.any():
+        frame[skewed] = np.linalg.qr(cols[skewed])[0]
+    return frame
+
+
+#: The frame of each set a rule carries: one set in QR frames, or that set and a second
+#: one in parallelepiped frames, the end box being the intersection of their hulls.
+_FRAMES = {"qr": (qr_frame,), "qr+parallelepiped": (qr_frame, parallelepiped_frame)}
+
+
+def _coordinates(Q, new_m, ylo, yhi, Mlo, Mhi, rlo, rhi):
+    """The set ``new_m + Q [r']`` of a step end in the frame `Q`, and its box hull."""
+    n = Q.shape[-1]
+    Q = Q.copy()
+    Blo, Bhi, inv_ok = interval_inverse(Q)
+    fallback = ~inv_ok
+    if fallback.any():
+        Q[fallback] = np.eye(n)
+        Blo[fallback] = np.eye(n)
+        Bhi[fallback] = np.eye(n)
+    dylo, dyhi = iv.sub(ylo, yhi, new_m, new_m)
+    alo_, ahi_ = _matvec(Blo, Bhi, dylo, dyhi)
+    BMlo, BMhi = imatmul(Blo, Bhi, Mlo, Mhi)
+    clo_, chi_ = _matvec(BMlo, BMhi, rlo, rhi)
+    nrlo, nrhi = iv.add(alo_, ahi_, clo_, chi_)
+    hlo, hhi = hull_of_set(new_m, Q, nrlo, nrhi)
+    return Q, nrlo, nrhi, hlo, hhi
+
+
+def _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
+    """One mean-value Taylor step of the sets ``m + A [r]`` (one per frame of the rule
+    `frames`); returns the new sets, their end box and a usable flag."""
     N, n = m.shape
     q = programs.order
     hk = [(np.ones(N), np.ones(N))] + [iv.pow_int(h, h, k) for k in range(1, q + 1)]
@@ -305,37 +370,26 @@ def _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params):
             g_hi = ghi[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
             plo_, phi_ = iv.mul(hk[k][0][:, None, None], hk[k][1][:, None, None], g_lo, g_hi)
             dlo, dhi = iv.add(dlo, dhi, plo_, phi_)
-    Mlo, Mhi = imatmul(dlo, dhi, A, A)
-    # box of the image
-    vlo, vhi = _matvec(Mlo, Mhi, rlo, rhi)
-    blo, bhi = iv.add(ylo, yhi, vlo, vhi)
-    # new coordinates (Lohner QR)
+    # every set of the box: its image Y + M [r] and its new coordinates; the end box
+    # is the intersection of all of them
     new_m = 0.5 * (ylo + yhi)
-    mid = 0.5 * (Mlo + Mhi)
-    spread = np.linalg.norm(mid, axis=1) * (rhi - rlo)[:, :]
-    order = np.argsort(-spread, axis=1, kind="stable")
-    cols = np.take_along_axis(mid, order[:, None, :], axis=2)
-    bad_mid = ~np.all(np.isfinite(cols), axis=(1, 2))
-    cols[bad_mid] = np.eye(n)
-    Q, _ = np.linalg.qr(cols)
-    Blo, Bhi, inv_ok = interval_inverse(Q)
-    fallback = ~inv_ok
-    if fallback.any():
-        Q[fallback] = np.eye(n)
-        Blo[fallback] = np.eye(n)
-        Bhi[fallback] = np.eye(n)
-    dylo, dyhi = iv.sub(ylo, yhi, new_m, new_m)
-    alo_, ahi_ = _matvec(Blo, Bhi, dylo, dyhi)
-    BMlo, BMhi = imatmul(Blo, Bhi, Mlo, Mhi)
-    clo_, chi_ = _matvec(BMlo, BMhi, rlo, rhi)
-    nrlo, nrhi = iv.add(alo_, ahi_, clo_, chi_)
-    hlo, hhi = hull_of_set(new_m, Q, nrlo, nrhi)
-    endlo, endhi = np.maximum(hlo, blo), np.minimum(hhi, bhi)
-    usable = np.all(np.isfinite(endlo) & np.isfinite(endhi) & np.isfinite(nrlo)
-                    & np.isfinite(nrhi) & np.isfinite(new_m), axis=1)
+    endlo, endhi = np.full((N, n), -np.inf), np.full((N, n), np.inf)
+    usable = np.all(np.isfinite(new_m), axis=1)
+    new_sets = []
+    for (A, rlo, rhi), frame in zip(sets, _FRAMES[frames]):
+        Mlo, Mhi = imatmul(dlo, dhi, A, A)
+        vlo, vhi = _matvec(Mlo, Mhi, rlo, rhi)
+        blo, bhi = iv.add(ylo, yhi, vlo, vhi)
+        Q = frame(0.5 * (Mlo + Mhi), rhi - rlo)
+        Q, nrlo, nrhi, hlo, hhi = _coordinates(Q, new_m, ylo, yhi, Mlo, Mhi, rlo, rhi)
+        endlo = np.maximum(endlo, np.maximum(hlo, blo))
+        endhi = np.minimum(endhi, np.minimum(hhi, bhi))
+        usable &= np.all(np.isfinite(nrlo) & np.isfinite(nrhi), axis=1)
+        new_sets.append((Q, nrlo, nrhi))
+    usable &= np.all(np.isfinite(endlo) & np.isfinite(endhi), axis=1)
     # how much the remainder adds, relative to the set's own size (step-size control)
     growth = np.max((Rhi - Rlo) / np.maximum(xhi - xlo, 1e-300), axis=1)
-    return new_m, Q, nrlo, nrhi, endlo, endhi, usable, growth
+    return new_m, new_sets, endlo, endhi, usable, growth
 
 
 #: Significant bits of a step size: few distinct sizes make a small certificate.
@@ -358,7 +412,8 @@ class DeadlinePassed(Exception):
 
 
 def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
-               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None):
+               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None,
+               frames="qr+parallelepiped"):
     """Enclose the flow of every box of a batch up to a horizon per box.
 
     Parameters
@@ -386,6 +441,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         `min_horizon`; ``ids`` are batch indices, ``t_lo, t_hi`` enclose the step end time.
     deadline : float, optional
         A time of :func:`time.monotonic`; checked before every step.
+    frames : str
+        The frame rule: one set in QR frames (``"qr"``) or two sets, one in QR and one in
+        parallelepiped frames, whose boxes are intersected (``"qr+parallelepiped"``).
 
     Returns
     -------
@@ -412,8 +470,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     r0lo, _ = iv.sub(lo, lo, m0, m0)
     _, r0hi = iv.sub(hi, hi, m0, m0)
     ids = np.arange(N)
-    m, A = m0.copy(), np.broadcast_to(np.eye(n), (N, n, n)).copy()
-    rlo, rhi = r0lo.copy(), r0hi.copy()
+    m = m0.copy()
+    sets = [(np.broadcast_to(np.eye(n), (N, n, n)).copy(), r0lo.copy(), r0hi.copy())
+            for _ in _FRAMES[frames]]
     xlo, xhi = lo.copy(), hi.copy()
     # the first step obeys the same caps as later ones
     h = _coarse(min(float(step), max_step), np.maximum(max_h, min_step))
@@ -434,8 +493,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
             elo[retry], ehi[retry] = a_lo, a_hi
             ok[retry] = a_ok
         failed = ~ok
-        new = _taylor_step(programs, m, A, rlo, rhi, xlo, xhi, elo, ehi, h, params)
-        new_m, new_A, nrlo, nrhi, endlo, endhi, usable, growth = new
+        new = _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames)
+        new_m, new_sets, endlo, endhi, usable, growth = new
+        new_A, nrlo, nrhi = new_sets[0]
         bad = failed | ~usable
         status[ids[failed]] = NO_ENCLOSURE
         status[ids[~failed & ~usable]] = NOT_FINITE
@@ -465,7 +525,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         factor = np.where(np.isfinite(factor), factor, 0.5)
         factor = np.where(clean, factor, np.minimum(factor, 1.0))
         ids, h = ids[keep], (h * factor)[keep]
-        m, A, rlo, rhi = new_m[keep], new_A[keep], nrlo[keep], nrhi[keep]
+        m = new_m[keep]
+        sets = [tuple(a[keep] for a in one) for one in new_sets]
         xlo, xhi = endlo[keep], endhi[keep]
         # never step past the largest horizon by much
         h = _coarse(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))

@@ -56,6 +56,8 @@ class Method:
     #: follow the tubes of the leaves undecided at ``max_depth`` one round longer
     #: (docs/proof-loop.md); None: for models with three or more states
     follow_undecided: bool | None = None
+    #: which sets a tube carries (:data:`certify.flow.FRAME_RULES`)
+    frames: str = "qr+parallelepiped"
 
 
 @dataclass(frozen=True)
@@ -195,7 +197,8 @@ class _Tubes:
         return flow_boxes(self.programs, cell_lo, cell_hi, self.params,
                           min_horizon=0.0, max_horizon=m.max_horizon,
                           step=m.step, max_step=m.max_step, min_step=m.min_step,
-                          max_steps=m.max_steps, should_stop=should_stop, deadline=deadline)
+                          max_steps=m.max_steps, should_stop=should_stop, deadline=deadline,
+                          frames=m.frames)
 
     def stops(self, cell_lo, cell_hi, end_lo, end_hi, t_lo):
         """Where a tube from each cell, with the box `end` at time `t_lo`, stops, and why.

@@ -9,6 +9,7 @@ Times are exact: the sum of a box's step sizes, added up with fractions.Fraction
 from __future__ import annotations
 
 from fractions import Fraction
+from itertools import product
 
 import mpmath
 import numpy as np
@@ -412,15 +413,58 @@ def damped_corner_hull_width(t):
     return images.max(axis=0) - images.min(axis=0)
 
 
-def test_qr_method_keeps_the_damped_oscillator_tight():
-    # Lohner's QR method: the box of the parallelepiped stays close to the exact hull.
+@pytest.mark.parametrize("frames", ["qr+parallelepiped", "qr"])
+def test_frames_keep_the_damped_oscillator_tight(frames):
+    # both frame rules: the box of the parallelepiped stays close to the exact hull
     lo, hi = DAMPED_BOX
-    R = flow_boxes(DAMPED, lo, hi, [], min_horizon=10.0, max_horizon=10.0, max_step=0.2)
+    R = flow_boxes(DAMPED, lo, hi, [], min_horizon=10.0, max_horizon=10.0, max_step=0.2,
+                   frames=frames)
     assert R.status[0] == OK
     T = float(R.t_lo[0])
     exact = damped_corner_hull_width(T)
     width = R.image_hi[0] - R.image_lo[0]
     assert np.all(width >= exact) and np.all(width <= 1.5 * exact)
+
+
+# Two oscillators with the same damping and different frequencies, written in
+# coordinates where the flow is a strong shear (velocity units 9x the position units), as
+# in the swing equations of two generators: x1' = v1, v1' = -84 x1 - 3 v1,
+# x2' = v2, v2' = -33.5 x2 - 3 v2 (common practice: a linear test flow; exact solution
+# by scipy.linalg.expm).
+SHEAR_MATRIX = np.array([[0.0, 1.0, 0.0, 0.0], [-84.0, -3.0, 0.0, 0.0],
+                         [0.0, 0.0, 0.0, 1.0], [0.0, 0.0, -33.5, -3.0]])
+SHEAR_BOX = (np.array([[0.3, -0.03, -0.2, -0.03]]), np.array([[0.31, 0.03, -0.19, 0.03]]))
+
+
+def _shear_flow(frames):
+    u = sympy.symbols("x1 v1 x2 v2")
+    rhs = [sum(sympy.Rational(SHEAR_MATRIX[i, j]).limit_denominator(10) * u[j]
+               for j in range(4)) for i in range(4)]
+    lo, hi = SHEAR_BOX
+    return flow_boxes(programs(rhs, u), lo, hi, [], min_horizon=3.0, max_horizon=3.0,
+                      step=0.02, max_step=0.05, frames=frames)
+
+
+def _shear_hull_width(t):
+    lo, hi = SHEAR_BOX
+    corners = np.array(list(product(*zip(lo[0], hi[0]))))
+    images = corners @ expm(SHEAR_MATRIX * t).T                           # scipy.linalg.expm
+    return images.max(axis=0) - images.min(axis=0)
+
+
+def test_parallelepiped_frames_follow_a_shearing_rotation():
+    # The exact image of a box under a linear flow is a parallelepiped: the parallelepiped
+    # frame carries it with no wrapping, so after 3 time units (about 4 turns of the
+    # faster oscillator) only the Taylor remainders have added up (measured: 1.1-3.1
+    # times the exact hull); QR frames wrap the sheared set at every step (measured:
+    # 8-1600 times the hull).
+    R = _shear_flow("qr+parallelepiped")
+    assert R.status[0] == OK
+    exact = _shear_hull_width(float(R.t_lo[0]))
+    width = R.image_hi[0] - R.image_lo[0]
+    assert np.all(width >= exact) and np.all(width <= 4 * exact)
+    qr = _shear_flow("qr")
+    assert qr.status[0] != OK or np.any(qr.image_hi[0] - qr.image_lo[0] > 10 * width)
 
 
 def test_reboxing_every_step_grows_much_more():
@@ -484,7 +528,12 @@ def test_interval_inverse_encloses_the_inverse():
     inv = np.linalg.inv(A)
     assert np.all(lo <= inv) and np.all(inv <= hi)
     assert np.all(hi - lo < 1e-4)
-    _, _, ok = interval_inverse(np.array([[[1.0, 2.0], [3.0, 4.0]]]))
+    # a skewed matrix: its exact inverse [[-2, 1], [3/2, -1/2]] (by hand) is enclosed
+    lo, hi, ok = interval_inverse(np.array([[[1.0, 2.0], [3.0, 4.0]]]))
+    assert ok[0]
+    assert np.all(lo[0] <= [[-2, 1], [1.5, -0.5]]) and np.all([[-2, 1], [1.5, -0.5]] <= hi[0])
+    # nearly singular (condition number ~1e17): no usable enclosure
+    _, _, ok = interval_inverse(np.array([[[1.0, 1.0], [1.0, 1.0 + 2.0 ** -52]]]))
     assert not ok[0]
 
 

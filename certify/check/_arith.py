@@ -293,10 +293,11 @@ class BallArith:
         return _meet(a, b)
 
     def inverse(self, A):
-        """Enclosure of ``A^-1`` for float matrices close to orthogonal.
+        """Enclosure of ``A^-1`` for invertible float matrices.
 
-        With ``C = A^T`` and ``delta = ||I - C A||_inf < 1``,
-        ``|A^-1 - C| <= delta / (1 - delta) ||C||_inf`` entrywise.
+        With ``C`` the float inverse of ``A`` (any approximation would do) and
+        ``delta = ||I - C A||_inf < 1``, ``|A^-1 - C| <= delta / (1 - delta) ||C||_inf``
+        entrywise.
 
         Parameters
         ----------
@@ -308,7 +309,7 @@ class BallArith:
         """
         n = A.shape[-1]
         exact = [[self.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
-        C = [[exact[j][i] for j in range(n)] for i in range(n)]
+        C = _approximate_inverse(self, A)
         delta = None
         norm_c = None
         for i in range(n):
@@ -540,7 +541,7 @@ class EndpointArith:
         """Enclosure of ``A^-1`` in the prover's order of operations (see BallArith)."""
         n = A.shape[-1]
         exact = [[self.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
-        C = [[exact[j][i] for j in range(n)] for i in range(n)]
+        C = _approximate_inverse(self, A)
         delta = norm_c = None
         for i in range(n):
             row = crow = None
@@ -562,6 +563,13 @@ class EndpointArith:
         eps = np.where(ok, eps, self.nan)
         return [[(self._down(C[i][j][0] - eps), self._up(C[i][j][1] + eps)) for j in range(n)]
                 for i in range(n)]
+
+
+def _approximate_inverse(ar, A):
+    """Float inverses of a stack of invertible matrices, as exact ``n x n`` entries."""
+    C = np.linalg.inv(A)
+    n = A.shape[-1]
+    return [[ar.exact(C[:, i, j]) for j in range(n)] for i in range(n)]
 
 
 def _keep_nan(value, *sources):

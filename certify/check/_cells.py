@@ -61,6 +61,9 @@ class CheckContext:
         Where a stored a-priori box fails the Picard inclusion, look for one from it (a
         regression check against a revised model: the stored boxes were made for the
         old one). Off for a certificate's own model, whose boxes must hold as stored.
+    frames : str
+        The certificate's frame rule, ``"qr+parallelepiped"`` or ``"qr"``
+        (:func:`_own_frame`).
     """
 
     programs: object
@@ -70,6 +73,7 @@ class CheckContext:
     grid_depth: int
     invariant_faces: tuple = ()
     search_tubes: bool = False
+    frames: str = "qr"
 
 
 @dataclass
@@ -161,12 +165,14 @@ class StepOutcome:
     ----------
     ok, kept, crossed : ndarray of bool
         The step verified; every limit is kept on it; its end box violates a limit.
-    X_next, r_next, E : list of intervals
-        The end box, the coordinates of the end set, the a-priori box (per axis).
+    X_next, E : list of intervals
+        The end box and the a-priori box (per axis).
     E_bounds : ndarray, shape (N, n, 2)
         The a-priori boxes used (a regression check may have replaced stored ones).
-    m_next, A_next : ndarray
-        The frame of the end set (stored or the checker's own).
+    m_next : ndarray
+        The centre of the end sets (stored or the checker's own).
+    sets_next : list of (ndarray, list of intervals)
+        Frame ``A`` and coordinates ``r`` of each end set.
     moved : list of intervals
         ``h f(E)`` per axis: encloses how far a solution moves during the step.
     """
@@ -175,20 +181,21 @@ class StepOutcome:
     kept: np.ndarray
     crossed: np.ndarray
     X_next: list
-    r_next: list
     E: list
     E_bounds: np.ndarray
     m_next: np.ndarray
-    A_next: np.ndarray
+    sets_next: list
     moved: list
 
 
-def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=None):
+def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=None):
     """One step for the active cells; returns the new box, coordinates and facts.
 
-    `X_bounds` are exact lower and upper bounds of the box ``X`` (per axis), which the
-    Picard test uses: a ball's own bounds may be a little wider. Without a stored frame
-    (`m_next`, `A_next` None) the step end's frame is the checker's own.
+    `sets` holds per set of the certificate's frame rule its frame ``A`` (floats) and
+    coordinates ``r``; all share the centre `m`. `X_bounds` are exact lower and upper
+    bounds of the box ``X`` (per axis), which the Picard test uses: a ball's own bounds
+    may be a little wider. Without a stored frame (`m_next`, `A_next` None) the step
+    end's frames are the checker's own.
     """
     progs = context.programs
     n, q = progs.n, progs.order
@@ -228,23 +235,32 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=No
                 for j in range(n):
                     term = ar.mul(powers[k], jac[(k - 1) * n * n + i * n + j])
                     D[i][j] = ar.add(D[i][j], term)
-    Ae = [[ar.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
-    M = _matmul(ar, D, Ae)
-    V = _matvec(ar, M, r)
-    image = [ar.add(Y[i], V[i]) for i in range(n)]
     if m_next is None:
-        m_next, A_next = _own_frame(ar, Y, M, r)
-    B = ar.inverse(A_next)
+        m_next = np.stack([_mid(ar, y) for y in Y], 1)
     new_m = [ar.exact(m_next[:, k]) for k in range(n)]
-    a = _matvec(ar, B, [ar.sub(Y[i], new_m[i]) for i in range(n)])
-    c = _matvec(ar, _matmul(ar, B, M), r)
-    new_r = [ar.add(a[i], c[i]) for i in range(n)]
-    Qe = [[ar.exact(A_next[:, i, j]) for j in range(n)] for i in range(n)]
-    spread = _matvec(ar, Qe, new_r)
-    hull = [ar.add(new_m[i], spread[i]) for i in range(n)]
-    X_next = [ar.intersect(hull[i], image[i]) for i in range(n)]
+    X_next, sets_next = None, []
+    # every set the rule carries: its image Y + M [r] and its new coordinates; the end
+    # box is the intersection of all of them
+    for (A, r), frame in zip(sets, _FRAMES[context.frames]):
+        Ae = [[ar.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
+        M = _matmul(ar, D, Ae)
+        V = _matvec(ar, M, r)
+        image = [ar.add(Y[i], V[i]) for i in range(n)]
+        Q = A_next if A_next is not None else _own_frame(ar, M, r, frame)
+        B = ar.inverse(Q)
+        a = _matvec(ar, B, [ar.sub(Y[i], new_m[i]) for i in range(n)])
+        c = _matvec(ar, _matmul(ar, B, M), r)
+        new_r = [ar.add(a[i], c[i]) for i in range(n)]
+        Qe = [[ar.exact(Q[:, i, j]) for j in range(n)] for i in range(n)]
+        spread = _matvec(ar, Qe, new_r)
+        box = [ar.intersect(ar.add(new_m[i], spread[i]), image[i]) for i in range(n)]
+        X_next = box if X_next is None else [ar.intersect(X_next[i], box[i])
+                                             for i in range(n)]
+        for k in range(n):
+            ok &= ar.finite(new_r[k])
+        sets_next.append((Q, new_r))
     for k in range(n):
-        ok &= ar.finite(X_next[k]) & ar.finite(new_r[k])
+        ok &= ar.finite(X_next[k])
     # limits kept on the step, crossing evidence at its end
     g = evaluate(progs.limits, ar, list(X) + params)
     kept = np.ones(len(h), bool)
@@ -252,8 +268,8 @@ def _step(ar, context, X, X_bounds, m, A, r, h, E_bounds, m_next=None, A_next=No
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
         kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
     crossed = _limits_upper_negative(ar, context, X_next, len(h))
-    return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, r_next=new_r, E=E,
-                       E_bounds=E_bounds, m_next=m_next, A_next=A_next,
+    return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, E=E,
+                       E_bounds=E_bounds, m_next=m_next, sets_next=sets_next,
                        moved=[ar.mul(hh, f) for f in field])
 
 
@@ -262,30 +278,45 @@ def _floats(values):
     return np.asarray(values, dtype=object).astype(float)
 
 
-def _own_frame(ar, Y, M, r):
-    """The checker's own coordinates ``m_{k+1}``, ``A_{k+1}`` of a step end (plain floats).
+#: A parallelepiped frame with a larger condition number is replaced by its QR factor.
+FRAME_CONDITION_LIMIT = 1e3
+#: The frame kind of each set a frame rule carries (docs/method.md, step 3).
+_FRAMES = {"qr": ("qr",), "qr+parallelepiped": ("qr", "parallelepiped")}
 
-    Any float frame is sound: ``B`` encloses the inverse of the matrix used, and
-    ``r_{k+1}`` is proven for this frame. It is chosen as the prover chooses its own
-    (Lohner's QR method): ``m`` the midpoint of ``Y``, ``A`` the orthogonal factor of
-    ``mid(M)`` with the columns ordered by their spread ``|mid(M)_j| width(r_j)``.
+
+def _mid(ar, a):
+    return 0.5 * (_floats(ar.lower(a)) + _floats(ar.upper(a)))
+
+
+def _own_frame(ar, M, r, kind):
+    """The checker's own frame ``A_{k+1}`` of a step end's set (plain floats).
+
+    Any invertible float frame is sound: ``B`` encloses the inverse of the matrix used,
+    and ``r_{k+1}`` is proven for this frame. It is chosen as the prover chooses its own
+    (docs/method.md, step 3): the columns of ``mid(M)`` ordered by their spread
+    ``|mid(M)_j| width(r_j)``; for kind ``"qr"`` their orthogonal QR factor; for kind
+    ``"parallelepiped"`` the columns scaled to unit length, or the QR factor where that
+    matrix's condition number exceeds ``FRAME_CONDITION_LIMIT``.
     """
-    n = len(Y)
-
-    def mid(a):
-        return 0.5 * (_floats(ar.lower(a)) + _floats(ar.upper(a)))
-
-    new_m = np.stack([mid(y) for y in Y], 1)
-    middle = np.stack([np.stack([mid(M[i][j]) for j in range(n)], 1) for i in range(n)], 1)
+    n = len(r)
+    middle = np.stack([np.stack([_mid(ar, M[i][j]) for j in range(n)], 1) for i in range(n)], 1)
     width = np.stack([_floats(ar.upper(x)) - _floats(ar.lower(x)) for x in r], 1)
-    with np.errstate(invalid="ignore", over="ignore"):
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         spread = np.linalg.norm(middle, axis=1) * width
-    order = np.argsort(-np.nan_to_num(spread, nan=0.0), axis=1, kind="stable")
-    cols = np.take_along_axis(middle, order[:, None, :], axis=2)
-    bad = ~np.all(np.isfinite(cols), axis=(1, 2))
-    cols[bad] = np.eye(n)
-    Q, _ = np.linalg.qr(cols)
-    return new_m, Q
+        order = np.argsort(-np.nan_to_num(spread, nan=0.0), axis=1, kind="stable")
+        cols = np.take_along_axis(middle, order[:, None, :], axis=2)
+        cols[~np.all(np.isfinite(cols), axis=(1, 2))] = np.eye(n)
+        use_qr = np.ones(len(cols), bool)
+        frame = cols.copy()
+        if kind == "parallelepiped":
+            length = np.linalg.norm(cols, axis=1, keepdims=True)
+            zero = ~np.all(length > 0, axis=(1, 2))
+            frame = cols / np.where(length > 0, length, 1.0)
+            frame[zero] = np.eye(n)
+            use_qr = zero | ~(np.linalg.cond(frame) <= FRAME_CONDITION_LIMIT)
+    if use_qr.any():
+        frame[use_qr] = np.linalg.qr(cols[use_qr])[0]
+    return frame
 
 
 def _picard(ar, progs, params, hh, X_bounds, E_bounds):
@@ -443,16 +474,18 @@ def cell_facts(context, task, arithmetic):
     X_bounds = ([ar.lower(ar.rationals(lo_q[ids, k], lo_q[ids, k])) for k in range(n)],
                 [ar.upper(ar.rationals(hi_q[ids, k], hi_q[ids, k])) for k in range(n)])
     m = _cell_midpoints(lo_q, hi_q)[ids] if task.m0 is None else task.m0[ids]
-    A = np.broadcast_to(np.eye(n), (len(ids), n, n))
     m_q = [np.array([Fraction(float(v)) for v in m[:, k]], dtype=object) for k in range(n)]
     r = [ar.rationals(lo_q[ids, k] - m_q[k], hi_q[ids, k] - m_q[k]) for k in range(n)]
+    # stored frames (version 2, claims) belong to one set; else one set per frame kind
+    kinds = 1 if task.m is not None else len(_FRAMES[context.frames])
+    sets = [(np.broadcast_to(np.eye(n), (len(ids), n, n)), r)] * kinds
     image = [None] * n
     image_cells = np.zeros(0, int)
     k = 0
     while len(ids):
         s = start[ids] + k
         stored = (None, None) if task.m is None else (task.m[s], task.A[s])
-        out = _step(ar, context, X, X_bounds, m, A, r, task.h[s], task.E[s], *stored)
+        out = _step(ar, context, X, X_bounds, m, sets, task.h[s], task.E[s], *stored)
         ok, kept, crossed, X_next, E = out.ok, out.kept, out.crossed, out.X_next, out.E
         tube_boxes[s] = out.E_bounds
         moved = [ar.put(a, s, b) for a, b in zip(moved, out.moved)]
@@ -473,8 +506,8 @@ def cell_facts(context, task, arithmetic):
         keep = np.flatnonzero(go)
         X = [ar.take(x, keep) for x in X_next]
         X_bounds = ([ar.lower(x) for x in X], [ar.upper(x) for x in X])
-        r = [ar.take(x, keep) for x in out.r_next]
-        m, A = out.m_next[keep], out.A_next[keep]
+        sets = [(A[keep], [ar.take(x, keep) for x in r]) for A, r in out.sets_next]
+        m = out.m_next[keep]
         ids = ids[keep]
         k += 1
     if len(image_cells):

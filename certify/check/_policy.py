@@ -212,7 +212,8 @@ def _context(cert, model, tree):
                         window=cert.window, grid_depth=tree.max_depth,
                         open_faces=tuple((a, s) for a, s, kind in cert.faces if kind == "open"),
                         invariant_faces=tuple((a, s) for a, s, kind in cert.faces
-                                              if kind == "invariant"))
+                                              if kind == "invariant"),
+                        frames=cert.frames)
 
 
 def _safe_cells(cert, model, cells, labels, hold, jobs, k):

@@ -22,6 +22,8 @@ __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
 
 LABELS = ("safe", "doomed", "outside", "undecided")
 KINDS = ("limit", "inflow", "invariant", "open")
+#: Frame rules of the steps (docs/method.md, step 3).
+FRAME_RULES = ("qr+parallelepiped", "qr")
 
 
 class _Reader:
@@ -93,6 +95,7 @@ class CertificateData:
     m: np.ndarray
     A: np.ndarray
     version: int = 3
+    frames: str = "qr"
     claim: object = None
     regions: list = None
     trapped: np.ndarray = None
@@ -162,6 +165,10 @@ def _parse(path, data):
     order = rd.get(method, "order", "method.order")
     if not isinstance(order, int) or isinstance(order, bool) or not 1 <= order <= 8:
         rd.fail("method.order", "expected an integer from 1 to 8")
+    # certificates written before the parallelepiped frames have no rule: QR frames
+    frames = method.get("frames", "qr")
+    if frames not in FRAME_RULES:
+        rd.fail("method.frames", f"expected one of {', '.join(FRAME_RULES)}")
     faces = _read_faces(rd, data, n)
     cells = rd.get(data, "cells", "cells", dict)
     L = rd.get(cells, "count", "cells.count", int)
@@ -219,7 +226,7 @@ def _parse(path, data):
                         crossing_upper=crossing, survival_lower=survival, horizon=horizon,
                         image_known=np.array(known, bool), succ_start=succ_start, succ=succ,
                         set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A,
-                        version=version,
+                        version=version, frames=frames,
                          claim=data.get("claim"), regions=regions, trapped=trapped,
                          trapped_whole=whole)
 

@@ -569,7 +569,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     context = CheckContext(programs=programs, params=params, window=cert.window,
                            open_faces=tuple(open_faces), grid_depth=tree.max_depth,
                            invariant_faces=tuple(invariant_faces),
-                           search_tubes=revised is not None)
+                           search_tubes=revised is not None, frames=cert.frames)
     unproven = []
     for k, region in enumerate(cert.regions):
         for problem in verify_region(region, programs, params):

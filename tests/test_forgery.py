@@ -1,0 +1,115 @@
+"""Red team on the checker: certificates forged to claim something false must be rejected.
+
+Each test builds a real small certificate with the prover, tampers with it through the
+container API, and asserts that ``check_certificate`` / ``check_policy`` and the exit code
+of ``certify check`` reject it (1: a claim does not hold, 2: a malformed file).
+
+References named beside the checks:
+
+* ``x' = u (1 - x)`` with ``u > 0`` (linear relaxation to ``x = 1``; closed form
+  ``x(t) = 1 + (x0 - 1) e^(-u t)``): every start in ``[0.45, 1.9]`` stays there forever
+  under either setting, and a start below ``0.45`` violates ``x >= 0.45`` at t = 0, so it
+  keeps no policy's promise;
+* the harvested logistic stock ``x' = x (1 - x) - q`` with ``q = 0.16`` (Schaefer 1954,
+  surplus production (mem)): equilibria 0.2 (unstable) and 0.8 (stable), so starts below
+  0.2 decline and cross ``x = 0.1``, starts above it settle at 0.8.
+"""
+
+import gzip
+import json
+import shutil
+
+import numpy as np
+import pytest
+
+from certify.check import check_certificate
+from certify.check._policy import check_policy
+from certify.cli import main
+from certify.errors import CertificateError
+
+RELAX = """\
+[model]
+name = "relaxation with a two-speed pump"
+[states]
+x = [0, 2]
+[parameters]
+u = 1
+[equations]
+x = "u*(1 - x)"
+[limits]
+low = "x >= 0.45"
+high = "x <= 1.9"
+[controls]
+u = { settings = [1, 2], hold = 0.05 }
+[settings]
+min_horizon = 0.1
+"""
+
+
+def _check_cli(path, capsys):
+    code = main(["check", str(path), "--workers", "1", "--quiet"])
+    out = capsys.readouterr()
+    assert "Traceback" not in out.err
+    return code
+
+
+def _rewrite(path, change):
+    with gzip.open(path, "rb") as f:
+        data = json.loads(f.read())
+    change(data)
+    with gzip.open(path, "wb") as f:
+        f.write(json.dumps(data).encode())
+
+
+# -- policy claims -----------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def relax_claim(tmp_path_factory):
+    """An honest policy claim: x in [0.46, 0.49] is kept within the limits (closed form)."""
+    tmp = tmp_path_factory.mktemp("relax")
+    model = tmp / "relax.toml"
+    model.write_text(RELAX)
+    out = tmp / "claim"
+    assert main(["claim", str(model), "--region", "x=0.46:0.49", "--expect", "safe",
+                 "--max-depth", "4", "--out", str(out), "--quiet"]) == 0
+    assert check_policy(out, jobs=1).valid
+    return tmp, out
+
+
+def _forged_region(relax_claim, tmp_path, region):
+    forged = tmp_path / "forged"
+    shutil.copytree(relax_claim[1], forged)
+
+    def change(data):
+        assert data["claim"]["verdict"] == "proven"
+        data["claim"]["region"]["x"] = region
+    _rewrite(forged / "policy.json.gz", change)
+    return forged
+
+
+def test_policy_claim_on_starts_that_violate_a_limit_is_not_proven(relax_claim, tmp_path,
+                                                                  capsys):
+    # x in [0.40, 0.44] violates x >= 0.45 at t = 0, yet lies in the safe cell
+    # [0.375, 0.5] that straddles the limit (the relaxation pushes up across it)
+    forged = _forged_region(relax_claim, tmp_path, ["2/5", "11/25"])
+    result = check_policy(forged, jobs=1)
+    assert not result.valid and "does not follow" in result.message
+    assert _check_cli(forged, capsys) == 1
+
+
+def test_policy_claim_beyond_the_window_is_malformed(relax_claim, tmp_path, capsys):
+    # no cell meets x in [2.5, 3]: nothing is known about those starts
+    forged = _forged_region(relax_claim, tmp_path, ["5/2", "3"])
+    with pytest.raises(CertificateError, match="inside the window"):
+        check_policy(forged, jobs=1)
+    assert _check_cli(forged, capsys) == 2
+
+
+def test_prover_refutes_a_policy_claim_on_starts_that_violate_a_limit(relax_claim, capsys):
+    # the same region asked honestly: refuted (x = 0.4 < 0.45 at t = 0), and it checks
+    tmp = relax_claim[0]
+    out = tmp / "violating"
+    assert main(["claim", str(tmp / "relax.toml"), "--region", "x=0.4:0.44", "--expect",
+                 "safe", "--max-depth", "4", "--out", str(out), "--quiet"]) == 1
+    capsys.readouterr()
+    assert json.loads((out / "claim.json").read_text())["verdict"] == "refuted"
+    assert check_policy(out, jobs=1).valid

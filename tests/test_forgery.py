@@ -113,3 +113,18 @@ def test_prover_refutes_a_policy_claim_on_starts_that_violate_a_limit(relax_clai
     capsys.readouterr()
     assert json.loads((out / "claim.json").read_text())["verdict"] == "refuted"
     assert check_policy(out, jobs=1).valid
+
+
+def test_policy_with_swapped_settings_is_rejected(relax_claim, tmp_path, capsys):
+    # read_policy hands out the stored settings for the policy's choices: swapping them
+    # would tell the operator to hold u = 2 where the proof holds u = 1
+    forged = tmp_path / "swapped"
+    shutil.copytree(relax_claim[1], forged)
+
+    def change(data):
+        assert data["settings"] == [{"u": "1"}, {"u": "2"}]
+        data["settings"].reverse()
+    _rewrite(forged / "policy.json.gz", change)
+    result = check_policy(forged, jobs=1)
+    assert not result.valid and "stored settings" in result.message
+    assert _check_cli(forged, capsys) == 1

@@ -77,6 +77,17 @@ def _expected_parameters(model):
     return settings, hull
 
 
+def _stored_settings(data, path):
+    """The ``settings`` list as stored (``{control: Fraction}`` per index): the values
+    :func:`certify.policy_output.read_policy` hands out for the policy's choices."""
+    stored = _get(data, "settings", list, path)
+    try:
+        return [{k: Fraction(v) for k, v in entry.items()} for entry in stored]
+    except (AttributeError, TypeError, ValueError, ZeroDivisionError):
+        raise CertificateError(f"{path}: key 'settings': expected {{control: 'p/q'}} per "
+                               f"setting") from None
+
+
 def check_policy(path, jobs=None):
     """Re-verify a policy certificate and the certificates it names.
 
@@ -114,6 +125,10 @@ def check_policy(path, jobs=None):
     if not model.controls:
         raise CertificateError(f"{path}: key 'model.text': the model has no [controls]")
     settings, hull = _expected_parameters(model)
+    if _stored_settings(data, path) != [{c.name: s[c.name][0] for c in model.controls}
+                                        for s in settings]:
+        return _result([_global("the stored settings differ from those of the model's "
+                                "[controls] (in their order)")], 0, start)
     files = _get(data, "files", dict, path)
     names = _get(files, "settings", list, path)
     if len(names) != len(settings) or not all(isinstance(n, str) for n in names):

@@ -9,7 +9,8 @@ References named beside the checks:
 * ``x' = u (1 - x)`` with ``u > 0`` (linear relaxation to ``x = 1``; closed form
   ``x(t) = 1 + (x0 - 1) e^(-u t)``): every start in ``[0.45, 1.9]`` stays there forever
   under either setting, and a start below ``0.45`` violates ``x >= 0.45`` at t = 0, so it
-  keeps no policy's promise;
+  keeps no policy's promise; without controls (``u = 1``) the same holds for the limit
+  ``x >= c`` with ``c`` in ``[0.44, 0.46]``: ``x = 0.42`` violates it for every ``c``;
 * the harvested logistic stock ``x' = x (1 - x) - q`` with ``q = 0.16`` (Schaefer 1954,
   surplus production (mem)): equilibria 0.2 (unstable) and 0.8 (stable), so starts below
   0.2 decline and cross ``x = 0.1``, starts above it settle at 0.8.
@@ -22,10 +23,14 @@ import shutil
 import numpy as np
 import pytest
 
+from certify.certificate import certificate_data, read_certificate
 from certify.check import check_certificate
 from certify.check._policy import check_policy
 from certify.cli import main
+from certify.container import encode_array, load_certificate_json, write_certificate
 from certify.errors import CertificateError
+from certify.model import parse_model
+from certify.prove import prove
 
 RELAX = """\
 [model]
@@ -127,4 +132,51 @@ def test_policy_with_swapped_settings_is_rejected(relax_claim, tmp_path, capsys)
     _rewrite(forged / "policy.json.gz", change)
     result = check_policy(forged, jobs=1)
     assert not result.valid and "stored settings" in result.message
+    assert _check_cli(forged, capsys) == 1
+
+
+# -- numbers the point queries use -------------------------------------------------------
+RELAX_C = """\
+[model]
+name = "relaxation towards one above an uncertain floor"
+[states]
+x = [0, 2]
+[parameters]
+c = [0.44, 0.46]
+[equations]
+x = "1 - x"
+[limits]
+low = "x >= c"
+high = "x <= 1.9"
+"""
+
+
+@pytest.fixture(scope="module")
+def relax_c(tmp_path_factory):
+    path = tmp_path_factory.mktemp("relax_c") / "certificate.json.gz"
+    write_certificate(path, certificate_data(prove(parse_model(RELAX_C), max_depth=4), {}))
+    return path
+
+
+def _tampered(path, tmp_path, change):
+    data = load_certificate_json(path)
+    change(data)
+    out = tmp_path / "tampered.json.gz"
+    write_certificate(out, data)
+    return out
+
+
+@pytest.mark.parametrize("floats", [[0.3, 0.3], [0.445, 0.46], [np.nan, 0.46]])
+def test_parameter_floats_narrower_than_the_box_are_rejected(relax_c, tmp_path, capsys,
+                                                             floats):
+    honest = read_certificate(relax_c)
+    # x = 0.42 violates x >= c for every c in [0.44, 0.46]
+    assert list(honest.label_at(np.array([[0.42], [0.47]]))) == ["outside", "safe"]
+    forged = _tampered(relax_c, tmp_path, lambda d: d.update(
+        parameter_floats=encode_array(np.array([floats]))))
+    if floats[0] == 0.3:
+        # what the forged file would make the point queries say about x = 0.42
+        assert read_certificate(forged).label_at(np.array([[0.42]]))[0] == "safe"
+    result = check_certificate(forged, jobs=1)
+    assert not result.valid and "parameter_floats" in result.message
     assert _check_cli(forged, capsys) == 1

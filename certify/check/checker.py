@@ -545,6 +545,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
                                    f"model's states")
         if tuple(the_model.window) != cert.window:
             failures.append(_global("the window differs from the model's state ranges"))
+        failures += _parameter_floats(cert, the_model)
     narrowed = parameter_differences(cert.params, {p.name: (p.lo, p.hi)
                                                    for p in stated.parameters})
     tree, problems = _tile(cert)
@@ -646,6 +647,21 @@ def _with_parameters(cert):
         return model.with_parameters(cert.params)
     except CertifyError as exc:
         raise CertificateError(f"{cert.path}: key 'parameters': {exc}") from None
+
+
+def _parameter_floats(cert, model):
+    """Problems with ``parameter_floats``: each interval parameter's row must enclose its
+    exact box, as the point queries of the certificate (``label_at``) decide with these
+    floats whether a point violates a limit. Number parameters are substituted exactly
+    there, so their rows are not used."""
+    out = []
+    for k, p in enumerate(model.parameters):
+        lo, hi = (float(v) for v in cert.param_floats[k])
+        if p.lo < p.hi and (np.isnan(lo) or np.isnan(hi)
+                            or not (_at_most(lo, p.lo) and _at_most(p.hi, hi))):
+            out.append(_global(f"parameter_floats row {k} does not enclose the box of "
+                               f"parameter {p.name}"))
+    return out
 
 
 def _judge_all(cert, facts, tree, cells, unproven_regions=()):

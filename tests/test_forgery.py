@@ -13,7 +13,10 @@ References named beside the checks:
   ``x >= c`` with ``c`` in ``[0.44, 0.46]``: ``x = 0.42`` violates it for every ``c``;
 * the harvested logistic stock ``x' = x (1 - x) - q`` with ``q = 0.16`` (Schaefer 1954,
   surplus production (mem)): equilibria 0.2 (unstable) and 0.8 (stable), so starts below
-  0.2 decline and cross ``x = 0.1``, starts above it settle at 0.8.
+  0.2 decline and cross ``x = 0.1``, starts above it settle at 0.8;
+* the damped linear oscillator ``x' = y, y' = -x - y/2``: ``x(t) = expm(A t) x(0)``
+  (closed form, scipy.linalg.expm), used to show that a cell's end points lie partly
+  inside and partly outside a stored trapping region.
 """
 
 import gzip
@@ -22,12 +25,15 @@ import shutil
 
 import numpy as np
 import pytest
+from fractions import Fraction
+from scipy.linalg import expm
 
 from certify.certificate import certificate_data, read_certificate
 from certify.check import check_certificate
 from certify.check._policy import check_policy
 from certify.cli import main
-from certify.container import encode_array, load_certificate_json, write_certificate
+from certify.container import (decode_array, encode_array, load_certificate_json,
+                               write_certificate)
 from certify.errors import CertificateError
 from certify.model import parse_model
 from certify.prove import prove
@@ -180,3 +186,160 @@ def test_parameter_floats_narrower_than_the_box_are_rejected(relax_c, tmp_path, 
     result = check_certificate(forged, jobs=1)
     assert not result.valid and "parameter_floats" in result.message
     assert _check_cli(forged, capsys) == 1
+
+
+# -- cells, steps and trapping regions ---------------------------------------------------
+LOGISTIC = """\
+[model]
+name = "harvested logistic stock"
+[states]
+x = [0.1, 1.2]
+[parameters]
+q = 0.16
+[equations]
+x = "x*(1 - x) - q"
+[limits]
+floor = "x >= 0.1"
+ceiling = "x <= 1.2"
+"""
+
+OSCILLATOR = """\
+[model]
+name = "damped linear oscillator"
+[states]
+x = [-2, 2]
+y = [-2, 2]
+[parameters]
+k = 1
+c = 0.5
+[equations]
+x = "y"
+y = "-k*x - c*y"
+[limits]
+x_cap = "x <= 1.5"
+x_floor = "x >= -1.5"
+"""
+
+
+def _proven(tmp_path_factory, name, text, depth):
+    path = tmp_path_factory.mktemp(name) / "certificate.json.gz"
+    write_certificate(path, certificate_data(prove(parse_model(text), max_depth=depth), {}))
+    assert check_certificate(path, jobs=1).valid
+    return path
+
+
+@pytest.fixture(scope="module")
+def logistic(tmp_path_factory):
+    return _proven(tmp_path_factory, "logistic", LOGISTIC, 6)
+
+
+@pytest.fixture(scope="module")
+def oscillator(tmp_path_factory):
+    return _proven(tmp_path_factory, "oscillator", OSCILLATOR, 4)
+
+
+def _cells(data, key):
+    return decode_array(data["cells"][key])
+
+
+def _put(data, key, values):
+    values = np.asarray(values)
+    data["cells"][key] = encode_array(values, "<i8" if values.dtype.kind == "i" else "<f8")
+
+
+def _claim_safe(data, c):
+    """Relabel cell c safe with the bounds a safe cell states."""
+    data["cells"]["label"][c] = "safe"
+    for key in ("crossing_upper", "survival_lower"):
+        values = _cells(data, key)
+        values[c] = np.inf
+        _put(data, key, values)
+    rank = _cells(data, "rank")
+    rank[c] = -1
+    _put(data, "rank", rank)
+
+
+def _rejected(path, tmp_path, capsys, change):
+    forged = _tampered(path, tmp_path, change)
+    result = check_certificate(forged, jobs=1)
+    assert not result.valid
+    assert _check_cli(forged, capsys) == 1
+    return " ".join(f["reason"] for f in result.failures)
+
+
+def test_a_cell_listed_twice_with_another_label_is_rejected(logistic, tmp_path, capsys):
+    # the doomed cell nearest the floor listed again as safe (starts below 0.2 decline)
+    def change(data):
+        cells = data["cells"]
+        c = cells["label"].index("doomed")
+        for key in ("depth", "index", "rank", "crossing_upper", "survival_lower", "horizon",
+                    "trapped"):
+            values = _cells(data, key)
+            _put(data, key, np.concatenate([values, values[c:c + 1]]))
+        for key in ("successor_start", "step_start"):
+            values = _cells(data, key)
+            _put(data, key, np.concatenate([values, values[-1:]]))
+        cells["label"].append("doomed")
+        cells["image_known"].append(True)
+        cells["trapped_whole"].append(False)
+        cells["count"] += 1
+        _claim_safe(data, cells["count"] - 1)
+    assert "have the same address" in _rejected(logistic, tmp_path, capsys, change)
+
+
+def test_a_horizon_that_does_not_enclose_the_steps_is_rejected(logistic, tmp_path, capsys):
+    def change(data):
+        c = data["cells"]["label"].index("safe")
+        horizon = _cells(data, "horizon")
+        horizon[c] = [100.0, 200.0]
+        _put(data, "horizon", horizon)
+    assert "does not enclose the sum" in _rejected(logistic, tmp_path, capsys, change)
+
+
+def test_a_safe_cell_whose_steps_are_handed_to_its_neighbour_is_rejected(logistic, tmp_path,
+                                                                         capsys):
+    # offsets still rise from 0 to S, but the cell (not in a trapping region) keeps no
+    # step: no image, so no safe claim
+    def change(data):
+        labels, trapped = data["cells"]["label"], _cells(data, "trapped")
+        c = next(c for c in range(1, len(labels)) if labels[c] == "safe" and trapped[c] < 0)
+        start = _cells(data, "step_start")
+        start[c] = start[c + 1]
+        _put(data, "step_start", start)
+        # horizons enclosing the new exact sums of the step sizes
+        h = _cells(data, "step_h")
+        horizon = _cells(data, "horizon")
+        for d in (c - 1, c):
+            T = sum((Fraction(v) for v in h[start[d]:start[d + 1]]), Fraction(0))
+            horizon[d] = [np.nextafter(float(T), -np.inf), np.nextafter(float(T), np.inf)]
+        _put(data, "horizon", horizon)
+    reasons = _rejected(logistic, tmp_path, capsys, change)
+    assert "its image is not finite" in reasons and "does not enclose" not in reasons
+
+
+def test_safe_by_an_image_only_partly_in_the_trapping_region_is_rejected(oscillator, tmp_path,
+                                                                          capsys):
+    data = load_certificate_json(oscillator)
+    region = data["regions"][0]
+    centre = np.array([float(Fraction(v)) for v in region["centre"]])
+    P = np.array([[float(Fraction(v)) for v in row] for row in region["matrix"]])
+    level = float(Fraction(region["level"]))
+    depth, index = _cells(data, "depth"), _cells(data, "index")
+    c = int(np.flatnonzero((depth == 4) & (index[:, 0] == 1) & (index[:, 1] == 14))[0])
+    assert data["cells"]["label"][c] == "undecided"
+    start = _cells(data, "step_start")
+    T = float(sum(Fraction(h) for h in _cells(data, "step_h")[start[c]:start[c + 1]]))
+    # closed form: the cell [-1.75, -1.5] x [1.5, 1.75] ends partly inside V <= level
+    flow = expm(np.array([[0.0, 1.0], [-1.0, -0.5]]) * T)
+    ends = [flow @ np.array([x, y]) - centre for x in (-1.75, -1.5) for y in (1.5, 1.75)]
+    values = [d @ P @ d for d in ends]
+    assert min(values) < level * 0.99 and max(values) > level * 1.01
+
+    def change(data):
+        _claim_safe(data, c)
+        trapped = _cells(data, "trapped")
+        trapped[c] = 0
+        _put(data, "trapped", trapped)
+        data["cells"]["trapped_whole"][c] = False
+    assert "not proven to lie in trapping region 0" in _rejected(oscillator, tmp_path, capsys,
+                                                                 change)

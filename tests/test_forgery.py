@@ -36,6 +36,8 @@ from certify.container import (decode_array, encode_array, load_certificate_json
                                write_certificate)
 from certify.errors import CertificateError
 from certify.model import parse_model
+from certify.policy import prove_policy
+from certify.policy_output import read_policy, write_policy
 from certify.prove import prove
 
 RELAX = """\
@@ -186,6 +188,20 @@ def test_parameter_floats_narrower_than_the_box_are_rejected(relax_c, tmp_path, 
     result = check_certificate(forged, jobs=1)
     assert not result.valid and "parameter_floats" in result.message
     assert _check_cli(forged, capsys) == 1
+
+
+def test_policy_point_queries_do_not_call_an_undecidable_start_safe(tmp_path):
+    # with c in [0.44, 0.46], x = 0.45 violates x >= c for c > 0.45: no policy keeps it
+    text = RELAX.replace("u = 1\n", "u = 1\nc = [0.44, 0.46]\n").replace(
+        'low = "x >= 0.45"', 'low = "x >= c"')
+    write_policy(prove_policy(parse_model(text), max_depth=4, time_limit=60, compare=False),
+                 tmp_path, figures=False)
+    assert check_policy(tmp_path, jobs=1).valid
+    policy = read_policy(tmp_path)
+    points = np.array([[0.42], [0.45], [0.47]])
+    assert list(policy.label_at(points)) == ["outside", "undecided", "safe"]
+    assert list(policy.setting_at(points)[:2]) == [-1, -1]
+    assert policy.setting_at(points)[2] >= 0
 
 
 # -- cells, steps and trapping regions ---------------------------------------------------

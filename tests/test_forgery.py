@@ -359,3 +359,29 @@ def test_safe_by_an_image_only_partly_in_the_trapping_region_is_rejected(oscilla
         data["cells"]["trapped_whole"][c] = False
     assert "not proven to lie in trapping region 0" in _rejected(oscillator, tmp_path, capsys,
                                                                  change)
+
+
+def test_a_point_within_a_rounding_of_a_side_gets_the_label_of_its_exact_cell(logistic):
+    # cell sides 0.1 + 1.1 i / 2^d are mostly not floats: the float boxes are rounded
+    # outward and overlap by an ulp; the point there belongs to one exact cell only
+    data = load_certificate_json(logistic)
+    depth, index = _cells(data, "depth"), _cells(data, "index")[:, 0]
+    labels = data["cells"]["label"]
+    lo = [Fraction(1, 10) + Fraction(11, 10) * Fraction(int(i), 2 ** int(d))
+          for d, i in zip(depth, index)]
+    hi = [Fraction(1, 10) + Fraction(11, 10) * Fraction(int(i) + 1, 2 ** int(d))
+          for d, i in zip(depth, index)]
+    cert = read_certificate(logistic)
+    checked = 0
+    for a in range(len(lo)):
+        b = next((b for b in range(len(lo)) if lo[b] == hi[a]), None)
+        if b is None or labels[a] == labels[b] or Fraction(float(hi[a])) == hi[a]:
+            continue
+        above = float(hi[a]) if Fraction(float(hi[a])) > hi[a] else \
+            float(np.nextafter(float(hi[a]), np.inf))
+        below = float(np.nextafter(above, -np.inf))
+        assert Fraction(below) < hi[a] < Fraction(above)
+        got = cert.label_at(np.array([[below], [above]]))
+        assert [str(g) for g in got] == [labels[a], labels[b]]
+        checked += 1
+    assert checked > 0

@@ -23,12 +23,12 @@ from pathlib import Path
 
 import numpy as np
 
-from .claim import _full_region
 from . import interval as iv
+from .claim import _full_region
 from .container import fraction_text
+from .errors import UsageError
 from .evaluate import evaluate_limits
 from .taylor import flow_programs
-from .errors import UsageError
 
 __all__ = ["PolicyClaim", "claim_policy", "write_policy_claim"]
 

@@ -19,9 +19,11 @@ References named beside the checks:
   inside and partly outside a stored trapping region.
 """
 
+import base64
 import gzip
 import json
 import shutil
+import zlib
 
 import numpy as np
 import pytest
@@ -385,3 +387,22 @@ def test_a_point_within_a_rounding_of_a_side_gets_the_label_of_its_exact_cell(lo
         assert [str(g) for g in got] == [labels[a], labels[b]]
         checked += 1
     assert checked > 0
+
+
+def test_a_position_patched_twice_is_malformed(logistic, tmp_path, capsys):
+    # two patch values for one survival bound, the second doubled: which one a decoder
+    # keeps is not defined
+    def change(data):
+        E = data["cells"]["survival_lower"]
+        at = decode_array(E["patch_at"])
+        values = np.frombuffer(zlib.decompress(base64.b64decode(E["patch"])), np.uint8)
+        values = values.reshape(8, -1).T.copy().view("<f8").reshape(-1)
+        at = np.concatenate([at, at[:1]])
+        values = np.concatenate([values, values[:1] * 2])
+        E["patch_at"] = encode_array(at, "<i8")
+        grouped = values.view(np.uint8).reshape(-1, 8).T
+        E["patch"] = base64.b64encode(zlib.compress(grouped.tobytes())).decode("ascii")
+    forged = _tampered(logistic, tmp_path, change)
+    with pytest.raises(CertificateError, match="patched twice"):
+        check_certificate(forged, jobs=1)
+    assert _check_cli(forged, capsys) == 2

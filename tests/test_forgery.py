@@ -406,3 +406,53 @@ def test_a_position_patched_twice_is_malformed(logistic, tmp_path, capsys):
     with pytest.raises(CertificateError, match="patched twice"):
         check_certificate(forged, jobs=1)
     assert _check_cli(forged, capsys) == 2
+
+
+def _undecided_at_the_threshold(data):
+    """The undecided cell holding the unstable equilibrium 0.2 (Schaefer 1954 (mem)):
+    its starts below 0.2 decline and cross the floor 0.1, those above settle at 0.8."""
+    depth, index = _cells(data, "depth"), _cells(data, "index")[:, 0]
+    for c, label in enumerate(data["cells"]["label"]):
+        lo = Fraction(1, 10) + Fraction(11, 10) * Fraction(int(index[c]), 2 ** int(depth[c]))
+        hi = Fraction(1, 10) + Fraction(11, 10) * Fraction(int(index[c]) + 1,
+                                                           2 ** int(depth[c]))
+        if label == "undecided" and lo < Fraction(1, 5) < hi:
+            return c
+    raise AssertionError("no undecided cell holds x = 0.2")
+
+
+def _set(data, key, c, value):
+    values = _cells(data, key)
+    values[c] = value
+    _put(data, key, values)
+
+
+def _outside_at_the_threshold(data):
+    # every start of the cell keeps 0.1 <= x <= 1.2 at t = 0
+    c = _undecided_at_the_threshold(data)
+    data["cells"]["label"][c] = "outside"
+    _set(data, "survival_lower", c, 0.0)
+    _set(data, "crossing_upper", c, 0.0)
+    _set(data, "rank", c, 0)
+
+
+def _forever_at_the_threshold(data):
+    # its starts below 0.2 do cross the floor
+    _set(data, "survival_lower", _undecided_at_the_threshold(data), np.inf)
+
+
+def _doomed_surviving_its_deadline(data):
+    rank = _cells(data, "rank")
+    c = next(c for c, label in enumerate(data["cells"]["label"])
+             if label == "doomed" and rank[c] == 0)
+    _set(data, "survival_lower", c, 2 * float(_cells(data, "crossing_upper")[c]) + 1)
+
+
+@pytest.mark.parametrize("change, reason", [
+    (_outside_at_the_threshold, "no limit is proven violated on the whole cell"),
+    (_forever_at_the_threshold, "survival bound inf"),
+    (_doomed_surviving_its_deadline, "survival bound"),
+])
+def test_forged_outside_and_survival_claims_are_rejected(logistic, tmp_path, capsys, change,
+                                                         reason):
+    assert reason in _rejected(logistic, tmp_path, capsys, change)

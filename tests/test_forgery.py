@@ -190,6 +190,10 @@ def test_parameter_floats_narrower_than_the_box_are_rejected(relax_c, tmp_path, 
     result = check_certificate(forged, jobs=1)
     assert not result.valid and "parameter_floats" in result.message
     assert _check_cli(forged, capsys) == 1
+    # the stored floats are the certificate's own, whatever model it is checked against
+    model = tmp_path / "relax_c.toml"
+    model.write_text(RELAX_C)
+    assert "parameter_floats" in check_certificate(forged, model=model, jobs=1).message
 
 
 def test_policy_point_queries_do_not_call_an_undecidable_start_safe(tmp_path):

@@ -2,7 +2,9 @@
 
 Each test builds a real small certificate with the prover, tampers with it through the
 container API, and asserts that ``check_certificate`` / ``check_policy`` and the exit code
-of ``certify check`` reject it (1: a claim does not hold, 2: a malformed file).
+of ``certify check`` reject it (1: a claim does not hold, 2: a malformed file). The point
+queries of a checked certificate (``label_at``, ``setting_at``) must state only what it
+proves, too.
 
 References named beside the checks:
 
@@ -14,6 +16,7 @@ References named beside the checks:
 * the harvested logistic stock ``x' = x (1 - x) - q`` with ``q = 0.16`` (Schaefer 1954,
   surplus production (mem)): equilibria 0.2 (unstable) and 0.8 (stable), so starts below
   0.2 decline and cross ``x = 0.1``, starts above it settle at 0.8;
+* cell sides ``0.1 + 1.1 i / 2^d`` compared exactly with Python's ``fractions``;
 * the damped linear oscillator ``x' = y, y' = -x - y/2``: ``x(t) = expm(A t) x(0)``
   (closed form, scipy.linalg.expm), used to show that a cell's end points lie partly
   inside and partly outside a stored trapping region.
@@ -24,10 +27,10 @@ import gzip
 import json
 import shutil
 import zlib
+from fractions import Fraction
 
 import numpy as np
 import pytest
-from fractions import Fraction
 from scipy.linalg import expm
 
 from certify.certificate import certificate_data, read_certificate

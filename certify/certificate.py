@@ -48,10 +48,27 @@ class Certificate:
     tree: object
 
     def _locate(self, points):
+        """The points as floats, and for each a leaf node whose exact cell holds it (-1
+        if none: outside the window). The float boxes of cells are rounded outward, so a
+        point within a rounding of a shared side may lie in a float box only: the exact
+        sides decide (a cell's claims speak about its exact points)."""
         points = np.atleast_2d(np.asarray(points, float))
         if points.shape[1] != self.lo.shape[1]:
             raise ValueError(f"points must have {self.lo.shape[1]} columns")
-        node = self.tree.leaf_containing(points)
+        query, nodes = self.tree.leaves_meeting(points, points)
+        unique, inverse = np.unique(nodes, return_inverse=True)
+        # per candidate: the smallest float not below each exact lower side and the
+        # largest not above each upper side (a float point is in the cell iff between)
+        first = np.empty((len(unique), points.shape[1]))
+        last = np.empty((len(unique), points.shape[1]))
+        for r, candidate in enumerate(unique.tolist()):
+            for k, (a, b) in enumerate(self.tree.exact_box(candidate)):
+                first[r, k], last[r, k] = _float_at_least(a), _float_at_most(b)
+        inverse = inverse.reshape(-1)
+        held = np.all((points[query] >= first[inverse]) & (points[query] <= last[inverse]),
+                      axis=1)
+        node = np.full(len(points), -1)
+        node[query[held][::-1]] = nodes[held][::-1]
         return points, node
 
     def _violates(self, points):
@@ -118,6 +135,18 @@ class Certificate:
     def _leaf_of_node(self, node):
         lookup = self.data["_node_to_leaf"]
         return np.where(node >= 0, lookup[np.maximum(node, 0)], -1)
+
+
+def _float_at_least(q):
+    """The smallest float not below the Fraction `q`."""
+    v = float(q)
+    return v if Fraction(v) >= q else float(np.nextafter(v, np.inf))
+
+
+def _float_at_most(q):
+    """The largest float not above the Fraction `q`."""
+    v = float(q)
+    return v if Fraction(v) <= q else float(np.nextafter(v, -np.inf))
 
 
 def read_certificate(path):

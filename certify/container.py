@@ -143,6 +143,8 @@ def decode_array(obj, where="array"):
                     raise ValueError("patch")
                 if at.ndim != 1 or np.any(at < 0) or np.any(at >= count):
                     raise ValueError("a patch lies outside the array")
+                if len(np.unique(at)) != len(at):
+                    raise ValueError("a position is patched twice")
                 flat[at] = _unpack(obj["patch"], dtype, len(at))
             return flat.reshape(shape)
         if codec == "zlib-delta" and dtype.kind == "i" and item.kind == "i":

@@ -4,11 +4,14 @@
 (:func:`certify.policy.prove_policy`) and reads the verdict off the cells whose closed
 boxes meet the closed region (the checker re-derives it, ``check/_policy.py``):
 
-* ``proven``: every such cell is ``safe`` under the policy (a safe cell keeps the limits
-  from time 0 on, so the region satisfies them too); the policy stored with the verdict
-  keeps every start of the region within the limits forever;
+* ``proven``: every such cell is ``safe`` under the policy and every limit holds at
+  time 0 on every piece of the region (its part in one of those cells): the policy
+  stored with the verdict keeps every start of the region within the limits forever. A
+  safe cell speaks only about its starts within the limits, and a cell that straddles a
+  limit can be safe, so the second test is needed;
 * ``refuted``: one of them is ``doomed`` (no control of any kind keeps its starts) or
-  ``outside`` (its starts violate a limit at time 0);
+  ``outside`` (its starts violate a limit at time 0), or a limit is violated on a whole
+  piece of the region at time 0;
 * ``inconclusive``: neither, within the budget.
 """
 
@@ -20,9 +23,12 @@ from pathlib import Path
 
 import numpy as np
 
+from . import interval as iv
 from .claim import _full_region
 from .container import fraction_text
 from .errors import UsageError
+from .evaluate import evaluate_limits
+from .taylor import flow_programs
 
 __all__ = ["PolicyClaim", "claim_policy", "write_policy_claim"]
 
@@ -81,6 +87,25 @@ def cells_meeting(pp, region):
     return np.array(sorted(out), int)
 
 
+def _piece_limits(pp, region, meeting):
+    """Whether every limit holds on every piece of the region (its part in one of the
+    cells `meeting`) at t = 0, and whether some limit is violated on a whole piece
+    (outward-rounded float enclosures at the hull of the settings)."""
+    if len(meeting) == 0:
+        return False, False
+    states = pp.model.states
+    lo, hi = [], []
+    for leaf in meeting.tolist():
+        box = pp.tree.exact_box(int(pp.leaves[leaf]))
+        lo.append([iv.enclose_fraction(max(a, region[s.name][0]))[0]
+                   for (a, _), s in zip(box, states)])
+        hi.append([iv.enclose_fraction(min(b, region[s.name][1]))[1]
+                   for (_, b), s in zip(box, states)])
+    programs = flow_programs(pp.inclusion.model, 1)
+    glo, ghi = evaluate_limits(programs, np.array(lo), np.array(hi), pp.inclusion.params)
+    return bool(np.all(glo >= 0)), bool(np.any(ghi < 0))
+
+
 def claim_policy(model, region, expect, until=None, *, max_depth=None, time_limit=None,
                  progress=None):
     """Is there a policy keeping every start of the region within the limits forever?
@@ -109,12 +134,19 @@ def claim_policy(model, region, expect, until=None, *, max_depth=None, time_limi
     full = _full_region(model, {k: tuple(v) for k, v in region.items()})
     pp = prove_policy(model, max_depth=max_depth, time_limit=time_limit, progress=progress,
                       compare=False)
-    labels = pp.proof.labelling.label[cells_meeting(pp, full)]
+    meeting = cells_meeting(pp, full)
+    labels = pp.proof.labelling.label[meeting]
     counts = {k: int(np.sum(labels == k)) for k in ("safe", "doomed", "outside", "undecided")}
-    if counts["doomed"] or counts["outside"]:
+    inside, violated = _piece_limits(pp, full, meeting)
+    if counts["doomed"] or counts["outside"] or violated:
         verdict = "refuted"
         message = (f"refuted: the region meets {counts['doomed']} cells doomed under every "
-                   f"control and {counts['outside']} outside the limits")
+                   f"control and {counts['outside']} outside the limits"
+                   + (", and a part of it violates a limit at t = 0" if violated else ""))
+    elif counts["undecided"] == 0 and not inside:
+        verdict = "inconclusive"
+        message = ("inconclusive: the region lies in safe cells, but a part of it is not "
+                   "proven to satisfy the limits at t = 0")
     elif counts["undecided"] == 0:
         verdict = "proven"
         message = (f"proven: the region lies in {counts['safe']} cells that the stored policy "

@@ -155,20 +155,26 @@ class PolicyMap:
         return points, cert._leaf_of_node(node)
 
     def label_at(self, points):
-        """Label with controls of each point (``undecided`` outside the window)."""
+        """Label with controls of each point (``outside`` where a limit is violated at
+        t = 0; ``undecided`` outside the window or where the limits cannot be evaluated
+        with certainty at the point, as :meth:`certify.certificate.Certificate.label_at`)."""
         points, leaf = self._leaf(points)
         out = np.where(leaf >= 0, self.labels[np.maximum(leaf, 0)], "undecided").astype(object)
-        out[self.certificate._violates(points) < 0] = "outside"
+        v = self.certificate._violates(points)
+        out[v < 0] = "outside"
+        out[(v == 0) & (out != "outside")] = "undecided"
         return out.astype(str)
 
     def setting_at(self, points):
-        """Index of the policy's setting at each point, -1 where no policy is proven.
+        """Index of the policy's setting at each point, -1 where no policy is proven
+        (the point's label is not ``safe``, :meth:`label_at`).
 
         A point on the border of cells gets the setting of one of them (either keeps it
         safe); use ``settings[i]`` for the values.
         """
         _, leaf = self._leaf(points)
-        return np.where(leaf >= 0, self.choice[np.maximum(leaf, 0)], -1)
+        safe = self.label_at(points) == "safe"
+        return np.where((leaf >= 0) & safe, self.choice[np.maximum(leaf, 0)], -1)
 
 
 def read_policy(path):

@@ -30,6 +30,7 @@ from ..container import read_gzip_json
 from ..errors import CertificateError, CertifyError
 from ..model import parse_model
 from ._cells import CheckContext, exact_cells
+from ._claim import _limit_signs
 from ._programs import derive_programs
 from ._read import read_for_check
 from .checker import (CheckResult, _Facts, _Judge, _compute, _global, _leaves_meeting,
@@ -76,6 +77,17 @@ def _expected_parameters(model):
     return settings, hull
 
 
+def _stored_settings(data, path):
+    """The ``settings`` list as stored (``{control: Fraction}`` per index): the values
+    :func:`certify.policy_output.read_policy` hands out for the policy's choices."""
+    stored = _get(data, "settings", list, path)
+    try:
+        return [{k: Fraction(v) for k, v in entry.items()} for entry in stored]
+    except (AttributeError, TypeError, ValueError, ZeroDivisionError):
+        raise CertificateError(f"{path}: key 'settings': expected {{control: 'p/q'}} per "
+                               f"setting") from None
+
+
 def check_policy(path, jobs=None):
     """Re-verify a policy certificate and the certificates it names.
 
@@ -113,6 +125,10 @@ def check_policy(path, jobs=None):
     if not model.controls:
         raise CertificateError(f"{path}: key 'model.text': the model has no [controls]")
     settings, hull = _expected_parameters(model)
+    if _stored_settings(data, path) != [{c.name: s[c.name][0] for c in model.controls}
+                                        for s in settings]:
+        return _result([_global("the stored settings differ from those of the model's "
+                                "[controls] (in their order)")], 0, start)
     files = _get(data, "files", dict, path)
     names = _get(files, "settings", list, path)
     if len(names) != len(settings) or not all(isinstance(n, str) for n in names):
@@ -164,13 +180,25 @@ def check_policy(path, jobs=None):
 
 
 def _claim(record, cert, model, labels, path):
-    """Re-derive the verdict of a stored claim from the (checked) labels."""
+    """Re-derive the verdict of a stored claim from the (checked) labels.
+
+    The region must lie inside the window (no cell speaks about a start beyond it). Its
+    pieces are its parts in the closed cells meeting it; ``proven`` follows when every
+    such cell is ``safe`` and every limit holds on every piece at t = 0 (a safe cell may
+    straddle a limit: it speaks only about its starts within the limits), ``refuted``
+    when one is ``doomed`` or ``outside`` or a limit is violated on a whole piece. A
+    stored ``inconclusive`` is weaker than either, and true.
+    """
     try:
         region = {k: (Fraction(a), Fraction(b)) for k, (a, b) in record["region"].items()}
         stored = record["verdict"]
         box = [region[s.name] for s in model.states]
     except (KeyError, TypeError, ValueError, ZeroDivisionError):
         raise CertificateError(f"{path}: key 'claim': malformed claim record") from None
+    for s, (a, b), (w_lo, w_hi) in zip(model.states, box, cert.window):
+        if not w_lo <= a <= b <= w_hi:
+            raise CertificateError(f"{path}: key 'claim.region.{s.name}': not a range "
+                                   f"inside the window")
     if record.get("expect") != "safe":
         return [_global("claim: a policy claim can only expect safe")]
     lo, hi = exact_cells(cert.window, cert.depth, cert.index)
@@ -178,9 +206,17 @@ def _claim(record, cert, model, labels, path):
     for k, (a, b) in enumerate(box):
         meets &= (lo[:, k] <= b) & (hi[:, k] >= a)
     seen = set(labels[meets].tolist())
-    verdict = ("refuted" if seen & {"doomed", "outside"} else
-               "proven" if seen <= {"safe"} else "inconclusive")
-    if verdict != stored:
+    p_lo = np.array([[max(a, c) for (a, _), c in zip(box, row)] for row in lo[meets]],
+                    dtype=object).reshape(-1, len(box))
+    p_hi = np.array([[min(b, d) for (_, b), d in zip(box, row)] for row in hi[meets]],
+                    dtype=object).reshape(-1, len(box))
+    context = CheckContext(programs=derive_programs(model.with_parameters(cert.params), 1),
+                           params=tuple(cert.params[p.name] for p in model.parameters),
+                           window=cert.window, open_faces=(), grid_depth=0)
+    inside, violated = _limit_signs(context, p_lo, p_hi)
+    verdict = ("refuted" if seen & {"doomed", "outside"} or violated.any() else
+               "proven" if seen <= {"safe"} and inside.all() else "inconclusive")
+    if stored not in (verdict, "inconclusive"):
         return [_global(f"claim: the stored verdict {stored!r} does not follow from the "
                         f"cells meeting the region ({verdict})")]
     return []

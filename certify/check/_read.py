@@ -100,6 +100,7 @@ class CertificateData:
     regions: list = None
     trapped: np.ndarray = None
     trapped_whole: np.ndarray = None
+    param_floats: np.ndarray = None
 
 
 def read_for_check(path):
@@ -150,6 +151,8 @@ def _parse(path, data):
         if lo > hi:
             rd.fail(where, "lo is above hi")
         params[name] = (lo, hi)
+    param_floats = rd.array(data, "parameter_floats", "parameter_floats", "f",
+                            (len(params), 2))
     window_raw = rd.get(data, "window", "window", list)
     if len(window_raw) != n:
         rd.fail("window", f"expected {n} sides, one per state")
@@ -228,7 +231,7 @@ def _parse(path, data):
                         set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A,
                         version=version, frames=frames,
                          claim=data.get("claim"), regions=regions, trapped=trapped,
-                         trapped_whole=whole)
+                         trapped_whole=whole, param_floats=param_floats)
 
 
 def _read_faces(rd, data, n):

@@ -545,6 +545,9 @@ def check_certificate(path, model=None, jobs=None, progress=None):
                                    f"model's states")
         if tuple(the_model.window) != cert.window:
             failures.append(_global("the window differs from the model's state ranges"))
+    if cert.model is not None and sorted(p.name for p in cert.model.parameters) == \
+            sorted(cert.params):
+        failures += _parameter_floats(cert)
     narrowed = parameter_differences(cert.params, {p.name: (p.lo, p.hi)
                                                    for p in stated.parameters})
     tree, problems = _tile(cert)
@@ -646,6 +649,22 @@ def _with_parameters(cert):
         return model.with_parameters(cert.params)
     except CertifyError as exc:
         raise CertificateError(f"{cert.path}: key 'parameters': {exc}") from None
+
+
+def _parameter_floats(cert):
+    """Problems with ``parameter_floats`` (rows in the stored model's parameter order):
+    each interval parameter's row must enclose its exact box, as the point queries of
+    the certificate (``label_at``) decide with these floats whether a point violates a
+    limit. Number parameters are substituted exactly there, so their rows are not used."""
+    out = []
+    for k, p in enumerate(cert.model.parameters):
+        p_lo, p_hi = cert.params[p.name]
+        lo, hi = (float(v) for v in cert.param_floats[k])
+        if p_lo < p_hi and (np.isnan(lo) or np.isnan(hi)
+                            or not (_at_most(lo, p_lo) and _at_most(p_hi, hi))):
+            out.append(_global(f"parameter_floats row {k} does not enclose the box of "
+                               f"parameter {p.name}"))
+    return out
 
 
 def _judge_all(cert, facts, tree, cells, unproven_regions=()):

@@ -612,10 +612,15 @@ def _inner(ar, row, col):
     return acc
 
 
+def _float_arith():
+    from ._floats import FloatArith     # it builds on EndpointArith, defined here
+    return FloatArith()
+
+
 #: The checker's passes, in order: a cell whose claims do not verify in one pass is
-#: recomputed in the next. Measured on the demo map at depth 8: the first pass leaves
-#: about 5 % of the cells, the second about 1 in 1000 (benchmarks/results.md, "Checker").
+#: recomputed in the next (benchmarks/results.md, "Checker", has the rates).
 ARITHMETICS = {
+    "float": _float_arith,
     "ball": lambda: BallArith(Pieces(tube=4, jacobians=(2, 1), remainder=1)),
     "fine": lambda: BallArith(Pieces(tube=4, jacobians=(4, 2), remainder=4)),
     "endpoint": EndpointArith,

@@ -8,10 +8,11 @@ cell's claims locally against its own facts and its successors' claims
 (docs/design.md, section 5). When every local check holds, every claim holds by induction
 over ranks (doomed) and horizons (safe, survival bounds).
 
-Arithmetic: each cell is first recomputed with arb balls, vectorized over chunks of
-cells and evaluating wide boxes in pieces; a cell whose claims do not verify that way is
-recomputed with finer pieces, then with exact-endpoint arithmetic
-(:mod:`certify.check._arith`), before it is declared invalid.
+Arithmetic: each cell is first recomputed with outward-rounded float64 intervals
+(:mod:`certify.check._floats`), vectorized over chunks of cells; a cell whose claims do
+not verify that way is recomputed with arb balls evaluating wide boxes in pieces, then
+with finer pieces, then with exact-endpoint arithmetic (:mod:`certify.check._arith`),
+before it is declared invalid.
 """
 
 from __future__ import annotations
@@ -60,11 +61,14 @@ class CheckResult:
         problems of the whole certificate have ``cell``, ``address`` and ``label`` None.
     seconds : float
     refined_cells : int
-        Cells whose claims did not verify in the first pass (arb balls) and were
+        Cells whose claims did not verify with floats nor with arb balls and were
         recomputed with finer pieces.
     fallback_cells : int
         Cells whose claims did not verify with arb balls at all and were recomputed with
         exact-endpoint arithmetic.
+    ball_cells : int
+        Cells whose claims did not verify in the first pass (float intervals) and were
+        recomputed with arb balls.
     model : str or None
         The revised model file for a regression check (``model=``), else None.
     claims : dict or None
@@ -91,6 +95,7 @@ class CheckResult:
     claims: dict | None = field(default=None)
     parameters_narrowed: list = field(default_factory=list)
     claim: object = None
+    ball_cells: int = 0
 
 
 # -- tiling ------------------------------------------------------------------------------
@@ -199,14 +204,20 @@ def _work(job):
     return number, cell_facts(_WORKER["context"], task, arithmetic)
 
 
-def _tasks(cert, cells, n_steps):
-    """Chunks of cells with similar step counts."""
+def _float_chunk(n_steps, jobs):
+    """Steps per chunk of the float pass: numpy pays a fixed cost per call, so its chunks
+    are as large as an even share of the work allows (4 chunks per worker)."""
+    return max(CHUNK_STEPS, int(np.maximum(n_steps, 1).sum()) // (4 * jobs) + 1)
+
+
+def _tasks(cert, cells, n_steps, chunk=CHUNK_STEPS):
+    """Chunks of cells with similar step counts, of about `chunk` steps each."""
     order = cells[np.argsort(-n_steps[cells], kind="stable")]
     tasks, current, steps = [], [], 0
     for c in order:
         current.append(c)
         steps += max(int(n_steps[c]), 1)
-        if steps >= CHUNK_STEPS:
+        if steps >= chunk:
             tasks.append(np.array(current))
             current, steps = [], 0
     if current:
@@ -580,8 +591,8 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     if progress is not None and hasattr(progress, "total"):
         progress.total(cert.L)
     facts = _Facts(cert.L, cert.n)
-    tasks = _tasks(cert, np.arange(cert.L), n_steps)
-    for number, result in _compute(context, tasks, "ball", jobs, progress).items():
+    tasks = _tasks(cert, np.arange(cert.L), n_steps, _float_chunk(n_steps, jobs))
+    for number, result in _compute(context, tasks, "float", jobs, progress).items():
         facts.store(tasks[number].cells, result)
     judge, local = _judge_all(cert, facts, tree, np.arange(cert.L), unproven)
     recomputed = {}
@@ -629,11 +640,11 @@ def _later_passes(cert, revised):
     keeps the check cheaper than a new proof (docs/auditing.md).
     """
     if revised is None:
-        return ("fine", "endpoint")
+        return ("ball", "fine", "endpoint")
     same = cert.sha_ok and revised.sha256 == hashlib.sha256(
         cert.model.text.encode("utf-8")).hexdigest() and cert.params == {
         p.name: (p.lo, p.hi) for p in revised.parameters}
-    return ("fine", "endpoint") if same else ()
+    return ("ball", "fine", "endpoint") if same else ("ball",)
 
 
 def _with_parameters(cert):
@@ -712,5 +723,6 @@ def _verdict(cert, failures, start, checked, recomputed, revised=None, model=Non
                        seconds=time.monotonic() - start,
                        refined_cells=recomputed.get("fine", 0),
                        fallback_cells=recomputed.get("endpoint", 0),
+                       ball_cells=recomputed.get("ball", 0),
                        model=str(model) if model is not None else None, claims=claims,
                        parameters_narrowed=list(narrowed), claim=claim)

@@ -612,15 +612,16 @@ def _inner(ar, row, col):
     return acc
 
 
-def _float_arith():
+def _float_arith(pieces=Pieces()):
     from ._floats import FloatArith     # it builds on EndpointArith, defined here
-    return FloatArith()
+    return FloatArith(pieces)
 
 
 #: The checker's passes, in order: a cell whose claims do not verify in one pass is
 #: recomputed in the next (benchmarks/results.md, "Checker", has the rates).
 ARITHMETICS = {
     "float": _float_arith,
+    "float-pieces": lambda: _float_arith(Pieces(tube=4, jacobians=(2, 1), remainder=1)),
     "ball": lambda: BallArith(Pieces(tube=4, jacobians=(2, 1), remainder=1)),
     "fine": lambda: BallArith(Pieces(tube=4, jacobians=(4, 2), remainder=4)),
     "endpoint": EndpointArith,

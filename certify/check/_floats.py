@@ -129,9 +129,10 @@ def float_down(q):
     Non-finite arb numbers give NaN; numbers beyond the float range give the largest
     float (or ``-inf``).
     """
-    q = _exact_fraction(q)
-    if q is None:
-        return np.nan
+    if type(q) is not Fraction:
+        q = _exact_fraction(q)
+        if q is None:
+            return np.nan
     num, den = q.numerator, q.denominator
     if den & (den - 1) == 0 and den <= _NORMAL and -_EXACT < num < _EXACT:
         return num / den        # a dyadic number with at most 53 bits: exact
@@ -146,8 +147,11 @@ def float_down(q):
 
 def float_up(q):
     """The smallest float not below an exact number (see :func:`float_down`)."""
-    q = _exact_fraction(q)
-    return np.nan if q is None else -float_down(-q)
+    if type(q) is not Fraction:
+        q = _exact_fraction(q)
+        if q is None:
+            return np.nan
+    return -float_down(-q)
 
 
 def _exact_fraction(q):

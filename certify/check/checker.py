@@ -592,7 +592,8 @@ def check_certificate(path, model=None, jobs=None, progress=None):
         progress.total(cert.L)
     facts = _Facts(cert.L, cert.n)
     tasks = _tasks(cert, np.arange(cert.L), n_steps, _float_chunk(n_steps, jobs))
-    for number, result in _compute(context, tasks, "float", jobs, progress).items():
+    first = "float" if revised is None else "float-pieces"
+    for number, result in _compute(context, tasks, first, jobs, progress).items():
         facts.store(tasks[number].cells, result)
     judge, local = _judge_all(cert, facts, tree, np.arange(cert.L), unproven)
     recomputed = {}
@@ -633,18 +634,19 @@ def check_certificate(path, model=None, jobs=None, progress=None):
 def _later_passes(cert, revised):
     """The passes after the first for cells whose claims did not verify in it.
 
-    They recompute with finer pieces and then in the prover's order of operations, so
-    that what the prover proved for its model verifies. A regression check against a
-    different model (text or parameter boxes) reproduces nothing the prover did: there
-    a claim the first pass does not re-verify is reported as not re-verified, which
-    keeps the check cheaper than a new proof (docs/auditing.md).
+    They recompute with arb balls (wide boxes in pieces), with finer pieces and then in
+    the prover's order of operations, so that what the prover proved for its model
+    verifies. A regression check against a different model (text or parameter boxes)
+    reproduces nothing the prover did: there the first pass evaluates wide boxes in the
+    ball pass's pieces and a claim it does not re-verify is reported as not
+    re-verified, which keeps the check cheaper than a new proof (docs/auditing.md).
     """
     if revised is None:
         return ("ball", "fine", "endpoint")
     same = cert.sha_ok and revised.sha256 == hashlib.sha256(
         cert.model.text.encode("utf-8")).hexdigest() and cert.params == {
         p.name: (p.lo, p.hi) for p in revised.parameters}
-    return ("ball", "fine", "endpoint") if same else ("ball",)
+    return ("ball", "fine", "endpoint") if same else ()
 
 
 def _with_parameters(cert):

@@ -10,7 +10,8 @@ References named beside the checks:
   and test_certificate_format.py, which now run the float pass first).
 """
 
-import math
+import itertools
+import operator
 from fractions import Fraction
 
 import mpmath
@@ -80,18 +81,12 @@ def test_basic_operations_enclose_the_exact_range(op):
     b_lo, b_hi = _intervals(1500, 2)
     with np.errstate(all="ignore"):
         lo, hi = getattr(ar, op)(ar.box(a_lo, a_hi), ar.box(b_lo, b_hi))
-    exact = {"add": lambda x, y: x + y, "sub": lambda x, y: x - y,
-             "mul": lambda x, y: x * y, "div": lambda x, y: x / y}[op]
-    for j in range(len(lo)):
-        if op == "div" and b_lo[j] <= 0 <= b_hi[j]:
+    exact = getattr(operator, {"div": "truediv"}.get(op, op))
+    for j, (a, b) in enumerate(zip(zip(a_lo, a_hi), zip(b_lo, b_hi))):
+        if op == "div" and b[0] <= 0 <= b[1]:
             assert np.isnan(lo[j]) and np.isnan(hi[j])     # a divisor reaching 0
             continue
-        if op == "sub":
-            corners = [Fraction(a_lo[j]) - Fraction(b_hi[j]),
-                       Fraction(a_hi[j]) - Fraction(b_lo[j])]
-        else:
-            corners = [exact(Fraction(x), Fraction(y))
-                       for x in (a_lo[j], a_hi[j]) for y in (b_lo[j], b_hi[j])]
+        corners = [exact(Fraction(x), Fraction(y)) for x, y in itertools.product(a, b)]
         _enclosed(lo[j], hi[j], corners)
         _tight(lo[j], hi[j], min(corners), max(corners))
 

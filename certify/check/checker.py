@@ -205,9 +205,12 @@ def _work(job):
 
 
 def _float_chunk(n_steps, jobs):
-    """Steps per chunk of the float pass: numpy pays a fixed cost per call, so its chunks
-    are as large as an even share of the work allows (4 chunks per worker)."""
-    return max(CHUNK_STEPS, int(np.maximum(n_steps, 1).sum()) // (4 * jobs) + 1)
+    """Steps per chunk of the float pass: one chunk per worker.
+
+    Its cost is mostly a fixed cost per numpy call, paid once per step of the chunk's
+    longest cell whatever the number of cells; one chunk per worker keeps the number of
+    such rounds smallest (cells are grouped by their number of steps)."""
+    return max(CHUNK_STEPS, int(np.maximum(n_steps, 1).sum()) // jobs + 1)
 
 
 def _tasks(cert, cells, n_steps, chunk=CHUNK_STEPS):

@@ -5,9 +5,11 @@ References named beside the checks:
 * the basic operations, powers, the inverse matrix and rational constants against exact
   rational arithmetic (``fractions.Fraction``, sympy's exact matrix inverse);
 * the elementary functions and named constants against mpmath at 100 digits;
-* a certificate that the arb passes verify verifies with the float pass first (the
-  tamper classes are rejected by the tests of test_checker.py, test_soundness_hardening.py
-  and test_certificate_format.py, which now run the float pass first).
+* whole Taylor programs against python-flint's tightest 53-bit enclosures (EndpointArith);
+* a certificate that the arb passes verify verifies with the float pass first, and also
+  when the float pass leaves most cells to them (the tamper classes are rejected by the
+  tests of test_checker.py, test_soundness_hardening.py and test_certificate_format.py,
+  which now run the float pass first).
 """
 
 import itertools
@@ -21,7 +23,9 @@ import sympy
 
 from certify.certificate import certificate_data, write_certificate
 from certify.check import check_certificate
+from certify.check._arith import ARITHMETICS, EndpointArith, evaluate
 from certify.check._floats import FloatArith, float_down, float_up
+from certify.check._programs import derive_programs
 from certify.model import load_model
 from certify.prove import prove
 
@@ -293,3 +297,57 @@ def test_float_pass_verifies_the_demo_certificate(tmp_path):
     assert result.valid, result.message
     assert 0 <= result.ball_cells < result.cells_checked
     assert result.refined_cells <= result.ball_cells
+
+
+def _fermenter_programs():
+    model = load_model("models/fermenter.toml")
+    return model, derive_programs(model, 4)
+
+
+def test_whole_programs_contain_the_tightest_double_enclosure():
+    # reference: python-flint exact endpoints (EndpointArith: every operation's tightest
+    # 53-bit enclosure). Evaluated in the same order, each float operation encloses the
+    # exact range over wider inputs with float ends, hence contains the tightest one
+    model, programs = _fermenter_programs()
+    rng = np.random.default_rng(11)
+    lo = np.stack([rng.uniform(0, 11, 300), rng.uniform(0, 9, 300)], 1)
+    hi = lo + rng.uniform(0, 0.5, (300, 2)) * (rng.random((300, 1)) < 0.8)
+    params = [(p.lo, p.hi) for p in model.parameters]
+    floats, ends = FloatArith(), EndpointArith()
+    ends.enter()
+    for program in (programs.remainder, programs.higher_jacobians, programs.on_tube):
+        out_f = evaluate(program, floats, [floats.box(lo[:, k], hi[:, k]) for k in range(2)]
+                         + [floats.rational(a, b) for a, b in params])
+        out_e = evaluate(program, ends, [ends.box(lo[:, k], hi[:, k]) for k in range(2)]
+                         + [ends.rational(a, b) for a, b in params])
+        for (f_lo, f_hi), (e_lo, e_hi) in zip(out_f, out_e):
+            usable = np.isfinite(f_lo) & np.isfinite(f_hi)
+            assert usable.mean() > 0.5
+            for j in np.flatnonzero(usable):
+                assert Fraction(f_lo[j]) <= _fraction(e_lo[j])
+                assert _fraction(e_hi[j]) <= Fraction(f_hi[j])
+
+
+def _fraction(x):
+    m, e = x.man_exp()
+    return Fraction(int(m)) * Fraction(2) ** int(e)
+
+
+class _Loose(FloatArith):
+    """A float arithmetic that widens every sum by a relative 1e-6: sound, too loose."""
+
+    def add(self, a, b):
+        lo, hi = super().add(a, b)
+        return lo - 1e-6 * (np.abs(lo) + 1), hi + 1e-6 * (np.abs(hi) + 1)
+
+
+def test_cells_the_float_pass_leaves_go_on_to_the_ball_pass(tmp_path, monkeypatch):
+    # reference: the arb passes verify the prover's certificates (tests/test_checker.py):
+    # with a first pass too loose to verify most cells, the check still holds, through them
+    proof = prove(load_model("models/fermenter.toml"), max_depth=4)
+    path = tmp_path / "fermenter.json.gz"
+    write_certificate(path, certificate_data(proof, {}))
+    monkeypatch.setitem(ARITHMETICS, "float", _Loose)
+    result = check_certificate(path, jobs=1)
+    assert result.valid, result.message
+    assert result.ball_cells > 0

@@ -163,9 +163,10 @@ def render(rows, jobs, info, load_end, profile_lines=None, revised=None):
     ]
     if profile_lines:
         lines += [f"cProfile of the check at depth {last['depth']} in one process (top "
-                  f"{PROFILE_LINES} by own time; `mul`, `_settle`, `_add_down`, `_add_up` "
-                  f"are the float interval kernels, `fractions.py` the exact rationals, "
-                  f"`evaluate` the program loop):", "", "```", *profile_lines, "```", ""]
+                  f"{PROFILE_LINES} by own time; `_sum`, `_step`, `mul`, `reduce` (its "
+                  f"min and max) are the float interval kernels, `fractions.py` the exact "
+                  f"rationals of the cells, images and time sums, `_at_most` the claims' "
+                  f"time comparisons):", "", "```", *profile_lines, "```", ""]
     if revised:
         held = revised["claims"]["held"] if revised["claims"] else {}
         failed = revised["claims"]["failed"] if revised["claims"] else {}

@@ -128,6 +128,10 @@ def float_down(q):
     float (or ``-inf``).
     """
     if type(q) is not Fraction:
+        if isinstance(q, arb):
+            v = float(q)
+            if arb(v) == q:     # arb's == holds only for equal exact numbers
+                return v
         q = _exact_fraction(q)
         if q is None:
             return np.nan
@@ -145,10 +149,10 @@ def float_down(q):
 
 def float_up(q):
     """The smallest float not below an exact number (see :func:`float_down`)."""
+    if isinstance(q, arb):
+        return -float_down(-q)
     if type(q) is not Fraction:
         q = _exact_fraction(q)
-        if q is None:
-            return np.nan
     return -float_down(-q)
 
 

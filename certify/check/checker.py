@@ -41,6 +41,9 @@ __all__ = ["CheckResult", "check_certificate"]
 
 #: Steps per chunk of work (cells are grouped by their number of steps).
 CHUNK_STEPS = 8000
+#: The float pass takes larger chunks (:func:`_float_chunk`), up to this many steps (the
+#: memory of a chunk grows with it: tens of arrays over its cells per program).
+FLOAT_CHUNK_STEPS = 250_000
 #: Time unit of the exact step-time sums: every double is a multiple of 2**-1074.
 TIME_SCALE = 1074
 
@@ -205,12 +208,13 @@ def _work(job):
 
 
 def _float_chunk(n_steps, jobs):
-    """Steps per chunk of the float pass: one chunk per worker.
+    """Steps per chunk of the float pass: one chunk per worker, at most FLOAT_CHUNK_STEPS.
 
     Its cost is mostly a fixed cost per numpy call, paid once per step of the chunk's
     longest cell whatever the number of cells; one chunk per worker keeps the number of
     such rounds smallest (cells are grouped by their number of steps)."""
-    return max(CHUNK_STEPS, int(np.maximum(n_steps, 1).sum()) // jobs + 1)
+    share = int(np.maximum(n_steps, 1).sum()) // jobs + 1
+    return min(max(CHUNK_STEPS, share), FLOAT_CHUNK_STEPS)
 
 
 def _tasks(cert, cells, n_steps, chunk=CHUNK_STEPS):

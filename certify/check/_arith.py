@@ -331,7 +331,38 @@ class BallArith:
         return [[C[i][j] + spread for j in range(n)] for i in range(n)]
 
 
-class EndpointArith:
+class PairStorage:
+    """Rows, ends and cuts of intervals stored as pairs ``(lo, hi)`` of arrays (0-d or
+    scalar ends for constants): shared by EndpointArith and the float pass."""
+
+    def take(self, a, index):
+        """Rows `index` of an interval array (scalars pass through)."""
+        lo, hi = a
+        return lo[index] if np.ndim(lo) else lo, hi[index] if np.ndim(hi) else hi
+
+    def put(self, a, index, b):
+        """A copy of `a` with rows `index` replaced by `b` (scalars stay scalars)."""
+        if not np.ndim(a[0]):
+            return a
+        lo, hi = a[0].copy(), a[1].copy()
+        lo[index], hi[index] = b
+        return lo, hi
+
+    def lower(self, a):
+        return a[0]
+
+    def upper(self, a):
+        return a[1]
+
+    def split_at(self, box, point):
+        """The ``2^n`` boxes into which an exact point of each box cuts it (at the point
+        where the prover cut its own, so each piece lies in one of the prover's)."""
+        return [[(p[0], b[1]) if bit else (b[0], p[1])
+                 for bit, b, p in zip(bits, box, point)]
+                for bits in itertools.product((0, 1), repeat=len(box))]
+
+
+class EndpointArith(PairStorage):
     """Intervals as pairs of exact 53-bit arb endpoints (see the module notes)."""
 
     name = "endpoint"
@@ -386,24 +417,7 @@ class EndpointArith:
             self._constants[spec] = self._enclose(_constant_ball(spec))
         return self._constants[spec]
 
-    def take(self, a, index):
-        lo, hi = a
-        return lo[index] if np.ndim(lo) else lo, hi[index] if np.ndim(hi) else hi
-
-    def put(self, a, index, b):
-        if not np.ndim(a[0]):
-            return a
-        lo, hi = a[0].copy(), a[1].copy()
-        lo[index], hi[index] = b
-        return lo, hi
-
     # -- bounds and predicates -----------------------------------------------------------
-    def lower(self, a):
-        return a[0]
-
-    def upper(self, a):
-        return a[1]
-
     def finite(self, a):
         return _bool(_finite(a[0])) & _bool(_finite(a[1]))
 
@@ -520,13 +534,6 @@ class EndpointArith:
         """The box itself: the exact path follows the prover's evaluation."""
         return [box]
 
-    def split_at(self, box, point):
-        """The ``2^n`` boxes into which an exact point of each box cuts it (the cuts the
-        prover made, so each piece lies in the prover's piece)."""
-        return [[(p[0], b[1]) if bit else (b[0], p[1])
-                 for bit, b, p in zip(bits, box, point)]
-                for bits in itertools.product((0, 1), repeat=len(box))]
-
     def hull(self, a, b):
         return (_keep_nan(np.minimum(a[0], b[0]), a[0], b[0]),
                 _keep_nan(np.maximum(a[1], b[1]), a[0], b[0]))
@@ -620,10 +627,16 @@ def _inner(ar, row, col):
     return acc
 
 
+def _float_arith(pieces=Pieces()):
+    from ._floats import FloatArith     # it builds on EndpointArith, defined here
+    return FloatArith(pieces)
+
+
 #: The checker's passes, in order: a cell whose claims do not verify in one pass is
-#: recomputed in the next. Measured on the demo map at depth 8: the first pass leaves
-#: about 5 % of the cells, the second about 1 in 1000 (benchmarks/results.md, "Checker").
+#: recomputed in the next (benchmarks/results.md, "Checker", has the rates).
 ARITHMETICS = {
+    "float": _float_arith,
+    "float-pieces": lambda: _float_arith(Pieces(tube=4, jacobians=(2, 1), remainder=1)),
     "ball": lambda: BallArith(Pieces(tube=4, jacobians=(2, 1), remainder=1)),
     "fine": lambda: BallArith(Pieces(tube=4, jacobians=(4, 2), remainder=4)),
     "endpoint": EndpointArith,

@@ -428,20 +428,29 @@ def _true(a):
 
 
 def _to_fraction(x):
-    """Exact value of a finite exact arb number."""
+    """Exact value of a finite float or exact arb number."""
+    if isinstance(x, float):
+        return Fraction(x)
     m, e = x.man_exp()
     m, e = int(m), int(e)
     return Fraction(m << e) if e >= 0 else Fraction(m, 1 << -e)
 
 
 def cell_facts(context, task, arithmetic):
+    """:func:`_chunk_facts` with float64 exceptions silenced (overflow and ``inf - inf``
+    give infinities and NaN, which the float pass handles)."""
+    with np.errstate(all="ignore"):
+        return _chunk_facts(context, task, arithmetic)
+
+
+def _chunk_facts(context, task, arithmetic):
     """Recompute the facts of a chunk of cells.
 
     Parameters
     ----------
     context : CheckContext
     task : CellTask
-    arithmetic : {"ball", "fine", "endpoint"}
+    arithmetic : {"float", "ball", "fine", "endpoint"}
         A key of :data:`certify.check._arith.ARITHMETICS`.
 
     Returns

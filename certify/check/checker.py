@@ -8,10 +8,11 @@ cell's claims locally against its own facts and its successors' claims
 (docs/design.md, section 5). When every local check holds, every claim holds by induction
 over ranks (doomed) and horizons (safe, survival bounds).
 
-Arithmetic: each cell is first recomputed with arb balls, vectorized over chunks of
-cells and evaluating wide boxes in pieces; a cell whose claims do not verify that way is
-recomputed with finer pieces, then with exact-endpoint arithmetic
-(:mod:`certify.check._arith`), before it is declared invalid.
+Arithmetic: each cell is first recomputed with outward-rounded float64 intervals
+(:mod:`certify.check._floats`), vectorized over chunks of cells; a cell whose claims do
+not verify that way is recomputed with arb balls evaluating wide boxes in pieces, then
+with finer pieces, then with exact-endpoint arithmetic (:mod:`certify.check._arith`),
+before it is declared invalid.
 """
 
 from __future__ import annotations
@@ -40,6 +41,9 @@ __all__ = ["CheckResult", "check_certificate"]
 
 #: Steps per chunk of work (cells are grouped by their number of steps).
 CHUNK_STEPS = 8000
+#: The float pass takes larger chunks (:func:`_float_chunk`), up to this many steps (the
+#: memory of a chunk grows with it: tens of arrays over its cells per program).
+FLOAT_CHUNK_STEPS = 250_000
 #: Time unit of the exact step-time sums: every double is a multiple of 2**-1074.
 TIME_SCALE = 1074
 
@@ -60,11 +64,14 @@ class CheckResult:
         problems of the whole certificate have ``cell``, ``address`` and ``label`` None.
     seconds : float
     refined_cells : int
-        Cells whose claims did not verify in the first pass (arb balls) and were
+        Cells whose claims did not verify with floats nor with arb balls and were
         recomputed with finer pieces.
     fallback_cells : int
         Cells whose claims did not verify with arb balls at all and were recomputed with
         exact-endpoint arithmetic.
+    ball_cells : int
+        Cells whose claims did not verify in the first pass (float intervals) and were
+        recomputed with arb balls.
     model : str or None
         The revised model file for a regression check (``model=``), else None.
     claims : dict or None
@@ -91,6 +98,7 @@ class CheckResult:
     claims: dict | None = field(default=None)
     parameters_narrowed: list = field(default_factory=list)
     claim: object = None
+    ball_cells: int = 0
 
 
 # -- tiling ------------------------------------------------------------------------------
@@ -199,14 +207,24 @@ def _work(job):
     return number, cell_facts(_WORKER["context"], task, arithmetic)
 
 
-def _tasks(cert, cells, n_steps):
-    """Chunks of cells with similar step counts."""
+def _float_chunk(n_steps, jobs):
+    """Steps per chunk of the float pass: one chunk per worker, at most FLOAT_CHUNK_STEPS.
+
+    Its cost is mostly a fixed cost per numpy call, paid once per step of the chunk's
+    longest cell whatever the number of cells; one chunk per worker keeps the number of
+    such rounds smallest (cells are grouped by their number of steps)."""
+    share = int(np.maximum(n_steps, 1).sum()) // jobs + 1
+    return min(max(CHUNK_STEPS, share), FLOAT_CHUNK_STEPS)
+
+
+def _tasks(cert, cells, n_steps, chunk=CHUNK_STEPS):
+    """Chunks of cells with similar step counts, of about `chunk` steps each."""
     order = cells[np.argsort(-n_steps[cells], kind="stable")]
     tasks, current, steps = [], [], 0
     for c in order:
         current.append(c)
         steps += max(int(n_steps[c]), 1)
-        if steps >= CHUNK_STEPS:
+        if steps >= chunk:
             tasks.append(np.array(current))
             current, steps = [], 0
     if current:
@@ -583,8 +601,9 @@ def check_certificate(path, model=None, jobs=None, progress=None):
     if progress is not None and hasattr(progress, "total"):
         progress.total(cert.L)
     facts = _Facts(cert.L, cert.n)
-    tasks = _tasks(cert, np.arange(cert.L), n_steps)
-    for number, result in _compute(context, tasks, "ball", jobs, progress).items():
+    tasks = _tasks(cert, np.arange(cert.L), n_steps, _float_chunk(n_steps, jobs))
+    first = "float" if revised is None else "float-pieces"
+    for number, result in _compute(context, tasks, first, jobs, progress).items():
         facts.store(tasks[number].cells, result)
     judge, local = _judge_all(cert, facts, tree, np.arange(cert.L), unproven)
     recomputed = {}
@@ -625,18 +644,19 @@ def check_certificate(path, model=None, jobs=None, progress=None):
 def _later_passes(cert, revised):
     """The passes after the first for cells whose claims did not verify in it.
 
-    They recompute with finer pieces and then in the prover's order of operations, so
-    that what the prover proved for its model verifies. A regression check against a
-    different model (text or parameter boxes) reproduces nothing the prover did: there
-    a claim the first pass does not re-verify is reported as not re-verified, which
-    keeps the check cheaper than a new proof (docs/auditing.md).
+    They recompute with arb balls (wide boxes in pieces), with finer pieces and then in
+    the prover's order of operations, so that what the prover proved for its model
+    verifies. A regression check against a different model (text or parameter boxes)
+    reproduces nothing the prover did: there the first pass evaluates wide boxes in the
+    ball pass's pieces and a claim it does not re-verify is reported as not
+    re-verified, which keeps the check cheaper than a new proof (docs/auditing.md).
     """
     if revised is None:
-        return ("fine", "endpoint")
+        return ("ball", "fine", "endpoint")
     same = cert.sha_ok and revised.sha256 == hashlib.sha256(
         cert.model.text.encode("utf-8")).hexdigest() and cert.params == {
         p.name: (p.lo, p.hi) for p in revised.parameters}
-    return ("fine", "endpoint") if same else ()
+    return ("ball", "fine", "endpoint") if same else ()
 
 
 def _with_parameters(cert):
@@ -731,5 +751,6 @@ def _verdict(cert, failures, start, checked, recomputed, revised=None, model=Non
                        seconds=time.monotonic() - start,
                        refined_cells=recomputed.get("fine", 0),
                        fallback_cells=recomputed.get("endpoint", 0),
+                       ball_cells=recomputed.get("ball", 0),
                        model=str(model) if model is not None else None, claims=claims,
                        parameters_narrowed=list(narrowed), claim=claim)

@@ -572,9 +572,25 @@ class EndpointArith(PairStorage):
                 for i in range(n)]
 
 
+def float_inverse(A):
+    """Float inverses of a stack of matrices (NaN where one is singular or not finite);
+    any approximation serves as ``C`` in the inverse enclosures."""
+    with np.errstate(all="ignore"):
+        try:
+            return np.linalg.inv(A)
+        except np.linalg.LinAlgError:
+            out = np.full(A.shape, np.nan)
+            for k, a in enumerate(A):
+                try:
+                    out[k] = np.linalg.inv(a)
+                except np.linalg.LinAlgError:
+                    pass
+            return out
+
+
 def _approximate_inverse(ar, A):
-    """Float inverses of a stack of invertible matrices, as exact ``n x n`` entries."""
-    C = np.linalg.inv(A)
+    """Float inverses of a stack of matrices, as exact ``n x n`` entries."""
+    C = float_inverse(A)
     n = A.shape[-1]
     return [[ar.exact(C[:, i, j]) for j in range(n)] for i in range(n)]
 

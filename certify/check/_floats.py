@@ -51,7 +51,7 @@ from functools import reduce
 import numpy as np
 from flint import arb
 
-from ._arith import EndpointArith, PairStorage, Pieces
+from ._arith import EndpointArith, PairStorage, Pieces, float_inverse
 
 __all__ = ["FloatArith", "float_down", "float_up"]
 
@@ -384,9 +384,9 @@ class FloatArith(PairStorage):
         return _nan_where(~good, lo, hi)
 
     def inverse(self, A):
-        """Enclosure of ``A^-1`` for float matrices close to orthogonal.
+        """Enclosure of ``A^-1`` for invertible float matrices.
 
-        ``C = A^T``; with ``delta = ||I - C A||_inf < 1``,
+        ``C`` the float inverse of ``A``; with ``delta = ||I - C A||_inf < 1``,
         ``|A^-1 - C| <= delta / (1 - delta) ||C||_inf`` entrywise (docs/method.md,
         ``interval_inverse``). Norms are folded left, rounded up.
 
@@ -399,7 +399,7 @@ class FloatArith(PairStorage):
         list of list of intervals, n x n
         """
         n = A.shape[-1]
-        C = np.swapaxes(A, 1, 2)
+        C = float_inverse(A)
         # C A for all entries at once, the inner index folded left
         P = None
         for l in range(n):

@@ -103,7 +103,7 @@ class Proof:
         Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``open``) and its
         cover.
     steps : certify.steps.StepStore
-        The starting sets and step records of the leaves' flows (what the certificate
+        The step records of the leaves' flows (``h`` and ``E``, what the certificate
         stores).
     rounds : int
     seconds : float

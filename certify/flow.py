@@ -489,13 +489,18 @@ def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0
         joined = np.concatenate(parts[j])
         parts[j] = None
         cols.append(joined[order])
-    step_start = np.concatenate([[0], np.cumsum(n_steps)[:-1]]).astype(int)
+    step_start = _step_starts(n_steps)
     (_, h, t0lo, t0hi, xlo, xhi, elo, ehi, m, A, rlo, rhi, endlo, endhi) = cols
     return FlowResult(status=status, n_steps=n_steps, step_start=step_start, t_lo=t_lo,
                       t_hi=t_hi, image_lo=image_lo, image_hi=image_hi, set0_m=m0,
                       set0_r_lo=r0lo, set0_r_hi=r0hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
                       x_lo=xlo, x_hi=xhi, e_lo=elo, e_hi=ehi, m=m, A=A, r_lo=rlo,
                       r_hi=rhi, end_lo=endlo, end_hi=endhi)
+
+
+def _step_starts(n_steps):
+    """Where each box's step records begin in the flat step arrays."""
+    return np.concatenate([[0], np.cumsum(n_steps)[:-1]]).astype(int)
 
 
 #: The fields of :class:`FlowResult` with one row per step (the others have one per box).
@@ -521,5 +526,5 @@ def join_results(parts):
     """
     joined = {name: np.concatenate([getattr(p, name) for p in parts])
               for name in _STEP_FIELDS + _BOX_FIELDS}
-    joined["step_start"] = np.concatenate([[0], np.cumsum(joined["n_steps"])[:-1]]).astype(int)
+    joined["step_start"] = _step_starts(joined["n_steps"])
     return FlowResult(**joined)

@@ -235,7 +235,7 @@ def certificate_data(proof, summary):
             "step_start": encode_array(start, "<i8"),
             # one gathered array at a time: each is freed once encoded (version 3 stores
             # no frames m, A: the checker chooses its own, docs/certificate-format.md)
-            **{f"step_{key}": encode_array(proof.steps.gather(leaves, key))
+            **{f"step_{key}": encode_array(proof.steps.gather(leaves, key, start))
                for key in STEP_KEYS},
             **trapping_cells(facts),
         },

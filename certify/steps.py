@@ -139,10 +139,13 @@ class StepStore:
             counts[sel] = batch.n_steps[ref[sel, 1]]
         return np.concatenate([[0], np.cumsum(counts)])
 
-    def gather(self, nodes, key):
-        """One per-step array (``h`` or ``E``) of `nodes`, node after node."""
+    def gather(self, nodes, key, start=None):
+        """One per-step array (``h`` or ``E``) of `nodes`, node after node.
+
+        `start` is ``offsets(nodes)`` when the caller has it already.
+        """
         ref = self._ref(nodes)
-        start = self.offsets(nodes)
+        start = self.offsets(nodes) if start is None else start
         shape = {"h": (), "E": (self.n, 2)}[key]
         out = np.zeros((int(start[-1]),) + shape)
         for b, batch in enumerate(self.batches):

@@ -449,7 +449,8 @@ class _Prover:
         saved = {k: getattr(self, k)[nodes].copy() for k in _TUBE_FACTS}
         refs = self.steps.refs(nodes)
         self._analyse(nodes, follow=growth_limit)
-        leaves, _, labelling = self.label()
+        leaves, facts, labelling = self.label()
+        del facts  # its edges are made again below: not held through the second labelling
         number = np.full(len(self.tree), -1)
         number[leaves] = np.arange(len(leaves))
         back = labelling.label[number[nodes]] == UNDECIDED
@@ -472,6 +473,7 @@ class _Prover:
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
         src = query_nodes[q]
         dst = number[leaf]
+        del q, leaf  # edges can be many: not held through the labelling
         trapped, whole = trapped_cells(
             self.regions.regions, self.tree.lo[leaves], self.tree.hi[leaves],
             self.image_lo[leaves], self.image_hi[leaves],

@@ -133,8 +133,8 @@ class FlowResult:
         Box at the start of each step (the point-time enclosure at ``t0``).
     e_lo, e_hi : ndarray, shape (S, n)
         A-priori box of each step (the tube over the step).
-    m, A, r_lo, r_hi : ndarray, shapes (S, n), (S, n, n), (S, n), (S, n)
-        Set at the end of each step.
+    m, A, r_lo, r_hi : ndarray, shapes (S, n), (S, n, n), (S, n), (S, n), or None
+        Set at the end of each step (None when flowed with ``frames=False``).
     end_lo, end_hi : ndarray, shape (S, n)
         Box at the end of each step.
     """
@@ -358,7 +358,8 @@ class DeadlinePassed(Exception):
 
 
 def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
-               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None):
+               max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None,
+               frames=True):
     """Enclose the flow of every box of a batch up to a horizon per box.
 
     Parameters
@@ -386,6 +387,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         `min_horizon`; ``ids`` are batch indices, ``t_lo, t_hi`` enclose the step end time.
     deadline : float, optional
         A time of :func:`time.monotonic`; checked before every step.
+    frames : bool
+        Keep each step's set ``m + A [r]``; without, those fields of the result are None
+        (the boxes alone take about half the memory).
 
     Returns
     -------
@@ -442,9 +446,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         good = ~bad
         t0lo, t0hi = t_lo[ids], t_hi[ids]
         t1lo, t1hi = iv.add(t0lo, t0hi, h, h)
+        sets = (new_m[good], new_A[good], nrlo[good], nrhi[good]) if frames else (None,) * 4
         records.append((ids[good], h[good], t0lo[good], t0hi[good], xlo[good], xhi[good],
-                        elo[good], ehi[good], new_m[good], new_A[good], nrlo[good],
-                        nrhi[good], endlo[good], endhi[good]))
+                        elo[good], ehi[good], *sets, endlo[good], endhi[good]))
         t_lo[ids[good]], t_hi[ids[good]] = t1lo[good], t1hi[good]
         n_steps[ids[good]] += 1
         done = bad.copy()
@@ -486,9 +490,9 @@ def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0
     for j in range(len(parts)):
         # one column at a time, its parts freed as soon as it is joined: the peak is
         # the records and one column, not twice all of them
-        joined = np.concatenate(parts[j])
+        joined = None if parts[j][0] is None else np.concatenate(parts[j])
         parts[j] = None
-        cols.append(joined[order])
+        cols.append(None if joined is None else joined[order])
     step_start = _step_starts(n_steps)
     (_, h, t0lo, t0hi, xlo, xhi, elo, ehi, m, A, rlo, rhi, endlo, endhi) = cols
     return FlowResult(status=status, n_steps=n_steps, step_start=step_start, t_lo=t_lo,
@@ -524,7 +528,8 @@ def join_results(parts):
         The same records as :func:`flow_boxes` of the whole batch gives: every box's flow
         depends on that box alone.
     """
-    joined = {name: np.concatenate([getattr(p, name) for p in parts])
+    joined = {name: None if getattr(parts[0], name) is None
+              else np.concatenate([getattr(p, name) for p in parts])
               for name in _STEP_FIELDS + _BOX_FIELDS}
     joined["step_start"] = _step_starts(joined["n_steps"])
     return FlowResult(**joined)

@@ -195,7 +195,8 @@ class _Tubes:
         return flow_boxes(self.programs, cell_lo, cell_hi, self.params,
                           min_horizon=0.0, max_horizon=m.max_horizon,
                           step=m.step, max_step=m.max_step, min_step=m.min_step,
-                          max_steps=m.max_steps, should_stop=should_stop, deadline=deadline)
+                          max_steps=m.max_steps, should_stop=should_stop, deadline=deadline,
+                          frames=False)
 
     def stops(self, cell_lo, cell_hi, end_lo, end_hi, t_lo):
         """Where a tube from each cell, with the box `end` at time `t_lo`, stops, and why.

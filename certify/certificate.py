@@ -17,6 +17,7 @@ from .container import (FORMAT, LABELS, VERSION, decode_array, encode_array, fra
                         load_certificate_json, write_certificate)
 from .errors import CertificateError
 from .graph import transition_graph
+from .steps import STEP_KEYS
 from .trapping import regions_data, trapping_cells
 
 __all__ = ["FORMAT", "VERSION", "LABELS", "encode_array", "decode_array", "write_certificate",
@@ -212,11 +213,6 @@ def _rebuild_tree(tree, depth, index):
     return node_to_leaf
 
 
-#: The step records a certificate stores (version 3): the frames ``m``, ``A`` of the
-#: steps are not stored, the checker chooses its own (docs/certificate-format.md).
-STORED_STEP_KEYS = ("h", "E")
-
-
 def certificate_data(proof, summary):
     """Build the certificate dictionary of a proof (see docs/certificate-format.md).
 
@@ -235,7 +231,7 @@ def certificate_data(proof, summary):
     model = proof.model
     lab, facts = proof.labelling, proof.facts
     leaves = proof.leaves
-    _, _, start = proof.steps.starts(leaves)
+    start = proof.steps.offsets(leaves)
     succ_order = np.argsort(facts.src, kind="stable")
     src, dst = facts.src[succ_order], facts.dst[succ_order]
     succ_start = np.searchsorted(src, np.arange(len(leaves) + 1))
@@ -266,9 +262,10 @@ def certificate_data(proof, summary):
             "successor_start": encode_array(succ_start, "<i8"),
             "successors": encode_array(dst, "<i8"),
             "step_start": encode_array(start, "<i8"),
-            # one gathered array at a time: each is freed once encoded
-            **{f"step_{key}": encode_array(proof.steps.gather(leaves, key))
-               for key in STORED_STEP_KEYS},
+            # one gathered array at a time: each is freed once encoded (version 3 stores
+            # no frames m, A: the checker chooses its own, docs/certificate-format.md)
+            **{f"step_{key}": encode_array(proof.steps.gather(leaves, key, start))
+               for key in STEP_KEYS},
             **trapping_cells(facts),
         },
         "regions": regions_data(proof.trapping),

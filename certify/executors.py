@@ -17,7 +17,7 @@ import uuid
 from certify.errors import UsageError
 
 __all__ = ["EXECUTORS", "DeadlineReached", "Runner", "check_executor", "dask_client",
-           "local_pool", "open_runner"]
+           "default_workers", "local_pool", "open_runner"]
 
 #: Where the work can run.
 EXECUTORS = ("local", "dask")
@@ -51,6 +51,11 @@ def check_executor(executor, scheduler, workers):
                              "a running Dask scheduler brings its own workers")
 
 
+def default_workers(workers=None):
+    """`workers`, or by default one process per core of this machine."""
+    return workers or os.cpu_count() or 1
+
+
 def _start_method():
     methods = multiprocessing.get_all_start_methods()
     return "forkserver" if "forkserver" in methods else "spawn"
@@ -66,8 +71,7 @@ def local_pool(workers):
     """
     from concurrent.futures import ProcessPoolExecutor
 
-    n = workers or os.cpu_count() or 1
-    return ProcessPoolExecutor(max_workers=n,
+    return ProcessPoolExecutor(max_workers=default_workers(workers),
                                mp_context=multiprocessing.get_context(_start_method()))
 
 
@@ -96,7 +100,7 @@ def dask_client(scheduler, workers):
     with contextlib.ExitStack() as stack:
         if scheduler is None:
             cluster = stack.enter_context(LocalCluster(
-                n_workers=workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
+                n_workers=default_workers(workers), threads_per_worker=1, processes=True,
                 host="127.0.0.1", dashboard_address=None))
             address = cluster.scheduler_address
         else:
@@ -146,12 +150,7 @@ class Runner:
         """
         if not self.parallel:
             return [function(*args) for args in tasks]
-        if self.pool is not None:
-            futures = [self.pool.submit(function, *args) for args in tasks]
-        else:
-            token = uuid.uuid4().hex[:12]
-            futures = [self.client.submit(function, *args, key=f"certify-{token}-{k}", pure=False)
-                       for k, args in enumerate(tasks)]
+        futures = list(self._submit(function, dict(enumerate(tasks))))
         results = []
         try:
             for future in futures:
@@ -163,9 +162,7 @@ class Runner:
             return results
         finally:
             if len(results) < len(futures):
-                for future in futures:
-                    future.cancel()
-
+                self._cancel(futures)
 
     def results(self, function, tasks):
         """Yield ``(key, function(*args))`` for ``tasks = {key: args}`` as they finish.
@@ -178,29 +175,43 @@ class Runner:
             return
         if self.pool is not None:
             from concurrent.futures import as_completed
-
-            futures = {self.pool.submit(function, *args): key for key, args in tasks.items()}
-            cancel = lambda: [future.cancel() for future in futures]  # noqa: E731
         else:
             from distributed import as_completed
-
-            token = uuid.uuid4().hex[:12]
-            futures = {self.client.submit(function, *args, key=f"certify-{key}-{token}",
-                                          pure=False): key for key, args in tasks.items()}
-            cancel = lambda: self.client.cancel(list(futures))  # noqa: E731
+        futures = self._submit(function, tasks)
         try:
             for future in as_completed(futures):
                 yield futures[future], future.result()
         finally:
-            cancel()
+            self._cancel(futures)
+
+    def _submit(self, function, tasks):
+        """Submit ``function(*args)`` for ``tasks = {key: args}``; ``{future: key}`` in
+        the order of `tasks`."""
+        if self.pool is not None:
+            return {self.pool.submit(function, *args): key for key, args in tasks.items()}
+        token = uuid.uuid4().hex[:12]
+        return {self.client.submit(function, *args, key=f"certify-{token}-{key}",
+                                   pure=False): key for key, args in tasks.items()}
+
+    def _cancel(self, futures):
+        """Cancel the calls of `futures` not yet finished."""
+        if self.pool is not None:
+            for future in futures:
+                future.cancel()
+        else:
+            self.client.cancel(list(futures))
+
 
 @contextlib.contextmanager
-def open_runner(executor="local", scheduler=None, workers=None, *, pooled=False):
+def open_runner(executor="local", scheduler=None, workers=None, *, pooled=False,
+                at_most=None):
     """A :class:`Runner` for the options of ``--executor``, ``--scheduler``, ``--workers``.
 
     ``local`` without `workers` runs in this process (with ``pooled``, a process pool of
-    all cores); ``local`` with `workers` opens a process pool of that many processes; ``dask`` opens :func:`dask_client`. Pools and
-    clusters opened here are closed on exit.
+    all cores); ``local`` with `workers` opens a process pool of that many processes;
+    ``dask`` opens :func:`dask_client`. Pools and clusters opened here are closed on
+    exit, and hold at most `at_most` processes when that is given (e.g. the number of
+    tasks; a running scheduler keeps its own workers).
 
     Raises
     ------
@@ -208,13 +219,15 @@ def open_runner(executor="local", scheduler=None, workers=None, *, pooled=False)
         For a bad combination (:func:`check_executor`) or an unreachable scheduler.
     """
     check_executor(executor, scheduler, workers)
+    if at_most is not None and scheduler is None:
+        workers = min(default_workers(workers), at_most)
     if executor == "dask":
         with dask_client(scheduler, workers) as client:
             threads = sum(w.get("nthreads", 1)
                           for w in client.scheduler_info()["workers"].values())
             yield Runner(client=client, n_workers=max(threads, 1))
     elif workers is not None or pooled:
-        n = workers or os.cpu_count() or 1
+        n = default_workers(workers)
         pool = local_pool(n)
         try:
             yield Runner(pool=pool, n_workers=n)

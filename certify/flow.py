@@ -142,8 +142,8 @@ class FlowResult:
         Box at the start of each step (the point-time enclosure at ``t0``).
     e_lo, e_hi : ndarray, shape (S, n)
         A-priori box of each step (the tube over the step).
-    m, A, r_lo, r_hi : ndarray, shapes (S, n), (S, n, n), (S, n), (S, n)
-        Set at the end of each step.
+    m, A, r_lo, r_hi : ndarray, shapes (S, n), (S, n, n), (S, n), (S, n), or None
+        Set at the end of each step (None when flowed with ``keep_sets=False``).
     end_lo, end_hi : ndarray, shape (S, n)
         Box at the end of each step.
     """
@@ -413,7 +413,7 @@ class DeadlinePassed(Exception):
 
 def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
                max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None,
-               frames="qr+parallelepiped"):
+               frames="qr+parallelepiped", keep_sets=True):
     """Enclose the flow of every box of a batch up to a horizon per box.
 
     Parameters
@@ -444,6 +444,9 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     frames : str
         The frame rule: one set in QR frames (``"qr"``) or two sets, one in QR and one in
         parallelepiped frames, whose boxes are intersected (``"qr+parallelepiped"``).
+    keep_sets : bool
+        Keep each step's (QR) set ``m + A [r]``; without, those fields of the result are
+        None (the boxes alone take about half the memory).
 
     Returns
     -------
@@ -502,9 +505,10 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         good = ~bad
         t0lo, t0hi = t_lo[ids], t_hi[ids]
         t1lo, t1hi = iv.add(t0lo, t0hi, h, h)
+        recorded = ((new_m[good], new_A[good], nrlo[good], nrhi[good]) if keep_sets
+                    else (None,) * 4)
         records.append((ids[good], h[good], t0lo[good], t0hi[good], xlo[good], xhi[good],
-                        elo[good], ehi[good], new_m[good], new_A[good], nrlo[good],
-                        nrhi[good], endlo[good], endhi[good]))
+                        elo[good], ehi[good], *recorded, endlo[good], endhi[good]))
         t_lo[ids[good]], t_hi[ids[good]] = t1lo[good], t1hi[good]
         n_steps[ids[good]] += 1
         done = bad.copy()
@@ -547,16 +551,21 @@ def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0
     for j in range(len(parts)):
         # one column at a time, its parts freed as soon as it is joined: the peak is
         # the records and one column, not twice all of them
-        joined = np.concatenate(parts[j])
+        joined = None if parts[j][0] is None else np.concatenate(parts[j])
         parts[j] = None
-        cols.append(joined[order])
-    step_start = np.concatenate([[0], np.cumsum(n_steps)[:-1]]).astype(int)
+        cols.append(None if joined is None else joined[order])
+    step_start = _step_starts(n_steps)
     (_, h, t0lo, t0hi, xlo, xhi, elo, ehi, m, A, rlo, rhi, endlo, endhi) = cols
     return FlowResult(status=status, n_steps=n_steps, step_start=step_start, t_lo=t_lo,
                       t_hi=t_hi, image_lo=image_lo, image_hi=image_hi, set0_m=m0,
                       set0_r_lo=r0lo, set0_r_hi=r0hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
                       x_lo=xlo, x_hi=xhi, e_lo=elo, e_hi=ehi, m=m, A=A, r_lo=rlo,
                       r_hi=rhi, end_lo=endlo, end_hi=endhi)
+
+
+def _step_starts(n_steps):
+    """Where each box's step records begin in the flat step arrays."""
+    return np.concatenate([[0], np.cumsum(n_steps)[:-1]]).astype(int)
 
 
 #: The fields of :class:`FlowResult` with one row per step (the others have one per box).
@@ -580,7 +589,8 @@ def join_results(parts):
         The same records as :func:`flow_boxes` of the whole batch gives: every box's flow
         depends on that box alone.
     """
-    joined = {name: np.concatenate([getattr(p, name) for p in parts])
+    joined = {name: None if getattr(parts[0], name) is None
+              else np.concatenate([getattr(p, name) for p in parts])
               for name in _STEP_FIELDS + _BOX_FIELDS}
-    joined["step_start"] = np.concatenate([[0], np.cumsum(joined["n_steps"])[:-1]]).astype(int)
+    joined["step_start"] = _step_starts(joined["n_steps"])
     return FlowResult(**joined)

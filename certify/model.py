@@ -284,6 +284,12 @@ def read_file_start(path, n_bytes):
         raise ModelError(f"{label}: cannot read the file ({exc.strerror or exc})") from None
 
 
+def looks_like_xml(start):
+    """Whether the first bytes of a file are XML: ``<`` after an optional UTF-8 byte
+    order mark and blanks."""
+    return start.removeprefix(b"\xef\xbb\xbf").lstrip().startswith(b"<")
+
+
 def load_model(path):
     """Read and validate a model file.
 
@@ -310,7 +316,7 @@ def load_model(path):
     if data[:2] == b"\x1f\x8b":
         raise ModelError(f"{label}: a gzip-compressed file (a certificate?), not a model "
                          "file; expected TOML text (see docs/model-format.md)")
-    if data.removeprefix(b"\xef\xbb\xbf").lstrip().startswith(b"<"):
+    if looks_like_xml(data):
         raise ModelError(f"{label}: XML, not a certify model file (TOML); for SBML, run "
                          f"'certify import {label}' or 'certify prove {label} --limit ...' "
                          "(see docs/sbml.md)")

@@ -105,7 +105,7 @@ class Proof:
         Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``open``) and its
         cover.
     steps : certify.steps.StepStore
-        The starting sets and step records of the leaves' flows (what the certificate
+        The step records of the leaves' flows (``h`` and ``E``, what the certificate
         stores).
     rounds : int
     seconds : float
@@ -198,7 +198,7 @@ class _Tubes:
                           min_horizon=0.0, max_horizon=m.max_horizon,
                           step=m.step, max_step=m.max_step, min_step=m.min_step,
                           max_steps=m.max_steps, should_stop=should_stop, deadline=deadline,
-                          frames=m.frames)
+                          frames=m.frames, keep_sets=False)
 
     def stops(self, cell_lo, cell_hi, end_lo, end_hi, t_lo):
         """Where a tube from each cell, with the box `end` at time `t_lo`, stops, and why.
@@ -452,7 +452,8 @@ class _Prover:
         saved = {k: getattr(self, k)[nodes].copy() for k in _TUBE_FACTS}
         refs = self.steps.refs(nodes)
         self._analyse(nodes, follow=growth_limit)
-        leaves, _, labelling = self.label()
+        leaves, facts, labelling = self.label()
+        del facts  # its edges are made again below: not held through the second labelling
         number = np.full(len(self.tree), -1)
         number[leaves] = np.arange(len(leaves))
         back = labelling.label[number[nodes]] == UNDECIDED
@@ -475,6 +476,7 @@ class _Prover:
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
         src = query_nodes[q]
         dst = number[leaf]
+        del q, leaf  # edges can be many: not held through the labelling
         trapped, whole = trapped_cells(
             self.regions.regions, self.tree.lo[leaves], self.tree.hi[leaves],
             self.image_lo[leaves], self.image_hi[leaves],

@@ -22,7 +22,7 @@ import libsbml
 from certify.conservation import conserved_caps
 from certify.errors import ModelError, UsageError
 from certify.expr import RESERVED_NAMES, format_number, is_number_in_range
-from certify.model import TEXT_LENGTHS, parse_model, read_file_start
+from certify.model import TEXT_LENGTHS, looks_like_xml, parse_model, read_file_start
 from certify.sbml_math import MathContext, exact_number, math_text, names_in
 
 __all__ = ["MAX_SBML_BYTES", "Imported", "ImportedState", "import_sbml", "is_sbml",
@@ -86,11 +86,9 @@ def is_sbml(path):
     if Path(path).suffix.lower() in SBML_SUFFIXES:
         return True
     try:
-        with open(path, "rb") as handle:
-            start = handle.read(256)
-    except OSError:
-        return False
-    return start.removeprefix(b"\xef\xbb\xbf").lstrip().startswith(b"<")
+        return looks_like_xml(read_file_start(path, 256))
+    except ModelError:
+        return False  # the model reader names the problem
 
 
 def load_model_file(path, *, ranges=None, limits=(), params=None):

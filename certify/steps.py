@@ -2,12 +2,13 @@
 
 A :class:`certify.flow.FlowResult` holds, per step, everything the prover's analysis
 needs (the boxes at the start and end of each step, the start times, the set's
-coordinates ``r``). Once a round's facts are drawn from it, the certificate needs only
-the starting set of each cell and, per step, ``h``, the a-priori box ``E``, ``m`` and
-``A`` (docs/certificate-format.md). :class:`StepStore` keeps just these, one batch per
-round, and forgets the steps of cells that were split, so that memory grows with the
-cells kept rather than with every cell ever analysed. Values are copied, never
-recomputed: the certificate is the same bit for bit.
+coordinates ``r``, the frames ``m``, ``A``). Once a round's facts are drawn from it,
+the certificate needs only, per step, ``h`` and the a-priori box ``E``
+(docs/certificate-format.md: the checker chooses its own frames and starts from the
+cell itself). :class:`StepStore` keeps just these, one batch per round, and forgets the
+steps of cells that were split, so that memory grows with the cells kept rather than
+with every cell ever analysed. Values are copied, never recomputed: the certificate is
+the same bit for bit.
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ import numpy as np
 __all__ = ["StepBatch", "StepStore", "STEP_KEYS"]
 
 #: Per-step arrays kept, with the certificate's key for each.
-STEP_KEYS = ("h", "E", "m", "A")
+STEP_KEYS = ("h", "E")
 
 #: A batch is compacted once less than this share of its steps belongs to kept cells.
 COMPACT_BELOW = 0.75
@@ -32,32 +33,20 @@ class StepBatch:
     Attributes
     ----------
     n_steps, step_start : ndarray of int, shape (N,)
-    set0_m : ndarray, shape (N, n)
-    set0_r : ndarray, shape (N, n, 2)
-        The starting set ``m0 + [r0]`` of each box.
     h : ndarray, shape (S,)
     E : ndarray, shape (S, n, 2)
-    m : ndarray, shape (S, n)
-    A : ndarray, shape (S, n, n)
     """
 
     n_steps: np.ndarray
     step_start: np.ndarray
-    set0_m: np.ndarray
-    set0_r: np.ndarray
     h: np.ndarray
     E: np.ndarray
-    m: np.ndarray
-    A: np.ndarray
 
     @classmethod
     def from_flow(cls, result):
         """Keep of a :class:`certify.flow.FlowResult` what the certificate needs."""
         return cls(n_steps=result.n_steps, step_start=result.step_start,
-                   set0_m=result.set0_m,
-                   set0_r=np.stack([result.set0_r_lo, result.set0_r_hi], -1),
-                   h=result.h, E=np.stack([result.e_lo, result.e_hi], -1),
-                   m=result.m, A=result.A)
+                   h=result.h, E=np.stack([result.e_lo, result.e_hi], -1))
 
     @property
     def size(self):
@@ -73,7 +62,6 @@ class StepBatch:
         rows = self.rows(boxes)
         k = self.n_steps[boxes]
         return StepBatch(n_steps=k, step_start=np.cumsum(k) - k,
-                         set0_m=self.set0_m[boxes], set0_r=self.set0_r[boxes],
                          **{key: getattr(self, key)[rows] for key in STEP_KEYS})
 
 
@@ -136,33 +124,29 @@ class StepStore:
         """Give `nodes` back the steps that :meth:`refs` named (still held)."""
         self.ref[nodes] = refs
 
-    def starts(self, nodes):
-        """Per node its starting set ``(set0_m, set0_r)`` and the offsets of its steps.
+    def offsets(self, nodes):
+        """Per node the offset of its steps in :meth:`gather`'s arrays.
 
         Returns
         -------
-        set0_m : ndarray, shape (N, n)
-        set0_r : ndarray, shape (N, n, 2)
         start : ndarray of int, shape (N + 1,)
-            Node ``i`` owns rows ``start[i]:start[i + 1]`` of :meth:`gather`.
+            Node ``i`` owns rows ``start[i]:start[i + 1]``.
         """
-        n = self.n
         ref = self._ref(nodes)
         counts = np.zeros(len(nodes), int)
-        set0_m, set0_r = np.zeros((len(nodes), n)), np.zeros((len(nodes), n, 2))
         for b, batch in enumerate(self.batches):
             sel = np.flatnonzero(ref[:, 0] == b)
-            boxes = ref[sel, 1]
-            counts[sel] = batch.n_steps[boxes]
-            set0_m[sel], set0_r[sel] = batch.set0_m[boxes], batch.set0_r[boxes]
-        return set0_m, set0_r, np.concatenate([[0], np.cumsum(counts)])
+            counts[sel] = batch.n_steps[ref[sel, 1]]
+        return np.concatenate([[0], np.cumsum(counts)])
 
-    def gather(self, nodes, key):
-        """One per-step array (``h``, ``E``, ``m`` or ``A``) of `nodes`, node after node."""
+    def gather(self, nodes, key, start=None):
+        """One per-step array (``h`` or ``E``) of `nodes`, node after node.
+
+        `start` is ``offsets(nodes)`` when the caller has it already.
+        """
         ref = self._ref(nodes)
-        _, _, start = self.starts(nodes)
-        n = self.n
-        shape = {"h": (), "E": (n, 2), "m": (n,), "A": (n, n)}[key]
+        start = self.offsets(nodes) if start is None else start
+        shape = {"h": (), "E": (self.n, 2)}[key]
         out = np.zeros((int(start[-1]),) + shape)
         for b, batch in enumerate(self.batches):
             sel = np.flatnonzero(ref[:, 0] == b)

@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import contextlib
 import json
-import os
 import re
 import tempfile
 import time
@@ -451,8 +450,7 @@ def _task(model, box, settings):
 def _run(model, todo, settings, executor, scheduler, workers, out, progress, n_done, n_boxes):
     tasks = {box.key: _task(model, box, settings) for box in todo}
     by_key = {box.key: box for box in todo}
-    workers = min(workers or os.cpu_count() or 1, len(tasks)) if scheduler is None else None
-    with open_runner(executor, scheduler, workers, pooled=True) as runner:
+    with open_runner(executor, scheduler, workers, pooled=True, at_most=len(tasks)) as runner:
         for key, answer in runner.results(analyse_box, tasks):
             _save_box(out, by_key[key], answer)
             n_done += 1

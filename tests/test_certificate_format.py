@@ -137,7 +137,7 @@ def test_round_trip_of_labels_successors_steps_and_bounds(fermenter):
     written = {(c, int(d)) for c in range(len(leaves)) for d in succ[start[c]:start[c + 1]]}
     assert written == set(zip(facts.src.tolist(), facts.dst.tolist()))
     # steps: every step size and tube, cell after cell
-    _, _, step_start = proof.steps.starts(leaves)
+    step_start = proof.steps.offsets(leaves)
     assert (decode_array(cells["step_start"]) == step_start).all()
     assert _bits(decode_array(cells["step_h"])) == _bits(proof.steps.gather(leaves, "h"))
     assert _bits(decode_array(cells["step_E"])) == _bits(proof.steps.gather(leaves, "E"))

@@ -547,3 +547,21 @@ def test_hull_of_set_contains_vertices():
             v = [Fraction(1) + Fraction(0.6) * Fraction(a) - Fraction(0.8) * Fraction(b),
                  Fraction(-1) + Fraction(0.8) * Fraction(a) + Fraction(0.6) * Fraction(b)]
             assert all(Fraction(lo[0, i]) <= v[i] <= Fraction(hi[0, i]) for i in range(2))
+
+
+def test_flow_without_sets_keeps_the_same_boxes():
+    # keep_sets=False (the proof loop's flows) leaves out the sets m + A [r] alone: step
+    # sizes, tubes, end boxes and images are those of the full flow, bit for bit, and
+    # hold the corner images (closed form expm(A t) x0, scipy.linalg.expm)
+    P = linear_programs("saddle", 4)
+    A = np.array(LINEAR["saddle"], dtype=float)
+    lo = np.array([[1.0, 0.0], [-0.5, 0.25], [0.1, -1.0]])
+    hi = lo + np.array([[0.05, 0.1], [0.01, 0.01], [0.2, 0.05]])
+    full = flow_boxes(P, lo, hi, [], min_horizon=1.5, max_horizon=1.5)
+    bare = flow_boxes(P, lo, hi, [], min_horizon=1.5, max_horizon=1.5, keep_sets=False)
+    assert bare.m is None and bare.A is None and bare.r_lo is None and bare.r_hi is None
+    for name in ("status", "n_steps", "h", "t0_lo", "t0_hi", "x_lo", "x_hi", "e_lo", "e_hi",
+                 "end_lo", "end_hi", "image_lo", "image_hi", "t_lo", "t_hi"):
+        np.testing.assert_array_equal(getattr(bare, name), getattr(full, name))
+    assert (bare.status == OK).all()
+    check_linear_images(bare, A, lo, hi)

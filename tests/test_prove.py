@@ -697,7 +697,7 @@ def _random_boxes(rng, grid, count):
 
 def _tube_reaches(proof, axis, value):
     """Per leaf: some a-priori box of its tube reaches below ``x_axis = value``."""
-    _, _, start = proof.steps.starts(proof.leaves)
+    start = proof.steps.offsets(proof.leaves)
     below = proof.steps.gather(proof.leaves, "E")[:, axis, 0] < value
     owner = np.repeat(np.arange(len(proof.leaves)), np.diff(start))
     return np.bincount(owner, weights=below, minlength=len(proof.leaves)) > 0

@@ -37,7 +37,7 @@ def exact(t):
 
 def assert_holds_decay(store, node, x0_lo, x0_hi):
     """Every stored E of `node` holds x0 exp(-t) over its step (closed form)."""
-    _, _, start = store.starts(np.array([node]))
+    start = store.offsets(np.array([node]))
     h = store.gather(np.array([node]), "h")
     E = store.gather(np.array([node]), "E")
     assert len(h) == start[1] > 0
@@ -61,16 +61,17 @@ def test_store_keeps_what_it_is_given_and_forgets_split_cells():
     # the stored records are the flow's own, bit for bit
     for node, (R, b) in {1: (first, 1), 6: (second, 1)}.items():
         rows = R.steps_of(b)
-        np.testing.assert_array_equal(store.gather(np.array([node]), "A"), R.A[rows])
-        np.testing.assert_array_equal(store.gather(np.array([node]), "m"), R.m[rows])
+        np.testing.assert_array_equal(store.gather(np.array([node]), "h"), R.h[rows])
+        np.testing.assert_array_equal(store.gather(np.array([node]), "E")[..., 0], R.e_lo[rows])
+        np.testing.assert_array_equal(store.gather(np.array([node]), "E")[..., 1], R.e_hi[rows])
     mark = store.snapshot()
     store.add(np.array([7]), decay_flow([6.0], 0.01))
     store.restore(mark)
-    assert store.starts(np.array([7]))[2][-1] == 0
+    assert store.offsets(np.array([7]))[-1] == 0
     # nodes 0, 1 and 5 were split: their steps go, the batches shrink (compaction)
     store.forget_all_but(np.array([2, 6, 9]))
     assert sum(b.size for b in store.batches) == first.n_steps[2] + second.n_steps[1]
-    assert store.starts(np.array([0, 1, 5]))[2][-1] == 0
+    assert store.offsets(np.array([0, 1, 5]))[-1] == 0
     assert_holds_decay(store, 2, 3.0, 3.01)
     assert_holds_decay(store, 6, 5.0, 5.01)
 

@@ -22,6 +22,7 @@ import pytest
 from certify import load_model, prove
 from certify.check import check_certificate
 from certify.claim import check_claim
+from certify.steps import STEP_KEYS
 from certify.sweep import analyse_box
 
 prove_module = importlib.import_module("certify.prove")
@@ -63,7 +64,7 @@ def test_round_past_the_limit_keeps_the_last_finished_round(late_flow):
     assert proof.fractions == first.fractions
     # no step of the abandoned round is kept
     assert len(proof.steps.batches) == len(first.steps.batches)
-    for key in ("h", "E", "m", "A"):
+    for key in STEP_KEYS:
         np.testing.assert_array_equal(proof.steps.gather(proof.leaves, key),
                                       first.steps.gather(first.leaves, key))
     assert _valid(proof)
@@ -78,7 +79,7 @@ def test_followed_round_past_the_limit_gives_the_old_tubes_back(late_flow):
     assert WITHIN.fullmatch(proof.stop_reason).groups() == ("2", "1")
     first = prove(model, max_depth=start_depth, follow_undecided=False)
     np.testing.assert_array_equal(proof.labelling.label, first.labelling.label)
-    for key in ("h", "E", "m", "A"):
+    for key in STEP_KEYS:
         np.testing.assert_array_equal(proof.steps.gather(proof.leaves, key),
                                       first.steps.gather(first.leaves, key))
     assert _valid(proof)

@@ -340,3 +340,23 @@ def test_food_chain_gains_safe_cells_that_simulation_confirms(tmp_path):
         sol = solve_ivp(lambda t, x: f(x[None])[0], (0, 200), x0, method="DOP853",
                         rtol=1e-10, atol=1e-12, dense_output=True)
         assert np.all(g(sol.sol(np.linspace(0, 200, 2000)).T) >= 0)  # scipy: limits kept
+
+
+@pytest.mark.parametrize("per_axis", [False, True])
+def test_checker_exact_cells_are_the_dyadic_subboxes(per_axis):
+    # definition of the dyadic subdivision: side k of a cell at depth e with index j is
+    # [a + j (b - a) / 2^e, a + (j + 1) (b - a) / 2^e], here in fractions.Fraction; the
+    # checker's cells (one depth per cell) and trapping covers (one per axis) share it
+    from certify.check._cells import exact_cells
+
+    box = [(Fraction(-1, 3), Fraction(5, 7)), (Fraction(0), Fraction(2))]
+    rng = np.random.default_rng(4)
+    depth = rng.integers(0, 7, (40, 2) if per_axis else 40)
+    each = depth if per_axis else np.repeat(depth[:, None], 2, 1)
+    index = np.array([[rng.integers(0, 1 << int(e)) for e in row] for row in each])
+    lo, hi = exact_cells(box, depth, index)
+    for c in range(40):
+        for k, (a, b) in enumerate(box):
+            width = (b - a) / 2 ** int(each[c, k])
+            assert lo[c, k] == a + int(index[c, k]) * width
+            assert hi[c, k] == a + (int(index[c, k]) + 1) * width

@@ -111,17 +111,24 @@ class CellTask:
 
 
 def exact_cells(window, depth, index):
-    """Exact sides of cells as object arrays of Fractions, each shape (N, n)."""
+    """Exact sides of dyadic cells of a box as object arrays of Fractions, each (N, n).
+
+    `depth` is one depth per cell, shape (N,), or one per cell and axis, shape (N, n).
+    """
     N, n = index.shape
+    depth = np.broadcast_to(depth if np.ndim(depth) == 2 else np.reshape(depth, (N, 1)),
+                            (N, n))
     lo = np.empty((N, n), dtype=object)
     hi = np.empty((N, n), dtype=object)
     for k, (a, b) in enumerate(window):
-        length = b - a
-        for c in range(N):
-            scale = Fraction(1, 1 << int(depth[c]))
-            i = int(index[c, k])
-            lo[c, k] = a + length * i * scale
-            hi[c, k] = a + length * (i + 1) * scale
+        # cells share sides: compute each (depth, index) pair once
+        pairs, where = np.unique(np.stack([depth[:, k], index[:, k]], 1), axis=0,
+                                 return_inverse=True)
+        ends = [(a + Fraction(b - a, 1 << int(e)) * int(j),
+                 a + Fraction(b - a, 1 << int(e)) * (int(j) + 1)) for e, j in pairs]
+        side = np.empty((len(ends), 2), dtype=object)
+        side[:] = ends
+        lo[:, k], hi[:, k] = side[where.reshape(-1), 0], side[where.reshape(-1), 1]
     return lo, hi
 
 

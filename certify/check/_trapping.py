@@ -27,12 +27,12 @@ recomputed tube keeps the limits and its recomputed image lies in ``R`` (inside 
 from __future__ import annotations
 
 import itertools
-from fractions import Fraction
 from dataclasses import dataclass
 
 import numpy as np
 
 from ._arith import ARITHMETICS, evaluate
+from ._cells import exact_cells
 
 __all__ = ["CheckRegion", "read_regions", "verify_region", "in_region", "tiling_problem"]
 
@@ -222,23 +222,6 @@ def tiling_problem(depth, index):
     return None
 
 
-def _exact_boxes(box, depth, index):
-    """Exact sides of dyadic sub-boxes of `box` as object arrays of Fractions, (k, n)."""
-    k, n = index.shape
-    lo = np.empty((k, n), dtype=object)
-    hi = np.empty((k, n), dtype=object)
-    for i, (a, b) in enumerate(box):
-        # sub-boxes share sides: compute each (depth, index) pair once
-        pairs, where = np.unique(np.stack([depth[:, i], index[:, i]], 1), axis=0,
-                                 return_inverse=True)
-        ends = [(a + Fraction(b - a, 1 << int(e)) * int(j),
-                 a + Fraction(b - a, 1 << int(e)) * (int(j) + 1)) for e, j in pairs]
-        side = np.empty((len(ends), 2), dtype=object)
-        side[:] = ends
-        lo[:, i], hi[:, i] = side[where.reshape(-1), 0], side[where.reshape(-1), 1]
-    return lo, hi
-
-
 def _edge(region):
     top = (np.int64(1) << region.depth) - 1
     return np.any((region.index == 0) | (region.index == top), axis=1)
@@ -341,7 +324,7 @@ def verify_region(region, programs, params):
     if np.any(edge & (region.kind != ABOVE)):
         k = int(np.flatnonzero(edge & (region.kind != ABOVE))[0])
         return [f"cover box {k} touches the boundary of the box but is not 'above'"]
-    lo, hi = _exact_boxes(region.box, region.depth, region.index)
+    lo, hi = exact_cells(region.box, region.depth, region.index)
     for k in np.flatnonzero((region.kind != SHELL) & ~_classes_in_balls(region, lo, hi)):
         v_lo, v_hi = _v_range(region, lo[k], hi[k])
         kind = region.kind[k]

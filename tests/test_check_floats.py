@@ -241,16 +241,19 @@ def test_inverse_encloses_the_exact_inverse():
     for n in (2, 3):
         Q, _ = np.linalg.qr(rng.normal(size=(40, n, n)))
         Q[0] = np.eye(n)
-        Q[1] *= 1.5          # far from orthogonal: delta = 1.25 >= 1, unusable
+        Q[1] *= 1.5                        # scaled: still enclosed (C is numpy's inverse)
+        Q[2] = np.triu(np.ones((n, n)))    # skewed (a parallelepiped frame)
+        Q[3] = 1.0                         # singular: unusable
         B = FloatArith().inverse(Q)
         for row in range(40):
+            if row == 3:
+                assert all(np.isnan(B[i][j][k][row]) for i in range(n) for j in range(n)
+                           for k in range(2))
+                continue
             exact = sympy.Matrix(n, n, [sympy.Rational(Fraction(x)) for x in Q[row].ravel()]).inv()
             for i in range(n):
                 for j in range(n):
                     lo, hi = B[i][j][0][row], B[i][j][1][row]
-                    if row == 1:
-                        assert np.isnan(lo) and np.isnan(hi)
-                        continue
                     v = Fraction(str(exact[i, j]))
                     assert Fraction(lo) <= v <= Fraction(hi)
                     assert hi - lo < 1e-12

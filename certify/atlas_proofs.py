@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import time
 from fractions import Fraction
+from itertools import product
 
 import numpy as np
 
@@ -38,6 +39,9 @@ VERDICTS = ("safe", "none", "undetermined")
 #: fails here is split, and its halves are easier).
 REGION_DEPTH = 12
 REGION_BOXES = 40_000
+#: Halvings of a finest box's parameters allowed when no single region serves it (each
+#: part then needs its own region).
+SPLIT_DEPTH = 2
 #: Depth of the equilibrium search of each box (the structure drawn in the atlas).
 EQUILIBRIUM_DEPTH = 8
 #: Budget of the cover of the window in the limit-rate test.
@@ -96,64 +100,109 @@ def _resting_points(model, programs, mid):
     return points, inside
 
 
-def safe_by_region(model):
-    """A trapping region proving that a safe state exists, or None.
+def _region_in(model, programs, params):
+    """A trapping region for the parameter box `params` (floats), and `resting`."""
+    from certify.atlas_regions import find_box_region
+    from certify.trapping import find_regions
+
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    spirals = False
+    points, inside = _resting_points(model, programs, mid)
+    for point, keeps in zip(points, inside):
+        n = len(point)
+        values = np.linalg.eigvals(
+            programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n))
+        if np.any(values.real >= 0) or not keeps:
+            continue
+        if np.any(values.imag != 0):
+            spirals = True
+            continue
+        region = find_box_region(model, programs, params, point)
+        if region is not None and _in_window(model, region.centre):
+            return region, True
+    if not spirals:
+        return None, any(inside)
+    search = find_regions(model, programs, params, max_depth=REGION_DEPTH,
+                          max_boxes=REGION_BOXES)
+    for region in search.regions:
+        if _in_window(model, region.centre):
+            return region, True
+    return None, any(inside)
+
+
+def _halves(params, positions):
+    """The ``2^k`` parameter boxes that halve `params` along every interval parameter.
+
+    The midpoints are floats, so the halves cover the box exactly.
+    """
+    out = []
+    for sides in product((0, 1), repeat=len(positions)):
+        child = [tuple(p) for p in params]
+        for k, side in zip(positions, sides):
+            lo, hi = child[k]
+            mid = 0.5 * (lo + hi)
+            child[k] = (lo, mid) if side == 0 else (mid, hi)
+        out.append(child)
+    return out
+
+
+def _regions_on(model, programs, params, positions, depth):
+    """Regions covering `params` by halving up to `depth` times, or None."""
+    region, resting = _region_in(model, programs, params)
+    if region is not None:
+        return [(params, region)], True
+    if depth == 0 or not resting:
+        return None, resting
+    parts = []
+    for child in _halves(params, positions):
+        found, _ = _regions_on(model, programs, child, positions, depth - 1)
+        if found is None:
+            return None, resting
+        parts.extend(found)
+    return parts, resting
+
+
+def safe_by_region(model, split_depth=0):
+    """Trapping regions proving that a safe state exists, or None.
 
     Around each float estimate of a stable equilibrium inside the limits at the
     parameter midpoint (:func:`certify.atlas_regions.float_equilibria`), a parallelotope
-    along the eigenvectors (:func:`certify.atlas_regions.find_box_region`, for real
-    eigenvalues); where some such equilibrium is a spiral, also the quadratic Lyapunov
-    regions of :func:`certify.trapping.find_regions`. Soundness rests on the region's own
-    proof only: the estimates just say where to look.
+    (:func:`certify.atlas_regions.find_box_region`, for real eigenvalues); where some
+    such equilibrium is a spiral, also the quadratic Lyapunov regions of
+    :func:`certify.trapping.find_regions`. Soundness rests on the regions' own proofs
+    only: the estimates just say where to look. When no region serves the whole box,
+    the box is halved along every interval parameter, up to `split_depth` times, and
+    every part needs its own region: each parameter value then lies in a part whose
+    region is forward invariant and inside the limits for it.
 
     Parameters
     ----------
     model : certify.model.Model
         With the parameter box as intervals.
+    split_depth : int
+        Halvings of the parameter box allowed.
 
     Returns
     -------
-    region : certify.atlas_regions.BoxRegion or certify.trapping.Region or None
-        A region proven forward invariant and inside the limits for every parameter
-        value, whose centre lies in the window.
+    parts : list of (params, region) or None
+        ``params`` the part's ``(lo, hi)`` per model parameter (floats, exact), ``region``
+        a :class:`certify.atlas_regions.BoxRegion` or :class:`certify.trapping.Region`
+        proven forward invariant and inside the limits for every parameter value in the
+        part, whose centre lies in the window. The parts cover the box.
     resting : bool
         Some float estimate of an equilibrium keeps every limit at the midpoint (then
         the limit-rate test cannot succeed and is skipped).
     """
-    from certify.atlas_regions import find_box_region
     from certify.evaluate import parameter_enclosures
+    from certify.points import _interval_positions
     from certify.taylor import flow_programs
-    from certify.trapping import find_regions
 
     if model.uses_kinks:
         return None, False
     programs = flow_programs(model, 2)
-    params = parameter_enclosures(model)
-    mid = np.array([0.5 * (a + b) for a, b in params], float)
-    rng = np.random.default_rng(20261204)
-    spirals = False
+    params = [tuple(p) for p in parameter_enclosures(model)]
     with np.errstate(all="ignore"):
-        points, inside = _resting_points(model, programs, mid)
-        for point, keeps in zip(points, inside):
-            n = len(point)
-            values = np.linalg.eigvals(
-                programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n))
-            if np.any(values.real >= 0) or not keeps:
-                continue
-            if np.any(values.imag != 0):
-                spirals = True
-                continue
-            region = find_box_region(model, programs, params, point, rng)
-            if region is not None and _in_window(model, region.centre):
-                return region, True
-        if not spirals:
-            return None, any(inside)
-        search = find_regions(model, programs, params, max_depth=REGION_DEPTH,
-                              max_boxes=REGION_BOXES)
-    for region in search.regions:
-        if _in_window(model, region.centre):
-            return region, True
-    return None, any(inside)
+        return _regions_on(model, programs, params, _interval_positions(model), split_depth)
 
 
 def _rate_cover(programs, params, lo, hi, k):
@@ -264,6 +313,19 @@ def _region_record(region):
             "pieces": int(len(region.cover_class))}
 
 
+def _parts_record(model, parts):
+    """The region record of one part, or ``{"parts": [...]}`` with each part's box."""
+    from certify.certificate import fraction_text
+
+    if len(parts) == 1:
+        return _region_record(parts[0][1])
+    varied = [k for k, p in enumerate(model.parameters) if p.is_interval]
+    return {"parts": [{"params": {model.parameters[k].name: [fraction_text(Fraction(v))
+                                                             for v in params[k]]
+                                  for k in varied}, **_region_record(region)}
+                      for params, region in parts]}
+
+
 def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_limit, use_map,
                           fractions, finest, structure=True):
     """The verdict of one parameter box (the worker of an atlas).
@@ -296,19 +358,19 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
         ``verdict`` (one of :data:`VERDICTS`), ``by`` (``"trapping region"``,
         ``"limit rate"``, ``"map"`` or None), ``proof`` (what proves it), ``structure``
         (:func:`equilibrium_structure`; None for an undetermined box above the finest
-        level, which is split), ``seconds`` and, with a map, ``safe_bounds`` and
-        ``fractions``.
+        level, which is split), ``seconds``, ``cpu_seconds`` (of this process) and,
+        with a map, ``safe_bounds`` and ``fractions``.
     """
     from certify.points import find_equilibria
     from certify.sweep import parsed_model
 
-    started = time.monotonic()
+    started, cpu = time.monotonic(), time.process_time()
     model = parsed_model(model_text, model_path).with_parameters(
         {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
     out = {"verdict": "undetermined", "by": None, "proof": None, "structure": None}
-    region, resting = safe_by_region(model)
-    if region is not None:
-        out.update(verdict="safe", by="trapping region", proof=_region_record(region))
+    parts, resting = safe_by_region(model, SPLIT_DEPTH if finest else 0)
+    if parts is not None:
+        out.update(verdict="safe", by="trapping region", proof=_parts_record(model, parts))
     elif not resting:
         rate = none_by_limit_rate(model)
         if rate is not None:
@@ -329,4 +391,5 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
                        proof={"cells": facts["cells"], "depth_reached": facts["depth_reached"],
                               "stop_reason": facts["stop_reason"]})
     out["seconds"] = round(time.monotonic() - started, 3)
+    out["cpu_seconds"] = round(time.process_time() - cpu, 3)
     return out

@@ -29,6 +29,7 @@ negative there) and inside the limits, so every point of it is safe; it is not e
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import product
 
 import numpy as np
 
@@ -37,10 +38,13 @@ from .evaluate import evaluate_boxes, evaluate_limits
 from .faces import _bisect_until_proven
 from .trapping import _binary
 
-__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "FACTORS"]
+__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "float_margin",
+           "parameter_grid", "FACTORS", "ATTEMPTS"]
 
-#: Multiples of the float estimate of the equilibrium's movement tried as radii.
-FACTORS = (1.5, 2.0, 3.0, 4.0, 6.0, 9.0)
+#: Multiples of the float estimate of the equilibrium's movement tried as radii (per axis).
+FACTORS = (1.25, 1.5, 2.0, 3.0, 4.0, 6.0, 9.0, 14.0, 20.0, 30.0)
+#: Interval proofs tried per equilibrium, best float screening first.
+ATTEMPTS = 3
 #: Bisection depth of the face and region covers (per free axis).
 COVER_DEPTH = 7
 
@@ -297,20 +301,111 @@ def float_equilibria(model, programs, p, starts=None):
     return found
 
 
-def _frame(jac, width):
-    """Real eigenvectors of a stable Jacobian, scaled to unit length in window units."""
+def _frames(jac, width):
+    """Candidate frames around a stable node: eigenvectors, some swapped for state axes.
+
+    Column ``k`` of the first frame is the eigenvector of eigenvalue ``k`` (unit length
+    in window units). Then every frame with one eigenvector replaced by one state axis,
+    then the state axes. A face along a slow direction of a moving equilibrium can need
+    another tilt than the linearisation's (in a chemostat, a face of constant
+    substrate), and which one only the float screening of :func:`find_box_region` tells.
+    Frames with ``|det|`` below ``1e-3`` (in window units) are left out.
+    """
     values, vectors = np.linalg.eig(jac)
     if np.any(np.abs(values.imag) > 0) or np.any(values.real >= 0):
-        return None
+        return []
     vectors = vectors.real / np.linalg.norm(vectors.real / width[:, None], axis=0)
-    frame = _binary(vectors)
-    if abs(np.linalg.det(frame / width[:, None])) < 1e-6:
-        return None
-    return frame
+    axes = np.diag(width)
+    n = len(width)
+    frames = [vectors]
+    for k in range(n):
+        for j in range(n):
+            frame = vectors.copy()
+            frame[:, k] = axes[:, j]
+            frames.append(frame)
+    frames.append(axes)
+    out = []
+    for frame in frames:
+        frame = _binary(frame)
+        if abs(np.linalg.det(frame / width[:, None])) >= 1e-3 \
+                and not any(np.array_equal(frame, f) for f in out):
+            out.append(frame)
+    return out
 
 
-def find_box_region(model, programs, params, point, rng):
+def parameter_grid(params, positions):
+    """The points ``{lo, mid, hi}^k`` over the interval parameters at `positions`.
+
+    The other parameters sit at their midpoint (they are points, or enclosures of one
+    value). For more than three interval parameters only the corners and the midpoint.
+    """
+    p = np.array(params, float).reshape(-1, 2)
+    base = 0.5 * (p[:, 0] + p[:, 1])
+    if not positions:
+        return base[None]
+    levels = (0.0, 0.5, 1.0) if len(positions) <= 3 else (0.0, 1.0)
+    rows = []
+    for t in product(levels, repeat=len(positions)):
+        row = base.copy()
+        for k, tk in zip(positions, t):
+            row[k] = p[k, 0] + tk * (p[k, 1] - p[k, 0])
+        rows.append(row)
+    if len(positions) > 3:
+        rows.append(base)
+    return np.array(rows)
+
+
+def _face_points(radii, count):
+    """Float points ``(u, face index, side)`` on the faces of ``|u_i| <= r_i``."""
+    n = len(radii)
+    t = np.linspace(-1.0, 1.0, count)
+    rest = np.array(list(product(t, repeat=n - 1))).reshape(-1, n - 1)
+    out = []
+    for i in range(n):
+        for side in (1.0, -1.0):
+            u = np.empty((len(rest), n))
+            u[:, [j for j in range(n) if j != i]] = rest * np.delete(radii, i)
+            u[:, i] = side * radii[i]
+            out.append((u, i, side))
+    return out
+
+
+def float_margin(programs, samples, centre, frame, radii, count=7):
+    """Float screening of a parallelotope (not rigorous; it picks what to prove).
+
+    Returns
+    -------
+    float
+        The largest outward rate ``s du_i/dt / r_i`` over sampled face points and
+        parameter samples (negative: every sampled face pulls inward), or ``inf`` when a
+        limit fails at a sampled point of the faces or at the centre.
+    """
+    inverse = np.linalg.inv(frame)
+    worst = -np.inf
+    k = len(samples)
+    for u, i, side in _face_points(radii, count) + [(np.zeros((1, len(radii))), None, 0)]:
+        x = centre + u @ frame.T
+        inputs = np.concatenate([np.tile(x, (k, 1)), np.repeat(samples, len(x), axis=0)],
+                                axis=1)
+        if programs.limits.n_outputs and not np.all(programs.limits.point(inputs) > 0):
+            return np.inf
+        if i is None:
+            continue
+        rate = side * (programs.field.point(inputs) @ inverse[i]) / radii[i]
+        worst = max(worst, float(np.max(rate)))
+    return worst if np.isfinite(worst) else np.inf
+
+
+def find_box_region(model, programs, params, point, attempts=ATTEMPTS):
     """A parallelotope trapping region around the equilibrium estimate `point`, or None.
+
+    For each candidate frame (:func:`_frames`), the equilibrium is followed in floats
+    over a grid of the parameter box (:func:`parameter_grid`); the centre is the middle
+    of its track in frame coordinates and the radii are the track's half-widths times
+    factors from :data:`FACTORS`, chosen per axis, plus a slack for the interval
+    overestimation. Every such parallelotope is screened in floats
+    (:func:`float_margin`); the `attempts` with the strongest inward pull are proven
+    (:func:`prove_box_region`). Soundness rests on that proof only.
 
     Parameters
     ----------
@@ -319,40 +414,52 @@ def find_box_region(model, programs, params, point, rng):
     params : sequence of (float, float)
     point : ndarray, shape (n,)
         A float estimate of a stable equilibrium inside the limits.
-    rng : numpy.random.Generator
-        For the parameter samples of the float estimate of the movement.
+    attempts : int
+        Interval proofs tried at most.
 
     Returns
     -------
     BoxRegion or None
     """
     from .points import _interval_positions, _programs
-    from .trapping import _parameter_samples
 
     width = np.array([float(b - a) for a, b in model.window])
     q = np.ldexp(1.0, np.frexp(width)[1] - 40)
-    centre = np.round(np.asarray(point, float) / q) * q
+    point = np.asarray(point, float)
     mid = np.array([0.5 * (a + b) for a, b in params], float)
-    n = len(centre)
-    jac = programs.jacobian.point(np.concatenate([centre, mid])).reshape(n, n)
-    frame = _frame(jac, width)
-    if frame is None:
-        return None
-    moved = np.zeros(n)
-    for p in _parameter_samples(params, rng):
-        x = _equilibrium(programs, centre, p)
-        if x is None:
-            return None
-        moved = np.maximum(moved, np.abs(np.linalg.solve(frame, x - centre)))
+    n = len(point)
     positions = _interval_positions(model)
+    samples = parameter_grid(params, positions)
+    track = [_equilibrium(programs, point, p) for p in samples]
+    if any(x is None for x in track):
+        return None
+    track = np.array(track)
+    jacobians = programs.jacobian.point(np.concatenate([track, samples], axis=1))
+    if not np.all(np.linalg.eigvals(jacobians.reshape(-1, n, n)).real < 0):
+        return None   # the track meets a fold or leaves for another equilibrium
+    jac = programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n)
+    candidates = []
+    for frame in _frames(jac, width):
+        u = np.linalg.solve(frame, (track - point).T).T
+        lo, hi = u.min(axis=0), u.max(axis=0)
+        centre = np.round((point + frame @ (0.5 * (lo + hi))) / q) * q
+        half = 0.5 * (hi - lo) + np.abs(np.linalg.solve(frame, centre - point
+                                                        - frame @ (0.5 * (lo + hi))))
+        # a direction the equilibrium does not move along still needs room for the
+        # overestimation of interval arithmetic
+        half = half + 0.25 * np.max(half) + 2.0 ** -20
+        for factors in product(FACTORS, repeat=n):
+            radii = _binary(half * np.array(factors), 20)
+            margin = float_margin(programs, samples, centre, frame, radii)
+            if margin < 0:
+                candidates.append((margin, len(candidates), centre, frame, radii))
+    if not candidates:
+        return None
     sensitivity = None
     if positions and not model.uses_kinks:
         sensitivity = (_programs(model).param_jacobian, positions)
-    # a direction the equilibrium does not move along still needs room for the
-    # overestimation of interval arithmetic
-    moved = moved + 0.25 * np.max(moved) + 2.0 ** -20
-    for factor in FACTORS:
-        radii = _binary(factor * moved, 20)
+    candidates.sort(key=lambda c: c[:2])
+    for _, _, centre, frame, radii in candidates[:attempts]:
         region = prove_box_region(programs, params, centre, frame, radii,
                                   sensitivity=sensitivity)
         if region is not None:

@@ -146,12 +146,43 @@ def _halves(params, positions):
     return out
 
 
+def _stable_inside(model, programs, point, p):
+    """Float test: `point` is a stable equilibrium estimate keeping every limit at `p`."""
+    if point is None or not _in_window(model, point):
+        return False
+    n = len(point)
+    inputs = np.concatenate([point, p])
+    if programs.limits.n_outputs and not np.all(programs.limits.point(inputs) > 0):
+        return False
+    return bool(np.all(np.linalg.eigvals(programs.jacobian.point(inputs).reshape(n, n)).real
+                       < 0))
+
+
+def _rests_throughout(model, programs, params, positions):
+    """Float test: at every point of a grid of the parameter box some equilibrium is
+    stable and keeps the limits (else no set of regions can cover the box, and halving
+    it is not worth its cost). The midpoint's equilibria are followed by Newton's method
+    first; a full search only where that fails."""
+    from certify.atlas_regions import _equilibrium, float_equilibria, parameter_grid
+
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    points = [x for x in float_equilibria(model, programs, mid)
+              if _stable_inside(model, programs, x, mid)]
+    for p in parameter_grid(params, positions):
+        if not any(_stable_inside(model, programs, _equilibrium(programs, x, p), p)
+                   for x in points) \
+                and not any(_stable_inside(model, programs, x, p)
+                            for x in float_equilibria(model, programs, p)):
+            return False
+    return True
+
+
 def _regions_on(model, programs, params, positions, depth):
     """Regions covering `params` by halving up to `depth` times, or None."""
     region, resting = _region_in(model, programs, params)
     if region is not None:
         return [(params, region)], True
-    if depth == 0 or not resting:
+    if depth == 0 or not resting or not _rests_throughout(model, programs, params, positions):
         return None, resting
     parts = []
     for child in _halves(params, positions):

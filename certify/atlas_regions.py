@@ -360,7 +360,8 @@ def _face_points(radii, count):
     """Float points ``(u, face index, side)`` on the faces of ``|u_i| <= r_i``."""
     n = len(radii)
     t = np.linspace(-1.0, 1.0, count)
-    rest = np.array(list(product(t, repeat=n - 1))).reshape(-1, n - 1)
+    rest = list(product(t, repeat=n - 1))
+    rest = np.array(rest, float).reshape(len(rest), n - 1)
     out = []
     for i in range(n):
         for side in (1.0, -1.0):

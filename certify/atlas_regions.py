@@ -38,7 +38,7 @@ from .evaluate import evaluate_boxes, evaluate_limits
 from .faces import _bisect_until_proven
 from .trapping import _binary
 
-__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "float_margin",
+__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "float_margins",
            "parameter_grid", "FACTORS", "ATTEMPTS"]
 
 #: Multiples of the float estimate of the equilibrium's movement tried as radii (per axis).
@@ -356,46 +356,73 @@ def parameter_grid(params, positions):
     return np.array(rows)
 
 
-def _face_points(radii, count):
-    """Float points ``(u, face index, side)`` on the faces of ``|u_i| <= r_i``."""
-    n = len(radii)
-    t = np.linspace(-1.0, 1.0, count)
-    rest = list(product(t, repeat=n - 1))
-    rest = np.array(rest, float).reshape(len(rest), n - 1)
-    out = []
-    for i in range(n):
-        for side in (1.0, -1.0):
-            u = np.empty((len(rest), n))
-            u[:, [j for j in range(n) if j != i]] = rest * np.delete(radii, i)
-            u[:, i] = side * radii[i]
-            out.append((u, i, side))
-    return out
-
-
-def float_margin(programs, samples, centre, frame, radii, count=7):
-    """Float screening of a parallelotope (not rigorous; it picks what to prove).
+def _face_pattern(n, count):
+    """Points of the faces of ``|u_i| <= 1`` (and the centre), with the outward axis.
 
     Returns
     -------
-    float
-        The largest outward rate ``s du_i/dt / r_i`` over sampled face points and
-        parameter samples (negative: every sampled face pulls inward), or ``inf`` when a
-        limit fails at a sampled point of the faces or at the centre.
+    u : ndarray, shape (k, n)
+    axis : ndarray of int, shape (k,)
+        ``i`` for a point on face ``u_i = +-1``, -1 for the centre.
+    side : ndarray, shape (k,)
     """
-    inverse = np.linalg.inv(frame)
-    worst = -np.inf
-    k = len(samples)
-    for u, i, side in _face_points(radii, count) + [(np.zeros((1, len(radii))), None, 0)]:
-        x = centre + u @ frame.T
-        inputs = np.concatenate([np.tile(x, (k, 1)), np.repeat(samples, len(x), axis=0)],
-                                axis=1)
-        if programs.limits.n_outputs and not np.all(programs.limits.point(inputs) > 0):
-            return np.inf
-        if i is None:
-            continue
-        rate = side * (programs.field.point(inputs) @ inverse[i]) / radii[i]
-        worst = max(worst, float(np.max(rate)))
-    return worst if np.isfinite(worst) else np.inf
+    t = np.linspace(-1.0, 1.0, count)
+    rest = list(product(t, repeat=n - 1))
+    rest = np.array(rest, float).reshape(len(rest), n - 1)
+    us, axes, sides = [np.zeros((1, n))], [np.array([-1])], [np.zeros(1)]
+    for i in range(n):
+        for side in (1.0, -1.0):
+            u = np.empty((len(rest), n))
+            u[:, [j for j in range(n) if j != i]] = rest
+            u[:, i] = side
+            us.append(u)
+            axes.append(np.full(len(rest), i))
+            sides.append(np.full(len(rest), side))
+    return np.concatenate(us), np.concatenate(axes), np.concatenate(sides)
+
+
+def float_margins(programs, samples, centre, frame, radii, count=7):
+    """Float screening of parallelotopes (not rigorous; it picks what to prove).
+
+    Parameters
+    ----------
+    programs : certify.taylor.FlowPrograms
+    samples : ndarray, shape (k, p)
+        Parameter points.
+    centre : ndarray, shape (n,)
+    frame : ndarray, shape (n, n)
+    radii : ndarray, shape (m, n)
+        One parallelotope per row.
+    count : int
+        Points per free axis of each face.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        Per parallelotope, the largest outward rate ``s du_i/dt / r_i`` over sampled face
+        points and parameter samples (negative: every sampled face pulls inward), or
+        ``inf`` when a limit fails at a sampled face point or at the centre.
+    """
+    radii = np.atleast_2d(radii)
+    m, n = radii.shape
+    pattern, axis, side = _face_pattern(n, count)
+    k = len(pattern)
+    u = (pattern[None] * radii[:, None]).reshape(-1, n)          # (m k, n)
+    x = centre + u @ frame.T
+    inputs = np.concatenate([np.tile(x, (len(samples), 1)),
+                             np.repeat(samples, len(x), axis=0)], axis=1)
+    shape = (len(samples), m, k)
+    keeps = np.ones(shape, bool)
+    if programs.limits.n_outputs:
+        keeps = np.all(programs.limits.point(inputs) > 0, axis=-1).reshape(shape)
+    du = (programs.field.point(inputs) @ np.linalg.inv(frame).T).reshape(shape + (n,))
+    on_face = axis >= 0
+    rows = np.arange(k)[on_face]
+    rate = side[on_face] * du[:, :, rows, axis[on_face]] / radii[:, axis[on_face]]
+    with np.errstate(invalid="ignore"):
+        worst = np.max(rate, axis=(0, 2))
+    worst[~np.all(keeps, axis=(0, 2)) | ~np.isfinite(worst)] = np.inf
+    return worst
 
 
 def find_box_region(model, programs, params, point, attempts=ATTEMPTS):
@@ -406,7 +433,7 @@ def find_box_region(model, programs, params, point, attempts=ATTEMPTS):
     of its track in frame coordinates and the radii are the track's half-widths times
     factors from :data:`FACTORS`, chosen per axis, plus a slack for the interval
     overestimation. Every such parallelotope is screened in floats
-    (:func:`float_margin`); the `attempts` with the strongest inward pull are proven
+    (:func:`float_margins`); the `attempts` with the strongest inward pull are proven
     (:func:`prove_box_region`). Soundness rests on that proof only.
 
     Parameters
@@ -450,11 +477,11 @@ def find_box_region(model, programs, params, point, attempts=ATTEMPTS):
         # a direction the equilibrium does not move along still needs room for the
         # overestimation of interval arithmetic
         half = half + 0.25 * np.max(half) + 2.0 ** -20
-        for factors in product(FACTORS if n <= 2 else FACTORS[::2], repeat=n):
-            radii = _binary(half * np.array(factors), 20)
-            margin = float_margin(programs, samples, centre, frame, radii, 7 if n <= 2 else 4)
-            if margin < 0:
-                candidates.append((margin, len(candidates), centre, frame, radii))
+        factors = np.array(list(product(FACTORS if n <= 2 else FACTORS[::2], repeat=n)))
+        radii = _binary(half * factors, 20)
+        margins = float_margins(programs, samples, centre, frame, radii, 7 if n <= 2 else 4)
+        for j in np.flatnonzero(margins < 0):
+            candidates.append((margins[j], len(candidates), centre, frame, radii[j]))
     if not candidates:
         return None
     sensitivity = None

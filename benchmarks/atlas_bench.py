@@ -157,6 +157,8 @@ def section_text(args, result, seconds, cpu, loads, sim, sim_seconds, commit):
         "| --- | --- |",
         f"| wall time of the atlas | {seconds:.1f} s |",
         f"| CPU time of the atlas (main process and every box, all workers) | {cpu:.1f} s |",
+        f"| CPU time / (wall time x workers) (near 1 on an otherwise idle machine; lower: "
+        f"the wall time is inflated by other jobs) | {cpu / (seconds * args.workers):.2f} |",
         f"| status | {result.message} |",
         f"| area: a safe state exists (proven) | {100 * result.areas['safe']:.2f} % |",
         f"| area: no safe state (proven) | {100 * result.areas['none']:.2f} % |",

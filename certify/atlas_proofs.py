@@ -3,20 +3,23 @@
 Every statement holds for every constant parameter value in the box (the parameters
 enter as intervals). The cheap questions come first:
 
-1. **Equilibrium structure** (:func:`certify.points.find_equilibria`): how many
-   equilibria, which are stable, which lie inside the limits.
-2. **A safe state exists** (:func:`safe_by_region`): a trapping region around a stable
-   equilibrium inside the limits (:func:`certify.trapping.find_regions`), proven forward
-   invariant and inside the limits with the parameters as intervals. Every point of it
-   is safe for every parameter value, and it is not empty: its centre lies in a cover
-   sub-box that is not ``above`` the level, so the centre keeps every limit.
-3. **No safe state** (:func:`none_by_limit_rate`): every face of the window is
+1. **A safe state exists** (:func:`safe_by_region`): trapping regions around a stable
+   equilibrium inside the limits (:func:`certify.atlas_regions.find_box_region`,
+   :func:`certify.trapping.find_regions`), proven forward invariant and inside the limits
+   with the parameters as intervals. Every point of one is safe for every parameter
+   value, and it is not empty: it holds its centre, which keeps every limit. At the
+   resolution, a box may be covered by halved parameter parts, each with its own region.
+2. **No safe state** (:func:`none_by_limit_rate`): every face of the window is
    ``limit``, ``inflow`` or ``invariant`` (:func:`certify.faces.analyse_faces`), so a
    trajectory keeping the limits stays in the window; and the window is covered by boxes
    that either violate some limit on the whole box or where the rate ``dg/dt`` of one
    fixed limit ``g >= 0`` is at most ``-eps < 0``. Then ``g`` falls by ``eps`` per unit
    of time as long as the limits hold, so every start in the window crosses a limit by
    ``max g / eps``.
+3. **Equilibrium structure** (:func:`box_structure`, :func:`certify.points.find_equilibria`):
+   how many equilibria, which are stable, which lie inside the limits; the atlas proves
+   it for its leaves once every verdict is in, and before a map (an equilibrium inside
+   the limits spares it).
 4. Only when these do not decide, the map of fates (:func:`certify.prove.prove`):
    ``none`` when every cell is doomed or outside, ``safe`` when a safe cell lies wholly
    inside the limits.
@@ -30,8 +33,8 @@ from itertools import product
 
 import numpy as np
 
-__all__ = ["VERDICTS", "analyse_parameter_box", "equilibrium_structure", "safe_by_region",
-           "none_by_limit_rate"]
+__all__ = ["VERDICTS", "analyse_parameter_box", "box_structure", "equilibrium_structure",
+           "safe_by_region", "none_by_limit_rate"]
 
 #: Verdicts of a parameter box.
 VERDICTS = ("safe", "none", "undetermined")
@@ -357,6 +360,45 @@ def _parts_record(model, parts):
                       for params, region in parts]}
 
 
+def _box_model(model_text, model_path, parameters):
+    from certify.sweep import parsed_model
+
+    return parsed_model(model_text, model_path).with_parameters(
+        {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
+
+
+def _structure_of(model):
+    """``(equilibrium_structure, any equilibrium proven inside the limits)``."""
+    from certify.points import find_equilibria
+
+    with np.errstate(all="ignore"):
+        equilibria = find_equilibria(model, max_depth=EQUILIBRIUM_DEPTH)
+    return (equilibrium_structure(equilibria),
+            any(p.limits == "inside" for p in equilibria.equilibria))
+
+
+def box_structure(model_text, model_path, parameters):
+    """The proven equilibrium structure of one parameter box (a worker of an atlas).
+
+    Parameters
+    ----------
+    model_text : str
+    model_path : str or None
+    parameters : dict[str, list of str]
+        ``[lo, hi]`` as exact texts for every parameter of the model.
+
+    Returns
+    -------
+    dict
+        :func:`equilibrium_structure` with ``seconds`` and ``cpu_seconds`` added.
+    """
+    started, cpu = time.monotonic(), time.process_time()
+    out, _ = _structure_of(_box_model(model_text, model_path, parameters))
+    out["seconds"] = round(time.monotonic() - started, 3)
+    out["cpu_seconds"] = round(time.process_time() - cpu, 3)
+    return out
+
+
 def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_limit, use_map,
                           fractions, finest, structure=True):
     """The verdict of one parameter box (the worker of an atlas).
@@ -380,8 +422,9 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
     finest : bool
         The box is at the resolution: it will not be split.
     structure : bool
-        Prove the equilibrium structure of a box that will not be split (the costliest
-        part for wide boxes).
+        Prove the equilibrium structure of a box that is decided or will not be split
+        (the costliest part for wide boxes; the atlas proves it later with
+        :func:`box_structure`). It is also proven before a map, which it can spare.
 
     Returns
     -------
@@ -392,12 +435,8 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
         level, which is split), ``seconds``, ``cpu_seconds`` (of this process) and,
         with a map, ``safe_bounds`` and ``fractions``.
     """
-    from certify.points import find_equilibria
-    from certify.sweep import parsed_model
-
     started, cpu = time.monotonic(), time.process_time()
-    model = parsed_model(model_text, model_path).with_parameters(
-        {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
+    model = _box_model(model_text, model_path, parameters)
     out = {"verdict": "undetermined", "by": None, "proof": None, "structure": None}
     parts, resting = safe_by_region(model, SPLIT_DEPTH if finest else 0)
     if parts is not None:
@@ -406,13 +445,12 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
         rate = none_by_limit_rate(model)
         if rate is not None:
             out.update(verdict="none", by="limit rate", proof=rate)
-    if structure and (out["verdict"] != "undetermined" or finest):
-        with np.errstate(all="ignore"):
-            equilibria = find_equilibria(model, max_depth=EQUILIBRIUM_DEPTH)
-        out["structure"] = equilibrium_structure(equilibria)
+    map_next = use_map and finest and out["verdict"] == "undetermined" and not resting
+    if (structure and (out["verdict"] != "undetermined" or finest)) or map_next:
+        out["structure"], inside = _structure_of(model)
         # an equilibrium inside the limits is itself a safe state: no map can show "none"
-        resting = resting or any(p.limits == "inside" for p in equilibria.equilibria)
-    if fractions or (use_map and finest and out["verdict"] == "undetermined" and not resting):
+        resting = resting or inside
+    if fractions or (map_next and not resting):
         facts = _map_facts(model, max_depth, time_limit)
         out["safe_bounds"] = facts["safe_bounds"]
         out["fractions"] = facts["fractions"]

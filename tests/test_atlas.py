@@ -126,6 +126,26 @@ def test_andrews_fermenter_fold(tmp_path):
             assert lo > 0.25
         else:
             assert lo < 0.25 + 2 * 0.3 / 16 and hi > 0.25 - 2 * 0.3 / 16
+    # the proven structure of every leaf (proven after the verdicts) matches the closed
+    # form where it is uniform: the washout state (s_in, 0), stable when mu(s_in) < D,
+    # and the roots of the quadratic with s < s_in (the smaller one stable)
+    mu = lambda s: mu_max * s / (Ks + s + s * s / Ki)   # noqa: E731
+    uniform = 0
+    for box in result.boxes:
+        structure = box["structure"]
+        assert structure is not None
+        if structure["changes"]:
+            continue
+        uniform += 1
+        for D in (float(v) for v in _ends(box, "D")):
+            a, b, c = D / Ki, D - mu_max, D * Ks
+            disc = b * b - 4 * a * c
+            roots = [] if disc < 0 else [(-b + sign * math.sqrt(disc)) / (2 * a)
+                                         for sign in (-1, 1)]
+            roots = [r for r in roots if 0 < r < s_in]
+            assert structure["count"] == 1 + len(roots)
+            assert structure["stable"] == (1 if roots else 0) + (mu(s_in) < D)
+    assert uniform >= 1   # the check above is not vacuous
 
 
 def test_logistic_harvest_matches_box_by_box(tmp_path):

@@ -137,6 +137,7 @@ def section_text(args, result, seconds, cpu, loads, sim, sim_seconds, commit):
         key = (e["verdict"], e["by"] or "-")
         by[key] = by.get(key, 0) + 1
     classified = result.areas["safe"] + result.areas["none"]
+    shown = [e for e in result.boxes if e["structure"] is not None]
     lines = [
         f"## {_section(args)}",
         "",
@@ -165,6 +166,9 @@ def section_text(args, result, seconds, cpu, loads, sim, sim_seconds, commit):
         f"| area: undetermined | {100 * result.areas['undetermined']:.2f} % |",
         f"| area classified | {100 * classified:.2f} % |",
         f"| leaves / boxes analysed | {len(result.boxes)} / {result.n_analysed} |",
+        *([] if args.no_structure else [
+            f"| leaves with their equilibrium structure proven (their area) | {len(shown)} of "
+            f"{len(result.boxes)} ({100 * sum(e['area'] for e in shown):.1f} %) |"]),
         f"| simulation, {sampled} of {n_pixels} pixels ({args.starts} x {args.starts} starts, "
         f"RK4 dt {args.dt} h to {args.horizon:.0f} h) | {sim_seconds:.1f} s |",
         f"| simulation scaled to all {n_pixels} pixels | {scaled:.1f} s |",

@@ -6,18 +6,21 @@ movement times the condition number of the linearisation, which for stiff models
 slow and a fast direction, as a chemostat at low dilution) exceeds the room inside the
 limits. In coordinates along the eigenvectors of the Jacobian the linear part is
 diagonal, so a box in those coordinates only has to be somewhat larger than the
-movement itself.
+movement itself. Near a fold the movement is large along a weakly pulling direction,
+and a face tilted otherwise (some eigenvectors swapped for state axes) can hold where
+the eigenvector faces do not; candidate frames, centres and radii are screened in
+floats and only the best are proven (:func:`find_box_region`).
 
 The region is ``R = {c + T u : |u_i| <= r_i}`` with exact binary numbers: ``c`` near
-the equilibrium, ``T`` the (real) eigenvectors of ``Df(c)`` at the parameter midpoint,
-``r`` the radii. Its face ``i`` on side ``s = +-1`` is ``u_i = s r_i``; its outward
+the equilibrium, ``T`` a frame (columns of unit length in window units), ``r`` the
+radii. Its face ``i`` on side ``s = +-1`` is ``u_i = s r_i``; its outward
 normal is ``s N_i`` with ``N`` the rows of ``sign(det T) adj(T)`` (a positive multiple
 of ``T^-1``), enclosed with intervals. It is proven, for every parameter value in the
 boxes, that
 
 * on every face, ``s N_i . f(x) < 0``: on a cover of the face by pieces, with the
   natural interval extension or the mean-value form in ``u`` at the piece's midpoint
-  (``d/du_k (N_i . f) = N_i . Df T_k``, nearly zero across faces by the choice of T);
+  (``d/du_k (N_i . f) = N_i . Df T_k``, nearly zero across faces for eigenvectors);
 * every limit holds on ``R``: on a cover of ``R`` by pieces.
 
 Then ``R`` is forward invariant (at the last time a trajectory is in ``R`` it sits on
@@ -38,12 +41,12 @@ from .evaluate import evaluate_boxes, evaluate_limits
 from .faces import _bisect_until_proven
 from .trapping import _binary
 
-__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "float_margins",
-           "parameter_grid", "FACTORS", "ATTEMPTS"]
+__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria",
+           "float_margins", "parameter_grid", "FACTORS", "ATTEMPTS"]
 
-#: Multiples of the float estimate of the equilibrium's movement tried as radii (per axis).
+#: Multiples of the float estimate of the equilibrium's movement tried as radii, per
+#: axis (above two states every other one, so that the screening stays cheap).
 FACTORS = (1.25, 1.5, 2.0, 3.0, 4.0, 6.0, 9.0, 14.0, 20.0, 30.0)
-#: (Above two states every other factor, so that the screening stays cheap.)
 #: Interval proofs tried per equilibrium, best float screening first.
 ATTEMPTS = 3
 #: Bisection depth of the face and region covers (per free axis).

@@ -33,6 +33,8 @@ _MESSAGES = {
     0: "Every box decided or at the resolution.",
     1: "Time budget spent; undetermined boxes coarser than the resolution remain.",
     2: "Interrupted; rerun with the same folder and settings to resume.",
+    3: "Every box decided or at the resolution; the time budget was spent before the "
+       "equilibrium structure of every leaf was proven.",
 }
 
 
@@ -43,7 +45,8 @@ class AtlasResult:
     Attributes
     ----------
     status : int
-        0 done, 1 stopped by the time budget, 2 interrupted.
+        0 done, 1 stopped by the time budget, 2 interrupted, 3 verdicts done but the
+        time budget stopped the structure proofs.
     message : str
     names : tuple of str
         The varied parameters.
@@ -162,7 +165,7 @@ def _task(model, box, ranges, settings, top):
         parameters[name] = [fraction_text(lo), fraction_text(hi)]
     return (model.text, model.path, parameters, settings["max_depth"],
             settings["time_limit_each"], settings["map"], settings["fractions"],
-            max(box.levels) >= top, settings["structure"])
+            max(box.levels) >= top, False)
 
 
 def _entry(box, ranges, answer):
@@ -197,7 +200,8 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
         Prove a map of fates where the cheap tests do not decide a box at the finest
         level (unless an equilibrium inside the limits shows that a safe state exists).
     structure : bool
-        Prove the equilibrium structure of every leaf (the costliest part of wide boxes).
+        Prove the equilibrium structure of every leaf (the costliest part of wide boxes),
+        once every verdict is in, while the time budget lasts.
     max_depth, time_limit_each : int or float, optional
         Budget of each such map (as in :func:`certify.sweep.sweep`).
     fractions : bool
@@ -256,6 +260,10 @@ def atlas(model, vary, *, resolution=64, start=4, time_budget=None, use_map=True
                 todo = [child for box in split for child in box.children(top)]
                 for box in split:
                     leaves[box.key]["split"] = True
+            if structure and status == 0 and not _structures(
+                    model, leaves, _tile(roots, leaves, top), settings, runner, out, progress,
+                    started, time_budget):
+                status = 3
     except KeyboardInterrupt:
         status = 2
     boxes = _tile(roots, leaves, top)
@@ -306,6 +314,48 @@ def _level(model, todo, ranges, settings, top, runner, out, progress, started, t
         finally:
             results.close()
     return done, n_new, stopped
+
+
+def _structures(model, leaves, boxes, settings, runner, out, progress, started, time_budget):
+    """Prove the equilibrium structure of the leaves `boxes` that lack it; False if the
+    budget stopped it. Each box file and its entry in `leaves` get the structure.
+
+    The widest leaves go first: each proof costs about the same, so a budget that stops
+    them leaves the most area with a structure."""
+    from certify.sweep import write_json
+
+    folder = out / "atlas-boxes"
+    todo = {e["key"]: e for e in sorted(boxes, key=lambda e: -e["area"])
+            if e["structure"] is None}
+    if not todo:
+        return True
+    tasks = {key: (model.text, model.path, {**settings["parameters"], **e["params_exact"]})
+             for key, e in todo.items()}
+    results = runner.results(_structure, tasks)
+    n_done = len(boxes) - len(todo)
+    try:
+        for key, found in results:
+            todo.pop(key)
+            entry = leaves[key]
+            entry["seconds"] = round(entry["seconds"] + found.pop("seconds"), 3)
+            entry["cpu_seconds"] = round(entry.get("cpu_seconds", 0) + found.pop("cpu_seconds"),
+                                         3)
+            entry["structure"] = found
+            write_json(folder / f"{key}.json", entry)
+            n_done += 1
+            if progress is not None:
+                progress(n_done, len(boxes))
+            if todo and time_budget is not None and time.monotonic() - started > time_budget:
+                return False
+    finally:
+        results.close()
+    return True
+
+
+def _structure(*args):
+    from certify.atlas_proofs import box_structure
+
+    return box_structure(*args)
 
 
 def _analyse(*args):

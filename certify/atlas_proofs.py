@@ -3,20 +3,23 @@
 Every statement holds for every constant parameter value in the box (the parameters
 enter as intervals). The cheap questions come first:
 
-1. **Equilibrium structure** (:func:`certify.points.find_equilibria`): how many
-   equilibria, which are stable, which lie inside the limits.
-2. **A safe state exists** (:func:`safe_by_region`): a trapping region around a stable
-   equilibrium inside the limits (:func:`certify.trapping.find_regions`), proven forward
-   invariant and inside the limits with the parameters as intervals. Every point of it
-   is safe for every parameter value, and it is not empty: its centre lies in a cover
-   sub-box that is not ``above`` the level, so the centre keeps every limit.
-3. **No safe state** (:func:`none_by_limit_rate`): every face of the window is
+1. **A safe state exists** (:func:`safe_by_region`): trapping regions around a stable
+   equilibrium inside the limits (:func:`certify.atlas_regions.find_box_region`,
+   :func:`certify.trapping.find_regions`), proven forward invariant and inside the limits
+   with the parameters as intervals. Every point of one is safe for every parameter
+   value, and it is not empty: it holds its centre, which keeps every limit. At the
+   resolution, a box may be covered by halved parameter parts, each with its own region.
+2. **No safe state** (:func:`none_by_limit_rate`): every face of the window is
    ``limit``, ``inflow`` or ``invariant`` (:func:`certify.faces.analyse_faces`), so a
    trajectory keeping the limits stays in the window; and the window is covered by boxes
    that either violate some limit on the whole box or where the rate ``dg/dt`` of one
    fixed limit ``g >= 0`` is at most ``-eps < 0``. Then ``g`` falls by ``eps`` per unit
    of time as long as the limits hold, so every start in the window crosses a limit by
    ``max g / eps``.
+3. **Equilibrium structure** (:func:`box_structure`, :func:`certify.points.find_equilibria`):
+   how many equilibria, which are stable, which lie inside the limits; the atlas proves
+   it for its leaves once every verdict is in, and before a map (an equilibrium inside
+   the limits spares it).
 4. Only when these do not decide, the map of fates (:func:`certify.prove.prove`):
    ``none`` when every cell is doomed or outside, ``safe`` when a safe cell lies wholly
    inside the limits.
@@ -26,11 +29,12 @@ from __future__ import annotations
 
 import time
 from fractions import Fraction
+from itertools import product
 
 import numpy as np
 
-__all__ = ["VERDICTS", "analyse_parameter_box", "equilibrium_structure", "safe_by_region",
-           "none_by_limit_rate"]
+__all__ = ["VERDICTS", "analyse_parameter_box", "box_structure", "equilibrium_structure",
+           "safe_by_region", "none_by_limit_rate"]
 
 #: Verdicts of a parameter box.
 VERDICTS = ("safe", "none", "undetermined")
@@ -38,6 +42,9 @@ VERDICTS = ("safe", "none", "undetermined")
 #: fails here is split, and its halves are easier).
 REGION_DEPTH = 12
 REGION_BOXES = 40_000
+#: Halvings of a finest box's parameters allowed when no single region serves it (each
+#: part then needs its own region).
+SPLIT_DEPTH = 2
 #: Depth of the equilibrium search of each box (the structure drawn in the atlas).
 EQUILIBRIUM_DEPTH = 8
 #: Budget of the cover of the window in the limit-rate test.
@@ -96,64 +103,140 @@ def _resting_points(model, programs, mid):
     return points, inside
 
 
-def safe_by_region(model):
-    """A trapping region proving that a safe state exists, or None.
+def _region_in(model, programs, params):
+    """A trapping region for the parameter box `params` (floats), and `resting`."""
+    from certify.atlas_regions import find_box_region
+    from certify.trapping import find_regions
+
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    spirals = False
+    points, inside = _resting_points(model, programs, mid)
+    for point, keeps in zip(points, inside):
+        n = len(point)
+        values = np.linalg.eigvals(
+            programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n))
+        if np.any(values.real >= 0) or not keeps:
+            continue
+        if np.any(values.imag != 0):
+            spirals = True
+            continue
+        region = find_box_region(model, programs, params, point)
+        if region is not None and _in_window(model, region.centre):
+            return region, True
+    if not spirals:
+        return None, any(inside)
+    search = find_regions(model, programs, params, max_depth=REGION_DEPTH,
+                          max_boxes=REGION_BOXES)
+    for region in search.regions:
+        if _in_window(model, region.centre):
+            return region, True
+    return None, any(inside)
+
+
+def _halves(params, positions):
+    """The ``2^k`` parameter boxes that halve `params` along every interval parameter.
+
+    The midpoints are floats, so the halves cover the box exactly.
+    """
+    out = []
+    for sides in product((0, 1), repeat=len(positions)):
+        child = [tuple(p) for p in params]
+        for k, side in zip(positions, sides):
+            lo, hi = child[k]
+            mid = 0.5 * (lo + hi)
+            child[k] = (lo, mid) if side == 0 else (mid, hi)
+        out.append(child)
+    return out
+
+
+def _stable_inside(model, programs, point, p):
+    """Float test: `point` is a stable equilibrium estimate keeping every limit at `p`."""
+    if point is None or not _in_window(model, point):
+        return False
+    n = len(point)
+    inputs = np.concatenate([point, p])
+    if programs.limits.n_outputs and not np.all(programs.limits.point(inputs) > 0):
+        return False
+    return bool(np.all(np.linalg.eigvals(programs.jacobian.point(inputs).reshape(n, n)).real
+                       < 0))
+
+
+def _rests_throughout(model, programs, params, positions):
+    """Float test: at every point of a grid of the parameter box some equilibrium is
+    stable and keeps the limits (else no set of regions can cover the box, and halving
+    it is not worth its cost). The midpoint's equilibria are followed by Newton's method
+    first; a full search only where that fails."""
+    from certify.atlas_regions import _equilibrium, float_equilibria, parameter_grid
+
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    points = [x for x in float_equilibria(model, programs, mid)
+              if _stable_inside(model, programs, x, mid)]
+    for p in parameter_grid(params, positions):
+        if not any(_stable_inside(model, programs, _equilibrium(programs, x, p), p)
+                   for x in points) \
+                and not any(_stable_inside(model, programs, x, p)
+                            for x in float_equilibria(model, programs, p)):
+            return False
+    return True
+
+
+def _regions_on(model, programs, params, positions, depth):
+    """Regions covering `params` by halving up to `depth` times, or None."""
+    region, resting = _region_in(model, programs, params)
+    if region is not None:
+        return [(params, region)], True
+    if depth == 0 or not resting or not _rests_throughout(model, programs, params, positions):
+        return None, resting
+    parts = []
+    for child in _halves(params, positions):
+        found, _ = _regions_on(model, programs, child, positions, depth - 1)
+        if found is None:
+            return None, resting
+        parts.extend(found)
+    return parts, resting
+
+
+def safe_by_region(model, split_depth=0):
+    """Trapping regions proving that a safe state exists, or None.
 
     Around each float estimate of a stable equilibrium inside the limits at the
     parameter midpoint (:func:`certify.atlas_regions.float_equilibria`), a parallelotope
-    along the eigenvectors (:func:`certify.atlas_regions.find_box_region`, for real
-    eigenvalues); where some such equilibrium is a spiral, also the quadratic Lyapunov
-    regions of :func:`certify.trapping.find_regions`. Soundness rests on the region's own
-    proof only: the estimates just say where to look.
+    (:func:`certify.atlas_regions.find_box_region`, for real eigenvalues); where some
+    such equilibrium is a spiral, also the quadratic Lyapunov regions of
+    :func:`certify.trapping.find_regions`. Soundness rests on the regions' own proofs
+    only: the estimates just say where to look. When no region serves the whole box,
+    the box is halved along every interval parameter, up to `split_depth` times, and
+    every part needs its own region: each parameter value then lies in a part whose
+    region is forward invariant and inside the limits for it.
 
     Parameters
     ----------
     model : certify.model.Model
         With the parameter box as intervals.
+    split_depth : int
+        Halvings of the parameter box allowed.
 
     Returns
     -------
-    region : certify.atlas_regions.BoxRegion or certify.trapping.Region or None
-        A region proven forward invariant and inside the limits for every parameter
-        value, whose centre lies in the window.
+    parts : list of (params, region) or None
+        ``params`` the part's ``(lo, hi)`` per model parameter (floats, exact), ``region``
+        a :class:`certify.atlas_regions.BoxRegion` or :class:`certify.trapping.Region`
+        proven forward invariant and inside the limits for every parameter value in the
+        part, whose centre lies in the window. The parts cover the box.
     resting : bool
         Some float estimate of an equilibrium keeps every limit at the midpoint (then
         the limit-rate test cannot succeed and is skipped).
     """
-    from certify.atlas_regions import find_box_region
     from certify.evaluate import parameter_enclosures
+    from certify.points import _interval_positions
     from certify.taylor import flow_programs
-    from certify.trapping import find_regions
 
     if model.uses_kinks:
         return None, False
     programs = flow_programs(model, 2)
-    params = parameter_enclosures(model)
-    mid = np.array([0.5 * (a + b) for a, b in params], float)
-    rng = np.random.default_rng(20261204)
-    spirals = False
+    params = [tuple(p) for p in parameter_enclosures(model)]
     with np.errstate(all="ignore"):
-        points, inside = _resting_points(model, programs, mid)
-        for point, keeps in zip(points, inside):
-            n = len(point)
-            values = np.linalg.eigvals(
-                programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n))
-            if np.any(values.real >= 0) or not keeps:
-                continue
-            if np.any(values.imag != 0):
-                spirals = True
-                continue
-            region = find_box_region(model, programs, params, point, rng)
-            if region is not None and _in_window(model, region.centre):
-                return region, True
-        if not spirals:
-            return None, any(inside)
-        search = find_regions(model, programs, params, max_depth=REGION_DEPTH,
-                              max_boxes=REGION_BOXES)
-    for region in search.regions:
-        if _in_window(model, region.centre):
-            return region, True
-    return None, any(inside)
+        return _regions_on(model, programs, params, _interval_positions(model), split_depth)
 
 
 def _rate_cover(programs, params, lo, hi, k):
@@ -264,6 +347,58 @@ def _region_record(region):
             "pieces": int(len(region.cover_class))}
 
 
+def _parts_record(model, parts):
+    """The region record of one part, or ``{"parts": [...]}`` with each part's box."""
+    from certify.certificate import fraction_text
+
+    if len(parts) == 1:
+        return _region_record(parts[0][1])
+    varied = [k for k, p in enumerate(model.parameters) if p.is_interval]
+    return {"parts": [{"params": {model.parameters[k].name: [fraction_text(Fraction(v))
+                                                             for v in params[k]]
+                                  for k in varied}, **_region_record(region)}
+                      for params, region in parts]}
+
+
+def _box_model(model_text, model_path, parameters):
+    from certify.sweep import parsed_model
+
+    return parsed_model(model_text, model_path).with_parameters(
+        {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
+
+
+def _structure_of(model):
+    """``(equilibrium_structure, any equilibrium proven inside the limits)``."""
+    from certify.points import find_equilibria
+
+    with np.errstate(all="ignore"):
+        equilibria = find_equilibria(model, max_depth=EQUILIBRIUM_DEPTH)
+    return (equilibrium_structure(equilibria),
+            any(p.limits == "inside" for p in equilibria.equilibria))
+
+
+def box_structure(model_text, model_path, parameters):
+    """The proven equilibrium structure of one parameter box (a worker of an atlas).
+
+    Parameters
+    ----------
+    model_text : str
+    model_path : str or None
+    parameters : dict[str, list of str]
+        ``[lo, hi]`` as exact texts for every parameter of the model.
+
+    Returns
+    -------
+    dict
+        :func:`equilibrium_structure` with ``seconds`` and ``cpu_seconds`` added.
+    """
+    started, cpu = time.monotonic(), time.process_time()
+    out, _ = _structure_of(_box_model(model_text, model_path, parameters))
+    out["seconds"] = round(time.monotonic() - started, 3)
+    out["cpu_seconds"] = round(time.process_time() - cpu, 3)
+    return out
+
+
 def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_limit, use_map,
                           fractions, finest, structure=True):
     """The verdict of one parameter box (the worker of an atlas).
@@ -287,8 +422,9 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
     finest : bool
         The box is at the resolution: it will not be split.
     structure : bool
-        Prove the equilibrium structure of a box that will not be split (the costliest
-        part for wide boxes).
+        Prove the equilibrium structure of a box that is decided or will not be split
+        (the costliest part for wide boxes; the atlas proves it later with
+        :func:`box_structure`). It is also proven before a map, which it can spare.
 
     Returns
     -------
@@ -296,30 +432,25 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
         ``verdict`` (one of :data:`VERDICTS`), ``by`` (``"trapping region"``,
         ``"limit rate"``, ``"map"`` or None), ``proof`` (what proves it), ``structure``
         (:func:`equilibrium_structure`; None for an undetermined box above the finest
-        level, which is split), ``seconds`` and, with a map, ``safe_bounds`` and
-        ``fractions``.
+        level, which is split), ``seconds``, ``cpu_seconds`` (of this process) and,
+        with a map, ``safe_bounds`` and ``fractions``.
     """
-    from certify.points import find_equilibria
-    from certify.sweep import parsed_model
-
-    started = time.monotonic()
-    model = parsed_model(model_text, model_path).with_parameters(
-        {name: (Fraction(lo), Fraction(hi)) for name, (lo, hi) in parameters.items()})
+    started, cpu = time.monotonic(), time.process_time()
+    model = _box_model(model_text, model_path, parameters)
     out = {"verdict": "undetermined", "by": None, "proof": None, "structure": None}
-    region, resting = safe_by_region(model)
-    if region is not None:
-        out.update(verdict="safe", by="trapping region", proof=_region_record(region))
+    parts, resting = safe_by_region(model, SPLIT_DEPTH if finest else 0)
+    if parts is not None:
+        out.update(verdict="safe", by="trapping region", proof=_parts_record(model, parts))
     elif not resting:
         rate = none_by_limit_rate(model)
         if rate is not None:
             out.update(verdict="none", by="limit rate", proof=rate)
-    if structure and (out["verdict"] != "undetermined" or finest):
-        with np.errstate(all="ignore"):
-            equilibria = find_equilibria(model, max_depth=EQUILIBRIUM_DEPTH)
-        out["structure"] = equilibrium_structure(equilibria)
+    map_next = use_map and finest and out["verdict"] == "undetermined" and not resting
+    if (structure and (out["verdict"] != "undetermined" or finest)) or map_next:
+        out["structure"], inside = _structure_of(model)
         # an equilibrium inside the limits is itself a safe state: no map can show "none"
-        resting = resting or any(p.limits == "inside" for p in equilibria.equilibria)
-    if fractions or (use_map and finest and out["verdict"] == "undetermined" and not resting):
+        resting = resting or inside
+    if fractions or (map_next and not resting):
         facts = _map_facts(model, max_depth, time_limit)
         out["safe_bounds"] = facts["safe_bounds"]
         out["fractions"] = facts["fractions"]
@@ -329,4 +460,5 @@ def analyse_parameter_box(model_text, model_path, parameters, max_depth, time_li
                        proof={"cells": facts["cells"], "depth_reached": facts["depth_reached"],
                               "stop_reason": facts["stop_reason"]})
     out["seconds"] = round(time.monotonic() - started, 3)
+    out["cpu_seconds"] = round(time.process_time() - cpu, 3)
     return out

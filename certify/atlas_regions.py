@@ -6,18 +6,21 @@ movement times the condition number of the linearisation, which for stiff models
 slow and a fast direction, as a chemostat at low dilution) exceeds the room inside the
 limits. In coordinates along the eigenvectors of the Jacobian the linear part is
 diagonal, so a box in those coordinates only has to be somewhat larger than the
-movement itself.
+movement itself. Near a fold the movement is large along a weakly pulling direction,
+and a face tilted otherwise (some eigenvectors swapped for state axes) can hold where
+the eigenvector faces do not; candidate frames, centres and radii are screened in
+floats and only the best are proven (:func:`find_box_region`).
 
 The region is ``R = {c + T u : |u_i| <= r_i}`` with exact binary numbers: ``c`` near
-the equilibrium, ``T`` the (real) eigenvectors of ``Df(c)`` at the parameter midpoint,
-``r`` the radii. Its face ``i`` on side ``s = +-1`` is ``u_i = s r_i``; its outward
+the equilibrium, ``T`` a frame (columns of unit length in window units), ``r`` the
+radii. Its face ``i`` on side ``s = +-1`` is ``u_i = s r_i``; its outward
 normal is ``s N_i`` with ``N`` the rows of ``sign(det T) adj(T)`` (a positive multiple
 of ``T^-1``), enclosed with intervals. It is proven, for every parameter value in the
 boxes, that
 
 * on every face, ``s N_i . f(x) < 0``: on a cover of the face by pieces, with the
   natural interval extension or the mean-value form in ``u`` at the piece's midpoint
-  (``d/du_k (N_i . f) = N_i . Df T_k``, nearly zero across faces by the choice of T);
+  (``d/du_k (N_i . f) = N_i . Df T_k``, nearly zero across faces for eigenvectors);
 * every limit holds on ``R``: on a cover of ``R`` by pieces.
 
 Then ``R`` is forward invariant (at the last time a trajectory is in ``R`` it sits on
@@ -29,6 +32,7 @@ negative there) and inside the limits, so every point of it is safe; it is not e
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import product
 
 import numpy as np
 
@@ -37,10 +41,14 @@ from .evaluate import evaluate_boxes, evaluate_limits
 from .faces import _bisect_until_proven
 from .trapping import _binary
 
-__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria", "FACTORS"]
+__all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria",
+           "float_margins", "parameter_grid", "FACTORS", "ATTEMPTS"]
 
-#: Multiples of the float estimate of the equilibrium's movement tried as radii.
-FACTORS = (1.5, 2.0, 3.0, 4.0, 6.0, 9.0)
+#: Multiples of the float estimate of the equilibrium's movement tried as radii, per
+#: axis (above two states every other one, so that the screening stays cheap).
+FACTORS = (1.25, 1.5, 2.0, 3.0, 4.0, 6.0, 9.0, 14.0, 20.0, 30.0)
+#: Interval proofs tried per equilibrium, best float screening first.
+ATTEMPTS = 3
 #: Bisection depth of the face and region covers (per free axis).
 COVER_DEPTH = 7
 
@@ -297,20 +305,139 @@ def float_equilibria(model, programs, p, starts=None):
     return found
 
 
-def _frame(jac, width):
-    """Real eigenvectors of a stable Jacobian, scaled to unit length in window units."""
+def _frames(jac, width):
+    """Candidate frames around a stable node: eigenvectors, some swapped for state axes.
+
+    Column ``k`` of the first frame is the eigenvector of eigenvalue ``k`` (unit length
+    in window units). Then every frame with one eigenvector replaced by one state axis,
+    then the state axes. A face along a slow direction of a moving equilibrium can need
+    another tilt than the linearisation's (in a chemostat, a face of constant
+    substrate), and which one only the float screening of :func:`find_box_region` tells.
+    Frames with ``|det|`` below ``1e-3`` (in window units) are left out.
+    """
     values, vectors = np.linalg.eig(jac)
     if np.any(np.abs(values.imag) > 0) or np.any(values.real >= 0):
-        return None
+        return []
     vectors = vectors.real / np.linalg.norm(vectors.real / width[:, None], axis=0)
-    frame = _binary(vectors)
-    if abs(np.linalg.det(frame / width[:, None])) < 1e-6:
-        return None
-    return frame
+    axes = np.diag(width)
+    n = len(width)
+    frames = [vectors]
+    for k in range(n):
+        for j in range(n):
+            frame = vectors.copy()
+            frame[:, k] = axes[:, j]
+            frames.append(frame)
+    frames.append(axes)
+    out = []
+    for frame in frames:
+        frame = _binary(frame)
+        if abs(np.linalg.det(frame / width[:, None])) >= 1e-3 \
+                and not any(np.array_equal(frame, f) for f in out):
+            out.append(frame)
+    return out
 
 
-def find_box_region(model, programs, params, point, rng):
+def parameter_grid(params, positions):
+    """The points ``{lo, mid, hi}^k`` over the interval parameters at `positions`.
+
+    The other parameters sit at their midpoint (they are points, or enclosures of one
+    value). For more than three interval parameters only the corners and the midpoint.
+    """
+    p = np.array(params, float).reshape(-1, 2)
+    base = 0.5 * (p[:, 0] + p[:, 1])
+    if not positions:
+        return base[None]
+    levels = (0.0, 0.5, 1.0) if len(positions) <= 3 else (0.0, 1.0)
+    rows = []
+    for t in product(levels, repeat=len(positions)):
+        row = base.copy()
+        for k, tk in zip(positions, t):
+            row[k] = p[k, 0] + tk * (p[k, 1] - p[k, 0])
+        rows.append(row)
+    if len(positions) > 3:
+        rows.append(base)
+    return np.array(rows)
+
+
+def _face_pattern(n, count):
+    """Points of the faces of ``|u_i| <= 1`` (and the centre), with the outward axis.
+
+    Returns
+    -------
+    u : ndarray, shape (k, n)
+    axis : ndarray of int, shape (k,)
+        ``i`` for a point on face ``u_i = +-1``, -1 for the centre.
+    side : ndarray, shape (k,)
+    """
+    t = np.linspace(-1.0, 1.0, count)
+    rest = list(product(t, repeat=n - 1))
+    rest = np.array(rest, float).reshape(len(rest), n - 1)
+    us, axes, sides = [np.zeros((1, n))], [np.array([-1])], [np.zeros(1)]
+    for i in range(n):
+        for side in (1.0, -1.0):
+            u = np.empty((len(rest), n))
+            u[:, [j for j in range(n) if j != i]] = rest
+            u[:, i] = side
+            us.append(u)
+            axes.append(np.full(len(rest), i))
+            sides.append(np.full(len(rest), side))
+    return np.concatenate(us), np.concatenate(axes), np.concatenate(sides)
+
+
+def float_margins(programs, samples, centre, frame, radii, count=7):
+    """Float screening of parallelotopes (not rigorous; it picks what to prove).
+
+    Parameters
+    ----------
+    programs : certify.taylor.FlowPrograms
+    samples : ndarray, shape (k, p)
+        Parameter points.
+    centre : ndarray, shape (n,)
+    frame : ndarray, shape (n, n)
+    radii : ndarray, shape (m, n)
+        One parallelotope per row.
+    count : int
+        Points per free axis of each face.
+
+    Returns
+    -------
+    ndarray, shape (m,)
+        Per parallelotope, the largest outward rate ``s du_i/dt / r_i`` over sampled face
+        points and parameter samples (negative: every sampled face pulls inward), or
+        ``inf`` when a limit fails at a sampled face point or at the centre.
+    """
+    radii = np.atleast_2d(radii)
+    m, n = radii.shape
+    pattern, axis, side = _face_pattern(n, count)
+    k = len(pattern)
+    u = (pattern[None] * radii[:, None]).reshape(-1, n)          # (m k, n)
+    x = centre + u @ frame.T
+    inputs = np.concatenate([np.tile(x, (len(samples), 1)),
+                             np.repeat(samples, len(x), axis=0)], axis=1)
+    shape = (len(samples), m, k)
+    keeps = np.ones(shape, bool)
+    if programs.limits.n_outputs:
+        keeps = np.all(programs.limits.point(inputs) > 0, axis=-1).reshape(shape)
+    du = (programs.field.point(inputs) @ np.linalg.inv(frame).T).reshape(shape + (n,))
+    on_face = axis >= 0
+    rows = np.arange(k)[on_face]
+    rate = side[on_face] * du[:, :, rows, axis[on_face]] / radii[:, axis[on_face]]
+    with np.errstate(invalid="ignore"):
+        worst = np.max(rate, axis=(0, 2))
+    worst[~np.all(keeps, axis=(0, 2)) | ~np.isfinite(worst)] = np.inf
+    return worst
+
+
+def find_box_region(model, programs, params, point, attempts=ATTEMPTS):
     """A parallelotope trapping region around the equilibrium estimate `point`, or None.
+
+    For each candidate frame (:func:`_frames`), the equilibrium is followed in floats
+    over a grid of the parameter box (:func:`parameter_grid`); the centre is the middle
+    of its track in frame coordinates and the radii are the track's half-widths times
+    factors from :data:`FACTORS`, chosen per axis, plus a slack for the interval
+    overestimation. Every such parallelotope is screened in floats
+    (:func:`float_margins`); the `attempts` with the strongest inward pull are proven
+    (:func:`prove_box_region`). Soundness rests on that proof only.
 
     Parameters
     ----------
@@ -319,40 +446,52 @@ def find_box_region(model, programs, params, point, rng):
     params : sequence of (float, float)
     point : ndarray, shape (n,)
         A float estimate of a stable equilibrium inside the limits.
-    rng : numpy.random.Generator
-        For the parameter samples of the float estimate of the movement.
+    attempts : int
+        Interval proofs tried at most.
 
     Returns
     -------
     BoxRegion or None
     """
     from .points import _interval_positions, _programs
-    from .trapping import _parameter_samples
 
     width = np.array([float(b - a) for a, b in model.window])
     q = np.ldexp(1.0, np.frexp(width)[1] - 40)
-    centre = np.round(np.asarray(point, float) / q) * q
+    point = np.asarray(point, float)
     mid = np.array([0.5 * (a + b) for a, b in params], float)
-    n = len(centre)
-    jac = programs.jacobian.point(np.concatenate([centre, mid])).reshape(n, n)
-    frame = _frame(jac, width)
-    if frame is None:
-        return None
-    moved = np.zeros(n)
-    for p in _parameter_samples(params, rng):
-        x = _equilibrium(programs, centre, p)
-        if x is None:
-            return None
-        moved = np.maximum(moved, np.abs(np.linalg.solve(frame, x - centre)))
+    n = len(point)
     positions = _interval_positions(model)
+    samples = parameter_grid(params, positions)
+    track = [_equilibrium(programs, point, p) for p in samples]
+    if any(x is None for x in track):
+        return None
+    track = np.array(track)
+    jacobians = programs.jacobian.point(np.concatenate([track, samples], axis=1))
+    if not np.all(np.linalg.eigvals(jacobians.reshape(-1, n, n)).real < 0):
+        return None   # the track meets a fold or leaves for another equilibrium
+    jac = programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n)
+    candidates = []
+    for frame in _frames(jac, width):
+        u = np.linalg.solve(frame, (track - point).T).T
+        lo, hi = u.min(axis=0), u.max(axis=0)
+        centre = np.round((point + frame @ (0.5 * (lo + hi))) / q) * q
+        half = 0.5 * (hi - lo) + np.abs(np.linalg.solve(frame, centre - point
+                                                        - frame @ (0.5 * (lo + hi))))
+        # a direction the equilibrium does not move along still needs room for the
+        # overestimation of interval arithmetic
+        half = half + 0.25 * np.max(half) + 2.0 ** -20
+        factors = np.array(list(product(FACTORS if n <= 2 else FACTORS[::2], repeat=n)))
+        radii = _binary(half * factors, 20)
+        margins = float_margins(programs, samples, centre, frame, radii, 7 if n <= 2 else 4)
+        for j in np.flatnonzero(margins < 0):
+            candidates.append((margins[j], len(candidates), centre, frame, radii[j]))
+    if not candidates:
+        return None
     sensitivity = None
     if positions and not model.uses_kinks:
         sensitivity = (_programs(model).param_jacobian, positions)
-    # a direction the equilibrium does not move along still needs room for the
-    # overestimation of interval arithmetic
-    moved = moved + 0.25 * np.max(moved) + 2.0 ** -20
-    for factor in FACTORS:
-        radii = _binary(factor * moved, 20)
+    candidates.sort(key=lambda c: c[:2])
+    for _, _, centre, frame, radii in candidates[:attempts]:
         region = prove_box_region(programs, params, centre, frame, radii,
                                   sensitivity=sensitivity)
         if region is not None:

@@ -126,6 +126,26 @@ def test_andrews_fermenter_fold(tmp_path):
             assert lo > 0.25
         else:
             assert lo < 0.25 + 2 * 0.3 / 16 and hi > 0.25 - 2 * 0.3 / 16
+    # the proven structure of every leaf (proven after the verdicts) matches the closed
+    # form where it is uniform: the washout state (s_in, 0), stable when mu(s_in) < D,
+    # and the roots of the quadratic with s < s_in (the smaller one stable)
+    mu = lambda s: mu_max * s / (Ks + s + s * s / Ki)   # noqa: E731
+    uniform = 0
+    for box in result.boxes:
+        structure = box["structure"]
+        assert structure is not None
+        if structure["changes"]:
+            continue
+        uniform += 1
+        for D in (float(v) for v in _ends(box, "D")):
+            a, b, c = D / Ki, D - mu_max, D * Ks
+            disc = b * b - 4 * a * c
+            roots = [] if disc < 0 else [(-b + sign * math.sqrt(disc)) / (2 * a)
+                                         for sign in (-1, 1)]
+            roots = [r for r in roots if 0 < r < s_in]
+            assert structure["count"] == 1 + len(roots)
+            assert structure["stable"] == (1 if roots else 0) + (mu(s_in) < D)
+    assert uniform >= 1   # the check above is not vacuous
 
 
 def test_logistic_harvest_matches_box_by_box(tmp_path):
@@ -161,28 +181,32 @@ def _box_answer(model, bounds):
                                  True)
 
 
-def test_safe_region_confirmed_by_simulation():
-    # scipy solve_ivp (tight tolerances) from points on the boundary of the proven
-    # region, at corners and random values of the parameter box: every trajectory
-    # stays in the region and within the limits.
-    model = load_model("models/fermenter.toml")
-    answer = _box_answer(model, {"D": ["13/80", "29/160"], "s_in": ["8", "69/8"]})
-    assert answer["verdict"] == "safe" and answer["by"] == "trapping region"
-    proof = answer["proof"]
-    centre = np.array([float(Fraction(v)) for v in proof["centre"]])
-    frame = np.array([[float(Fraction(v)) for v in row] for row in proof["frame"]])
-    radii = np.array([float(Fraction(v)) for v in proof["radii"]])
-    rng = np.random.default_rng(7)
+def _andrews_operating(D, s_in, mu_max=0.5, Ks=0.5, Ki=2.0, Y=0.5):
+    # Andrews 1968 (mem): mu(s) = D is (D/Ki) s^2 + (D - mu_max) s + D Ks = 0; the smaller
+    # root s1 is the stable operating point, x* = Y (s_in - s1) (steady-state balance,
+    # Monod 1950); None past the fold.
+    a, b, c = D / Ki, D - mu_max, D * Ks
+    disc = b * b - 4 * a * c
+    if disc < 0:
+        return None
+    s1 = (-b - math.sqrt(disc)) / (2 * a)
+    return s1, Y * (s_in - s1)
+
+
+def _confirm_region(record, ds, feeds, per_face=7):
+    """scipy solve_ivp (tight tolerances) from the boundary of a proven parallelotope,
+    at the given parameter values: every trajectory stays in it and within the limits."""
+    centre = np.array([float(Fraction(v)) for v in record["centre"]])
+    frame = np.array([[float(Fraction(v)) for v in row] for row in record["frame"]])
+    radii = np.array([float(Fraction(v)) for v in record["radii"]])
     starts = []
     for i in range(2):
         for side in (-1, 1):
-            for t in np.linspace(-1, 1, 7):
+            for t in np.linspace(-1, 1, per_face):
                 u = np.zeros(2)
                 u[i] = side * radii[i]
                 u[1 - i] = t * radii[1 - i]
                 starts.append(centre + frame @ u)
-    ds = [0.1625, 0.18125] + list(rng.uniform(0.1625, 0.18125, 2))
-    feeds = [8.0, 8.625] + list(rng.uniform(8.0, 8.625, 2))
     for D in ds:
         for s_in in feeds:
             def f(t, y, D=D, s_in=s_in):
@@ -195,6 +219,87 @@ def test_safe_region_confirmed_by_simulation():
                 u = np.linalg.solve(frame, (sol.y.T - centre).T).T
                 assert np.all(np.abs(u) <= radii * (1 + 1e-6) + 1e-9)
                 assert np.all(sol.y[1] >= 1) and np.all(sol.y[1] <= 9) and np.all(sol.y[0] <= 9)
+
+
+def _values(lo, hi, rng):
+    lo, hi = float(Fraction(lo)), float(Fraction(hi))
+    return [lo, hi] + list(rng.uniform(lo, hi, 2))
+
+
+@pytest.mark.parametrize("D, s_in", [
+    (["13/80", "29/160"], ["8", "69/8"]),
+    # a 1/64 box just left of the fold (D = 0.25) at the lowest feed, where the
+    # operating point sits barely above the biomass floor
+    (["31/128", "79/320"], ["3", "101/32"]),
+])
+def test_safe_region_confirmed_by_simulation(D, s_in):
+    model = load_model("models/fermenter.toml")
+    answer = _box_answer(model, {"D": D, "s_in": s_in})
+    assert answer["verdict"] == "safe" and answer["by"] == "trapping region"
+    # the closed form agrees: the operating point keeps the limits on the whole box
+    # (s1 rises and x* falls with D, x* rises with s_in)
+    s1, x = _andrews_operating(float(Fraction(D[1])), float(Fraction(s_in[0])))
+    assert 1 < x and s1 < 9 and _andrews_operating(float(Fraction(D[0])),
+                                                   float(Fraction(s_in[1])))[1] < 9
+    rng = np.random.default_rng(7)
+    _confirm_region(answer["proof"], _values(*D, rng), _values(*s_in, rng))
+
+
+def test_regions_of_halved_parameter_boxes_cover_the_box():
+    # Near the exchange of stability of the washout state and the saddle (s_in = s2(D))
+    # no single parallelotope is found for this 1/64 box; its four quarters each get
+    # one. Every part is checked by scipy simulation at its own corners and random
+    # values, and the parts tile the box.
+    model = load_model("models/fermenter.toml")
+    D, s_in = ("13/80", "107/640"), ("101/32", "53/16")
+    answer = _box_answer(model, {"D": D, "s_in": s_in})
+    assert answer["verdict"] == "safe" and answer["by"] == "trapping region"
+    parts = answer["proof"]["parts"]
+    assert len(parts) == 4
+    rng = np.random.default_rng(3)
+    boxes = []
+    for part in parts:
+        (d0, d1), (f0, f1) = ([Fraction(v) for v in part["params"][k]] for k in ("D", "s_in"))
+        boxes.append((d0, d1, f0, f1))
+        _confirm_region(part, _values(d0, d1, rng)[:3], _values(f0, f1, rng)[:3], per_face=4)
+    # the parts cover the box (its corners and random points lie in some part); they
+    # may reach a rounding beyond it, as the proofs use outward float enclosures
+    points = [(Fraction(d), Fraction(f)) for d in D for f in s_in]
+    points += [(Fraction(d), Fraction(f)) for d, f in zip(_values(*D, rng), _values(*s_in, rng))]
+    for d, f in points:
+        assert any(d0 <= d <= d1 and f0 <= f <= f1 for d0, d1, f0, f1 in boxes)
+    area = sum((d1 - d0) * (f1 - f0) for d0, d1, f0, f1 in boxes)
+    hull = ((max(b[1] for b in boxes) - min(b[0] for b in boxes))
+            * (max(b[3] for b in boxes) - min(b[2] for b in boxes)))
+    assert area == hull
+
+
+def test_three_state_competition_chemostat(tmp_path):
+    # A three-state model (models/chemostat_competition.toml, a weak contaminant
+    # m1 = 0.5): the product strain alone rests at S* = a2 D / (m2 - D),
+    # y* = Y (S_in - S*) (Monod 1950 steady-state balance); the contaminant cannot
+    # invade when g1(S*) < D (competitive exclusion, Hsu, Hubbell & Waltman 1977 (mem)).
+    # A safe box needs y* >= 0.1 there for every D in it; a none box must hold no
+    # equilibrium keeping the product floor (the other equilibria have y = 0).
+    model = load_model("models/chemostat_competition.toml").with_parameters({"m1": "0.5"})
+    result = _run(model, {"D": ("0.25", "1.25")}, tmp_path, 8)
+    m1, a1, m2, a2, Y, S_in = 0.5, 2.0, 1.5, 4.0, 0.5, 5.0
+
+    def resting(D):
+        S = a2 * D / (m2 - D)
+        return Y * (S_in - S), m1 * S / (a1 + S)
+
+    assert {e["verdict"] for e in result.boxes} >= {"safe", "none"}
+    for box in result.boxes:
+        lo, hi = (float(v) for v in _ends(box, "D"))
+        if box["verdict"] == "safe":
+            for D in np.linspace(lo, hi, 9):
+                y, g1 = resting(D)
+                assert 0.1 <= y <= 2.4 and g1 < D
+        elif box["verdict"] == "none":
+            assert resting(lo)[0] < 0.1
+    # where the product strain rests well above its floor the atlas says so
+    assert all(e["verdict"] == "safe" for e in result.boxes if float(_ends(e, "D")[1]) <= 0.75)
 
 
 def test_none_box_is_doomed_by_simulation():

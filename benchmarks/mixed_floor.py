@@ -53,7 +53,8 @@ from certify import load_model
 from certify.simulate import simulate
 from certify.taylor import flow_programs
 
-__all__ = ["MixedFloor", "mixed_floor", "clopper_pearson"]
+__all__ = ["MixedFloor", "mixed_floor", "clopper_pearson", "floor_text", "floor_note",
+           "describe"]
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -226,11 +227,31 @@ def mixed_floor(model, depth, horizon, dt, *, cells=2000, grid=None, random=None
                       starts=int(inside.sum()))
 
 
+def floor_text(floor):
+    """The floor in % with its interval, e.g. ``"5.2 (4.3-6.3)"``."""
+    return f"{100 * floor.share:.1f} ({100 * floor.low:.1f}-{100 * floor.high:.1f})"
+
+
+def floor_note(cells_of):
+    """The sentence explaining the mixed-floor column of a results table.
+
+    Parameters
+    ----------
+    cells_of : str
+        Which cells, e.g. ``"depth D"`` or ``"the depth reached"``.
+    """
+    return (f"Mixed floor = share of the window (with its 95 % Clopper-Pearson interval) "
+            f"inside the limits at time 0 and in cells of {cells_of} that hold a start "
+            f"crossing a limit by the RK4 horizon T and a start keeping every limit up to "
+            f"2T (RK4 from a grid with corners plus random starts in each sampled cell, "
+            f"`benchmarks/mixed_floor.py`): no sound method labels such a cell, so the "
+            f"undecided share cannot fall below it at that depth (a float estimate).")
+
+
 def describe(floor):
     """One line: the floor in % with its interval and sample."""
-    return (f"mixed floor {100 * floor.share:.1f} % (95 % CI {100 * floor.low:.1f}-"
-            f"{100 * floor.high:.1f}) at depth {floor.depth}: {floor.cells:,} cells x "
-            f"{floor.points_per_cell} starts, RK4 dt {floor.dt:g} to T = {floor.horizon:g} "
+    return (f"mixed floor {floor_text(floor)} % (95 % CI) at depth {floor.depth}: "
+            f"{floor.cells:,} cells x {floor.points_per_cell} starts, RK4 dt {floor.dt:g} to T = {floor.horizon:g} "
             f"and 2T; {floor.unknown:,} of {floor.starts:,} starts unknown")
 
 

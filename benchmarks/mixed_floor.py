@@ -262,7 +262,8 @@ def main(argv=None):
     ----------
     argv : list of str, optional
         ``--models NAME ...`` (files in models/), ``--depths D ...``, ``--horizon T`` and
-        ``--dt H`` (default: the model's case in ``dimensions_bench.CASES``),
+        ``--dt H`` (default: the model's case in ``dimensions_bench.CASES`` or
+        ``library_bench.CASES_2D``),
         ``--cells K``, ``--seed S``.
 
     Returns
@@ -271,6 +272,8 @@ def main(argv=None):
         0.
     """
     from dimensions_bench import CASES  # the benches import this module, not the reverse
+    from library_bench import CASES_2D
+    cases = {**{case.file: case for case in CASES_2D}, **CASES}
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--models", nargs="+", required=True)
     parser.add_argument("--depths", type=int, nargs="+", required=True)
@@ -282,7 +285,9 @@ def main(argv=None):
     for name in args.models:
         name = name if name.endswith(".toml") else name + ".toml"
         model = load_model(ROOT / "models" / name)
-        case = CASES.get(name)
+        case = cases.get(name)
+        if case is None and not (args.horizon and args.dt):
+            parser.error(f"{name}: no RK4 case in the benches; give --horizon and --dt")
         horizon = args.horizon or case.horizon
         dt = args.dt or case.dt
         for depth in args.depths:

@@ -12,7 +12,7 @@ import pytest
 
 from certify.model import parse_model
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "benchmarks"))
+sys.path.append(str(Path(__file__).resolve().parent.parent / "benchmarks"))  # not a package
 from mixed_floor import clopper_pearson, mixed_floor  # noqa: E402
 
 GROWTH_1D = """

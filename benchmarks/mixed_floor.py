@@ -11,7 +11,7 @@ any sound method at that cell size, and so is every coarser cell around it. The 
 the window in such *mixed* cells of depth D (cells of 1/2^D of each side) is a floor
 under the undecided share of a proof whose cells are no finer than depth D.
 
-The estimate: draw K points u uniformly in the window (a fixed generator seed), take the
+The estimate: draw K points u uniformly in the window (numpy's default generator, a fixed stream), take the
 depth-D cell of each, and simulate a fixed set of starts in that cell (a grid of ``grid``
 points per axis, corners included, plus ``random`` uniform points) with classic RK4
 (``certify.simulate``, the model's own right-hand side program, interval parameters at
@@ -154,7 +154,7 @@ def _run(programs, params, x0, t_end, dt):
     return result.states, watch
 
 
-def mixed_floor(model, depth, horizon, dt, *, cells=2000, grid=None, random=None, seed=0,
+def mixed_floor(model, depth, horizon, dt, *, cells=2000, grid=None, random=None, stream=0,
                 rel_tol=1e-6):
     """Estimate the share of the window in cells of `depth` that hold two fates.
 
@@ -176,8 +176,9 @@ def mixed_floor(model, depth, horizon, dt, *, cells=2000, grid=None, random=None
     random : int, optional
         Uniform random starts per cell besides the grid (default 13 up to three states,
         16 above).
-    seed : int
-        Seed of ``numpy.random.default_rng``.
+    stream : int
+        Number of the random stream: the draws come from
+        ``numpy.random.default_rng(stream)``.
     rel_tol : float
         Margin of the fate judgements, relative to the largest magnitude of each limit
         over the starts: a crosser goes below ``-tol``, a keeper stays above ``+tol``.
@@ -189,7 +190,7 @@ def mixed_floor(model, depth, horizon, dt, *, cells=2000, grid=None, random=None
     n = len(model.states)
     grid = grid if grid is not None else (3 if n <= 3 else 2)
     random = random if random is not None else (13 if n <= 3 else 16)
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(stream)
     lo = np.array([float(a) for a, _ in model.window])
     side = (np.array([float(b) for _, b in model.window]) - lo) / 2 ** depth
     u = lo + rng.uniform(0.0, 1.0, (cells, n)) * side * 2 ** depth
@@ -264,7 +265,7 @@ def main(argv=None):
         ``--models NAME ...`` (files in models/), ``--depths D ...``, ``--horizon T`` and
         ``--dt H`` (default: the model's case in ``dimensions_bench.CASES`` or
         ``library_bench.CASES_2D``),
-        ``--cells K``, ``--seed S``.
+        ``--cells K``, ``--stream S`` (random stream, default 0).
 
     Returns
     -------
@@ -280,7 +281,7 @@ def main(argv=None):
     parser.add_argument("--horizon", type=float)
     parser.add_argument("--dt", type=float)
     parser.add_argument("--cells", type=int, default=2000)
-    parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument("--stream", type=int, default=0)
     args = parser.parse_args(argv)
     for name in args.models:
         name = name if name.endswith(".toml") else name + ".toml"
@@ -291,7 +292,7 @@ def main(argv=None):
         horizon = args.horizon or case.horizon
         dt = args.dt or case.dt
         for depth in args.depths:
-            floor = mixed_floor(model, depth, horizon, dt, cells=args.cells, seed=args.seed)
+            floor = mixed_floor(model, depth, horizon, dt, cells=args.cells, stream=args.stream)
             print(f"{name}: {describe(floor)}", flush=True)
     return 0
 

@@ -65,7 +65,7 @@ def test_growth_1d_one_mixed_cell(depth):
     # divide 2^D), so exactly the cell holding 0 is mixed: share 2^-D. The cell holding
     # x = 1 has starts outside and starts that cross: not mixed.
     model = parse_model(GROWTH_1D.replace("{sign}", ""))
-    floor = mixed_floor(model, depth, horizon=25.0, dt=0.05, cells=600, seed=1)
+    floor = mixed_floor(model, depth, horizon=25.0, dt=0.05, cells=600, stream=1)
     exact = 2.0 ** -depth
     assert floor.low <= exact <= floor.high
     assert floor.mixed > 0
@@ -76,7 +76,7 @@ def test_outside_starts_do_not_make_a_cell_mixed():
     # starts above 1 are outside at time 0. A straddling cell may be safe (docs/labels.md:
     # a label speaks about the starts that keep the limits at time 0): no mixed cell.
     model = parse_model(GROWTH_1D.replace("{sign}", "-"))
-    floor = mixed_floor(model, 4, horizon=25.0, dt=0.05, cells=600, seed=1)
+    floor = mixed_floor(model, 4, horizon=25.0, dt=0.05, cells=600, stream=1)
     assert floor.mixed == 0
     assert floor.high < 0.01
 
@@ -93,6 +93,6 @@ def test_growth_2d_cells_on_the_separatrix():
     mixed_cells = sum(1 for i, j in product(range(k), repeat=2)
                       if -1 + i * wx + -1 + j * wy < 0 < -1 + (i + 1) * wx + -1 + (j + 1) * wy)
     exact = mixed_cells / k ** 2
-    floor = mixed_floor(model, depth, horizon=25.0, dt=0.05, cells=1500, seed=2)
+    floor = mixed_floor(model, depth, horizon=25.0, dt=0.05, cells=1500, stream=2)
     assert floor.low <= exact <= floor.high
     assert floor.points_per_cell == 3 ** 2 + 13

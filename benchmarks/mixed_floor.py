@@ -11,10 +11,10 @@ any sound method at that cell size, and so is every coarser cell around it. The 
 the window in such *mixed* cells of depth D (cells of 1/2^D of each side) is a floor
 under the undecided share of a proof whose cells are no finer than depth D.
 
-The estimate: draw K points u uniformly in the window (numpy's default generator, a fixed stream), take the
-depth-D cell of each, and simulate a fixed set of starts in that cell (a grid of ``grid``
-points per axis, corners included, plus ``random`` uniform points) with classic RK4
-(``certify.simulate``, the model's own right-hand side program, interval parameters at
+The estimate: draw K points u uniformly in the window (numpy's default generator, a
+fixed stream), take the depth-D cell of each, and simulate a fixed set of starts in that
+cell (a grid of ``grid`` points per axis, corners included, plus ``random`` uniform
+points) with classic RK4 (``certify.simulate``, the model's own right-hand side program, interval parameters at
 their midpoints). A start that keeps the limits at time 0 is
 
 - a *crosser* when some limit value falls below ``-tol`` by the horizon T;
@@ -252,8 +252,8 @@ def floor_note(cells_of):
 def describe(floor):
     """One line: the floor in % with its interval and sample."""
     return (f"mixed floor {floor_text(floor)} % (95 % CI) at depth {floor.depth}: "
-            f"{floor.cells:,} cells x {floor.points_per_cell} starts, RK4 dt {floor.dt:g} to T = {floor.horizon:g} "
-            f"and 2T; {floor.unknown:,} of {floor.starts:,} starts unknown")
+            f"{floor.cells:,} cells x {floor.points_per_cell} starts, RK4 dt {floor.dt:g} "
+            f"to T = {floor.horizon:g} and 2T; {floor.unknown:,} of {floor.starts:,} starts unknown")
 
 
 def main(argv=None):
@@ -292,7 +292,8 @@ def main(argv=None):
         horizon = args.horizon or case.horizon
         dt = args.dt or case.dt
         for depth in args.depths:
-            floor = mixed_floor(model, depth, horizon, dt, cells=args.cells, stream=args.stream)
+            floor = mixed_floor(model, depth, horizon, dt, cells=args.cells,
+                                stream=args.stream)
             print(f"{name}: {describe(floor)}", flush=True)
     return 0
 

@@ -14,8 +14,8 @@ under the undecided share of a proof whose cells are no finer than depth D.
 The estimate: draw K points u uniformly in the window (numpy's default generator, a
 fixed stream), take the depth-D cell of each, and simulate a fixed set of starts in that
 cell (a grid of ``grid`` points per axis, corners included, plus ``random`` uniform
-points) with classic RK4 (``certify.simulate``, the model's own right-hand side program, interval parameters at
-their midpoints). A start that keeps the limits at time 0 is
+points) with classic RK4 (``certify.simulate``, the model's own right-hand side
+program, interval parameters at their midpoints). A start that keeps the limits at time 0 is
 
 - a *crosser* when some limit value falls below ``-tol`` by the horizon T;
 - a *keeper* when every limit value stays above ``+tol`` up to 2T and the state stays
@@ -253,7 +253,8 @@ def describe(floor):
     """One line: the floor in % with its interval and sample."""
     return (f"mixed floor {floor_text(floor)} % (95 % CI) at depth {floor.depth}: "
             f"{floor.cells:,} cells x {floor.points_per_cell} starts, RK4 dt {floor.dt:g} "
-            f"to T = {floor.horizon:g} and 2T; {floor.unknown:,} of {floor.starts:,} starts unknown")
+            f"to T = {floor.horizon:g} and 2T; {floor.unknown:,} of {floor.starts:,} starts "
+            f"unknown")
 
 
 def main(argv=None):

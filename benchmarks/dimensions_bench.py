@@ -42,7 +42,7 @@ from results_file import measured_on, write_section
 
 from flow_bench import machine
 from library_bench import Case, time_proof, time_simulation
-from mixed_floor import floor_note, floor_text, mixed_floor
+from mixed_floor import floor_note, floor_text, mixed_floor, sample_text
 
 from certify import load_model
 
@@ -142,7 +142,7 @@ def render(rows, info, load_end):
             f"| {r['wall']:.1f} | {r['cpu']:.1f} | {r['repeat']} | {r['peak_mb']:,.0f} "
             f"| {r['cert_mb']:.1f} | {r['horizon']:g} | {r['sim_cpu']:,.1f} "
             f"| {r['sim_cpu'] / r['cpu']:.2f} | {r['stop']} | {floor_text(r['floor'])} "
-            f"| {r['floor'].cells:,} cells x {r['floor'].points_per_cell} starts |")
+            f"| {sample_text(r['floor'])} |")
     return "\n".join(lines) + "\n"
 
 

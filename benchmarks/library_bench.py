@@ -45,7 +45,7 @@ from results_file import measured_on, write_section
 import numpy as np
 
 from flow_bench import grid_centres, machine, parameter_bounds
-from mixed_floor import floor_note, floor_text, mixed_floor
+from mixed_floor import floor_note, floor_text, mixed_floor, sample_text
 
 from certify import load_model, prove
 from certify.cells import CellTree
@@ -201,8 +201,8 @@ def render(rows, info, load_end):
         "| model | dim | D | cell side | cells | undecided % | proof wall (s) "
         "| proof CPU (s) | flow (s) | graph (s) | write (s) | certificate (MB) "
         "| RK4 horizon | RK4 grid wall (s) | ratio | peak memory (MB) "
-        "| mixed floor % (95 % CI) |",
-        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+        "| mixed floor % (95 % CI) | floor sample |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
     for r in rows:
         lines.append(
@@ -211,7 +211,8 @@ def render(rows, info, load_end):
             f"| {r['cpu']:.1f} | {r['flow']:.1f} | {r['graph']:.1f} | {r['io']:.1f} "
             f"| {r['cert_mb']:.1f} | {r['horizon']:g} | {r['sim_wall']:,.0f} "
             f"| {r['ratio_wall']:.1f} ({r['ratio_cpu']:.1f}) | {r['peak_mb']:,.0f} "
-            f"| {floor_text(r['floor']) if r['floor'] else 'not measured'} |")
+            + (f"| {floor_text(r['floor'])} | {sample_text(r['floor'])} |" if r["floor"]
+               else "| not measured | |"))
     flow = sum(r["flow"] for r in rows)
     graph = sum(r["graph"] for r in rows)
     io = sum(r["io"] for r in rows)

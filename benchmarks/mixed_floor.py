@@ -54,7 +54,7 @@ from certify.simulate import simulate
 from certify.taylor import flow_programs
 
 __all__ = ["MixedFloor", "mixed_floor", "clopper_pearson", "floor_text", "floor_note",
-           "describe"]
+           "sample_text", "describe"]
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -249,10 +249,15 @@ def floor_note(cells_of):
             f"undecided share cannot fall below it at that depth (a float estimate).")
 
 
+def sample_text(floor):
+    """The sample of the estimate, e.g. ``"2,000 cells x 40 starts"``."""
+    return f"{floor.cells:,} cells x {floor.points_per_cell} starts"
+
+
 def describe(floor):
     """One line: the floor in % with its interval and sample."""
     return (f"mixed floor {floor_text(floor)} % (95 % CI) at depth {floor.depth}: "
-            f"{floor.cells:,} cells x {floor.points_per_cell} starts, RK4 dt {floor.dt:g} "
+            f"{sample_text(floor)}, RK4 dt {floor.dt:g} "
             f"to T = {floor.horizon:g} and 2T; {floor.unknown:,} of {floor.starts:,} starts "
             f"unknown")
 

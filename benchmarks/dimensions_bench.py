@@ -19,6 +19,11 @@ right-hand side program, limits checked after every step) from the centres of th
 for those starts to settle or cross; every step costs the same, so the grid is timed
 over a fixed number of steps and scaled (as in ``library_bench.py``).
 
+Beside each row stands the mixed floor at the depth reached (``mixed_floor.py``): the
+share of the window in cells that plain simulation shows to hold a start that keeps the
+limits and one that crosses, undecided by any sound method at that cell size; the RK4
+horizon below is its T (fates are checked again at 2T).
+
 The section "Three and four states" of ``benchmarks/results.md`` is written (or
 replaced) with the rows of this run; the other sections are kept.
 """
@@ -37,6 +42,7 @@ from results_file import measured_on, write_section
 
 from flow_bench import machine
 from library_bench import Case, time_proof, time_simulation
+from mixed_floor import floor_note, floor_text, mixed_floor, sample_text
 
 from certify import load_model
 
@@ -93,12 +99,14 @@ def measure(name, depth, time_limit, repeat):
     model = load_model(ROOT / "models" / name)
     case = CASES.get(name, Case(name, horizon=100.0, dt=0.01))
     row["sim_wall"], row["sim_cpu"] = time_simulation(model, case, row["depth_reached"])
+    row["floor"] = mixed_floor(model, row["depth_reached"], case.horizon, case.dt)
     row.update(model=name, dim=len(model.states), horizon=case.horizon, repeat=repeat)
     f = row["fractions"]
     print(f"{name}: D {row['depth_reached']}, {row['cells']:,} cells, undecided "
           f"{100 * f['undecided']:.1f} %, safe {100 * f['safe']:.1f} %, doomed "
           f"{100 * f['doomed']:.1f} %; proof {row['wall']:.1f} s wall / {row['cpu']:.1f} s "
-          f"CPU, {row['peak_mb']:,.0f} MB; RK4 grid {row['sim_cpu']:.1f} s CPU ({row['stop']})",
+          f"CPU, {row['peak_mb']:,.0f} MB; RK4 grid {row['sim_cpu']:.1f} s CPU ({row['stop']}); "
+          f"mixed floor {100 * row['floor'].share:.1f} %",
           flush=True)
     return row
 
@@ -116,13 +124,14 @@ def render(rows, info, load_end):
         "peak resident set of the proving process. Plain simulation: classic RK4 "
         "(`certify.simulate`) with limit checks after every step from the 2^D cell centres "
         "per side (D = depth reached), over the horizon shown, timed over a fixed number "
-        "of steps and scaled. Ratio = RK4 grid CPU time / proof CPU time.",
+        "of steps and scaled. Ratio = RK4 grid CPU time / proof CPU time. "
+        + floor_note("the depth reached"),
         "",
         "| model | dim | max depth | depth reached | time limit (s) | cells | undecided % "
         "| safe % | doomed % | outside % | proof wall (s) | proof CPU (s) | repeats "
         "| peak memory (MB) | certificate (MB) | RK4 horizon | RK4 grid CPU (s) | ratio "
-        "| stopped because |",
-        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+        "| stopped because | mixed floor % (95 % CI) | floor sample |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
     for r in rows:
         f = r["fractions"]
@@ -132,7 +141,8 @@ def render(rows, info, load_end):
             f"| {100 * f['safe']:.1f} | {100 * f['doomed']:.1f} | {100 * f['outside']:.1f} "
             f"| {r['wall']:.1f} | {r['cpu']:.1f} | {r['repeat']} | {r['peak_mb']:,.0f} "
             f"| {r['cert_mb']:.1f} | {r['horizon']:g} | {r['sim_cpu']:,.1f} "
-            f"| {r['sim_cpu'] / r['cpu']:.2f} | {r['stop']} |")
+            f"| {r['sim_cpu'] / r['cpu']:.2f} | {r['stop']} | {floor_text(r['floor'])} "
+            f"| {sample_text(r['floor'])} |")
     return "\n".join(lines) + "\n"
 
 

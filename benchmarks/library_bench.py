@@ -16,6 +16,11 @@ every fixed step costs the same, so the grid is timed over SIM_STEPS steps and s
 The 3D model is proved once, at a coarser depth, with the same measurements (its
 grid simulation is scaled the same way).
 
+Beside each row stands the mixed floor at depth D (``mixed_floor.py``, ``--floor-cells``
+sampled cells, 0 to skip): the share of the window in cells that plain simulation shows
+to hold a start that keeps the limits and one that crosses, undecided by any sound
+method at that cell size; the RK4 horizon is its T (fates are checked again at 2T).
+
 Peak memory is the process's peak resident set size so far (``resource.getrusage``),
 so it never decreases from one row to the next.
 
@@ -40,6 +45,7 @@ from results_file import measured_on, write_section
 import numpy as np
 
 from flow_bench import grid_centres, machine, parameter_bounds
+from mixed_floor import floor_note, floor_text, mixed_floor, sample_text
 
 from certify import load_model, prove
 from certify.cells import CellTree
@@ -147,8 +153,9 @@ def median_proof(model, depth, time_limit, repeat):
     return row
 
 
-def measure(case, depths, time_limit, repeat=1):
-    """One row per depth for one model (times: medians over `repeat` proofs)."""
+def measure(case, depths, time_limit, repeat=1, floor_cells=2000):
+    """One row per depth for one model (times: medians over `repeat` proofs), with the
+    mixed floor of `floor_cells` sampled cells (none when 0)."""
     model = load_model(ROOT / "models" / case.file)
     simulate(flow_programs(model, 1).field, grid_centres(model, 2), parameter_bounds(model),
              case.dt, dt=case.dt)  # warm-up: program compilation
@@ -161,6 +168,8 @@ def measure(case, depths, time_limit, repeat=1):
         row["horizon"] = case.horizon
         row["ratio_wall"] = row["sim_wall"] / row["wall"]
         row["ratio_cpu"] = row["sim_cpu"] / row["cpu"]
+        row["floor"] = (mixed_floor(model, depth, case.horizon, case.dt, cells=floor_cells)
+                        if floor_cells else None)
         print(f"{case.file} depth {depth}: {row['cells']} cells, "
               f"{100 * row['fractions']['undecided']:.2f} % undecided, proof "
               f"{row['wall']:.1f} s wall / {row['cpu']:.1f} s CPU (flow {row['flow']:.1f} s, "
@@ -186,12 +195,14 @@ def render(rows, info, load_end):
         f"{SIM_STEPS} steps and scaled. Ratio = simulation wall time / proof wall time "
         "(CPU ratio in brackets). Flow = wall time inside `flow_boxes`; graph = successor "
         "lookup and label fixpoints; write = writing the certificate (I/O). Peak memory = "
-        "peak resident set of the benchmark process so far.",
+        "peak resident set of the benchmark process so far. "
+        + floor_note("depth D"),
         "",
         "| model | dim | D | cell side | cells | undecided % | proof wall (s) "
         "| proof CPU (s) | flow (s) | graph (s) | write (s) | certificate (MB) "
-        "| RK4 horizon | RK4 grid wall (s) | ratio | peak memory (MB) |",
-        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+        "| RK4 horizon | RK4 grid wall (s) | ratio | peak memory (MB) "
+        "| mixed floor % (95 % CI) | floor sample |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
     for r in rows:
         lines.append(
@@ -199,7 +210,9 @@ def render(rows, info, load_end):
             f"| {r['cells']:,} | {100 * r['fractions']['undecided']:.2f} | {r['wall']:.1f} "
             f"| {r['cpu']:.1f} | {r['flow']:.1f} | {r['graph']:.1f} | {r['io']:.1f} "
             f"| {r['cert_mb']:.1f} | {r['horizon']:g} | {r['sim_wall']:,.0f} "
-            f"| {r['ratio_wall']:.1f} ({r['ratio_cpu']:.1f}) | {r['peak_mb']:,.0f} |")
+            f"| {r['ratio_wall']:.1f} ({r['ratio_cpu']:.1f}) | {r['peak_mb']:,.0f} "
+            + (f"| {floor_text(r['floor'])} | {sample_text(r['floor'])} |" if r["floor"]
+               else "| not measured | |"))
     flow = sum(r["flow"] for r in rows)
     graph = sum(r["graph"] for r in rows)
     io = sum(r["io"] for r in rows)
@@ -228,7 +241,8 @@ def main(argv=None):
     argv : list of str, optional
         ``--depths D ...`` for the 2D models (default 8 9), ``--depth-3d D`` (default 6),
         ``--time-limit S`` per proof (default 900 s), ``--repeat N`` proofs per row
-        (medians of the times).
+        (medians of the times), ``--floor-cells K`` cells sampled for the mixed floor
+        (default 2000, 0 to skip).
 
     Returns
     -------
@@ -244,12 +258,14 @@ def main(argv=None):
                         help="time limit of each proof in seconds (default: 900)")
     parser.add_argument("--repeat", type=int, default=1,
                         help="proofs per row; times are medians (default: 1)")
+    parser.add_argument("--floor-cells", type=int, default=2000,
+                        help="cells sampled for the mixed floor (default: 2000; 0: skip)")
     args = parser.parse_args(argv)
     info = machine()
     rows = []
     for case in CASES_2D:
-        rows += measure(case, args.depths, args.time_limit, args.repeat)
-    rows += measure(CASE_3D, [args.depth_3d], args.time_limit, args.repeat)
+        rows += measure(case, args.depths, args.time_limit, args.repeat, args.floor_cells)
+    rows += measure(CASE_3D, [args.depth_3d], args.time_limit, args.repeat, args.floor_cells)
     load_end = ", ".join(f"{v:.1f}" for v in os.getloadavg())
     write_section(SECTION, render(rows, info, load_end))
     print(f"wrote section '{SECTION}' of {RESULTS.relative_to(ROOT)}")

@@ -44,7 +44,7 @@ __all__ = ["ClaimRecord", "ClaimCheck", "read_claim", "rederive_claim"]
 EXPECTATIONS = ("safe", "doomed", "stays")
 VERDICTS = ("proven", "refuted", "inconclusive")
 #: Passes for a point's stored steps, as for cells (:data:`._arith.ARITHMETICS`).
-PASSES = ("ball", "fine", "endpoint")
+PASSES = ("float", "ball", "fine", "endpoint")
 
 
 @dataclass(frozen=True)

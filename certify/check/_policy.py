@@ -262,7 +262,7 @@ def _safe_cells(cert, model, cells, labels, hold, jobs, k):
     facts = _Facts(cert.L, cert.n)
     problems = {}
     todo = cells
-    for arithmetic in ("ball", "fine", "endpoint"):
+    for arithmetic in ("float", "ball", "fine", "endpoint"):
         tasks = _tasks(cert, todo, K)
         for number, result in _compute(context, tasks, arithmetic, jobs or 1, None).items():
             facts.store(tasks[number].cells, result)

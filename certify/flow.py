@@ -34,9 +34,6 @@ from .evaluate import evaluate_boxes
 __all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
            "join_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
 
-#: Which sets a flow carries and how their frames ``A'`` are chosen (``_FRAMES``); the
-#: certificate records the rule and the checker applies the same one.
-FRAME_RULES = ("qr+parallelepiped", "qr")
 #: A parallelepiped frame with a larger condition number is replaced by its QR factor.
 FRAME_CONDITION_LIMIT = 1e3
 #: Target width of a step's Taylor remainder, as a share of the set's width.
@@ -310,13 +307,17 @@ def parallelepiped_frame(mid, width):
 
 #: The frame of each set a rule carries: one set in QR frames, or that set and a second
 #: one in parallelepiped frames, the end box being the intersection of their hulls.
-_FRAMES = {"qr": (qr_frame,), "qr+parallelepiped": (qr_frame, parallelepiped_frame)}
+_FRAMES = {"qr+parallelepiped": (qr_frame, parallelepiped_frame), "qr": (qr_frame,)}
+#: Which sets a flow carries (the certificate records the rule; the checker applies it).
+FRAME_RULES = tuple(_FRAMES)
 
 
 def _coordinates(Q, new_m, ylo, yhi, Mlo, Mhi, rlo, rhi):
-    """The set ``new_m + Q [r']`` of a step end in the frame `Q`, and its box hull."""
+    """The set ``new_m + Q [r']`` of a step end in the frame `Q`, and its box hull.
+
+    `Q` (an array of the caller's own) becomes ``I`` where its inverse is not enclosed.
+    """
     n = Q.shape[-1]
-    Q = Q.copy()
     Blo, Bhi, inv_ok = interval_inverse(Q)
     fallback = ~inv_ok
     if fallback.any():

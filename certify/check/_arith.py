@@ -657,6 +657,9 @@ ARITHMETICS = {
     "fine": lambda: BallArith(Pieces(tube=4, jacobians=(4, 2), remainder=4)),
     "endpoint": EndpointArith,
 }
+#: The chain of passes for a certificate's own model: each recomputes what the one
+#: before left unverified.
+PASSES = ("float", "ball", "fine", "endpoint")
 
 
 def _plan(program, ar):

@@ -248,7 +248,7 @@ def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=No
     X_next, sets_next = None, []
     # every set the rule carries: its image Y + M [r] and its new coordinates; the end
     # box is the intersection of all of them
-    for (A, r), frame in zip(sets, _FRAMES[context.frames]):
+    for (A, r), frame in zip(sets, FRAME_KINDS[context.frames]):
         Ae = [[ar.exact(A[:, i, j]) for j in range(n)] for i in range(n)]
         M = _matmul(ar, D, Ae)
         V = _matvec(ar, M, r)
@@ -288,7 +288,7 @@ def _floats(values):
 #: A parallelepiped frame with a larger condition number is replaced by its QR factor.
 FRAME_CONDITION_LIMIT = 1e3
 #: The frame kind of each set a frame rule carries (docs/method.md, step 3).
-_FRAMES = {"qr": ("qr",), "qr+parallelepiped": ("qr", "parallelepiped")}
+FRAME_KINDS = {"qr+parallelepiped": ("qr", "parallelepiped"), "qr": ("qr",)}
 
 
 def _mid(ar, a):
@@ -493,7 +493,7 @@ def _chunk_facts(context, task, arithmetic):
     m_q = [np.array([Fraction(float(v)) for v in m[:, k]], dtype=object) for k in range(n)]
     r = [ar.rationals(lo_q[ids, k] - m_q[k], hi_q[ids, k] - m_q[k]) for k in range(n)]
     # stored frames (version 2, claims) belong to one set; else one set per frame kind
-    kinds = 1 if task.m is not None else len(_FRAMES[context.frames])
+    kinds = 1 if task.m is not None else len(FRAME_KINDS[context.frames])
     sets = [(np.broadcast_to(np.eye(n), (len(ids), n, n)), r)] * kinds
     image = [None] * n
     image_cells = np.zeros(0, int)

@@ -35,7 +35,7 @@ import numpy as np
 
 from ..container import decode_array
 from ..errors import CertificateError
-from ._arith import ARITHMETICS, evaluate
+from ._arith import ARITHMETICS, PASSES, evaluate
 from ._cells import CellTask, cell_facts, exact_cells, grid_bounds
 from ._programs import with_one_limit
 
@@ -43,8 +43,6 @@ __all__ = ["ClaimRecord", "ClaimCheck", "read_claim", "rederive_claim"]
 
 EXPECTATIONS = ("safe", "doomed", "stays")
 VERDICTS = ("proven", "refuted", "inconclusive")
-#: Passes for a point's stored steps, as for cells (:data:`._arith.ARITHMETICS`).
-PASSES = ("float", "ball", "fine", "endpoint")
 
 
 @dataclass(frozen=True)

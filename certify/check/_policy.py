@@ -29,6 +29,7 @@ import numpy as np
 from ..container import read_gzip_json
 from ..errors import CertificateError, CertifyError
 from ..model import parse_model
+from ._arith import PASSES
 from ._cells import CheckContext, exact_cells
 from ._claim import _limit_signs
 from ._programs import derive_programs
@@ -262,7 +263,7 @@ def _safe_cells(cert, model, cells, labels, hold, jobs, k):
     facts = _Facts(cert.L, cert.n)
     problems = {}
     todo = cells
-    for arithmetic in ("float", "ball", "fine", "endpoint"):
+    for arithmetic in PASSES:
         tasks = _tasks(cert, todo, K)
         for number, result in _compute(context, tasks, arithmetic, jobs or 1, None).items():
             facts.store(tasks[number].cells, result)

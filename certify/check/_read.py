@@ -16,6 +16,7 @@ import numpy as np
 from ..container import decode_array, load_certificate_json
 from ..errors import CertificateError, CertifyError
 from ..model import parse_model
+from ._cells import FRAME_KINDS
 from ._trapping import read_regions
 
 __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
@@ -23,7 +24,7 @@ __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
 LABELS = ("safe", "doomed", "outside", "undecided")
 KINDS = ("limit", "inflow", "invariant", "open")
 #: Frame rules of the steps (docs/method.md, step 3).
-FRAME_RULES = ("qr+parallelepiped", "qr")
+FRAME_RULES = tuple(FRAME_KINDS)
 
 
 class _Reader:

@@ -29,6 +29,7 @@ import numpy as np
 from ..container import parameter_differences
 from ..errors import CertificateError, CertifyError
 from ..model import load_model
+from ._arith import PASSES
 from ._cells import CellTask, CheckContext, cell_facts, exact_cells
 from ._claim import read_claim, rederive_claim
 from ._faces import confirm_face
@@ -601,7 +602,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
         progress.total(cert.L)
     facts = _Facts(cert.L, cert.n)
     tasks = _tasks(cert, np.arange(cert.L), n_steps, _float_chunk(n_steps, jobs))
-    first = "float" if revised is None else "float-pieces"
+    first = PASSES[0] if revised is None else "float-pieces"
     for number, result in _compute(context, tasks, first, jobs, progress).items():
         facts.store(tasks[number].cells, result)
     judge, local = _judge_all(cert, facts, tree, np.arange(cert.L), unproven)
@@ -651,11 +652,11 @@ def _later_passes(cert, revised):
     re-verified, which keeps the check cheaper than a new proof (docs/auditing.md).
     """
     if revised is None:
-        return ("ball", "fine", "endpoint")
+        return PASSES[1:]
     # the reader hashed the stored text once (cert.model exists only when it matched)
     same = cert.sha_ok and revised.sha256 == cert.model.sha256 and cert.params == {
         p.name: (p.lo, p.hi) for p in revised.parameters}
-    return ("ball", "fine", "endpoint") if same else ()
+    return PASSES[1:] if same else ()
 
 
 def _with_parameters(cert):

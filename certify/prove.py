@@ -351,19 +351,14 @@ class _Prover:
     def _tube_facts(self, todo, result):
         S = len(result.h)
         box_of_step = np.repeat(np.arange(len(todo)), result.n_steps)
-        glo, _ = evaluate_limits(self.programs, result.x_lo, result.x_hi, self.params)
-        rlo, rhi = evaluate_limits(self.programs, result.e_lo, result.e_hi, self.params, rates=True)
-        h = result.h[:, None]
-        dlo = np.minimum(iv.mul(h, h, rlo, rlo)[0], 0.0)
-        lower, _ = iv.add(glo, glo, dlo, dlo)
-        kept_limit = (lower >= 0) | (rlo >= 0)
-        kept_step = np.all(kept_limit, axis=1) if S else np.zeros(0, bool)
+        glo_end, ghi_end = evaluate_limits(self.programs, result.end_lo, result.end_hi,
+                                           self.params)
+        kept_step = np.all(self._kept(result, glo_end), axis=1) if S else np.zeros(0, bool)
         t0_lo = result.t0_lo
         unkept_time = np.where(kept_step, np.inf, t0_lo)
         first_unkept = np.full(len(todo), np.inf)
         np.minimum.at(first_unkept, box_of_step, unkept_time)
         # rank-0 crossings: a step end box wholly violating one limit
-        _, ghi_end = evaluate_limits(self.programs, result.end_lo, result.end_hi, self.params)
         crossed = np.any(ghi_end < 0, axis=1) if S else np.zeros(0, bool)
         _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
         crossing = np.full(len(todo), np.inf)
@@ -397,6 +392,29 @@ class _Prover:
         self.first_unkept[todo] = first_unkept
         self.image_lo[todo] = image_lo
         self.image_hi[todo] = image_hi
+
+    def _kept(self, result, glo_end):
+        """Per step and limit: the limit is kept on the whole step (docs/design.md, section
+        5, rules (a), (b) and (c)); `glo_end` are the limits' lower bounds on the end boxes."""
+        glo, _ = evaluate_limits(self.programs, result.x_lo, result.x_hi, self.params)
+        rlo, _ = evaluate_limits(self.programs, result.e_lo, result.e_hi, self.params, rates=True)
+        h = result.h[:, None]
+        dlo = np.minimum(iv.mul(h, h, rlo, rlo)[0], 0.0)
+        lower, _ = iv.add(glo, glo, dlo, dlo)
+        kept = (lower >= 0) | (rlo >= 0)
+        curvatures = self.programs.limit_curvatures
+        steps = np.flatnonzero(~np.all(kept, axis=1) & np.all((glo >= 0) & (glo_end >= 0), axis=1))
+        if curvatures is None or len(steps) == 0:
+            return kept
+        # (c) a solution dips below the lower of its two step ends by at most h^2 M / 8,
+        # M an upper bound of the limit's second derivative along it
+        _, chi = evaluate_boxes(curvatures, result.e_lo[steps], result.e_hi[steps], self.params)
+        hs = h[steps]
+        _, h2 = iv.mul(hs, hs, hs, hs)
+        _, dip = iv.mul(h2, h2, chi, chi)
+        ends = np.minimum(glo[steps], glo_end[steps])
+        kept[steps] |= (ends >= 0) & ((dip <= 0) | (8 * ends >= dip))
+        return kept
 
     def _drift(self, result, box_of_step, n_boxes):
         """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``."""

@@ -71,6 +71,9 @@ class FlowPrograms:
         ``g_j`` (one output per constraint; satisfied where ``g_j >= 0``).
     limit_rates : Program
         ``grad g_j . f`` (one output per constraint).
+    limit_curvatures : Program or None
+        ``grad(grad g_j . f) . f``, the second derivative of ``g_j`` along a solution (one
+        output per constraint); None for models with ``abs``, ``min`` or ``max``.
     """
 
     order: int
@@ -83,10 +86,17 @@ class FlowPrograms:
     remainder: Program
     limits: Program
     limit_rates: Program
+    limit_curvatures: Program | None
+
+
+def lie_derivatives(functions, equations, states):
+    """``grad g . f`` of each function ``g``: its rate along the solutions of ``x' = f``."""
+    return [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
+            for g in functions]
 
 
 @lru_cache(maxsize=32)
-def _build(equations, states, parameters, limits, order):
+def _build(equations, states, parameters, limits, order, smooth=True):
     inputs = tuple(states) + tuple(parameters)
     x = sympy.Matrix(states)
     coeffs = taylor_coefficients(equations, states, order)
@@ -98,8 +108,10 @@ def _build(equations, states, parameters, limits, order):
         jacobian = compile_program(list(df), inputs)
     if len(middle) > 1:
         higher = compile_program([e for c in middle[1:] for e in c.jacobian(x)], inputs)
-    rates = [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
-             for g in limits]
+    rates = lie_derivatives(limits, equations, states)
+    curvatures = None
+    if smooth:
+        curvatures = compile_program(lie_derivatives(rates, equations, states), inputs)
     return FlowPrograms(
         order=order,
         n=len(states),
@@ -111,6 +123,7 @@ def _build(equations, states, parameters, limits, order):
         remainder=compile_program(list(coeffs[order]), inputs),
         limits=compile_program(list(limits), inputs),
         limit_rates=compile_program(rates, inputs),
+        limit_curvatures=curvatures,
     )
 
 
@@ -149,7 +162,7 @@ def flow_programs(model, order):
     limits = tuple(substitute(c.g, model.conditions[key], values, label=label, key=key)
                    for key, c in zip(model.constraint_keys, model.constraints))
     return _build(equations, tuple(model.state_symbols), tuple(model.parameter_symbols),
-                  limits, int(order))
+                  limits, int(order), not model.uses_kinks)
 
 
 def fixed_parameters(model):

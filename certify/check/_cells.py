@@ -270,14 +270,51 @@ def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=No
         ok &= ar.finite(X_next[k])
     # limits kept on the step, crossing evidence at its end
     g = evaluate(progs.limits, ar, list(X) + params)
-    kept = np.ones(len(h), bool)
+    g_end = evaluate(progs.limits, ar, X_next + params)
+    kept_by = []
     for j in range(progs.n_limits):
         integral = ar.sum_lower(ar.lower(g[j]), _span(ar, hh, rates[j])[0])
-        kept &= _true(integral >= 0) | _true(ar.lower(rates[j]) >= 0)
-    crossed = _limits_upper_negative(ar, context, X_next, len(h))
+        kept_by.append(_true(integral >= 0) | _true(ar.lower(rates[j]) >= 0))
+    kept = np.ones(len(h), bool)
+    for by_rates, by_curvature in zip(kept_by, _kept_by_curvature(ar, context, hh, E, g, g_end,
+                                                                  kept_by)):
+        kept &= by_rates | by_curvature
+    crossed = np.zeros(len(h), bool)
+    for gj in g_end:
+        crossed |= _true(ar.upper(gj) < 0)
     return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, E=E,
                        E_bounds=E_bounds, m_next=m_next, sets_next=sets_next,
                        moved=[ar.mul(hh, f) for f in field])
+
+
+def _kept_by_curvature(ar, context, hh, E, g, g_end, kept_by):
+    """Rule (c) of docs/design.md, section 5: per limit, on which steps it is kept.
+
+    A solution's ``phi(t) = g_j(x(t))`` with ``phi'' <= M`` on a step of size ``h`` lies
+    above the lower of its two ends minus ``M h^2 / 8``; ``M`` bounds the limit's second
+    derivative along solutions on the a-priori box `E`. Tried on the steps whose limits
+    are not all kept by rules (a) and (b) (`kept_by`, one array per limit) and whose ends
+    keep every limit.
+    """
+    n_steps = len(kept_by[0]) if kept_by else 0
+    out = [np.zeros(n_steps, bool) for _ in kept_by]
+    start = [ar.lower(gj) for gj in g]
+    end = [ar.lower(gj) for gj in g_end]
+    todo = ~np.all(kept_by, axis=0) if kept_by else np.zeros(0, bool)
+    for s, e in zip(start, end):
+        todo &= _true(s >= 0) & _true(e >= 0)
+    curvatures = context.programs.curvatures
+    if curvatures is None or not todo.any():
+        return out
+    idx = np.flatnonzero(todo)
+    box = [ar.take(x, idx) for x in E]
+    M = _joined(ar, curvatures, ar.cover(box, ar.pieces.tube), _params(ar, context))
+    h2 = ar.pow_int(ar.take(hh, idx), 2)
+    for j, Mj in enumerate(M):
+        dip = ar.upper(ar.mul(h2, Mj))
+        s, e = start[j][idx], end[j][idx]
+        out[j][idx] = _true(dip <= 0) | (_true(s * 8 >= dip) & _true(e * 8 >= dip))
+    return out
 
 
 def _floats(values):

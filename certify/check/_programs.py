@@ -261,6 +261,9 @@ class CheckPrograms:
     states : tuple of sympy.Symbol
     limit_expressions : tuple of sympy.Expr
         The limits ``g_j`` with the parameters given as numbers substituted.
+    curvatures : Program or None
+        The second derivatives of the limits along the solutions (m outputs); None for
+        models with kinks.
     """
 
     order: int
@@ -278,6 +281,7 @@ class CheckPrograms:
     equations: tuple
     states: tuple
     limit_expressions: tuple = ()
+    curvatures: Program | None = None
 
 
 def taylor_coefficients(equations, states, order):
@@ -334,6 +338,8 @@ def derive_programs(model, order):
     if len(middle) > 1:
         higher = compile_expressions([e for c in middle[1:] for e in c.jacobian(x)], inputs)
     on_tube = compile_expressions(list(equations) + rates, inputs)
+    curvatures = None if model.uses_kinks else \
+        compile_expressions(_rates(rates, equations, states), inputs)
     remainder = compile_expressions(list(coefficients[order]), inputs)
     return CheckPrograms(order=order, n=len(states), on_tube=on_tube, remainder=remainder,
                          coefficients=point, jacobian=field_jacobian if middle else None,
@@ -342,7 +348,8 @@ def derive_programs(model, order):
                          field=compile_expressions(list(equations), inputs),
                          field_jacobian=field_jacobian, n_limits=len(limits),
                          cut_jacobian=df is not None and _cut(df, states),
-                         equations=equations, states=states, limit_expressions=limits)
+                         equations=equations, states=states, limit_expressions=limits,
+                         curvatures=curvatures)
 
 
 def with_one_limit(programs, model, j):
@@ -354,13 +361,16 @@ def with_one_limit(programs, model, j):
     g = programs.limit_expressions[j]
     inputs = programs.states + tuple(model.parameter_symbols)
     rates = _rates((g,), programs.equations, programs.states)
+    curvatures = None if programs.curvatures is None else \
+        compile_expressions(_rates(rates, programs.equations, programs.states), inputs)
     return replace(programs, on_tube=compile_expressions(list(programs.equations) + rates,
                                                          inputs),
-                   limits=compile_expressions([g], inputs), n_limits=1, limit_expressions=(g,))
+                   limits=compile_expressions([g], inputs), n_limits=1, limit_expressions=(g,),
+                   curvatures=curvatures)
 
 
 def _rates(limits, equations, states):
-    """The rate ``sum_s diff(g, s) f_s`` of each limit ``g`` along the flow."""
+    """The rate ``sum_s diff(g, s) f_s`` of each function ``g`` along the flow."""
     return [sum((sympy.diff(g, s) * f for s, f in zip(states, equations)), sympy.Integer(0))
             for g in limits]
 

@@ -354,3 +354,52 @@ def test_cells_the_float_pass_leaves_go_on_to_the_ball_pass(tmp_path, monkeypatc
     result = check_certificate(path, jobs=1)
     assert result.valid, result.message
     assert result.ball_cells > 0
+
+
+def _near_multiples_of_half_pi(rng):
+    """Floats within a few ulps of k pi/2 (where the reduced argument loses the most
+    digits), for k up to 10^7, with random and tiny values."""
+    k = np.concatenate([np.arange(-8, 9), rng.integers(-10**7, 10**7, 40)])
+    centre = np.array([float(MP.pi * int(j) / 2) for j in k])
+    offsets = np.array([-3, -1, 0, 1, 3])
+    points = [np.nextafter(c, np.sign(o) * np.inf) if o else c
+              for c in centre for o in offsets]
+    points = np.array([p for p in points])
+    return np.concatenate([points, rng.uniform(-2.0**24, 2.0**24, 100),
+                           rng.uniform(-10, 10, 100), [5e-324, -5e-324, 1e-300, 2.0**24]])
+
+
+@pytest.mark.parametrize("name", ["sin", "cos"])
+def test_sine_and_cosine_from_float_operations_enclose_mpmath(name):
+    # reference: mpmath at 100 digits; the float pass computes these by argument
+    # reduction and Taylor polynomials (certify/check/_trig.py), not by libm
+    ar = FloatArith()
+    x = _near_multiples_of_half_pi(np.random.default_rng(11))
+    lo, hi = ar.function(name, ar.box(x, x))
+    f = FUNCTIONS[name]
+    for j in range(len(x)):
+        value = f(MP.mpf(x[j]))
+        assert MP.mpf(lo[j]) <= value <= MP.mpf(hi[j]), (name, x[j])
+        # no wider than the prover's libm-based enclosures (|v| 2^-49 each way), so cells
+        # the prover proves verify in this pass
+        assert MP.mpf(hi[j]) - MP.mpf(lo[j]) <= 2.0 ** -48 * abs(value) + 2.0 ** -1000 \
+            or hi[j] - lo[j] <= 4e-16, (name, x[j], lo[j], hi[j])
+
+
+def test_sine_and_cosine_of_wide_and_far_intervals():
+    # reference: mpmath at 100 digits at the ends, inner points and the extrema inside
+    ar = FloatArith()
+    rng = np.random.default_rng(12)
+    lo_in = np.concatenate([rng.uniform(-1e6, 1e6, 30), [1.0, 2.0**24 - 1, 1e300, -0.5]])
+    hi_in = lo_in + np.concatenate([rng.uniform(0, 7, 30), [1e-12, 2.0, 1.0, 1.0]])
+    for name in ("sin", "cos"):
+        lo, hi = ar.function(name, ar.box(lo_in, hi_in))
+        f = FUNCTIONS[name]
+        for j in range(len(lo_in)):
+            a, b = MP.mpf(lo_in[j]), MP.mpf(hi_in[j])
+            points = [a + (b - a) * k / 10 for k in range(11)]
+            first = int(MP.ceil(a / (MP.pi / 2)))
+            points += [MP.pi * k / 2 for k in range(first, first + 5) if MP.pi * k / 2 <= b]
+            for p in points:
+                assert MP.mpf(lo[j]) <= f(p) <= MP.mpf(hi[j]), (name, j, p)
+        assert np.isnan(ar.function(name, ar.box(np.array([np.nan]), np.array([1.0])))[0][0])

@@ -20,8 +20,10 @@ exact input intervals:
   four end products, quotients likewise for a divisor of one strict sign (a divisor that
   reaches 0 gives NaN).
 * Nothing else comes from numpy's libm (``exp``, ``log``, ``sin``... are not guaranteed
-  correctly rounded there): elementary functions, real powers and constants are computed
-  by python-flint (arb) through :class:`certify.check._arith.EndpointArith`, whose ends are
+  correctly rounded there). ``sin`` and ``cos`` are computed from the operations above
+  (argument reduction and Taylor polynomials with their remainders,
+  :mod:`certify.check._trig`); the other elementary functions, real powers and constants
+  are computed by python-flint (arb) through :class:`certify.check._arith.EndpointArith`, whose ends are
   exact 53-bit numbers; they are turned into floats by exact comparison (a lower end
   becomes the largest float not above it, an upper end the smallest float not below).
   Rationals (the cells, the parameter boxes) are rounded outward the same way.
@@ -52,6 +54,7 @@ import numpy as np
 from flint import arb
 
 from ._arith import EndpointArith, PairStorage, Pieces, float_inverse
+from ._trig import periodic
 
 __all__ = ["FloatArith", "float_down", "float_up"]
 
@@ -347,9 +350,17 @@ class FloatArith(PairStorage):
         return np.maximum(a[0], b[0]), np.maximum(a[1], b[1])
 
     def function(self, name, a):
-        """An elementary function: ``sqrt`` in floats, the others by python-flint."""
+        """An elementary function: ``sqrt``, ``sin`` and ``cos`` in floats
+        (:mod:`certify.check._trig`), the others by python-flint."""
         if name == "sqrt":
             return self.sqrt(a)
+        if name in ("sin", "cos"):
+            lo, hi, left = periodic(self, name, a)
+            if left.any():
+                ends = [np.broadcast_to(x, lo.shape)[left] for x in a]
+                lo[left], hi[left] = self._by_flint(
+                    lambda e: self._flint.function(name, e), ends)
+            return lo, hi
         return self._by_flint(lambda e: self._flint.function(name, e), a)
 
     def cover(self, box, pieces):

@@ -377,10 +377,11 @@ class _Judge:
         out = self._image(c, K)
         if f.first_unkept[c] < K:
             out.append((f"limits are not proven kept on step {f.first_unkept[c]}", True))
-        for d in self.successors(c):
-            if cert.label[d] not in ("safe", "outside"):
-                out.append((f"successor {d} is {cert.label[d]}", False))
-                break
+        succ = self.successors(c)
+        labels = cert.label[succ]
+        bad = np.flatnonzero((labels != "safe") & (labels != "outside"))
+        if len(bad):
+            out.append((f"successor {succ[bad[0]]} is {labels[bad[0]]}", False))
         return out
 
     def _trapped(self, c, K):
@@ -421,17 +422,22 @@ class _Judge:
                          f"{_num(evidence)}", True)]
             return []
         out = self._image(c, K)
-        latest = Fraction(0)
-        for d in self.successors(c):
-            if cert.label[d] == "outside":
-                continue
-            if cert.label[d] != "doomed" or not 0 <= cert.rank[d] < rank:
-                out.append((f"successor {d} is {cert.label[d]} with rank {cert.rank[d]}, "
-                            f"not doomed with a rank below {rank}", False))
-                return out
-            if not np.isfinite(cert.crossing_upper[d]):
-                return out + [(f"successor {d} has no finite crossing bound", False)]
-            latest = max(latest, Fraction(cert.crossing_upper[d]))
+        succ = self.successors(c)
+        succ = succ[cert.label[succ] != "outside"]
+        ranks = cert.rank[succ]
+        bad = np.flatnonzero((cert.label[succ] != "doomed") | ~((0 <= ranks) & (ranks < rank)))
+        if len(bad):
+            d = succ[bad[0]]
+            out.append((f"successor {d} is {cert.label[d]} with rank {cert.rank[d]}, "
+                        f"not doomed with a rank below {rank}", False))
+            return out
+        bounds = cert.crossing_upper[succ]
+        bad = np.flatnonzero(~np.isfinite(bounds))
+        if len(bad):
+            return out + [(f"successor {succ[bad[0]]} has no finite crossing bound", False)]
+        # the largest float is the largest exact bound
+        latest = Fraction(float(bounds.max())) if len(bounds) else Fraction(0)
+        latest = max(latest, Fraction(0))
         if not _at_most(T + latest, bound):
             out.append((f"crossing bound {_num(bound)} is below the horizon plus the "
                         f"successors' bounds ({_num(T + latest)})", False))
@@ -455,15 +461,20 @@ class _Judge:
                 return [(f"survival bound {_num(claim)} exceeds the horizon {_num(T)}, "
                          f"and the image is not usable: {image[0][0]}", image[0][1])]
             return []
-        for d in self.successors(c):
-            if cert.label[d] == "outside":
-                continue
-            other = float(cert.survival_lower[d])
-            if other == np.inf:
-                continue
-            if other == -np.inf or not _at_most(claim, T + Fraction(other)):
-                return [(f"survival bound {_num(claim)} exceeds the horizon plus successor "
-                         f"{d}'s bound", False)]
+        succ = self.successors(c)
+        succ = succ[cert.label[succ] != "outside"]
+        others = cert.survival_lower[succ].astype(float)
+        if len(succ) == 0:
+            return []
+        # T + other grows with other: the smallest bound decides (NaN fails)
+        nan = np.flatnonzero(np.isnan(others))
+        weakest = int(nan[0]) if len(nan) else int(np.argmin(others))
+        other = others[weakest]
+        if other == np.inf:
+            return []
+        if np.isnan(other) or other == -np.inf or not _at_most(claim, T + Fraction(other)):
+            return [(f"survival bound {_num(claim)} exceeds the horizon plus successor "
+                     f"{succ[weakest]}'s bound", False)]
         return []
 
     def needs(self, c):

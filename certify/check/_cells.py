@@ -716,7 +716,8 @@ def grid_bounds(window, depth, lo, hi):
     """
     first, last = [], []
     for x, y, (an, ad, wn, wd) in zip(lo, hi, _grid_units(tuple(window), depth)):
-        x, y = Fraction(x), Fraction(y)
+        x = x if type(x) is Fraction else Fraction(x)
+        y = y if type(y) is Fraction else Fraction(y)
         # u = (x - a) / (b - a) * 2^depth as one integer quotient (no gcd on the way)
         lo_num = (x.numerator * ad - an * x.denominator) * wn
         lo_den = x.denominator * wd

@@ -615,3 +615,29 @@ def test_ball_and_endpoint_arithmetic_enclose_elementary_functions():
                     exact = getattr(arb(t), name)()
                     assert lo[j] <= exact.lower() and exact.upper() <= hi[j]
                 ar.enter()
+
+
+def test_grid_bounds_name_exactly_the_grid_cells_a_box_needs():
+    # the definition in docs/certificate-format.md, in exact rational arithmetic: along a
+    # thick axis a grid cell is needed when it overlaps the open range, along a flat axis
+    # when it holds the point; windows with sides that are not floats
+    from certify.check._cells import grid_bounds
+
+    rng = np.random.default_rng(5)
+    window = ((Fraction(-3, 10), Fraction(7, 3)), (Fraction(1, 7), Fraction(5, 3)))
+    depth = 5
+    scale = 1 << depth
+    for _ in range(400):
+        lo, hi = [], []
+        for a, b in window:
+            grid = a + (b - a) * Fraction(int(rng.integers(0, scale + 1)), scale)
+            x = grid if rng.random() < 0.4 else a + (b - a) * Fraction(rng.random())
+            y = x if rng.random() < 0.3 else min(b, x + (b - a) * Fraction(rng.random() / 4))
+            lo.append(x)
+            hi.append(y)
+        first, last = grid_bounds(window, depth, lo, hi)
+        for k, (a, b) in enumerate(window):
+            u_lo, u_hi = (lo[k] - a) / (b - a) * scale, (hi[k] - a) / (b - a) * scale
+            for j in range(-1, scale + 1):
+                needed = (j + 1 > u_lo and j < u_hi) if lo[k] < hi[k] else j <= u_lo <= j + 1
+                assert needed == (first[k] <= j + 1 and j <= last[k]), (k, j, lo, hi)

@@ -25,9 +25,9 @@ sound.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from fractions import Fraction
+from functools import lru_cache
 
 import numpy as np
 
@@ -714,17 +714,35 @@ def grid_bounds(window, depth, lo, hi):
         thick axes have ``first = floor(u_lo s) + 1``, ``last = ceil(u_hi s) - 1``; flat
         axes ``first = ceil(u_lo s)``, ``last = floor(u_hi s)``.
     """
-    scale = 1 << depth
     first, last = [], []
-    for x, y, (a, b) in zip(lo, hi, window):
-        u_lo, u_hi = (x - a) / (b - a) * scale, (y - a) / (b - a) * scale
+    for x, y, (an, ad, wn, wd) in zip(lo, hi, _grid_units(tuple(window), depth)):
+        x = x if type(x) is Fraction else Fraction(x)
+        y = y if type(y) is Fraction else Fraction(y)
+        # u = (x - a) / (b - a) * 2^depth as one integer quotient (no gcd on the way)
+        lo_num = (x.numerator * ad - an * x.denominator) * wn
+        lo_den = x.denominator * wd
+        hi_num = (y.numerator * ad - an * y.denominator) * wn
+        hi_den = y.denominator * wd
         if x < y:
-            first.append(math.floor(u_lo) + 1)
-            last.append(math.ceil(u_hi) - 1)
+            first.append(lo_num // lo_den + 1)
+            last.append(-(-hi_num // hi_den) - 1)
         else:
-            first.append(math.ceil(u_lo))
-            last.append(math.floor(u_hi))
+            first.append(-(-lo_num // lo_den))
+            last.append(hi_num // hi_den)
     return np.array(first, np.int64), np.array(last, np.int64)
+
+
+@lru_cache(maxsize=8)
+def _grid_units(window, depth):
+    """Per axis ``(a.n, a.d, W.n, W.d)`` with ``W = 2^depth / ((b - a) a.d)`` (exact), so
+    that ``(x - a) / (b - a) 2^depth = (x.n a.d - a.n x.d) W.n / (x.d W.d)`` for ``x = x.n /
+    x.d``; denominators are positive."""
+    out = []
+    for a, b in window:
+        a = Fraction(a)
+        unit = Fraction(1 << depth) / ((Fraction(b) - a) * a.denominator)
+        out.append((a.numerator, a.denominator, unit.numerator, unit.denominator))
+    return out
 
 
 def _escapes(ar, context, task, tube_boxes, cells, lo, hi):

@@ -28,6 +28,7 @@ import sympy
 from . import interval as iv
 from .krawczyk import RootSystem, evaluate, find_roots, merge_boxes, split_boxes
 from .program import compile_program
+from .taylor import lie_derivatives
 from .evaluate import parameter_enclosures
 
 __all__ = [
@@ -81,14 +82,12 @@ def _compile(equations, states, parameters, limits, fixed, interval_symbols, smo
 
     limit_programs = []
     for g in gs:
-        rate = sum((sympy.diff(g, s) * fs for s, fs in zip(states, f)), sympy.Integer(0))
+        rate, = lie_derivatives([g], f, states)
         pair = sympy.Matrix([g, rate])
         square = len(states) == 2
         curvature = None
         if smooth:
-            curvature = compile_program(
-                [sum((sympy.diff(rate, s) * fs for s, fs in zip(states, f)), sympy.Integer(0))],
-                inputs)
+            curvature = compile_program(lie_derivatives([rate], f, states), inputs)
         limit_programs.append(_LimitPrograms(
             rate=compile_program([g, rate], inputs), rate_exprs=(g, rate),
             tangency_jacobian=jac(pair, x) if square else None,

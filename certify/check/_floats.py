@@ -23,9 +23,10 @@ exact input intervals:
   correctly rounded there). ``sin`` and ``cos`` are computed from the operations above
   (argument reduction and Taylor polynomials with their remainders,
   :mod:`certify.check._trig`); the other elementary functions, real powers and constants
-  are computed by python-flint (arb) through :class:`certify.check._arith.EndpointArith`, whose ends are
-  exact 53-bit numbers; they are turned into floats by exact comparison (a lower end
-  becomes the largest float not above it, an upper end the smallest float not below).
+  are computed by python-flint (arb) through :class:`certify.check._arith.EndpointArith`,
+  whose ends are exact 53-bit numbers; they are turned into floats by exact comparison (a
+  lower end becomes the largest float not above it, an upper end the smallest float not
+  below).
   Rationals (the cells, the parameter boxes) are rounded outward the same way.
 * No reduction whose rounding is not controlled (``np.sum``, ``np.dot``, ``@``): sums of
   products are folded left with the outward-rounded add, in the prover's order

@@ -63,6 +63,8 @@ _EXACT = 1 << 53
 _NORMAL = 1 << 1022
 _SPACING = 2.0 ** -52
 _TINY = 2.0 ** -1074
+_MAX_ARB = arb(np.finfo(float).max)
+_TINY_ARB = arb(_TINY)
 
 
 #: Directions of rounding: ``toward`` arguments.
@@ -132,6 +134,9 @@ def float_down(q):
             v = float(q)
             if arb(v) == q:     # arb's == holds only for equal exact numbers
                 return v
+            beyond = _beyond_floats(q)
+            if beyond is not None:
+                return beyond
         q = _exact_fraction(q)
         if q is None:
             return np.nan
@@ -154,6 +159,22 @@ def float_up(q):
     if type(q) is not Fraction:
         q = _exact_fraction(q)
     return -float_down(-q)
+
+
+def _beyond_floats(q):
+    """:func:`float_down` of an exact arb number beyond the float range (above the
+    largest float, below its negative, or nearer to 0 than the smallest subnormal), or
+    None. Such numbers (``exp`` of a wide box) can have exponents of any size, too large
+    to turn into a Fraction; arb compares exact numbers exactly."""
+    if not q.is_finite():
+        return None
+    if q > _MAX_ARB:
+        return np.finfo(float).max
+    if q < -_MAX_ARB:
+        return _NEG
+    if abs(q) < _TINY_ARB:
+        return 0.0 if q > 0 else -_TINY
+    return None
 
 
 def _exact_fraction(q):

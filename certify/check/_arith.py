@@ -444,14 +444,14 @@ class EndpointArith(PairStorage):
         blo, bhi = b
         if alo is ahi:
             p, q = alo * blo, alo * bhi
-            return self._down(np.minimum(p, q)), self._up(np.maximum(p, q))
+            return _nan_together(self._down(np.minimum(p, q)), self._up(np.maximum(p, q)))
         if blo is bhi:
             p, q = alo * blo, ahi * blo
-            return self._down(np.minimum(p, q)), self._up(np.maximum(p, q))
+            return _nan_together(self._down(np.minimum(p, q)), self._up(np.maximum(p, q)))
         p1, p2, p3, p4 = alo * blo, alo * bhi, ahi * blo, ahi * bhi
         lo = np.minimum(np.minimum(p1, p2), np.minimum(p3, p4))
         hi = np.maximum(np.maximum(p1, p2), np.maximum(p3, p4))
-        return self._down(lo), self._up(hi)
+        return _nan_together(self._down(lo), self._up(hi))
 
     def div(self, a, b):
         alo, ahi = a
@@ -464,7 +464,8 @@ class EndpointArith(PairStorage):
         q1, q2, q3, q4 = num_lo / blo, num_lo / bhi, num_hi / blo, num_hi / bhi
         lo = np.minimum(self._down(q1), self._down(q2))
         hi = np.maximum(self._up(q3), self._up(q4))
-        return np.where(bad, self.nan, lo), np.where(bad, self.nan, hi)
+        # inf / inf gives a NaN candidate at one end (exp of a huge box is infinite)
+        return _nan_together(np.where(bad, self.nan, lo), np.where(bad, self.nan, hi))
 
     def pow_int(self, a, n):
         alo, ahi = a

@@ -16,6 +16,8 @@ References named beside the checks:
   ``t = x0 + 1/2``.
 """
 
+import ctypes
+import ctypes.util
 import hashlib
 
 import mpmath
@@ -24,8 +26,8 @@ import pytest
 
 from certify.certificate import certificate_data
 from certify.check import check_certificate
-from certify.check._arith import EndpointArith
-from certify.check._floats import FloatArith
+from certify.check._arith import ARITHMETICS, BallArith, EndpointArith
+from certify.check._floats import FloatArith, ieee_defaults
 from certify.container import encode_array, load_certificate_json, write_certificate
 from certify.model import parse_model
 from certify.prove import prove
@@ -185,3 +187,20 @@ def test_exp_beyond_the_float_range_rounds_to_the_extreme_floats():
     lo, hi = ar.function("exp", ar.box(np.array([1e12, -1e20]), np.array([1e12, -1e20])))
     assert lo[0] == MAX and hi[0] == np.inf
     assert lo[1] == 0.0 and hi[1] == 2.0 ** -1074
+
+
+@pytest.mark.parametrize("mode", [0x400, 0x800, 0xC00])
+def test_the_float_pass_gives_way_to_balls_under_another_rounding_mode(mode):
+    # reference: IEEE 754-2008 defaults (round to nearest, ties to even; subnormals),
+    # which TwoSum's exact error term and the outward step rely on; glibc's fesetround
+    # with x86's FE_DOWNWARD, FE_UPWARD, FE_TOWARDZERO (0x400, 0x800, 0xC00) changes the
+    # mode for the whole process, as a library could
+    libm = ctypes.CDLL(ctypes.util.find_library("m"))
+    assert ieee_defaults() and isinstance(ARITHMETICS["float"](), FloatArith)
+    assert libm.fesetround(mode) == 0
+    try:
+        defaults, first = ieee_defaults(), ARITHMETICS["float"]()
+    finally:
+        libm.fesetround(0)
+    assert not defaults and isinstance(first, BallArith)
+    assert ieee_defaults()

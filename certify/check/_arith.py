@@ -661,7 +661,10 @@ def _inner(ar, row, col):
 
 
 def _float_arith(pieces=Pieces()):
-    from ._floats import FloatArith     # it builds on EndpointArith, defined here
+    from ._floats import FloatArith, ieee_defaults  # it builds on EndpointArith, defined here
+    if not ieee_defaults():
+        # another rounding mode or flush-to-zero in this process: balls instead
+        return BallArith(pieces)
     return FloatArith(pieces)
 
 

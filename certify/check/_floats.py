@@ -53,7 +53,7 @@ from flint import arb
 
 from ._arith import EndpointArith, PairStorage, Pieces, float_inverse
 
-__all__ = ["FloatArith", "float_down", "float_up"]
+__all__ = ["FloatArith", "float_down", "float_up", "ieee_defaults"]
 
 _NEG = -np.inf
 _POS = np.inf
@@ -69,6 +69,18 @@ _TINY_ARB = arb(_TINY)
 
 #: Directions of rounding: ``toward`` arguments.
 DOWN, UP = -1.0, 1.0
+
+
+def ieee_defaults():
+    """Whether float64 arithmetic in this process has the IEEE 754 defaults this pass
+    relies on: rounding to nearest (TwoSum's exact error term) and subnormal numbers
+    (the ``2^-1074`` in :func:`_step`). A library may set another rounding mode or
+    flush-to-zero for the whole process; numpy's own loops are tested here."""
+    one, tiny = np.array([1.0, -1.0]), np.array([_TINY, 2.0 ** -1022])
+    nearest = np.array_equal(one + one * 2.0 ** -53, one) and \
+        np.array_equal(one + one * (3 * 2.0 ** -54), one * (1 + 2.0 ** -52))
+    subnormal = bool(np.all(tiny + 0.0 > 0)) and bool(np.all(tiny[1:] * 0.5 > 0))
+    return nearest and subnormal
 
 
 def _step(x, toward):

@@ -7,8 +7,9 @@ Every operation returns ends that enclose the exact range of the operation over 
 exact input intervals:
 
 * ``+ - * /`` and ``sqrt`` are IEEE 754 binary64 operations, correctly rounded to
-  nearest (numpy's float64 loops on x86-64 use the SSE2/AVX instructions, which are): the
-  rounded result is within half a float spacing of the exact one. Each end is then
+  nearest (numpy's float64 loops on x86-64 use the SSE2/AVX instructions, which are, in
+  the default mode that :func:`ieee_defaults` tests; elsewhere arb balls take this pass's
+  place): the rounded result is within half a float spacing of the exact one. Each end is then
   stepped outward by at least one spacing (``x -+ (|x| 2^-52 + 2^-1074)``, see
   :func:`_step`; it does what ``np.nextafter`` does, sometimes a float or two further,
   at a sixth of its cost), which reaches a float on the far side of the exact value.

@@ -465,3 +465,94 @@ def _doomed_surviving_its_deadline(data):
 def test_forged_outside_and_survival_claims_are_rejected(logistic, tmp_path, capsys, change,
                                                          reason):
     assert reason in _rejected(logistic, tmp_path, capsys, change)
+
+
+# -- step records the reader refuses, and steps no arithmetic verifies -------------------
+def _checked_safe_cell(data):
+    """A safe cell whose own steps the checker recomputes (not trapped)."""
+    labels, trapped = data["cells"]["label"], _cells(data, "trapped")
+    return next(c for c in range(len(labels)) if labels[c] == "safe" and trapped[c] < 0)
+
+
+def _first_step(key, value, where=()):
+    def change(data):
+        values = _cells(data, key)
+        values[(int(_cells(data, "step_start")[_checked_safe_cell(data)]),) + where] = value
+        _put(data, key, values)
+    return change
+
+
+@pytest.mark.parametrize("key, value, where", [
+    ("step_h", np.nan, ()), ("step_h", np.inf, ()), ("step_h", 0.0, ()),
+    ("step_h", -0.0, ()), ("step_h", -0.05, ()),
+    ("step_E", np.nan, (0, 0)), ("step_E", -np.inf, (0, 0)), ("step_E", np.inf, (0, 1)),
+])
+def test_steps_that_are_not_finite_or_not_forward_are_malformed(logistic, tmp_path, capsys,
+                                                                 key, value, where):
+    # IEEE 754-2008: -0.0 == 0.0 and NaN compares false both ways; a step of size <= 0
+    # (a backward or empty flow) or a tube box with an infinite side proves nothing
+    forged = _tampered(logistic, tmp_path, _first_step(key, value, where))
+    with pytest.raises(CertificateError, match=f"cells.{key}"):
+        check_certificate(forged, jobs=1)
+    assert _check_cli(forged, capsys) == 2
+
+
+def _swapped_tube(data):
+    # the tube box [lo, hi] stored as [hi, lo]: no solution can stay in it
+    s = int(_cells(data, "step_start")[_checked_safe_cell(data)])
+    E = _cells(data, "step_E")
+    E[s, 0] = E[s, 0, ::-1].copy()
+    _put(data, "step_E", E)
+
+
+def _tube_to_the_float_range(data):
+    # a tube box [-MAX, MAX]: the field on it overflows (inf - inf is NaN in the float
+    # pass), so the Picard inclusion cannot hold in any pass
+    s = int(_cells(data, "step_start")[_checked_safe_cell(data)])
+    E = _cells(data, "step_E")
+    E[s, 0] = [-np.finfo(float).max, np.finfo(float).max]
+    _put(data, "step_E", E)
+
+
+def _tiny_first_step(data):
+    # the smallest subnormal as the first step (horizon adjusted): a positive step is
+    # sound and its tubes still hold, but the image now lies where the flow is a step
+    # earlier, beyond the stored successors
+    c = _checked_safe_cell(data)
+    start, h = _cells(data, "step_start"), _cells(data, "step_h")
+    h[start[c]] = 5e-324
+    _put(data, "step_h", h)
+    T = sum((Fraction(v) for v in h[start[c]:start[c + 1]]), Fraction(0))
+    horizon = _cells(data, "horizon")
+    horizon[c] = [np.nextafter(float(T), -np.inf), np.nextafter(float(T), np.inf)]
+    _put(data, "horizon", horizon)
+
+
+@pytest.mark.parametrize("change, reason", [
+    (_swapped_tube, "step 0 does not verify"),
+    (_tube_to_the_float_range, "step 0 does not verify"),
+    (_tiny_first_step, "which is not among its successors"),
+])
+def test_edited_steps_are_rejected(logistic, tmp_path, capsys, change, reason):
+    assert reason in _rejected(logistic, tmp_path, capsys, change)
+
+
+@pytest.mark.parametrize("frames", ["parallelepiped", "QR", "", None, ["qr"]])
+def test_an_unknown_frame_rule_is_malformed(logistic, tmp_path, capsys, frames):
+    forged = _tampered(logistic, tmp_path, lambda d: d["method"].update(frames=frames))
+    with pytest.raises(CertificateError, match="method.frames"):
+        check_certificate(forged, jobs=1)
+    assert _check_cli(forged, capsys) == 2
+
+
+@pytest.mark.parametrize("method", [{"frames": "qr"}, {"frames": "qr+parallelepiped"},
+                                    {"order": 1}, {"order": 8}])
+def test_no_frame_rule_or_order_proves_a_false_safe_cell(logistic, tmp_path, capsys,
+                                                          method):
+    # the cell holding the unstable equilibrium 0.2 claimed safe: its starts below 0.2
+    # cross the floor (Schaefer 1954 (mem)). Frames and order are the checker's method,
+    # any of them sound: each recomputes the steps and none proves the claim
+    def change(data):
+        _claim_safe(data, _undecided_at_the_threshold(data))
+        data["method"].update(method)
+    _rejected(logistic, tmp_path, capsys, change)

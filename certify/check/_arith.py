@@ -17,9 +17,10 @@
     inclusion the prover established with outward-rounded doubles also holds here.
 
 A NaN (arb ``nan``) marks an unusable interval (division by an interval containing 0,
-a function outside its domain); comparisons with NaN are False, so nothing is proven
-from it. The endpoint path never produces infinite bounds (``log`` of an interval
-reaching 0 is unusable), so a NaN interval always has two NaN ends there.
+a function outside its domain or beyond what arb bounds, such as ``cosh`` of 1e300);
+comparisons with NaN are False, so nothing is proven from it. A NaN interval has two NaN
+ends on the endpoint path (:func:`_nan_together`): numpy's minimum and maximum of object
+arrays drop a NaN first operand, so a lone NaN end would vanish in a later product.
 """
 
 from __future__ import annotations
@@ -43,6 +44,7 @@ _lower = np.frompyfunc(arb.lower, 1, 1)
 _upper = np.frompyfunc(arb.upper, 1, 1)
 _union = np.frompyfunc(arb.union, 2, 1)
 _finite = np.frompyfunc(arb.is_finite, 1, 1)
+_is_nan = np.frompyfunc(arb.is_nan, 1, 1)
 _abs_lower = np.frompyfunc(arb.abs_lower, 1, 1)
 _abs_upper = np.frompyfunc(arb.abs_upper, 1, 1)
 _min = np.frompyfunc(arb.min, 2, 1)
@@ -442,14 +444,14 @@ class EndpointArith(PairStorage):
         blo, bhi = b
         if alo is ahi:
             p, q = alo * blo, alo * bhi
-            return self._down(np.minimum(p, q)), self._up(np.maximum(p, q))
+            return _nan_together(self._down(np.minimum(p, q)), self._up(np.maximum(p, q)))
         if blo is bhi:
             p, q = alo * blo, ahi * blo
-            return self._down(np.minimum(p, q)), self._up(np.maximum(p, q))
+            return _nan_together(self._down(np.minimum(p, q)), self._up(np.maximum(p, q)))
         p1, p2, p3, p4 = alo * blo, alo * bhi, ahi * blo, ahi * bhi
         lo = np.minimum(np.minimum(p1, p2), np.minimum(p3, p4))
         hi = np.maximum(np.maximum(p1, p2), np.maximum(p3, p4))
-        return self._down(lo), self._up(hi)
+        return _nan_together(self._down(lo), self._up(hi))
 
     def div(self, a, b):
         alo, ahi = a
@@ -462,7 +464,8 @@ class EndpointArith(PairStorage):
         q1, q2, q3, q4 = num_lo / blo, num_lo / bhi, num_hi / blo, num_hi / bhi
         lo = np.minimum(self._down(q1), self._down(q2))
         hi = np.maximum(self._up(q3), self._up(q4))
-        return np.where(bad, self.nan, lo), np.where(bad, self.nan, hi)
+        # inf / inf gives a NaN candidate at one end (exp of a huge box is infinite)
+        return _nan_together(np.where(bad, self.nan, lo), np.where(bad, self.nan, hi))
 
     def pow_int(self, a, n):
         alo, ahi = a
@@ -478,7 +481,7 @@ class EndpointArith(PairStorage):
         flo, fhi = f(lo), f(hi)
         if not increasing:
             flo, fhi = fhi, flo
-        return self._down(flo), self._up(fhi)
+        return _nan_together(self._down(flo), self._up(fhi))
 
     def pow_real(self, a, q):
         alo, ahi = a
@@ -524,8 +527,9 @@ class EndpointArith(PairStorage):
             straddle = _bool(alo <= 0) & _bool(ahi >= 0)
             ctx.prec = FUNCTION_PREC
             c1, c2 = _FUNCTIONS["cosh"](alo), _FUNCTIONS["cosh"](ahi)
+            c1, c2 = _nan_together(c1, c2)      # arb's cosh is NaN beyond about 1e80
             lo = np.where(straddle, arb(1), np.minimum(self._down(c1), self._down(c2)))
-            return lo, np.maximum(self._up(c1), self._up(c2))
+            return _nan_together(lo, np.maximum(self._up(c1), self._up(c2)))
         pairs = np.frompyfunc(lambda lo, hi: _periodic(name, lo, hi), 2, 2)(a[0], a[1])
         ctx.prec = EXACT_PREC
         return pairs
@@ -595,6 +599,15 @@ def _approximate_inverse(ar, A):
     return [[ar.exact(C[:, i, j]) for j in range(n)] for i in range(n)]
 
 
+def _nan_together(lo, hi):
+    """Both ends NaN wherever one is. arb returns NaN for some finite arguments (sinh and
+    cosh beyond about 1e80), and numpy's minimum and maximum of object arrays return the
+    second operand when the first is NaN, so an interval with one NaN end would lose it
+    in a later product or hull; a NaN interval has two NaN ends (module notes)."""
+    bad = _bool(_is_nan(lo)) | _bool(_is_nan(hi))
+    return np.where(bad, _nan(), lo), np.where(bad, _nan(), hi)
+
+
 def _keep_nan(value, *sources):
     """`value`, made NaN wherever a source is NaN (``x - x`` is 0 or NaN, exactly)."""
     for s in sources:
@@ -613,6 +626,8 @@ def _periodic(name, lo, hi):
         if _may_contain(lo, hi, pi / 2, pi):
             return _nan(), _nan()
         v_lo, v_hi = lo.tan(), hi.tan()
+        if v_lo.is_nan() or v_hi.is_nan():
+            return _nan(), _nan()
         ctx.prec = ROUND_PREC
         return v_lo.lower(), v_hi.upper()
     shift = arb(0) if name == "cos" else pi / 2
@@ -621,6 +636,8 @@ def _periodic(name, lo, hi):
     has_max = _may_contain(lo, hi, shift, 2 * pi)
     has_min = _may_contain(lo, hi, shift + pi, 2 * pi)
     v1, v2 = f(lo), f(hi)
+    if v1.is_nan() or v2.is_nan():
+        return _nan(), _nan()
     ctx.prec = ROUND_PREC
     lo1, lo2, hi1, hi2 = v1.lower(), v2.lower(), v1.upper(), v2.upper()
     out_lo = arb(-1) if has_min else (lo1 if lo1 < lo2 else lo2)
@@ -644,7 +661,10 @@ def _inner(ar, row, col):
 
 
 def _float_arith(pieces=Pieces()):
-    from ._floats import FloatArith     # it builds on EndpointArith, defined here
+    from ._floats import FloatArith, ieee_defaults  # it builds on EndpointArith, defined here
+    if not ieee_defaults():
+        # another rounding mode or flush-to-zero in this process: balls instead
+        return BallArith(pieces)
     return FloatArith(pieces)
 
 

@@ -7,8 +7,9 @@ Every operation returns ends that enclose the exact range of the operation over 
 exact input intervals:
 
 * ``+ - * /`` and ``sqrt`` are IEEE 754 binary64 operations, correctly rounded to
-  nearest (numpy's float64 loops on x86-64 use the SSE2/AVX instructions, which are): the
-  rounded result is within half a float spacing of the exact one. Each end is then
+  nearest (numpy's float64 loops on x86-64 use the SSE2/AVX instructions, which are, in
+  the default mode that :func:`ieee_defaults` tests; elsewhere arb balls take this pass's
+  place): the rounded result is within half a float spacing of the exact one. Each end is then
   stepped outward by at least one spacing (``x -+ (|x| 2^-52 + 2^-1074)``, see
   :func:`_step`; it does what ``np.nextafter`` does, sometimes a float or two further,
   at a sixth of its cost), which reaches a float on the far side of the exact value.
@@ -57,7 +58,7 @@ from flint import arb
 from ._arith import EndpointArith, PairStorage, Pieces, float_inverse
 from ._trig import periodic
 
-__all__ = ["FloatArith", "float_down", "float_up"]
+__all__ = ["FloatArith", "float_down", "float_up", "ieee_defaults"]
 
 _NEG = -np.inf
 _POS = np.inf
@@ -67,10 +68,24 @@ _EXACT = 1 << 53
 _NORMAL = 1 << 1022
 _SPACING = 2.0 ** -52
 _TINY = 2.0 ** -1074
+_MAX_ARB = arb(np.finfo(float).max)
+_TINY_ARB = arb(_TINY)
 
 
 #: Directions of rounding: ``toward`` arguments.
 DOWN, UP = -1.0, 1.0
+
+
+def ieee_defaults():
+    """Whether float64 arithmetic in this process has the IEEE 754 defaults this pass
+    relies on: rounding to nearest (TwoSum's exact error term) and subnormal numbers
+    (the ``2^-1074`` in :func:`_step`). A library may set another rounding mode or
+    flush-to-zero for the whole process; numpy's own loops are tested here."""
+    one, tiny = np.array([1.0, -1.0]), np.array([_TINY, 2.0 ** -1022])
+    nearest = np.array_equal(one + one * 2.0 ** -53, one) and \
+        np.array_equal(one + one * (3 * 2.0 ** -54), one * (1 + 2.0 ** -52))
+    subnormal = bool(np.all(tiny + 0.0 > 0)) and bool(np.all(tiny[1:] * 0.5 > 0))
+    return nearest and subnormal
 
 
 def _step(x, toward):
@@ -136,6 +151,9 @@ def float_down(q):
             v = float(q)
             if arb(v) == q:     # arb's == holds only for equal exact numbers
                 return v
+            beyond = _beyond_floats(q)
+            if beyond is not None:
+                return beyond
         q = _exact_fraction(q)
         if q is None:
             return np.nan
@@ -158,6 +176,22 @@ def float_up(q):
     if type(q) is not Fraction:
         q = _exact_fraction(q)
     return -float_down(-q)
+
+
+def _beyond_floats(q):
+    """:func:`float_down` of an exact arb number beyond the float range (above the
+    largest float, below its negative, or nearer to 0 than the smallest subnormal), or
+    None. Such numbers (``exp`` of a wide box) can have exponents of any size, too large
+    to turn into a Fraction; arb compares exact numbers exactly."""
+    if not q.is_finite():
+        return None
+    if q > _MAX_ARB:
+        return np.finfo(float).max
+    if q < -_MAX_ARB:
+        return _NEG
+    if abs(q) < _TINY_ARB:
+        return 0.0 if q > 0 else -_TINY
+    return None
 
 
 def _exact_fraction(q):

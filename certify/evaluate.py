@@ -45,8 +45,12 @@ def evaluate_boxes(program, lo, hi, params):
         Outward-rounded enclosures; NaN marks unusable rows.
     """
     n_rows = len(lo)
+    # a point (a box of width 0, a parameter with one value) is passed as one array for
+    # both bounds: the kernels then skip the products that would repeat (interval.mul)
     cols_lo = list(lo.T) + [np.full(n_rows, p[0]) for p in params]
-    cols_hi = list(hi.T) + [np.full(n_rows, p[1]) for p in params]
+    cols_hi = (cols_lo[:len(lo.T)] if hi is lo else list(hi.T)) + [
+        cols_lo[len(lo.T) + k] if p[0] == p[1] else np.full(n_rows, p[1])
+        for k, p in enumerate(params)]
     out = program.interval_columns(cols_lo, cols_hi)
     if not out:
         return np.zeros((n_rows, 0)), np.zeros((n_rows, 0))

@@ -183,7 +183,7 @@ def outward_pair(pair, neg_possible, pos_possible):
     d += _TINY
     pair[0] -= d[0]
     pair[1] += d[1]
-    if zero.any():
+    if np.count_nonzero(zero):  # much cheaper than zero.any() on small arrays
         zero[0] &= np.logical_not(neg_possible())
         zero[1] &= np.logical_not(pos_possible())
         np.copyto(pair, 0.0, where=zero)

@@ -66,13 +66,16 @@ def sub(a, b):
 
 def _extremes(p):
     """``[min; max]`` of the endpoint results ``p[i, j]`` (bound ``i`` of the first
-    operand with bound ``j`` of the second), folded as ``min(min(p00, p01), min(p10,
-    p11))`` like :func:`certify.interval.mul`."""
+    operand with bound ``j`` of the second) over ``i, j``.
+
+    :func:`certify.interval.mul` folds them in another order; the results differ at
+    most in the sign of a zero, which the outward step that follows turns into the
+    same bound (``-0`` and ``0`` both round to ``-2**-1074`` or stay ``0``).
+    """
+    flat = p.reshape((-1,) + p.shape[2:])
     pair = np.empty((2,) + p.shape[2:])
-    low = np.minimum(p[:, 0], p[:, -1])
-    np.minimum(low[0], low[-1], out=pair[0])
-    high = np.maximum(p[:, 0], p[:, -1])
-    np.maximum(high[0], high[-1], out=pair[1])
+    np.minimum.reduce(flat, axis=0, out=pair[0])
+    np.maximum.reduce(flat, axis=0, out=pair[1])
     return pair
 
 

@@ -301,10 +301,27 @@ class Program:
         shape = np.broadcast_shapes(*(np.shape(c) for c in lo_cols)) if lo_cols else ()
         axes = max(len(shape), 1)
         inputs = [_stacked_input(lo, hi, axes) for lo, hi in zip(lo_cols, hi_cols)]
-        with np.errstate(invalid="ignore", over="ignore"):
-            out = self._run_interval(inputs, self._constants_for(axes))
         return [tuple(np.broadcast_to(b, shape) if shape else b.reshape(())
-                      for b in stacked.bounds(o)) for o in out]
+                      for b in stacked.bounds(o)) for o in self.stacked(inputs)]
+
+    def stacked(self, inputs):
+        """Evaluate on interval arrays (:mod:`certify.stacked`).
+
+        Parameters
+        ----------
+        inputs : sequence of ndarray, length ``len(inputs)``
+            Each of shape ``(2, ...)`` or ``(1, ...)`` (a point), the trailing axes
+            broadcasting together (at least one).
+
+        Returns
+        -------
+        list of ndarray
+            One interval array per output (trailing axes: those of the inputs, or fewer
+            where an output does not depend on all of them); NaN marks unusable rows.
+        """
+        axes = max(np.ndim(i) for i in inputs) - 1 if inputs else 1
+        with np.errstate(invalid="ignore", over="ignore"):
+            return self._run_interval(inputs, self._constants_for(axes))
 
     def _constants_for(self, axes):
         """The program's constants as interval arrays with `axes` axes after the bound

@@ -2,7 +2,7 @@
 
 Run from the repository root::
 
-    .venv/bin/python benchmarks/library_bench.py [--depths 8 9] [--depth-3d 6] [--repeat 3]
+    .venv/bin/python benchmarks/library_bench.py [--depths 8 9] [--depth-3d 6] [--repeat 3] [--no-3d]
 
 For each 2D model of the library and each maximum depth D (cells of 1/2^D of each
 window side) it runs ``certify.prove`` from scratch with the model's own method
@@ -241,8 +241,8 @@ def main(argv=None):
     argv : list of str, optional
         ``--depths D ...`` for the 2D models (default 8 9), ``--depth-3d D`` (default 6),
         ``--time-limit S`` per proof (default 900 s), ``--repeat N`` proofs per row
-        (medians of the times), ``--floor-cells K`` cells sampled for the mixed floor
-        (default 2000, 0 to skip).
+        (medians of the times), ``--no-3d`` (2D models only), ``--floor-cells K``
+        cells sampled for the mixed floor (default 2000, 0 to skip).
 
     Returns
     -------
@@ -258,6 +258,8 @@ def main(argv=None):
                         help="time limit of each proof in seconds (default: 900)")
     parser.add_argument("--repeat", type=int, default=1,
                         help="proofs per row; times are medians (default: 1)")
+    parser.add_argument("--no-3d", action="store_true",
+                        help="measure the 2D models only (no row for the 3D model)")
     parser.add_argument("--floor-cells", type=int, default=2000,
                         help="cells sampled for the mixed floor (default: 2000; 0: skip)")
     args = parser.parse_args(argv)
@@ -265,7 +267,9 @@ def main(argv=None):
     rows = []
     for case in CASES_2D:
         rows += measure(case, args.depths, args.time_limit, args.repeat, args.floor_cells)
-    rows += measure(CASE_3D, [args.depth_3d], args.time_limit, args.repeat, args.floor_cells)
+    if not args.no_3d:
+        rows += measure(CASE_3D, [args.depth_3d], args.time_limit, args.repeat,
+                        args.floor_cells)
     load_end = ", ".join(f"{v:.1f}" for v in os.getloadavg())
     write_section(SECTION, render(rows, info, load_end))
     print(f"wrote section '{SECTION}' of {RESULTS.relative_to(ROOT)}")

@@ -45,12 +45,17 @@ def evaluate_boxes(program, lo, hi, params):
         Outward-rounded enclosures; NaN marks unusable rows.
     """
     n_rows = len(lo)
-    cols_lo = list(lo.T) + [np.full(n_rows, p[0]) for p in params]
-    cols_hi = list(hi.T) + [np.full(n_rows, p[1]) for p in params]
-    out = program.interval_columns(cols_lo, cols_hi)
+    # the state columns as interval arrays (certify.stacked) in one copy; a box of width
+    # 0 and a parameter with one value are points, which the kernels multiply with
+    # half the products, and a parameter enters with one row for every box
+    states = lo[None] if hi is lo else np.stack((lo, hi))
+    inputs = [states[..., k] for k in range(lo.shape[1])] + [
+        np.array(p[:1] if p[0] == p[1] else p, float).reshape(-1, 1) for p in params]
+    out = program.stacked(inputs)
     if not out:
         return np.zeros((n_rows, 0)), np.zeros((n_rows, 0))
-    return np.stack([o[0] for o in out], -1), np.stack([o[1] for o in out], -1)
+    both = np.stack([np.broadcast_to(o, (2, n_rows)) for o in out], -1)
+    return both[0], both[1]
 
 
 def evaluate_limits(programs, lo, hi, params, rates=False):

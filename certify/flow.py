@@ -29,6 +29,7 @@ from itertools import product
 import numpy as np
 
 from . import interval as iv
+from . import stacked
 from .evaluate import evaluate_boxes
 
 __all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
@@ -54,15 +55,15 @@ STATUS_REASONS = {
 def imatmul(alo, ahi, blo, bhi):
     """Interval matrix product of stacks ``(N, n, k) @ (N, k, p)``.
 
-    Entry ``(i, j)`` is ``sum_l a_il b_lj`` folded left over ``l``.
+    Entry ``(i, j)`` is ``sum_l a_il b_lj`` folded left over ``l``. A float matrix
+    passed as one array for both bounds is a point (its products are computed once).
     """
-    k = alo.shape[-1]
-    lo, hi = iv.mul(alo[..., :, 0:1], ahi[..., :, 0:1], blo[..., 0:1, :], bhi[..., 0:1, :])
-    for l in range(1, k):
-        plo, phi = iv.mul(alo[..., :, l:l + 1], ahi[..., :, l:l + 1],
-                          blo[..., l:l + 1, :], bhi[..., l:l + 1, :])
-        lo, hi = iv.add(lo, hi, plo, phi)
-    return lo, hi
+    a, b = stacked.stack(alo, ahi), stacked.stack(blo, bhi)
+    products = stacked.mul(a[..., :, :, None], b[..., None, :, :])
+    acc = products[..., 0, :]
+    for l in range(1, alo.shape[-1]):
+        acc = stacked.add(acc, products[..., l, :])
+    return stacked.bounds(acc)
 
 
 def _matvec(alo, ahi, vlo, vhi):
@@ -372,25 +373,34 @@ def _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
             plo_, phi_ = iv.mul(hk[k][0][:, None, None], hk[k][1][:, None, None], g_lo, g_hi)
             dlo, dhi = iv.add(dlo, dhi, plo_, phi_)
     # every set of the box: its image Y + M [r] and its new coordinates; the end box
-    # is the intersection of all of them
+    # is the intersection of all of them. The sets are stacked along the batch axis
+    # (set k of box b in row k N + b): one pass of each operation serves all of them
     new_m = 0.5 * (ylo + yhi)
-    endlo, endhi = np.full((N, n), -np.inf), np.full((N, n), np.inf)
+    K = len(sets)
+    A, rlo, rhi = (np.concatenate(part) for part in zip(*sets))
+    Mlo, Mhi = imatmul(*_repeat(K, dlo, dhi), A, A)
+    vlo, vhi = _matvec(Mlo, Mhi, rlo, rhi)
+    yklo, ykhi, km = _repeat(K, ylo, yhi, new_m)
+    blo, bhi = iv.add(yklo, ykhi, vlo, vhi)
+    mid, width = 0.5 * (Mlo + Mhi), rhi - rlo
+    Q = np.concatenate([frame(mid[k * N:(k + 1) * N], width[k * N:(k + 1) * N])
+                        for k, frame in enumerate(_FRAMES[frames])])
+    Q, nrlo, nrhi, hlo, hhi = _coordinates(Q, km, yklo, ykhi, Mlo, Mhi, rlo, rhi)
+    endlo = np.maximum(hlo, blo).reshape(K, N, n).max(axis=0)
+    endhi = np.minimum(hhi, bhi).reshape(K, N, n).min(axis=0)
     usable = np.all(np.isfinite(new_m), axis=1)
-    new_sets = []
-    for (A, rlo, rhi), frame in zip(sets, _FRAMES[frames]):
-        Mlo, Mhi = imatmul(dlo, dhi, A, A)
-        vlo, vhi = _matvec(Mlo, Mhi, rlo, rhi)
-        blo, bhi = iv.add(ylo, yhi, vlo, vhi)
-        Q = frame(0.5 * (Mlo + Mhi), rhi - rlo)
-        Q, nrlo, nrhi, hlo, hhi = _coordinates(Q, new_m, ylo, yhi, Mlo, Mhi, rlo, rhi)
-        endlo = np.maximum(endlo, np.maximum(hlo, blo))
-        endhi = np.minimum(endhi, np.minimum(hhi, bhi))
-        usable &= np.all(np.isfinite(nrlo) & np.isfinite(nrhi), axis=1)
-        new_sets.append((Q, nrlo, nrhi))
+    usable &= np.all((np.isfinite(nrlo) & np.isfinite(nrhi)).reshape(K, N, n), axis=(0, 2))
+    new_sets = [(Q[k * N:(k + 1) * N], nrlo[k * N:(k + 1) * N], nrhi[k * N:(k + 1) * N])
+                for k in range(K)]
     usable &= np.all(np.isfinite(endlo) & np.isfinite(endhi), axis=1)
     # how much the remainder adds, relative to the set's own size (step-size control)
     growth = np.max((Rhi - Rlo) / np.maximum(xhi - xlo, 1e-300), axis=1)
     return new_m, new_sets, endlo, endhi, usable, growth
+
+
+def _repeat(K, *arrays):
+    """Each array `K` times along its first axis (the rows of `K` stacked sets)."""
+    return [np.concatenate([a] * K) if K > 1 else a for a in arrays]
 
 
 #: Significant bits of a step size: few distinct sizes make a small certificate.

@@ -36,7 +36,7 @@ __all__ = [
     "sqrt", "exp", "log", "sin", "cos", "tan", "atan", "tanh", "sinh", "cosh",
     "iabs", "imin", "imax", "hull", "intersect", "enclose_fraction", "enclose_constant",
     "certainly_lt", "certainly_le", "possibly_lt", "possibly_le", "is_usable",
-    "round_down", "round_up", "outward_single",
+    "round_down", "round_up", "outward_single", "outward_pair", "sum_error",
 ]
 
 _INF = np.inf
@@ -92,7 +92,7 @@ def outward_single(lo, hi):
     return (np.where(np.isfinite(down), down, lo), np.where(np.isfinite(up), up, hi))
 
 
-def _sum_error(a, b):
+def sum_error(a, b):
     """The float sum and the sign-carrying error of TwoSum (NaN when not finite)."""
     s = a + b
     bb = s - a
@@ -101,14 +101,14 @@ def _sum_error(a, b):
 
 def _sum_down(a, b):
     """``a + b`` rounded down; exact sums stay exact (TwoSum)."""
-    s, err = _sum_error(a, b)
+    s, err = sum_error(a, b)
     # err is NaN when s overflowed or is infinite: then widen, which is sound
     return np.where(err >= 0, s, round_down(s))
 
 
 def _sum_up(a, b):
     """``a + b`` rounded up; exact sums stay exact (TwoSum)."""
-    s, err = _sum_error(a, b)
+    s, err = sum_error(a, b)
     return np.where(err <= 0, s, round_up(s))
 
 
@@ -132,38 +132,92 @@ def shift(alo, ahi, c):
     return _sum_down(alo, c), _sum_up(ahi, c)
 
 
-def _outward(lo, hi, neg_possible, pos_possible):
-    """Round the min and max of exact-or-rounded results outward.
+def _pair(*shapes):
+    """An empty ``(2, *shape)`` array for the lower and upper bounds of a result of the
+    broadcast shape of `shapes`, and that shape (a scalar result has shape ``(1,)`` in
+    the pair, so that its rows are views numpy can write into)."""
+    shape = shapes[0]
+    for other in shapes[1:]:
+        if other != shape:
+            shape = np.broadcast_shapes(*shapes)
+            break
+    return np.empty((2,) + (shape or (1,))), shape
+
+
+def _unpair(out, shape):
+    """The two bounds held by a pair of :func:`_pair` (scalars for shape ``()``)."""
+    return (out[0], out[1]) if shape else (out[0, 0], out[1, 0])
+
+
+def _extremes(pair, p, q, r=None, s=None):
+    """Fill `pair` with ``min(min(p, q), min(r, s))`` and the max likewise (``min(p, q)``
+    and ``max(p, q)`` without `r`, `s`)."""
+    lo, hi = pair[0], pair[1]
+    np.minimum(p, q, out=lo)
+    np.maximum(p, q, out=hi)
+    if r is not None:
+        np.minimum(lo, np.minimum(r, s), out=lo)
+        np.maximum(hi, np.maximum(r, s), out=hi)
+
+
+def outward_pair(pair, neg_possible, pos_possible):
+    """Round ``pair[0]`` down and ``pair[1]`` up in place, each by at least one ulp (see
+    :func:`round_down`).
 
     A bound that came out exactly 0 stays 0 when no result of the other sign is
     possible: then 0 is either exact (a zero factor) or a valid bound of a value that
     underflowed towards 0 from the right side. The sign tests run only on the (rare)
     entries that came out 0; ``neg_possible()`` and ``pos_possible()`` return masks.
+
+    Parameters
+    ----------
+    pair : ndarray, shape (2, ...)
+        Lower and upper results, exact or rounded to nearest; rounded in place.
+    neg_possible, pos_possible : callable
+        Masks (broadcasting to ``pair.shape[1:]``) where an exact result below (above)
+        0 is possible.
     """
-    if np.ndim(lo) == 0:
-        out_lo, out_hi = _outward(np.array([lo], float), np.array([hi], float),
-                                  neg_possible, pos_possible)
-        return out_lo[0], out_hi[0]
-    out_lo = round_down(lo)
-    out_hi = round_up(hi)
-    zero_lo = lo == 0
-    if zero_lo.any():
-        out_lo[zero_lo & ~np.broadcast_to(neg_possible(), lo.shape)] = 0.0
-    zero_hi = hi == 0
-    if zero_hi.any():
-        out_hi[zero_hi & ~np.broadcast_to(pos_possible(), hi.shape)] = 0.0
-    return out_lo, out_hi
+    zero = pair == 0
+    d = np.abs(pair)
+    d *= _ULP
+    d += _TINY
+    pair[0] -= d[0]
+    pair[1] += d[1]
+    if np.count_nonzero(zero):  # much cheaper than zero.any() on small arrays
+        zero[0] &= np.logical_not(neg_possible())
+        zero[1] &= np.logical_not(pos_possible())
+        np.copyto(pair, 0.0, where=zero)
+
+
+def _outward(pair, shape, neg_possible, pos_possible):
+    """:func:`outward_pair`, then the bounds (see :func:`_unpair`)."""
+    outward_pair(pair, neg_possible, pos_possible)
+    return _unpair(pair, shape)
 
 
 def mul(alo, ahi, blo, bhi):
-    """Interval product ``[a] * [b]`` (``0 * inf`` gives NaN, hence unusable)."""
-    p1 = alo * blo
-    p2 = alo * bhi
-    p3 = ahi * blo
-    p4 = ahi * bhi
-    lo = np.minimum(np.minimum(p1, p2), np.minimum(p3, p4))
-    hi = np.maximum(np.maximum(p1, p2), np.maximum(p3, p4))
-    return _outward(lo, hi,
+    """Interval product ``[a] * [b]`` (``0 * inf`` gives NaN, hence unusable).
+
+    The bounds are the min and max of the four endpoint products (folded as
+    ``min(min(p1, p2), min(p3, p4))``); a factor passed as one array for both bounds
+    (a point) has two equal products, which are computed once.
+    """
+    if blo is bhi:
+        p1 = alo * blo
+        p3 = p1 if alo is ahi else ahi * blo
+        pair, shape = _pair(np.shape(p1), np.shape(p3))
+        _extremes(pair, p1, p3)
+    elif alo is ahi:
+        p1 = alo * blo
+        p2 = alo * bhi
+        pair, shape = _pair(np.shape(p1), np.shape(p2))
+        _extremes(pair, p1, p2)
+    else:
+        p1 = alo * blo
+        p4 = ahi * bhi
+        pair, shape = _pair(np.shape(p1), np.shape(p4))
+        _extremes(pair, p1, alo * bhi, ahi * blo, p4)
+    return _outward(pair, shape,
                     lambda: ((alo < 0) & (bhi > 0)) | ((ahi > 0) & (blo < 0)),
                     lambda: ((alo < 0) & (blo < 0)) | ((ahi > 0) & (bhi > 0)))
 
@@ -189,13 +243,11 @@ def div(alo, ahi, blo, bhi):
     bad = (blo <= 0) & (bhi >= 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         q1 = alo / blo
-        q2 = alo / bhi
-        q3 = ahi / blo
         q4 = ahi / bhi
-    lo = np.minimum(np.minimum(q1, q2), np.minimum(q3, q4))
-    hi = np.maximum(np.maximum(q1, q2), np.maximum(q3, q4))
+        pair, shape = _pair(np.shape(q1), np.shape(q4))
+        _extremes(pair, q1, alo / bhi, ahi / blo, q4)
     # the divisor has one strict sign where it is usable
-    lo, hi = _outward(lo, hi,
+    lo, hi = _outward(pair, shape,
                       lambda: ((alo < 0) & (blo > 0)) | ((ahi > 0) & (bhi < 0)),
                       lambda: ((alo < 0) & (bhi < 0)) | ((ahi > 0) & (blo > 0)))
     return np.where(bad, np.nan, lo), np.where(bad, np.nan, hi)

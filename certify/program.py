@@ -27,6 +27,7 @@ import numpy as np
 import sympy
 
 from . import interval as iv
+from . import stacked
 from .errors import ModelError
 
 __all__ = ["Program", "compile_program"]
@@ -184,15 +185,15 @@ class _Emitter:
 
 
 def _interval_line(k, ins):
-    out = f"l{k}, h{k}"
-    a = [f"l{j}, h{j}" for j in ins.args]
+    out = f"p{k}"
+    a = [f"p{j}" for j in ins.args]
     if ins.op == "input":
-        return f"{out} = LO[{ins.extra[0]}], HI[{ins.extra[0]}]"
+        return f"{out} = IN[{ins.extra[0]}]"
     if ins.op == "const":
-        return f"{out} = {ins.extra[0]!r}, {ins.extra[1]!r}"
+        return f"{out} = CONST[{k}]"
     if ins.op in ("pow_int", "pow_real"):
-        return f"{out} = K.{ins.op}({a[0]}, X[{k}])"
-    return f"{out} = K.{ins.op}({', '.join(a)})"
+        return f"{out} = K_{ins.op}({a[0]}, X[{k}])"
+    return f"{out} = K_{ins.op}({', '.join(a)})"
 
 
 def _point_line(k, ins):
@@ -211,6 +212,18 @@ def _point_line(k, ins):
         return f"v{k} = np.sqrt({a[0]})"
     names = {name: fn.__name__ for name, fn in _UNARY.values()}
     return f"v{k} = np.{names[ins.op]}({a[0]})"
+
+
+def _stacked_input(lo, hi, axes):
+    """The interval array of one input column with `axes` axes after the bound axis (one
+    array for both bounds: a point)."""
+
+    def padded(c):
+        c = np.asarray(c, float)
+        return c.reshape((1,) * (axes - c.ndim) + c.shape) if c.ndim < axes else c
+
+    low = padded(lo)
+    return stacked.stack(low, low if hi is lo else padded(hi))
 
 
 def _dead_after(instructions, outputs):
@@ -252,21 +265,23 @@ class Program:
         self._outputs = outputs
         extras = {k: ins.extra[0] for k, ins in enumerate(self.instructions)
                   if ins.op in ("pow_int", "pow_real")}
-        ret_i = ", ".join(f"(l{k}, h{k})" for k in outputs)
+        ret_i = ", ".join(f"p{k}" for k in outputs)
         ret_p = ", ".join(f"v{k}" for k in outputs)
         dead = _dead_after(self.instructions, outputs)
         body_i = "\n    ".join(_interval_line(k, ins)
-                              + "".join(f"; del l{j}, h{j}" for j in dead[k])
+                              + "".join(f"; del p{j}" for j in dead[k])
                               for k, ins in enumerate(self.instructions))
         body_p = "\n    ".join(_point_line(k, ins) + "".join(f"; del v{j}" for j in dead[k])
                               for k, ins in enumerate(self.instructions))
-        src = (f"def run_interval(LO, HI):\n    {body_i}\n    return [{ret_i}]\n\n"
+        src = (f"def run_interval(IN, CONST):\n    {body_i}\n    return [{ret_i}]\n\n"
                f"def run_point(XS):\n    {body_p}\n    return [{ret_p}]\n")
         # The source is generated from our own instruction list, never from user text.
-        namespace = {"K": iv, "np": np, "X": extras}
+        namespace = {"np": np, "X": extras,
+                     **{f"K_{name}": kernel for name, kernel in stacked.KERNELS.items()}}
         exec(compile(src, "<certify program>", "exec"), namespace)
         self._run_interval = namespace["run_interval"]
         self._run_point = namespace["run_point"]
+        self._constants = {}
 
     def __len__(self):
         return len(self.instructions)
@@ -283,10 +298,40 @@ class Program:
         list of (lo, hi)
             One pair of arrays per output, outward-rounded; NaN marks unusable rows.
         """
-        with np.errstate(invalid="ignore", over="ignore"):
-            out = self._run_interval(lo_cols, hi_cols)
         shape = np.broadcast_shapes(*(np.shape(c) for c in lo_cols)) if lo_cols else ()
-        return [(np.broadcast_to(lo, shape), np.broadcast_to(hi, shape)) for lo, hi in out]
+        axes = max(len(shape), 1)
+        inputs = [_stacked_input(lo, hi, axes) for lo, hi in zip(lo_cols, hi_cols)]
+        return [tuple(np.broadcast_to(b, shape) if shape else b.reshape(())
+                      for b in stacked.bounds(o)) for o in self.stacked(inputs)]
+
+    def stacked(self, inputs):
+        """Evaluate on interval arrays (:mod:`certify.stacked`).
+
+        Parameters
+        ----------
+        inputs : sequence of ndarray, length ``len(inputs)``
+            Each of shape ``(2, ...)`` or ``(1, ...)`` (a point), the trailing axes
+            broadcasting together (at least one).
+
+        Returns
+        -------
+        list of ndarray
+            One interval array per output (trailing axes: those of the inputs, or fewer
+            where an output does not depend on all of them); NaN marks unusable rows.
+        """
+        axes = max(np.ndim(i) for i in inputs) - 1 if inputs else 1
+        with np.errstate(invalid="ignore", over="ignore"):
+            return self._run_interval(inputs, self._constants_for(axes))
+
+    def _constants_for(self, axes):
+        """The program's constants as interval arrays with `axes` axes after the bound
+        axis (exact constants as points)."""
+        if axes not in self._constants:
+            self._constants[axes] = {
+                k: np.array([ins.extra[0]] if ins.extra[0] == ins.extra[1] else
+                            list(ins.extra)).reshape((-1,) + (1,) * axes)
+                for k, ins in enumerate(self.instructions) if ins.op == "const"}
+        return self._constants[axes]
 
     def interval(self, lo, hi):
         """Evaluate on boxes.

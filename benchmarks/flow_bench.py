@@ -5,7 +5,7 @@ Run from the repository root::
     .venv/bin/python benchmarks/flow_bench.py [--quick]
 
 For Taylor orders 2, 4 and 6 and batches of 10^3, 10^4 and 10^5 boxes (side 1/256 of
-the window [0, 12] x [0, 10], random positions, fixed seed), it times
+the window [0, 12] x [0, 10], random positions, a fixed random stream), it times
 ``certify.flow.flow_boxes`` over a fixed number of steps and reports box-steps per
 second; then it times ``certify.simulate.simulate`` (classic RK4 on the same right-hand
 side program) on the box centres for the same number of steps, and reports how many

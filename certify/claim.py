@@ -359,16 +359,16 @@ class _Auditor:
         # time bounds of doomed cells improve when cut finer; plain labels do not
         timed = self.until is not None
         movable = (label == "undecided") | ((label == "doomed") & timed)
-        seeds = np.zeros(len(leaves), bool)
+        targets = np.zeros(len(leaves), bool)
         for p in pieces:
             if not p.good and label[p.leaf] != "safe" and label[p.leaf] != "outside":
-                seeds[p.leaf] = True
-        if not seeds.any():
+                targets[p.leaf] = True
+        if not targets.any():
             return np.zeros(0, int)
         edge = movable[facts.src] & movable[facts.dst]
-        # forward reachability: nodes that reach the seeds in the reversed graph
-        reach = _reachable(len(leaves), facts.dst[edge], facts.src[edge], seeds)
-        return leaves[(reach & movable) | seeds]
+        # forward reachability: nodes that reach the targets in the reversed graph
+        reach = _reachable(len(leaves), facts.dst[edge], facts.src[edge], targets)
+        return leaves[(reach & movable) | targets]
 
 
 def _bound(x):

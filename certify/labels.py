@@ -85,14 +85,14 @@ class Labelling:
     survival_lower: np.ndarray
 
 
-def _reachable(n_nodes, src, dst, seeds):
-    """Nodes that reach a seed along edges (BFS on the reversed graph)."""
-    if not seeds.any():
+def _reachable(n_nodes, src, dst, targets):
+    """Nodes that reach a target along edges (BFS on the reversed graph)."""
+    if not targets.any():
         return np.zeros(n_nodes, bool)
     super_node = n_nodes
     # edge lists stay in their (narrow) index type: they can hold a hundred edges a cell
-    rows = np.concatenate([dst, np.full(seeds.sum(), super_node, dst.dtype)])
-    cols = np.concatenate([src, np.flatnonzero(seeds).astype(src.dtype)])
+    rows = np.concatenate([dst, np.full(targets.sum(), super_node, dst.dtype)])
+    cols = np.concatenate([src, np.flatnonzero(targets).astype(src.dtype)])
     g = sp.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_nodes + 1, n_nodes + 1))
     order = breadth_first_order(g, super_node, directed=True, return_predecessors=False)
     out = np.zeros(n_nodes + 1, bool)
@@ -104,8 +104,8 @@ def _safe(facts, L):
     trapped = np.zeros(L, bool) if facts.trapped is None else facts.trapped >= 0
     candidate = (~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes) | trapped
     keep_edge = ~facts.outside[facts.dst] & ~trapped[facts.src]
-    seeds = ~candidate & ~facts.outside
-    bad = _reachable(L, facts.src[keep_edge], facts.dst[keep_edge], seeds)
+    targets = ~candidate & ~facts.outside
+    bad = _reachable(L, facts.src[keep_edge], facts.dst[keep_edge], targets)
     return candidate & ~bad
 
 

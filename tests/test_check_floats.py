@@ -39,9 +39,9 @@ SPECIAL = [0.0, -0.0, TINY, -TINY, 3 * TINY, 2.0 ** -1022, -(2.0 ** -1022), 1e-3
            2.0 ** 52 + 1, 1 + 2.0 ** -52]
 
 
-def _intervals(count, seed):
+def _intervals(count, stream):
     """Random and adversarial intervals as two float arrays (lo <= hi)."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(stream)
     pick = rng.choice(SPECIAL, (count, 2))
     scale = 10.0 ** rng.integers(-310, 308, (count, 2))
     rough = rng.uniform(-1, 1, (count, 2)) * scale

@@ -2,7 +2,7 @@
 
 Each model with three or more states is proved at a coarse depth (cheap), its
 certificate is written and read back, and 20,000 starts drawn uniformly in the window
-(seeded) are labelled through the certificate's point queries
+(fixed random streams) are labelled through the certificate's point queries
 (``Certificate.label_at``, ``Certificate.crossing_time_bounds``). All starts are then
 integrated together, as one stacked system, by scipy's DOP853
 (``scipy.integrate.DOP853``, rtol 1e-10, atol 1e-12) with a right-hand side and limit

@@ -40,6 +40,7 @@ __all__ = [
 ]
 
 _INF = np.inf
+_MAX = float(np.finfo(float).max)
 _ULP = 2.0 ** -52
 _TINY = 2.0 ** -1074
 _REL = 2.0 ** -49
@@ -477,7 +478,11 @@ def enclose_fraction(q):
         Equal when `q` is exactly representable.
     """
     q = Fraction(q)
-    v = float(q)
+    try:
+        v = float(q)
+    except OverflowError:
+        # beyond the float range: a true, one-sided enclosure
+        return (_MAX, _INF) if q > 0 else (-_INF, -_MAX)
     exact = Fraction(v)
     if exact == q:
         return v, v

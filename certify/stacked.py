@@ -72,7 +72,7 @@ def _extremes(p):
     most in the sign of a zero, which the outward step that follows turns into the
     same bound (``-0`` and ``0`` both round to ``-2**-1074`` or stay ``0``).
     """
-    flat = p.reshape((-1,) + p.shape[2:])
+    flat = p.reshape((p.shape[0] * p.shape[1],) + p.shape[2:])
     pair = np.empty((2,) + p.shape[2:])
     np.minimum.reduce(flat, axis=0, out=pair[0])
     np.maximum.reduce(flat, axis=0, out=pair[1])

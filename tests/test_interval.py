@@ -547,3 +547,22 @@ def test_compiled_program_encloses_arb(expr, box):
             return arb_value(expr, {s: arb(v) for s, v in zip(SYMBOLS, x)})
 
         check_enclosure(rlo[0, 0], rhi[0, 0], reference, f"{expr} on {lo}..{hi} at {x}")
+
+
+@pytest.mark.parametrize("q", [Fraction(10) ** 600, -Fraction(10) ** 600, Fraction(3, 10 ** 400),
+                               Fraction(2) ** 1024, -(Fraction(2) ** 1024 - 1)])
+def test_enclose_fraction_beyond_the_float_range(q):
+    # exact rational comparison (common practice): the ends enclose q, and a q beyond
+    # the largest float gets the one-sided enclosure [MAX, inf] (or its mirror)
+    lo, hi = iv.enclose_fraction(q)
+    assert (lo == -math.inf or Fraction(lo) <= q) and (hi == math.inf or q <= Fraction(hi))
+    if abs(q) > Fraction(np.finfo(float).max):
+        assert math.isinf(hi if q > 0 else lo)
+
+
+def test_programs_evaluate_an_empty_batch():
+    # a round whose flows all failed evaluates programs on zero boxes
+    x = sympy.Symbol("x")
+    program = compile_program([x * x + 1, 3 * x], (x,))
+    lo, hi = program.interval(np.zeros((0, 1)), np.zeros((0, 1)))
+    assert lo.shape == hi.shape == (0, 2)

@@ -107,12 +107,7 @@ def test_andrews_fermenter_fold(tmp_path):
     mu_max, Ks, Ki, s_in, Y = 0.5, 0.5, 2.0, 10.0, 0.5
 
     def operating(D):
-        a, b, c = D / Ki, D - mu_max, D * Ks
-        disc = b * b - 4 * a * c
-        if disc < 0:
-            return None
-        s1 = (-b - math.sqrt(disc)) / (2 * a)
-        return s1, Y * (s_in - s1)
+        return _andrews_operating(D, s_in, mu_max, Ks, Ki, Y)
 
     assert {e["verdict"] for e in result.boxes} >= {"safe", "none"}
     for box in result.boxes:

@@ -45,6 +45,8 @@ from certify.policy import prove_policy
 from certify.policy_output import read_policy, write_policy
 from certify.prove import prove
 
+from test_trapping import OSCILLATOR  # the damped oscillator of the trapping tests
+
 RELAX = """\
 [model]
 name = "relaxation with a two-speed pump"
@@ -227,24 +229,6 @@ x = "x*(1 - x) - q"
 floor = "x >= 0.1"
 ceiling = "x <= 1.2"
 """
-
-OSCILLATOR = """\
-[model]
-name = "damped linear oscillator"
-[states]
-x = [-2, 2]
-y = [-2, 2]
-[parameters]
-k = 1
-c = 0.5
-[equations]
-x = "y"
-y = "-k*x - c*y"
-[limits]
-x_cap = "x <= 1.5"
-x_floor = "x >= -1.5"
-"""
-
 
 def _proven(tmp_path_factory, name, text, depth):
     path = tmp_path_factory.mktemp(name) / "certificate.json.gz"

@@ -138,7 +138,12 @@ def _params(ar, context):
 
 def _limits_upper_negative(ar, context, X, count):
     """Bool array of length `count`: some limit is below 0 on the whole box."""
-    g = evaluate(context.programs.limits, ar, list(X) + _params(ar, context))
+    return _some_negative(ar, evaluate(context.programs.limits, ar,
+                                       list(X) + _params(ar, context)), count)
+
+
+def _some_negative(ar, g, count):
+    """Bool array of length `count`: some interval of `g` lies wholly below 0."""
     out = np.zeros(count, bool)
     for gj in g:
         out |= _true(ar.upper(gj) < 0)
@@ -279,9 +284,7 @@ def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=No
     for by_rates, by_curvature in zip(kept_by, _kept_by_curvature(ar, context, hh, E, g, g_end,
                                                                   kept_by)):
         kept &= by_rates | by_curvature
-    crossed = np.zeros(len(h), bool)
-    for gj in g_end:
-        crossed |= _true(ar.upper(gj) < 0)
+    crossed = _some_negative(ar, g_end, len(h))
     return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, E=E,
                        E_bounds=E_bounds, m_next=m_next, sets_next=sets_next,
                        moved=[ar.mul(hh, f) for f in field])

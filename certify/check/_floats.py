@@ -56,7 +56,6 @@ import numpy as np
 from flint import arb
 
 from ._arith import EndpointArith, PairStorage, Pieces, float_inverse
-from ._trig import periodic
 
 __all__ = ["FloatArith", "float_down", "float_up", "ieee_defaults"]
 
@@ -390,6 +389,7 @@ class FloatArith(PairStorage):
         if name == "sqrt":
             return self.sqrt(a)
         if name in ("sin", "cos"):
+            from ._trig import periodic     # it builds on this module's rounding
             lo, hi, left = periodic(self, name, a)
             if left.any():
                 ends = [np.broadcast_to(x, lo.shape)[left] for x in a]

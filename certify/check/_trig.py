@@ -35,6 +35,8 @@ from math import factorial
 import numpy as np
 from flint import arb, ctx
 
+from ._floats import float_down, float_up
+
 __all__ = ["periodic", "REDUCE_LIMIT"]
 
 #: Largest ``|x|`` reduced here: keeps ``|k| < 2^25``, so ``k P1`` and ``k P2`` are exact.
@@ -44,18 +46,6 @@ _R_MAX = 0.8
 _SIN_REST, _COS_REST = 1.5e-19, 7.5e-21
 assert Fraction(4, 5) ** 18 / factorial(19) < Fraction(_SIN_REST)
 assert Fraction(4, 5) ** 18 / factorial(20) < Fraction(_COS_REST)
-
-
-def _down(q):
-    """The largest float not above the Fraction `q`."""
-    v = float(q)
-    return v if Fraction(v) <= q else float(np.nextafter(v, -np.inf))
-
-
-def _up(q):
-    """The smallest float not below the Fraction `q`."""
-    v = float(q)
-    return v if Fraction(v) >= q else float(np.nextafter(v, np.inf))
 
 
 def _half_pi():
@@ -81,7 +71,7 @@ def _split(lo, hi):
         part = float(np.ldexp(np.floor(np.ldexp(m, 26)), int(e) - 26))
         parts.append(part)
         rest_lo, rest_hi = rest_lo - Fraction(part), rest_hi - Fraction(part)
-    return parts[0], parts[1], (np.float64(_down(rest_lo)), np.float64(_up(rest_hi)))
+    return parts[0], parts[1], (np.float64(float_down(rest_lo)), np.float64(float_up(rest_hi)))
 
 
 def _coefficients(first, count):
@@ -89,15 +79,15 @@ def _coefficients(first, count):
     out = []
     for i in reversed(range(count)):
         q = Fraction((-1) ** i, factorial(first + 2 * i))
-        out.append((np.float64(_down(q)), np.float64(_up(q))))
+        out.append((np.float64(float_down(q)), np.float64(float_up(q))))
     return out
 
 
 _HALF_PI_Q = _half_pi()
 _P1, _P2, _P3 = _split(*_HALF_PI_Q)
-_HALF_PI = (np.float64(_down(_HALF_PI_Q[0])), np.float64(_up(_HALF_PI_Q[1])))
-_PI = (np.float64(_down(2 * _HALF_PI_Q[0])), np.float64(_up(2 * _HALF_PI_Q[1])))
-_TWO_PI = (np.float64(_down(4 * _HALF_PI_Q[0])), np.float64(_up(4 * _HALF_PI_Q[1])))
+_HALF_PI = (np.float64(float_down(_HALF_PI_Q[0])), np.float64(float_up(_HALF_PI_Q[1])))
+_PI = (np.float64(float_down(2 * _HALF_PI_Q[0])), np.float64(float_up(2 * _HALF_PI_Q[1])))
+_TWO_PI = (np.float64(float_down(4 * _HALF_PI_Q[0])), np.float64(float_up(4 * _HALF_PI_Q[1])))
 _SIN = _coefficients(1, 9)   # 1/1!, -1/3!, ..., 1/17!, highest first
 _COS = _coefficients(0, 10)  # 1/0!, -1/2!, ..., 1/18!, highest first
 #: Where the maxima and minima of each function lie (``c + 2 pi j``).

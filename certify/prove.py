@@ -102,7 +102,8 @@ class Proof:
     labelling : Labelling
     facts : CellFacts
     faces : list of dict
-        Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``open``) and its
+        Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``no-outflow``,
+        ``open``) and its
         cover.
     steps : certify.steps.StepStore
         The step records of the leaves' flows (``h`` and ``E``, what the certificate

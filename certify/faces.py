@@ -40,7 +40,7 @@ from .program import compile_program
 from .taylor import fixed_parameters
 
 __all__ = ["analyse_faces", "window_sides", "cut_at_invariant_faces", "zero_on_hyperplane",
-           "HARMLESS", "FACE_DEPTH", "SLAB_MARGIN"]
+           "tube_past_open_faces", "cut_to_window", "HARMLESS", "FACE_DEPTH", "SLAB_MARGIN"]
 
 HARMLESS = ("limit", "inflow", "invariant", "no-outflow")
 FACE_DEPTH = 6
@@ -312,3 +312,61 @@ def cut_at_invariant_faces(faces, window, e_lo, e_hi, owner, n_owners):
         else:
             hi[cut, k] = np.minimum(hi[cut, k], b_hi)
     return lo, hi
+
+
+def tube_past_open_faces(faces, window_bounds, e_lo, e_hi, owner, n_owners):
+    """Per cell: does one of its tube boxes reach beyond an open face of the window?
+
+    Parameters
+    ----------
+    faces : list of dict
+        From :func:`analyse_faces`.
+    window_bounds : tuple of ndarray
+        ``lo_lo, lo_hi, hi_lo, hi_hi`` of :meth:`certify.cells.CellTree.window_bounds`.
+    e_lo, e_hi : ndarray, shape (S, n)
+        Tube boxes.
+    owner : ndarray of int, shape (S,)
+        Cell of each tube box.
+    n_owners : int
+
+    Returns
+    -------
+    ndarray of bool, shape (n_owners,)
+    """
+    _, lo_hi, hi_lo, _ = window_bounds
+    past = np.zeros(len(e_lo), bool)
+    for face in faces:
+        if face["kind"] in HARMLESS:
+            continue
+        k = face["axis"]
+        past |= e_lo[:, k] < lo_hi[k] if face["side"] == "lo" else e_hi[:, k] > hi_lo[k]
+    return np.bincount(owner, weights=past, minlength=n_owners) > 0
+
+
+def cut_to_window(window_bounds, e_lo, e_hi, escaping):
+    """Tube boxes cut to the window, but those of cells whose tubes reach past an open face.
+
+    A cell's trajectories that keep the limits up to its horizon stay in the window all
+    along when no tube box of the cell reaches past an open face (:func:`analyse_faces`,
+    notes), and only those matter where the tube boxes bound how far a cell moved (an
+    image holds the trajectories still within the limits). A box that the window would
+    empty is left as it is.
+
+    Parameters
+    ----------
+    window_bounds : tuple of ndarray
+        ``lo_lo, lo_hi, hi_lo, hi_hi`` of :meth:`certify.cells.CellTree.window_bounds`.
+    e_lo, e_hi : ndarray, shape (S, n)
+        Tube boxes.
+    escaping : ndarray of bool, shape (S,)
+        Per tube box: its cell's tube reaches past an open face
+        (:func:`tube_past_open_faces`).
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (S, n)
+    """
+    lo_lo, _, _, hi_hi = window_bounds
+    lo, hi = np.maximum(e_lo, lo_lo), np.minimum(e_hi, hi_hi)
+    cut = ~escaping & np.all(lo <= hi, axis=1)
+    return np.where(cut[:, None], lo, e_lo), np.where(cut[:, None], hi, e_hi)

@@ -26,7 +26,8 @@ from .labels import CellFacts, Labelling, label_cells, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
-from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
+from .faces import (analyse_faces, cut_at_invariant_faces, cut_to_window,
+                    tube_past_open_faces)
 from .volumes import label_fractions
 from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
 
@@ -418,9 +419,13 @@ class _Prover:
         return kept
 
     def _drift(self, result, box_of_step, n_boxes):
-        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``."""
+        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``,
+        for the trajectories that keep the limits up to ``T`` (their tube boxes may be cut
+        to the window, :func:`certify.faces.cut_to_window`)."""
         elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
                                           result.e_hi, box_of_step, n_boxes)
+        escaping = self._tube_past_open_faces(result, box_of_step, n_boxes)[box_of_step]
+        elo, ehi = cut_to_window(self.window_sides, elo, ehi, escaping)
         flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
         h = result.h[:, None]
         slo, shi = iv.mul(h, h, flo, fhi)
@@ -433,15 +438,8 @@ class _Prover:
 
     def _tube_past_open_faces(self, result, box_of_step, n_boxes):
         """Per box: does some a-priori box reach beyond an open face of the window?"""
-        lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
-        past = np.zeros(len(result.h), bool)
-        for face in self.faces:
-            if face["kind"] in HARMLESS:
-                continue
-            k = face["axis"]
-            past |= result.e_lo[:, k] < lo_hi[k] if face["side"] == "lo" \
-                else result.e_hi[:, k] > hi_lo[k]
-        return np.bincount(box_of_step, weights=past, minlength=n_boxes) > 0
+        return tube_past_open_faces(self.faces, self.window_sides, result.e_lo, result.e_hi,
+                                    box_of_step, n_boxes)
 
     def _thick_axes(self, lo, hi):
         """Axes along which a clipped image meets the exact window in more than a point.

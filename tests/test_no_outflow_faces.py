@@ -7,6 +7,9 @@ References named beside the checks:
   Michaelis-Menten elimination from the central compartment: on ``X1 = 0`` the central
   rate is ``k21 X2 >= 0`` and on ``X2 = 0`` the tissue rate is ``k12 X1 >= 0`` (by
   inspection), so both floors are ``no-outflow``;
+* an SEI epidemic (Kermack-McKendrick form with a latent class, e.g. Keeling & Rohani,
+  *Modeling Infectious Diseases* (mem)): ``S' = -beta S I <= 0`` wherever ``S, I >= 0``
+  (by inspection), so no trajectory that stays in the window gains susceptibles;
 * trajectories from sampled starts of proven cells, integrated with scipy ``solve_ivp``
   (LSODA, rtol 1e-10), must agree with the labels and the crossing-time bounds.
 """
@@ -44,6 +47,26 @@ X1 = "-k12*X1 + k21*X2 - Vmax*X1/(Km + X1)"
 X2 = "k12*X1 - k21*X2"
 [limits]
 tissue_cap = "X2 <= 30"
+"""
+
+SEI = """\
+[model]
+name = "SEI against a cap on the infectious"
+time_unit = "d"
+[states]
+S = [0, 1]
+E = [0, 0.05]
+I = [0, 0.05]
+[parameters]
+beta = 0.5
+sigma = 0.3
+gamma = 0.2
+[equations]
+S = "-beta*S*I"
+E = "beta*S*I - sigma*E"
+I = "sigma*E - gamma*I"
+[limits]
+cap = "I <= 0.04"
 """
 
 #: x' = x sqrt(y) is >= 0 on x = 0 but not Lipschitz near y = 0: no Gronwall bound.
@@ -139,3 +162,57 @@ def test_labels_agree_with_integrated_trajectories(compartments):
             else:
                 assert crossed, x0
                 assert sol.t_events[0][0] >= float(lower[0]) - 1e-7, x0
+
+
+def _sei_rate(t, x, beta=0.5, sigma=0.3, gamma=0.2):
+    return [-beta * x[0] * x[2], beta * x[0] * x[2] - sigma * x[1], sigma * x[1] - gamma * x[2]]
+
+
+@pytest.fixture(scope="module")
+def sei(tmp_path_factory):
+    path = tmp_path_factory.mktemp("sei") / "sei.json.gz"
+    proof = prove(parse_model(SEI), max_depth=4)
+    write_certificate(path, certificate_data(proof, {}))
+    return proof, path
+
+
+def test_images_of_cells_that_stay_in_the_window_gain_no_susceptibles(sei):
+    # the floors E = 0 and I = 0 are no-outflow (E' = beta S I, I' = sigma E there), so
+    # trajectories that keep the cap stay in the window, where S' <= 0: the drift caps
+    # every such image at its cell's upper S, so no successor lies above it in S
+    proof, _ = sei
+    kinds = {(f["axis"], f["side"]): f["kind"] for f in proof.faces}
+    assert kinds[(1, "lo")] == kinds[(2, "lo")] == "no-outflow"
+    facts = proof.facts
+    lo, hi = proof.tree.lo[proof.leaves], proof.tree.hi[proof.leaves]
+    settled = facts.flow_ok & facts.kept & ~facts.escapes & ~facts.outside
+    edges = settled[facts.src]
+    assert edges.any()
+    assert np.all(lo[facts.dst[edges], 0] < hi[facts.src[edges], 0])
+    assert (proof.labelling.label == "safe").any()
+
+
+def test_the_sei_certificate_checks_and_agrees_with_trajectories(sei):
+    _, path = sei
+    assert check_certificate(path, jobs=1).valid
+    cert = read_certificate(path)
+
+    def over_cap(t, x):
+        return 0.04 - x[2]
+    over_cap.terminal = True
+    rng = np.random.default_rng(3)
+    for label in ("safe", "doomed"):
+        leaves = np.flatnonzero(cert.labels == label)
+        for leaf in rng.choice(leaves, size=min(30, len(leaves)), replace=False):
+            x0 = cert.lo[leaf] + rng.random(3) * (cert.hi[leaf] - cert.lo[leaf])
+            if cert.label_at(x0[None])[0] != label:
+                continue
+            lower, upper = cert.crossing_time_bounds(x0[None])
+            horizon = 400.0 if label == "safe" else float(upper[0]) + 1e-6
+            sol = solve_ivp(_sei_rate, (0, horizon), x0, method="LSODA", rtol=1e-10,
+                            atol=1e-12, events=over_cap)
+            crossed = len(sol.t_events[0]) > 0
+            if label == "safe":
+                assert not crossed or sol.y_events[0][0][2] <= 0.04 + 1e-7, x0
+            else:
+                assert crossed and sol.t_events[0][0] >= float(lower[0]) - 1e-7, x0

@@ -538,7 +538,8 @@ def prove(model, *, method=None, budget=None, progress=None, focus=None, executo
     budget : Budget, optional
         Same; or give ``max_depth``, ``max_cells``, ``time_limit`` as keywords.
     progress : callable, optional
-        ``progress(round, n_leaves, decided_fraction, seconds)`` after every round.
+        ``progress(round, n_leaves, decided_fraction, seconds)`` after every round; and
+        ``progress.starting(round, n_leaves)`` before it, when it has that method.
     focus : (ndarray, ndarray) or callable, optional
         A box ``(lo, hi)``: only undecided cells meeting it, and the undecided cells
         their images can reach, are refined (for claims about a region). A callable
@@ -653,6 +654,8 @@ def _prove(model, method, budget, progress, focus, runner):
         while True:
             # a proof needs one finished round: only later rounds are abandoned at the deadline
             prover.deadline = None if snapshot is None else deadline
+            if hasattr(progress, "starting"):
+                progress.starting(rounds + 1, len(tree.leaves()))
             if extend:
                 leaves, facts, labelling = prover.extend(new, extend)
             else:

@@ -10,7 +10,8 @@ enter as intervals). The cheap questions come first:
    value, and it is not empty: it holds its centre, which keeps every limit. At the
    resolution, a box may be covered by halved parameter parts, each with its own region.
 2. **No safe state** (:func:`none_by_limit_rate`): every face of the window is
-   ``limit``, ``inflow`` or ``invariant`` (:func:`certify.faces.analyse_faces`), so a
+   ``limit``, ``inflow``, ``invariant`` or ``no-outflow``
+   (:func:`certify.faces.analyse_faces`), so a
    trajectory keeping the limits stays in the window; and the window is covered by boxes
    that either violate some limit on the whole box or where the rate ``dg/dt`` of one
    fixed limit ``g >= 0`` is at most ``-eps < 0``. Then ``g`` falls by ``eps`` per unit

@@ -13,6 +13,12 @@ A face is
   a slab around the face (every Jacobian entry has a finite enclosure). By uniqueness,
   a solution that meets the face stays on the hyperplane near that time, in both
   directions: no trajectory leaves the window through it. Lines of rest states (no infected people, no biomass) are such faces;
+* ``no-outflow`` when neither of the above holds but at every point of the face that is
+  not proven to violate a limit the flow points into the window or along the face
+  (the inward component of ``f`` is ``>= 0``), and ``f`` is Lipschitz on the slab
+  around the face. The floor ``x_k = 0`` of a compartment that only receives inflow
+  there (``f_k >= 0``) is such a face. A trajectory that keeps the limits cannot leave
+  the window through it (see :func:`analyse_faces`);
 * ``open`` otherwise.
 
 Parts of image boxes beyond a ``limit``, ``inflow`` or ``invariant`` face are harmless
@@ -34,14 +40,14 @@ from .program import compile_program
 from .taylor import fixed_parameters
 
 __all__ = ["analyse_faces", "window_sides", "cut_at_invariant_faces", "zero_on_hyperplane",
-           "HARMLESS", "FACE_DEPTH", "SLAB_MARGIN"]
+           "tube_past_open_faces", "cut_to_window", "HARMLESS", "FACE_DEPTH", "SLAB_MARGIN"]
 
-HARMLESS = ("limit", "inflow", "invariant")
+HARMLESS = ("limit", "inflow", "invariant", "no-outflow")
 FACE_DEPTH = 6
 #: Half-width of the slab around an invariant face, and its overhang past the face's
 #: edges, as a fraction of each window side.
 SLAB_MARGIN = Fraction(1, 1024)
-LIMIT, INFLOW, LIPSCHITZ = 1, 2, 3
+LIMIT, INFLOW, LIPSCHITZ, NO_OUTFLOW = 1, 2, 3, 4
 
 
 def _bisect_until_proven(lo, hi, axes, depth, prove_pieces):
@@ -116,16 +122,14 @@ def _invariant_faces(model, params, depth):
     """The ``(axis, side)`` pairs whose faces are ``invariant`` (see the module notes)."""
     if model.uses_kinks:
         return set()
-    fixed = dict(fixed_parameters(model))
+    field = _fixed_field(model)
     states = model.state_symbols
-    field = [e.xreplace(fixed) for e in model.equations]
     candidates = [(k, side, value) for k, (a, c) in enumerate(model.window)
                   for side, value in (("lo", a), ("hi", c))
                   if zero_on_hyperplane(field[k], states[k], sympy.Rational(value))]
     if not candidates:
         return set()
-    jacobian = compile_program(list(sympy.Matrix(field).jacobian(states)),
-                               tuple(states) + tuple(model.parameter_symbols))
+    jacobian = _field_jacobian(model)
     return {(k, side) for k, side, value in candidates
             if _lipschitz_near(model, jacobian, k, value, params, depth)}
 
@@ -146,9 +150,25 @@ def analyse_faces(model, programs, tree, params, depth=FACE_DEPTH):
     Returns
     -------
     list of dict
-        ``{"axis": k, "side": "lo"|"hi", "kind": "limit"|"inflow"|"invariant"|"open",
-        "lo": ndarray, "hi": ndarray, "reason": ndarray}`` (the cover; empty when
-        ``invariant`` or ``open``).
+        ``{"axis": k, "side": "lo"|"hi", "kind": "limit"|"inflow"|"invariant"|
+        "no-outflow"|"open", "lo": ndarray, "hi": ndarray, "reason": ndarray}`` (the
+        cover; empty when ``invariant`` or ``open``).
+
+    Notes
+    -----
+    Why a trajectory ``x`` that keeps the limits cannot leave through a ``no-outflow``
+    face: let ``t*`` be the last time up to which ``x`` lies in the window ``W`` and
+    ``y(t)`` the point of ``W`` nearest to ``x(t)`` (each coordinate clamped to its
+    range). Let ``D(t)`` be the sum of the distances by which ``x(t)`` lies beyond the
+    faces. Beyond an open face the tube reaches (the cell escapes, nothing to show);
+    beyond a ``limit`` or ``inflow`` face ``x`` is not near ``t*`` (``x(t*)`` keeps the
+    limits, and the inward rate is positive there). Beyond a ``no-outflow`` face
+    ``x_k = b``, ``y(t)`` lies on the face near ``x(t*)``, so in a piece of the cover that
+    holds ``x(t*)``, none of which violates a limit everywhere; there the inward rate is
+    ``>= 0`` and, ``L`` a Lipschitz constant of ``f`` on the slab, the distance beyond
+    the face grows at most at rate ``L |x - y| <= L D``. The same holds beyond an
+    ``invariant`` face (``f_k`` is 0 on its whole hyperplane). So ``D' <= n L D`` with
+    ``D(t*) = 0``, and ``D`` stays 0 (Gronwall): ``x`` does not leave at ``t*``.
     """
     lo_lo, lo_hi, hi_lo, hi_hi = tree.window_bounds()
     wlo, whi = tree.lo[0], tree.hi[0]
@@ -163,12 +183,14 @@ def analyse_faces(model, programs, tree, params, depth=FACE_DEPTH):
             else:
                 lo[k], hi[k] = hi_lo[k], hi_hi[k]
 
-            def harmless(plo, phi):
+            def harmless(plo, phi, weak=False):
                 _, ghi = evaluate_boxes(programs.limits, plo, phi, params)
                 flo, fhi = evaluate_boxes(programs.field, plo, phi, params)
                 inward_lo = flo[:, k] if side == "lo" else -fhi[:, k]
                 limit = np.any(ghi < 0, axis=1)
-                return np.where(limit, LIMIT, np.where(inward_lo > 0, INFLOW, 0))
+                inward = np.where(inward_lo > 0, INFLOW,
+                                  np.where(weak & (inward_lo >= 0), NO_OUTFLOW, 0))
+                return np.where(limit, LIMIT, inward)
 
             others = [j for j in range(n) if j != k]
             cover = _bisect_until_proven(lo, hi, others, depth, harmless)
@@ -181,10 +203,43 @@ def analyse_faces(model, programs, tree, params, depth=FACE_DEPTH):
                 continue
             if invariant is None:
                 invariant = _invariant_faces(model, params, depth)
+            if (k, side) not in invariant:
+                cover = _no_outflow_cover(model, params, k, side, lo, hi, others, depth,
+                                          lambda plo, phi: harmless(plo, phi, weak=True))
+                if cover is not None:
+                    plo, phi, reason = cover
+                    faces.append({"axis": k, "side": side, "kind": "no-outflow", "lo": plo,
+                                  "hi": phi, "reason": reason})
+                    continue
             kind = "invariant" if (k, side) in invariant else "open"
             faces.append({"axis": k, "side": side, "kind": kind, "lo": empty, "hi": empty,
                           "reason": np.zeros(0, int)})
     return faces
+
+
+def _no_outflow_cover(model, params, k, side, lo, hi, others, depth, prove_pieces):
+    """The cover of a ``no-outflow`` face, or None (see :func:`analyse_faces`)."""
+    if model.uses_kinks:
+        return None
+    cover = _bisect_until_proven(lo, hi, others, depth, prove_pieces)
+    if cover is None:
+        return None
+    value = model.window[k][0 if side == "lo" else 1]
+    return cover if _lipschitz_near(model, _field_jacobian(model), k, value, params,
+                                    depth) else None
+
+
+def _fixed_field(model):
+    """The right-hand sides with the parameters given as numbers substituted."""
+    fixed = dict(fixed_parameters(model))
+    return [e.xreplace(fixed) for e in model.equations]
+
+
+def _field_jacobian(model):
+    """The compiled Jacobian of :func:`_fixed_field` in the states and parameters."""
+    states = model.state_symbols
+    return compile_program(list(sympy.Matrix(_fixed_field(model)).jacobian(states)),
+                           tuple(states) + tuple(model.parameter_symbols))
 
 
 def window_sides(model):
@@ -257,3 +312,61 @@ def cut_at_invariant_faces(faces, window, e_lo, e_hi, owner, n_owners):
         else:
             hi[cut, k] = np.minimum(hi[cut, k], b_hi)
     return lo, hi
+
+
+def tube_past_open_faces(faces, window_bounds, e_lo, e_hi, owner, n_owners):
+    """Per cell: does one of its tube boxes reach beyond an open face of the window?
+
+    Parameters
+    ----------
+    faces : list of dict
+        From :func:`analyse_faces`.
+    window_bounds : tuple of ndarray
+        ``lo_lo, lo_hi, hi_lo, hi_hi`` of :meth:`certify.cells.CellTree.window_bounds`.
+    e_lo, e_hi : ndarray, shape (S, n)
+        Tube boxes.
+    owner : ndarray of int, shape (S,)
+        Cell of each tube box.
+    n_owners : int
+
+    Returns
+    -------
+    ndarray of bool, shape (n_owners,)
+    """
+    _, lo_hi, hi_lo, _ = window_bounds
+    past = np.zeros(len(e_lo), bool)
+    for face in faces:
+        if face["kind"] in HARMLESS:
+            continue
+        k = face["axis"]
+        past |= e_lo[:, k] < lo_hi[k] if face["side"] == "lo" else e_hi[:, k] > hi_lo[k]
+    return np.bincount(owner, weights=past, minlength=n_owners) > 0
+
+
+def cut_to_window(window_bounds, e_lo, e_hi, escaping):
+    """Tube boxes cut to the window, but those of cells whose tubes reach past an open face.
+
+    A cell's trajectories that keep the limits up to its horizon stay in the window all
+    along when no tube box of the cell reaches past an open face (:func:`analyse_faces`,
+    notes), and only those matter where the tube boxes bound how far a cell moved (an
+    image holds the trajectories still within the limits). A box that the window would
+    empty is left as it is.
+
+    Parameters
+    ----------
+    window_bounds : tuple of ndarray
+        ``lo_lo, lo_hi, hi_lo, hi_hi`` of :meth:`certify.cells.CellTree.window_bounds`.
+    e_lo, e_hi : ndarray, shape (S, n)
+        Tube boxes.
+    escaping : ndarray of bool, shape (S,)
+        Per tube box: its cell's tube reaches past an open face
+        (:func:`tube_past_open_faces`).
+
+    Returns
+    -------
+    lo, hi : ndarray, shape (S, n)
+    """
+    lo_lo, _, _, hi_hi = window_bounds
+    lo, hi = np.maximum(e_lo, lo_lo), np.minimum(e_hi, hi_hi)
+    cut = ~escaping & np.all(lo <= hi, axis=1)
+    return np.where(cut[:, None], lo, e_lo), np.where(cut[:, None], hi, e_hi)

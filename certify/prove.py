@@ -26,7 +26,8 @@ from .labels import CellFacts, Labelling, label_cells, DOOMED, OUTSIDE, SAFE, UN
 from .steps import StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
-from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
+from .faces import (analyse_faces, cut_at_invariant_faces, cut_to_window,
+                    tube_past_open_faces)
 from .image_sets import ImageSetStore
 from .volumes import label_fractions
 from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
@@ -108,7 +109,8 @@ class Proof:
     labelling : Labelling
     facts : CellFacts
     faces : list of dict
-        Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``open``) and its
+        Per window face: its kind (``limit``, ``inflow``, ``invariant``, ``no-outflow``,
+        ``open``) and its
         cover.
     steps : certify.steps.StepStore
         The step records of the leaves' flows (``h`` and ``E``, what the certificate
@@ -435,9 +437,13 @@ class _Prover:
         return kept
 
     def _drift(self, result, box_of_step, n_boxes):
-        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``."""
+        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``,
+        for the trajectories that keep the limits up to ``T`` (their tube boxes may be cut
+        to the window, :func:`certify.faces.cut_to_window`)."""
         elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
                                           result.e_hi, box_of_step, n_boxes)
+        escaping = self._tube_past_open_faces(result, box_of_step, n_boxes)[box_of_step]
+        elo, ehi = cut_to_window(self.window_sides, elo, ehi, escaping)
         flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
         h = result.h[:, None]
         slo, shi = iv.mul(h, h, flo, fhi)
@@ -450,15 +456,8 @@ class _Prover:
 
     def _tube_past_open_faces(self, result, box_of_step, n_boxes):
         """Per box: does some a-priori box reach beyond an open face of the window?"""
-        lo_lo, lo_hi, hi_lo, hi_hi = self.window_sides
-        past = np.zeros(len(result.h), bool)
-        for face in self.faces:
-            if face["kind"] in HARMLESS:
-                continue
-            k = face["axis"]
-            past |= result.e_lo[:, k] < lo_hi[k] if face["side"] == "lo" \
-                else result.e_hi[:, k] > hi_lo[k]
-        return np.bincount(box_of_step, weights=past, minlength=n_boxes) > 0
+        return tube_past_open_faces(self.faces, self.window_sides, result.e_lo, result.e_hi,
+                                    box_of_step, n_boxes)
 
     def _thick_axes(self, lo, hi):
         """Axes along which a clipped image meets the exact window in more than a point.
@@ -624,7 +623,8 @@ def prove(model, *, method=None, budget=None, progress=None, focus=None, executo
     budget : Budget, optional
         Same; or give ``max_depth``, ``max_cells``, ``time_limit`` as keywords.
     progress : callable, optional
-        ``progress(round, n_leaves, decided_fraction, seconds)`` after every round.
+        ``progress(round, n_leaves, decided_fraction, seconds)`` after every round; and
+        ``progress.starting(round, n_leaves)`` before it, when it has that method.
     focus : (ndarray, ndarray) or callable, optional
         A box ``(lo, hi)``: only undecided cells meeting it, and the undecided cells
         their images can reach, are refined (for claims about a region). A callable
@@ -739,6 +739,8 @@ def _prove(model, method, budget, progress, focus, runner):
         while True:
             # a proof needs one finished round: only later rounds are abandoned at the deadline
             prover.deadline = None if snapshot is None else deadline
+            if hasattr(progress, "starting"):
+                progress.starting(rounds + 1, len(tree.leaves()))
             if extend:
                 leaves, facts, labelling = prover.extend(new, extend)
             else:

@@ -333,10 +333,18 @@ def claim_limit_face(data):
 
 
 def claim_invariant_face(data):
-    # S' = -beta S I does not vanish on the side S = 1 (only where I = 0)
+    # S' = -beta S I does not vanish on the side S = 1 (only where I = 0); it is <= 0
+    # there, so the side is no-outflow
     face = next(f for f in data["faces"] if f["axis"] == 0 and f["side"] == "hi")
-    assert face["kind"] == "open"
+    assert face["kind"] == "no-outflow"
     face["kind"] = "invariant"
+
+
+def claim_no_outflow_face(data):
+    # I' = (beta S - gamma) I is positive on the side I = 0.1 wherever S > gamma/beta
+    face = next(f for f in data["faces"] if f["axis"] == 1 and f["side"] == "hi")
+    assert face["kind"] == "open"
+    face["kind"] = "no-outflow"
 
 
 def unknown_version(data):
@@ -389,6 +397,7 @@ MUTATIONS = [
     ("logistic", raise_survival_bound, {1}),
     ("fermenter", claim_limit_face, {1}),
     ("sir", claim_invariant_face, {1}),
+    ("sir", claim_no_outflow_face, {1}),
     ("sir", remove_successors_of_a_safe_cell, {1}),
     ("logistic", unknown_version, {2}),
     ("logistic", drop_key, {2}),

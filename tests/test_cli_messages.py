@@ -275,3 +275,18 @@ def test_revised_model_wording(tmp_path, capsys):
     assert "claims not re-verified with the stored steps:" in text
     assert "safe" in text.split("claims not re-verified with the stored steps:")[1]
     assert "claims that fail" not in text
+
+
+def test_the_progress_bar_names_a_starting_round_and_rounds_down():
+    # a round of a 4D model can run for minutes: the bar says which one is flowing, and
+    # 99.996 % decided reads 99.9 %, not 100.0 % (common practice: never overstate)
+    from certify.commands.prove import progress_bar
+
+    bar = progress_bar()
+    bar.starting(3, 4096)
+    assert bar.bar.desc.startswith("round 3, 4096 cells: flowing")
+    bar(3, 4096, 0.99996, 12.0)
+    assert bar.bar.n == 99.9 and bar.bar.desc.startswith("round 3, 4096 cells")
+    bar(4, 4100, 1.0, 13.0)
+    assert bar.bar.n == 100.0
+    bar.close()

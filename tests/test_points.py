@@ -477,3 +477,13 @@ def test_proof_summary_carries_the_points(tmp_path):
     assert [e["stability"] for e in summary["equilibria"]] == ["unstable", "stable"]
     assert summary["limits"]["floor"]["tangencies"] == []
     json.dumps(summary)
+
+
+def test_a_line_of_rest_states_is_reported_as_not_cleared(tmp_path, capsys):
+    # SIR (Kermack & McKendrick 1927): every state with I = 0 is at rest, a line of
+    # equilibria that no box search can isolate; the text must not read as "no equilibria"
+    path = Path(__file__).resolve().parent / "data" / "prove_sir_cap.toml"
+    assert main(["points", str(path), "--max-depth", "6"]) == 0
+    text = capsys.readouterr().out
+    assert "  none isolated" in text and "NOT complete" in text
+    assert "line or surface of rest states" in text

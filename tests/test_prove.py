@@ -565,11 +565,12 @@ def test_cli_prove_json_summary(tmp_path, capsys):
 
 
 def test_cli_prove_table_names_the_window_sides(tmp_path, capsys):
-    # the SIR test model (time unit "d"): rest lines S = 0 and I = 0, open elsewhere
+    # the SIR test model (time unit "d"): rest lines S = 0 and I = 0, S' = -beta S I <= 0
+    # on S = 1 (no outflow), open on I = 0.1
     out = tmp_path / "sir"
     assert main(["prove", str(SIR), "--max-depth", "4", "--out", str(out)]) == 0
     text = capsys.readouterr().out
-    assert "sides:     S = 0 invariant, S = 1 open, I = 0 invariant, I = 0.1 open" in text
+    assert "sides:     S = 0 invariant, S = 1 no-outflow, I = 0 invariant, I = 0.1 open" in text
     assert re.search(r"crosses a limit within [0-9.]+ d$", text, re.MULTILINE)
 
 
@@ -667,9 +668,10 @@ def _face_kinds(model, order):
 
 def test_rest_lines_of_the_epidemic_are_invariant_faces():
     # S' = -beta S I vanishes on S = 0 and I' = (beta S - gamma) I on I = 0 (by
-    # inspection); on S = 1 and I = 0.1 the normal components are not identically 0.
+    # inspection); on S = 1 and I = 0.1 the normal components are not identically 0,
+    # and on S = 1 it is -beta I <= 0 (no outflow).
     assert _face_kinds(load_model(SIR), 4) == {
-        (0, "lo"): "invariant", (0, "hi"): "open", (1, "lo"): "invariant",
+        (0, "lo"): "invariant", (0, "hi"): "no-outflow", (1, "lo"): "invariant",
         (1, "hi"): "open"}
 
 

@@ -627,12 +627,16 @@ def _drift(ar, context, task, tube_boxes, cells, moved):
     """Per cell of `cells`, an enclosure of ``x(T) - x(0)``: the sum of ``h f(E)``.
 
     Each tube box ``E`` is first cut at the invariant faces where
-    :func:`_cut_at_invariant_faces` allows it; `moved` holds ``h f(E)`` of the steps'
-    own boxes (:class:`StepOutcome`), recomputed here only for the boxes cut.
+    :func:`_cut_at_invariant_faces` allows it, then to the window where
+    :func:`_cut_to_window` allows it; `moved` holds ``h f(E)`` of the steps'
+    own boxes (:class:`StepOutcome`), recomputed here only for the boxes cut. The
+    enclosure holds for the trajectories that keep the limits up to the horizon, the
+    only ones an image must hold.
     """
     n = context.programs.n
     owner = np.repeat(np.arange(len(task.cells)), task.n_steps)
     E = _cut_at_invariant_faces(context, tube_boxes, owner, len(task.cells))
+    E = _cut_to_window(context, E, _tube_pokes(context, task, tube_boxes)[owner])
     cut = np.flatnonzero(np.any(E != tube_boxes, axis=(1, 2)))
     if len(cut):
         box = [ar.box(E[cut, k, 0], E[cut, k, 1]) for k in range(n)]
@@ -682,6 +686,38 @@ def _cut_at_invariant_faces(context, tube_boxes, owner, n_cells):
             E[cut, axis, 0] = np.maximum(E[cut, axis, 0], bound)
         else:
             E[cut, axis, 1] = np.minimum(E[cut, axis, 1], bound)
+    return E
+
+
+def _tube_pokes(context, task, tube_boxes):
+    """Per cell of `task`: some tube box reaches beyond an open face (exact comparisons)."""
+    rows = np.repeat(np.arange(len(task.cells)), task.n_steps)
+    pokes = np.zeros(len(task.cells), bool)
+    for axis, side in context.open_faces:
+        a, b = context.window[axis]
+        if side == "lo":
+            beyond = _float_below(tube_boxes[:, axis, 0], a)
+        else:
+            beyond = _float_above(tube_boxes[:, axis, 1], b)
+        np.logical_or.at(pokes, rows[beyond], True)
+    return pokes
+
+
+def _cut_to_window(context, tube_boxes, escaping):
+    """Tube boxes cut to the window (at the largest float not beyond each side), except
+    those of cells whose tubes reach beyond an open face (`escaping`, per box) and those
+    the window would empty.
+
+    A trajectory that keeps the limits cannot leave the window through a ``limit``,
+    ``inflow``, ``invariant`` or ``no-outflow`` face (``_faces``), so when no tube box
+    of its cell reaches beyond an open face it lies in the window throughout.
+    """
+    E = tube_boxes.copy()
+    lo = np.array([_float_at_most(a) for a, _ in context.window])
+    hi = np.array([-_float_at_most(-c) for _, c in context.window])
+    cut_lo, cut_hi = np.maximum(E[:, :, 0], lo), np.minimum(E[:, :, 1], hi)
+    cut = ~escaping & np.all(cut_lo <= cut_hi, axis=1)
+    E[cut, :, 0], E[cut, :, 1] = cut_lo[cut], cut_hi[cut]
     return E
 
 
@@ -794,7 +830,8 @@ def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
     A trajectory that stays within the limits can leave the window only through an
     open face (a ``limit`` face violates a limit at every point, an ``inflow`` face
     pushes back every point within the limits, no solution leaves through an
-    ``invariant`` face). If no a-priori box of the cell reaches
+    ``invariant`` face, none within the limits through a ``no-outflow`` one). If no
+    a-priori box of the cell reaches
     beyond an open face, no such trajectory left the window and the parts outside it
     are harmless. Otherwise every part beyond a face must violate a limit (in one
     dimension a trajectory beyond the window lies beyond the open face it left by, so
@@ -805,16 +842,7 @@ def _escapes(ar, context, task, tube_boxes, cells, lo, hi):
     out = np.zeros(len(cells), bool)
     if not context.open_faces:
         return out
-    rows = np.repeat(np.arange(len(task.cells)), task.n_steps)
-    tube_pokes = np.zeros(len(task.cells), bool)
-    for axis, side in context.open_faces:
-        a, b = window[axis]
-        if side == "lo":
-            beyond = _float_below(tube_boxes[:, axis, 0], a)
-        else:
-            beyond = _float_above(tube_boxes[:, axis, 1], b)
-        np.logical_or.at(tube_pokes, rows[beyond], True)
-    check = tube_pokes[cells]
+    check = _tube_pokes(context, task, tube_boxes)[cells]
     if not check.any():
         return out
     faces = [(axis, side) for axis in range(n) for side in ("lo", "hi")]

@@ -10,6 +10,13 @@
   every other side overhanging by ``d_j``, with ``d = side / 1024``. Then ``f`` is
   Lipschitz near the face and, by uniqueness, a solution that meets the face stays on
   the hyperplane ``x_k = b`` near that time, so none leaves the window through it.
+* ``no-outflow``: bisect the face exactly until every piece violates a limit or has an
+  inward normal component of ``f`` that is ``>= 0``; and the Jacobian is finite on the
+  slab around the face, as for ``invariant``. A trajectory that keeps the limits then
+  cannot leave the window through it: near the last time ``t*`` it is in the window,
+  the distance ``D`` by which it lies beyond the faces grows at most at rate
+  ``n L D`` (``L`` a Lipschitz constant on the slab, the inward rate ``>= 0`` at the
+  nearest point of the face), and ``D(t*) = 0`` keeps it 0 (Gronwall).
 
 Pieces are tried in ball arithmetic first, then with exact endpoints.
 """
@@ -38,7 +45,7 @@ def confirm_face(context, axis, side, kind):
     context : certify.check._cells.CheckContext
     axis : int
     side : {"lo", "hi"}
-    kind : {"limit", "inflow", "invariant"}
+    kind : {"limit", "inflow", "invariant", "no-outflow"}
 
     Returns
     -------
@@ -47,29 +54,36 @@ def confirm_face(context, axis, side, kind):
     window = context.window
     n = len(window)
     value = window[axis][0] if side == "lo" else window[axis][1]
+    others = [k for k in range(n) if k != axis]
     if kind == "invariant":
         programs = context.programs
-        if programs.field_jacobian is None:
-            return False
         normal = programs.equations[axis].xreplace({programs.states[axis]: value})
-        if not _identically_zero(normal):
-            return False
-        lo, hi = [], []
-        for k, (a, b) in enumerate(window):
-            d = SLAB * (b - a)
-            lo.append(value - d if k == axis else a - d)
-            hi.append(value + d if k == axis else b + d)
+        return _identically_zero(normal) and _lipschitz_slab(context, axis, value, others)
+    lo = [value if k == axis else window[k][0] for k in range(n)]
+    hi = [value if k == axis else window[k][1] for k in range(n)]
+    rule = {"limit": _LIMIT_ONLY, "inflow": _STRICT, "no-outflow": _WEAK}[kind]
 
-        def proven(arithmetic, plo, phi):
-            return _jacobian_finite(context, arithmetic, plo, phi)
-    else:
-        lo = [value if k == axis else window[k][0] for k in range(n)]
-        hi = [value if k == axis else window[k][1] for k in range(n)]
+    def proven(arithmetic, plo, phi):
+        return _face_pieces_harmless(context, arithmetic, axis, side, plo, phi, rule)
+    if not _bisect(np.array([lo], dtype=object), np.array([hi], dtype=object), others,
+                   proven):
+        return False
+    return kind != "no-outflow" or _lipschitz_slab(context, axis, value, others)
 
-        def proven(arithmetic, plo, phi):
-            return _face_pieces_harmless(context, arithmetic, axis, side, plo, phi,
-                                         kind == "limit")
-    others = [k for k in range(n) if k != axis]
+
+def _lipschitz_slab(context, axis, value, others):
+    """Whether every Jacobian entry of ``f`` is finite on the slab around ``x_axis = value``
+    (``|x_axis - value| <= d_axis``, every other side overhanging by ``d_j``)."""
+    if context.programs.field_jacobian is None:
+        return False
+    lo, hi = [], []
+    for k, (a, b) in enumerate(context.window):
+        d = SLAB * (b - a)
+        lo.append(value - d if k == axis else a - d)
+        hi.append(value + d if k == axis else b + d)
+
+    def proven(arithmetic, plo, phi):
+        return _jacobian_finite(context, arithmetic, plo, phi)
     return _bisect(np.array([lo], dtype=object), np.array([hi], dtype=object), others,
                    proven)
 
@@ -117,17 +131,25 @@ def _bisect(lo, hi, axes, proven):
     return False
 
 
-def _face_pieces_harmless(context, arithmetic, axis, side, lo, hi, need_limit):
-    """Pieces of a face where a limit is violated (or, unless `need_limit`, ``f`` points
-    strictly into the window)."""
+#: What a face piece may show besides a violated limit: nothing, a strictly inward
+#: normal component of ``f``, or one that is ``>= 0`` inward.
+_LIMIT_ONLY, _STRICT, _WEAK = "limit", "strict", "weak"
+
+
+def _face_pieces_harmless(context, arithmetic, axis, side, lo, hi, rule):
+    """Pieces of a face where a limit is violated or, by `rule`, ``f`` points strictly
+    into the window (``_STRICT``) or not out of it (``_WEAK``)."""
     ar = ARITHMETICS[arithmetic]()
     ar.enter()
     n = context.programs.n
     box = [ar.rationals(lo[:, i], hi[:, i]) for i in range(n)]
     proven = _limits_upper_negative(ar, context, box, len(lo))
-    if not need_limit:
+    if rule != _LIMIT_ONLY:
         f = evaluate(context.programs.field, ar, box + _params(ar, context))[axis]
-        inward = ar.lower(f) > 0 if side == "lo" else ar.upper(f) < 0
+        if rule == _STRICT:
+            inward = ar.lower(f) > 0 if side == "lo" else ar.upper(f) < 0
+        else:
+            inward = ar.lower(f) >= 0 if side == "lo" else ar.upper(f) <= 0
         proven |= _true(inward)
     return proven
 

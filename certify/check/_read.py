@@ -22,7 +22,7 @@ from ._trapping import read_regions
 __all__ = ["CertificateData", "read_for_check", "LABELS", "KINDS"]
 
 LABELS = ("safe", "doomed", "outside", "undecided")
-KINDS = ("limit", "inflow", "invariant", "open")
+KINDS = ("limit", "inflow", "invariant", "no-outflow", "open")
 #: Frame rules of the steps (docs/method.md, step 3).
 FRAME_RULES = tuple(FRAME_KINDS)
 

@@ -65,13 +65,15 @@ def points_table(model, result):
     eq = result.equilibria
     lines = [f"model      {model.name}", "", f"equilibria in the window ({names}):"]
     if not eq.equilibria:
-        lines.append("  none")
+        lines.append("  none" if eq.complete else "  none isolated")
     for k, e in enumerate(eq.equilibria, start=1):
         lines.append(f"  {k:>2}  {e.stability:<12} {e.limits:<10} {_fmt_box(e.box, states)}")
     if eq.complete:
         lines.append("  the rest of the window is proven free of equilibria")
     else:
-        lines.append(f"  NOT complete: {len(eq.unresolved)} box(es) could not be cleared:")
+        lines.append(f"  NOT complete: {len(eq.unresolved)} box(es) could not be cleared (they "
+                     f"may hold equilibria; a line or surface of rest states, such as the "
+                     f"states without infected people of an epidemic, is never cleared):")
         lines += [f"      {_fmt_box(b, states)}" for b in eq.unresolved[:10]]
         if len(eq.unresolved) > 10:
             lines.append(f"      ... and {len(eq.unresolved) - 10} more (see --json)")

@@ -1,6 +1,7 @@
 """``certify prove MODEL``: prove a map of fates and write its certificate."""
 
 import json
+import math
 import sys
 import time
 
@@ -221,9 +222,15 @@ class progress_bar:
         self.bar = tqdm(total=100, unit="%", file=sys.stderr, leave=False,
                         bar_format="{desc} |{bar}| {n:.1f}% decided [{elapsed}]")
 
+    def starting(self, rounds, n_leaves):
+        """A round begins: a round of a 3D or 4D model may take minutes."""
+        self.bar.set_description(f"round {rounds}, {n_leaves} cells: flowing")
+        self.bar.refresh()
+
     def __call__(self, rounds, n_leaves, decided, seconds):
         self.bar.set_description(f"round {rounds}, {n_leaves} cells")
-        self.bar.n = 100 * decided
+        # rounded down: 100.0 % only when nothing is left undecided
+        self.bar.n = math.floor(1000 * decided) / 10
         self.bar.refresh()
 
     def close(self):

@@ -42,8 +42,10 @@ MIN_PIECE = 64
 #: wider than its cell along some axis, not where it leaves the cell.
 FOLLOW_GROWTH_LIMIT = 4.0
 #: Most times a labelling drops the successors that image sets miss and labels again
-#: (:meth:`_Prover._prune_successors`): leaves decided in one time free others. It goes
-#: on only while a time decides at least the share PRUNE_GAIN of the undecided leaves.
+#: (:meth:`_Prover._prune_successors`): leaves decided in one time free others. A
+#: labelling costs as much as the first, so it is redone only when the dropped
+#: successors free at least the share PRUNE_GAIN of the undecided leaves (a leaf is
+#: freed when no successor holds it back from a label any more).
 PRUNE_ROUNDS = 3
 PRUNE_GAIN = 0.01
 
@@ -532,7 +534,8 @@ class _Prover:
 
     def _prune_successors(self, leaves, facts, labelling):
         """Drop successors that undecided leaves' image sets miss where that may decide
-        them, and label again; up to PRUNE_ROUNDS times while that pays (PRUNE_GAIN).
+        them, and label again; up to PRUNE_ROUNDS times, while that frees enough leaves
+        (PRUNE_GAIN).
 
         `labelling` is the one with every successor. The other leaves' successors are
         left: their labels hold with all of them, and stay so in later rounds (only
@@ -558,22 +561,22 @@ class _Prover:
             missed = self.image_sets.misses_that_help(
                 leaves[facts.src[test]], leaves[facts.dst[test]], self.tree.lo, self.tree.hi,
                 holds)
-            # labels change only where a leaf lost every pair holding it back from one
+            # labels change only where a leaf lost every pair holding it back from one;
+            # a labelling costs as much as the first: only where enough may change
             held = facts.src[test]
             freed = np.zeros(len(leaves), bool)
             for h, (hope, _) in enumerate(hopes):
                 left = np.bincount(held[holds[:, h] & ~missed], minlength=len(leaves))
                 freed |= hope & (left == 0)
-            if not freed[held].any():
+            tested = np.zeros(len(leaves), bool)
+            tested[held] = True
+            freed &= tested
+            if np.count_nonzero(freed) < PRUNE_GAIN * np.count_nonzero(undecided):
                 break
             keep = np.ones(len(facts.src), bool)
             keep[test[missed]] = False
             facts = replace(facts, src=facts.src[keep], dst=facts.dst[keep])
-            before = np.count_nonzero(undecided)
             labelling = label_cells(facts)
-            # another labelling costs as much as this one: only while it paid
-            if np.count_nonzero(labelling.label == UNDECIDED) > (1 - PRUNE_GAIN) * before:
-                break
         return facts, labelling
 
     def _centres_held_back(self, leaves, label, hopes):

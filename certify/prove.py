@@ -21,8 +21,9 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .flow import DeadlinePassed, STOPPED, flow_boxes, join_results
-from .labels import CellFacts, Labelling, label_cells, UNDECIDED
+from .flow import (DeadlinePassed, STOPPED, flow_boxes, join_results, select_results,
+                   truncate_results)
+from .labels import CellFacts, Labelling, label_cells, OUTSIDE, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
@@ -39,6 +40,8 @@ MIN_PIECE = 64
 #: A followed tube (:meth:`_Prover.extend`) stops once its end box is this many times
 #: wider than its cell along some axis, not where it leaves the cell.
 FOLLOW_GROWTH_LIMIT = 4.0
+#: Most passes that cut followed tubes at a decisive step end (:meth:`_Prover.extend`).
+DECISIVE_PASSES = 4
 
 
 @dataclass(frozen=True)
@@ -315,7 +318,7 @@ class _Prover:
     def _analyse(self, nodes, follow=None):
         """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
         where they leave their cells and stop at the growth limit `follow`
-        (:meth:`extend`)."""
+        (:meth:`extend`). Returns the nodes flowed and their flows (None if none)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -324,7 +327,7 @@ class _Prover:
         self.first_unkept[nodes[outside]] = 0.0
         todo = nodes[~outside]
         if len(todo) == 0:
-            return
+            return todo, None
         tubes = self.tubes if follow is None else replace(self.tubes, follow=follow)
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
         result = self._flows(tubes, cell_lo, cell_hi)
@@ -334,6 +337,7 @@ class _Prover:
             self.left_cell[nodes] = False
             self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
+        return todo, result
 
     def _flows(self, tubes, cell_lo, cell_hi):
         """The flows of a round's new cells, in pieces on the runner's workers if any."""
@@ -416,6 +420,42 @@ class _Prover:
         kept[steps] |= (ends >= 0) & ((dip <= 0) | (8 * ends >= dip))
         return kept
 
+    def _decisive_ends(self, result, leaves, label):
+        """Per flow, how many steps to keep so that its successors all share a fate.
+
+        A tube may end at any step end (the checker re-derives everything from the
+        steps kept). Among the step ends past ``min_horizon``, the first whose clipped
+        box does not escape and whose successors (leaves `leaves`, labelled `label`)
+        are all safe or outside, with every step up to it kept, or all doomed or
+        outside, is chosen; without one the whole flow is kept. The labels are a
+        guess only: the labelling that follows decides.
+        """
+        S, N = len(result.h), len(result.n_steps)
+        if S == 0:
+            return result.n_steps
+        box = np.repeat(np.arange(N), result.n_steps)
+        pos = np.arange(S) - result.step_start[box]
+        glo_end, _ = evaluate_limits(self.programs, result.end_lo, result.end_hi, self.params)
+        kept = np.all(self._kept(result, glo_end), axis=1)
+        first_bad = np.full(N, S)
+        np.minimum.at(first_bad, box[~kept], pos[~kept])
+        t1_lo, _ = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
+        ones = np.ones(S, bool)
+        lo, hi, escapes = self.tubes.clip(result.end_lo, result.end_hi, ones, ones)
+        steps = np.flatnonzero((t1_lo >= self.method.min_horizon) & ~escapes
+                               & np.all(lo <= hi, axis=1))
+        number = np.full(len(self.tree), -1)
+        number[leaves] = np.arange(len(leaves))
+        q, leaf = self.tree.leaves_meeting(lo[steps], hi[steps],
+                                           strict=self._thick_axes(lo[steps], hi[steps]))
+        fate = label[number[leaf]]
+        not_safe = np.bincount(q, (fate != "safe") & (fate != OUTSIDE), len(steps)) > 0
+        not_doomed = np.bincount(q, (fate != "doomed") & (fate != OUTSIDE), len(steps)) > 0
+        decisive = (~not_safe & (pos[steps] < first_bad[box[steps]])) | ~not_doomed
+        chosen = np.full(N, S)
+        np.minimum.at(chosen, box[steps[decisive]], pos[steps[decisive]])
+        return np.where(chosen < S, chosen + 1, result.n_steps)
+
     def _drift(self, result, box_of_step, n_boxes):
         """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``."""
         elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
@@ -461,24 +501,66 @@ class _Prover:
         Only tubes that stopped where they left their cells are followed: the others
         stopped for a reason that a followed tube shares (the same steps again).
 
+        Then, up to :data:`DECISIVE_PASSES` times while it decides more leaves, the
+        leaves still undecided get their followed tubes cut at a step end whose
+        successors all share a fate in the labelling just made (:meth:`_decisive_ends`).
+
         Returns
         -------
         leaves, facts, labelling
             As :meth:`label`.
         """
         nodes = nodes[self.left_cell[nodes]]
+        leaves, label, back, (todo, full) = self._try_tubes(
+            nodes, lambda: self._analyse(nodes, follow=growth_limit))
+        if full is None:
+            return self.label()
+        pending = np.flatnonzero(np.isin(todo, nodes[back]))
+        for _ in range(DECISIVE_PASSES):
+            part = select_results(full, pending)
+            keep = self._decisive_ends(part, leaves, label)
+            cut = np.flatnonzero(keep < part.n_steps)
+            if len(cut) == 0:
+                break
+            ends = truncate_results(select_results(part, cut), keep[cut])
+            chosen = todo[pending[cut]]
+            leaves, label, back, _ = self._try_tubes(
+                chosen, lambda: self._record_tubes(chosen, ends))
+            if back.all() or (self.deadline is not None and time.monotonic() >= self.deadline):
+                break
+            pending = pending[~np.isin(todo[pending], chosen[~back])]
+        return self.label()
+
+    def _try_tubes(self, nodes, replace_tubes):
+        """Give `nodes` new tubes (``replace_tubes()``), label, and give the nodes left
+        undecided their old tubes back.
+
+        Returns
+        -------
+        leaves, label : ndarray
+            The leaves and their labels with the new tubes.
+        back : ndarray of bool
+            Per node: it got its old tube back.
+        out
+            What ``replace_tubes()`` returned.
+        """
         saved = {k: getattr(self, k)[nodes].copy() for k in _TUBE_FACTS}
         refs = self.steps.refs(nodes)
-        self._analyse(nodes, follow=growth_limit)
+        out = replace_tubes()
         leaves, facts, labelling = self.label()
-        del facts  # its edges are made again below: not held through the second labelling
+        del facts  # its edges are made again later: not held through the next labelling
         number = np.full(len(self.tree), -1)
         number[leaves] = np.arange(len(leaves))
         back = labelling.label[number[nodes]] == UNDECIDED
         for k in _TUBE_FACTS:
             getattr(self, k)[nodes[back]] = saved[k][back]
         self.steps.set_refs(nodes[back], refs[back])
-        return self.label()
+        return leaves, labelling.label, back, out
+
+    def _record_tubes(self, nodes, result):
+        """The facts and steps of `nodes` from the flows `result`."""
+        self._tube_facts(nodes, result)
+        self.steps.add(nodes, result)
 
     # -- labelling ---------------------------------------------------------------------
     def label(self):
@@ -698,6 +780,11 @@ def _prove(model, method, budget, progress, focus, runner):
                     stop_reason = "nothing left to refine for the focus"
                 break
             new, out_of_budget = split_shallowest(tree, und, budget, len(leaves), elapsed)
+            if out_of_budget and follow and focus is None and elapsed < budget.time_limit:
+                # the cell limit: the followed round adds no cells
+                extend, follow = FOLLOW_GROWTH_LIMIT, False
+                new = wanted
+                continue
             if out_of_budget:
                 stop_reason = out_of_budget
                 break

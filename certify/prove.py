@@ -261,6 +261,22 @@ def _flow_piece(tubes, cell_lo, cell_hi):
         return tubes.flow(cell_lo, cell_hi)
 
 
+@dataclass(frozen=True)
+class _StepEnds:
+    """Step ends at which followed tubes could be cut (:meth:`_Prover._step_ends`).
+
+    Per candidate: ``box`` (its flow), ``pos`` (its step within the flow), ``kept``
+    (every step up to it keeps the limits); and the pairs ``query`` (candidate),
+    ``leaf`` (leaf number) of the leaves its box meets.
+    """
+
+    box: np.ndarray
+    pos: np.ndarray
+    kept: np.ndarray
+    query: np.ndarray
+    leaf: np.ndarray
+
+
 #: The per-node facts of :class:`_Prover` and their value for a new node. All but
 #: ``outside`` are determined by the node's tube (:meth:`_Prover.extend` swaps them);
 #: ``left_cell``: the tube stopped only where it left its cell.
@@ -420,19 +436,14 @@ class _Prover:
         kept[steps] |= (ends >= 0) & ((dip <= 0) | (8 * ends >= dip))
         return kept
 
-    def _decisive_ends(self, result, leaves, label):
-        """Per flow, how many steps to keep so that its successors all share a fate.
+    def _step_ends(self, result, leaves):
+        """The step ends at which the flows of `result` could be cut, and their successors.
 
-        A tube may end at any step end (the checker re-derives everything from the
-        steps kept). Among the step ends past ``min_horizon``, the first whose clipped
-        box does not escape and whose successors (leaves `leaves`, labelled `label`)
-        are all safe or outside, with every step up to it kept, or all doomed or
-        outside, is chosen; without one the whole flow is kept. The labels are a
-        guess only: the labelling that follows decides.
+        A tube may end at any step end (the checker re-derives everything from the steps
+        kept). The candidates are the step ends past ``min_horizon`` whose clipped box
+        does not escape; their successors are found among `leaves` as for an image.
         """
         S, N = len(result.h), len(result.n_steps)
-        if S == 0:
-            return result.n_steps
         box = np.repeat(np.arange(N), result.n_steps)
         pos = np.arange(S) - result.step_start[box]
         glo_end, _ = evaluate_limits(self.programs, result.end_lo, result.end_hi, self.params)
@@ -444,17 +455,28 @@ class _Prover:
         lo, hi, escapes = self.tubes.clip(result.end_lo, result.end_hi, ones, ones)
         steps = np.flatnonzero((t1_lo >= self.method.min_horizon) & ~escapes
                                & np.all(lo <= hi, axis=1))
-        number = np.full(len(self.tree), -1)
+        number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
         number[leaves] = np.arange(len(leaves))
-        q, leaf = self.tree.leaves_meeting(lo[steps], hi[steps],
-                                           strict=self._thick_axes(lo[steps], hi[steps]))
-        fate = label[number[leaf]]
-        not_safe = np.bincount(q, (fate != "safe") & (fate != OUTSIDE), len(steps)) > 0
-        not_doomed = np.bincount(q, (fate != "doomed") & (fate != OUTSIDE), len(steps)) > 0
-        decisive = (~not_safe & (pos[steps] < first_bad[box[steps]])) | ~not_doomed
-        chosen = np.full(N, S)
-        np.minimum.at(chosen, box[steps[decisive]], pos[steps[decisive]])
-        return np.where(chosen < S, chosen + 1, result.n_steps)
+        query, leaf = self.tree.leaves_meeting(lo[steps], hi[steps],
+                                               strict=self._thick_axes(lo[steps], hi[steps]))
+        return _StepEnds(box=box[steps], pos=pos[steps],
+                         kept=pos[steps] < first_bad[box[steps]], query=query,
+                         leaf=number[leaf])
+
+    @staticmethod
+    def _decisive_ends(ends, label, n_steps, pending):
+        """Per flow, how many steps to keep: up to its first candidate step end whose
+        successors are all safe or outside (with every step up to it kept) or all doomed
+        or outside under `label`; all of them for flows without one or not `pending`.
+        The labels are a guess only: the labelling that follows decides."""
+        fate = label[ends.leaf]
+        count = len(ends.box)
+        not_safe = np.bincount(ends.query, (fate != "safe") & (fate != OUTSIDE), count) > 0
+        not_doomed = np.bincount(ends.query, (fate != "doomed") & (fate != OUTSIDE), count) > 0
+        decisive = ((~not_safe & ends.kept) | ~not_doomed) & pending[ends.box]
+        first = np.full(len(n_steps), np.iinfo(np.int64).max)
+        np.minimum.at(first, ends.box[decisive], ends.pos[decisive])
+        return np.where(first < n_steps, first + 1, n_steps)
 
     def _drift(self, result, box_of_step, n_boxes):
         """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``."""
@@ -515,20 +537,20 @@ class _Prover:
             nodes, lambda: self._analyse(nodes, follow=growth_limit))
         if full is None:
             return self.label()
-        pending = np.flatnonzero(np.isin(todo, nodes[back]))
+        pending = np.isin(todo, nodes[back])
+        ends = self._step_ends(full, leaves) if DECISIVE_PASSES else None
         for _ in range(DECISIVE_PASSES):
-            part = select_results(full, pending)
-            keep = self._decisive_ends(part, leaves, label)
-            cut = np.flatnonzero(keep < part.n_steps)
+            keep = self._decisive_ends(ends, label, full.n_steps, pending)
+            cut = np.flatnonzero(keep < full.n_steps)
             if len(cut) == 0:
                 break
-            ends = truncate_results(select_results(part, cut), keep[cut])
-            chosen = todo[pending[cut]]
-            leaves, label, back, _ = self._try_tubes(
-                chosen, lambda: self._record_tubes(chosen, ends))
+            tubes = truncate_results(select_results(full, cut), keep[cut])
+            chosen = todo[cut]
+            _, label, back, _ = self._try_tubes(
+                chosen, lambda: self._record_tubes(chosen, tubes))
             if back.all() or (self.deadline is not None and time.monotonic() >= self.deadline):
                 break
-            pending = pending[~np.isin(todo[pending], chosen[~back])]
+            pending[cut[~back]] = False
         return self.label()
 
     def _try_tubes(self, nodes, replace_tubes):

@@ -469,10 +469,13 @@ class _Prover:
         successors are all safe or outside (with every step up to it kept) or all doomed
         or outside under `label`; all of them for flows without one or not `pending`.
         The labels are a guess only: the labelling that follows decides."""
-        fate = label[ends.leaf]
         count = len(ends.box)
-        not_safe = np.bincount(ends.query, (fate != "safe") & (fate != OUTSIDE), count) > 0
-        not_doomed = np.bincount(ends.query, (fate != "doomed") & (fate != OUTSIDE), count) > 0
+        outside = label == OUTSIDE
+        # per leaf first: string compares on the (many) pairs would be slow
+        not_safe = ((label != "safe") & ~outside)[ends.leaf]
+        not_doomed = ((label != "doomed") & ~outside)[ends.leaf]
+        not_safe = np.bincount(ends.query, not_safe, count) > 0
+        not_doomed = np.bincount(ends.query, not_doomed, count) > 0
         decisive = ((~not_safe & ends.kept) | ~not_doomed) & pending[ends.box]
         first = np.full(len(n_steps), np.iinfo(np.int64).max)
         np.minimum.at(first, ends.box[decisive], ends.pos[decisive])

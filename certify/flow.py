@@ -132,6 +132,11 @@ class FlowResult:
         Box containing the flow of the box at the horizon (NaN where failed).
     set0_m, set0_r_lo, set0_r_hi : ndarray, shape (N, n)
         The starting set ``m0 + [r0]`` (``A0 = I``), which contains the box.
+    image_m, image_A, image_r_lo, image_r_hi : ndarray, shapes (N, n), (N, K, n, n),
+            (N, K, n), (N, K, n)
+        The sets ``image_m + image_A[:, k] [image_r[:, k]]`` at the horizon, one per
+        frame of the rule (K of them), each enclosing the flow of the box there (NaN
+        where the flow failed).
     h : ndarray, shape (S,)
         Step sizes.
     t0_lo, t0_hi : ndarray, shape (S,)
@@ -156,6 +161,10 @@ class FlowResult:
     set0_m: np.ndarray
     set0_r_lo: np.ndarray
     set0_r_hi: np.ndarray
+    image_m: np.ndarray
+    image_A: np.ndarray
+    image_r_lo: np.ndarray
+    image_r_hi: np.ndarray
     h: np.ndarray
     t0_lo: np.ndarray
     t0_hi: np.ndarray
@@ -311,6 +320,11 @@ def parallelepiped_frame(mid, width):
 _FRAMES = {"qr+parallelepiped": (qr_frame, parallelepiped_frame), "qr": (qr_frame,)}
 #: Which sets a flow carries (the certificate records the rule; the checker applies it).
 FRAME_RULES = tuple(_FRAMES)
+
+
+def frame_count(frames):
+    """The number of sets a flow under the frame rule `frames` carries."""
+    return len(_FRAMES[frames])
 
 
 def _coordinates(Q, new_m, ylo, yhi, Mlo, Mhi, rlo, rhi):
@@ -479,6 +493,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     t_hi = np.zeros(N)
     image_lo = np.full((N, n), np.nan)
     image_hi = np.full((N, n), np.nan)
+    image_sets = _ImageSets(N, n, len(_FRAMES[frames]))
 
     m0 = 0.5 * (lo + hi)
     r0lo, _ = iv.sub(lo, lo, m0, m0)
@@ -533,6 +548,8 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
                 status[ids[sel[stop]]] = STOPPED
                 finish[sel[stop]] = True
         image_lo[ids[finish]], image_hi[ids[finish]] = endlo[finish], endhi[finish]
+        image_sets.put(ids[finish], new_m[finish], [tuple(a[finish] for a in one)
+                                                    for one in new_sets])
         done |= finish
         keep = ~done
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -548,11 +565,28 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     status[ids] = STEP_LIMIT
     # boxes that ran out of steps keep the image at the time they reached
     image_lo[ids], image_hi[ids] = xlo, xhi
+    image_sets.put(ids, m, sets)
     return _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi,
-                     m0, r0lo, r0hi)
+                     m0, r0lo, r0hi, image_sets)
 
 
-def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0, r0lo, r0hi):
+class _ImageSets:
+    """The sets of a batch's boxes at their horizons (:class:`FlowResult` ``image_*``)."""
+
+    def __init__(self, N, n, K):
+        self.m = np.full((N, n), np.nan)
+        self.A = np.full((N, K, n, n), np.nan)
+        self.r_lo = np.full((N, K, n), np.nan)
+        self.r_hi = np.full((N, K, n), np.nan)
+
+    def put(self, boxes, m, sets):
+        self.m[boxes] = m
+        for k, (A, rlo, rhi) in enumerate(sets):
+            self.A[boxes, k], self.r_lo[boxes, k], self.r_hi[boxes, k] = A, rlo, rhi
+
+
+def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0, r0lo, r0hi,
+              image_sets):
     shapes = [(), (), (), (), (n,), (n,), (n,), (n,), (n,), (n, n), (n,), (n,), (n,), (n,)]
     parts = [list(c) for c in zip(*records)] if records else [[np.zeros((0,) + s)]
                                                               for s in shapes]
@@ -569,7 +603,9 @@ def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0
     (_, h, t0lo, t0hi, xlo, xhi, elo, ehi, m, A, rlo, rhi, endlo, endhi) = cols
     return FlowResult(status=status, n_steps=n_steps, step_start=step_start, t_lo=t_lo,
                       t_hi=t_hi, image_lo=image_lo, image_hi=image_hi, set0_m=m0,
-                      set0_r_lo=r0lo, set0_r_hi=r0hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
+                      set0_r_lo=r0lo, set0_r_hi=r0hi, image_m=image_sets.m,
+                      image_A=image_sets.A, image_r_lo=image_sets.r_lo,
+                      image_r_hi=image_sets.r_hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
                       x_lo=xlo, x_hi=xhi, e_lo=elo, e_hi=ehi, m=m, A=A, r_lo=rlo,
                       r_hi=rhi, end_lo=endlo, end_hi=endhi)
 
@@ -583,7 +619,7 @@ def _step_starts(n_steps):
 _STEP_FIELDS = ("h", "t0_lo", "t0_hi", "x_lo", "x_hi", "e_lo", "e_hi", "m", "A", "r_lo", "r_hi",
                 "end_lo", "end_hi")
 _BOX_FIELDS = ("status", "n_steps", "t_lo", "t_hi", "image_lo", "image_hi", "set0_m",
-               "set0_r_lo", "set0_r_hi")
+               "set0_r_lo", "set0_r_hi", "image_m", "image_A", "image_r_lo", "image_r_hi")
 
 
 def join_results(parts):
@@ -612,7 +648,8 @@ def truncate_results(result, n_steps):
 
     A flow's first steps are a flow in their own right (each step starts from the end of
     the one before), stopped at the end of its last kept step: that end box is its image
-    and the step's end time its horizon.
+    and the step's end time its horizon. Its image sets are not known (NaN): the sets
+    at the whole flow's horizon are not its sets.
 
     Parameters
     ----------
@@ -638,6 +675,9 @@ def truncate_results(result, n_steps):
     boxes["t_lo"][cut], boxes["t_hi"][cut] = iv.add(result.t0_lo[last], result.t0_hi[last],
                                                     result.h[last], result.h[last])
     boxes["image_lo"][cut], boxes["image_hi"][cut] = result.end_lo[last], result.end_hi[last]
+    # the sets at the horizon belong to the whole flow: a cut flow has none (NaN)
+    for name in ("image_m", "image_A", "image_r_lo", "image_r_hi"):
+        boxes[name][cut] = np.nan
     return FlowResult(**out, **boxes, step_start=starts)
 
 

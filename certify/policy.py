@@ -119,11 +119,12 @@ def _provers(model, method, budget):
     # (longer tubes re-grid less often; a model may lower min_horizon in [settings])
     held = replace(method, min_horizon=max(method.min_horizon,
                                            _float_at_least(hold_time(model))))
-    provers = [_Prover(model.with_parameters(s), held, budget, None)
+    # the policy checker looks successors up in image boxes alone
+    provers = [_Prover(model.with_parameters(s), held, budget, None, prune_successors=False)
                for s in setting_combinations(model)]
     hull = model.with_parameters(control_hull(model))
     inclusion = _Prover(hull, replace(method, order=1, max_steps=max(method.max_steps, 2000)),
-                        budget, None)
+                        budget, None, prune_successors=False)
     tree = provers[0].tree
     for p in provers[1:] + [inclusion]:
         p.tree = tree

@@ -21,13 +21,14 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .flow import (DeadlinePassed, STOPPED, flow_boxes, join_results, select_results,
-                   truncate_results)
+from .flow import (DeadlinePassed, STOPPED, flow_boxes, frame_count, join_results,
+                   select_results, truncate_results)
 from .labels import CellFacts, Labelling, label_cells, OUTSIDE, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
 from .faces import analyse_faces, cut_at_invariant_faces, HARMLESS
+from .image_sets import ImageSetStore
 from .volumes import label_fractions
 from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
 
@@ -289,7 +290,14 @@ _BOX_FACTS = ("image_lo", "image_hi")
 
 
 class _Prover:
-    def __init__(self, model, method, budget, progress, runner=None):
+    """The facts of a proof's cells, and their labelling.
+
+    With `prune_successors` the leaves that an undecided cell's image sets miss are
+    dropped from its successors (:mod:`certify.image_sets`); the checker of plain
+    certificates mirrors that, the one of policy maps does not.
+    """
+
+    def __init__(self, model, method, budget, progress, runner=None, prune_successors=True):
         self.model = model
         # where the flow batches run (certify.executors.Runner; default: this process)
         self.runner = runner or Runner()
@@ -308,6 +316,8 @@ class _Prover:
         self.tubes = _Tubes(model, method, self.params, self.faces, self.window_sides,
                             self.regions)
         self.steps = StepStore(self.n)
+        self.image_sets = ImageSetStore(self.n, frame_count(method.frames)) \
+            if prune_successors else None
         follow = method.follow_undecided
         # whether leaves undecided at max_depth get followed tubes (:meth:`extend`)
         self.follows = len(model.states) >= 3 if follow is None else follow
@@ -348,12 +358,18 @@ class _Prover:
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
         result = self._flows(tubes, cell_lo, cell_hi)
         self._tube_facts(todo, result)
+        self._put_image_sets(todo, result)
         if self.follows:
             ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
             self.left_cell[nodes] = False
             self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
         return todo, result
+
+    def _put_image_sets(self, nodes, result):
+        if self.image_sets is not None:
+            self.image_sets.put(nodes, {"m": result.image_m, "A": result.image_A,
+                                        "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
 
     def _flows(self, tubes, cell_lo, cell_hi):
         """The flows of a round's new cells, in pieces on the runner's workers if any."""
@@ -570,6 +586,7 @@ class _Prover:
             What ``replace_tubes()`` returned.
         """
         saved = {k: getattr(self, k)[nodes].copy() for k in _TUBE_FACTS}
+        saved_sets = self.image_sets.take(nodes) if self.image_sets is not None else None
         refs = self.steps.refs(nodes)
         out = replace_tubes()
         leaves, facts, labelling = self.label()
@@ -580,11 +597,14 @@ class _Prover:
         for k in _TUBE_FACTS:
             getattr(self, k)[nodes[back]] = saved[k][back]
         self.steps.set_refs(nodes[back], refs[back])
+        if saved_sets is not None:
+            self.image_sets.put(nodes[back], {k: v[back] for k, v in saved_sets.items()})
         return leaves, labelling.label, back, out
 
     def _record_tubes(self, nodes, result):
-        """The facts and steps of `nodes` from the flows `result`."""
+        """The facts, image sets and steps of `nodes` from the flows `result`."""
         self._tube_facts(nodes, result)
+        self._put_image_sets(nodes, result)
         self.steps.add(nodes, result)
 
     # -- labelling ---------------------------------------------------------------------
@@ -612,7 +632,31 @@ class _Prover:
                           horizon_hi=self.horizon_hi[leaves],
                           first_unkept=self.first_unkept[leaves], src=src, dst=dst,
                           trapped=trapped, trapped_whole=whole)
-        return leaves, facts, label_cells(facts)
+        labelling = label_cells(facts)
+        if self.image_sets is not None:
+            facts, labelling = self._prune_successors(leaves, facts, labelling)
+        return leaves, facts, labelling
+
+    def _prune_successors(self, leaves, facts, labelling):
+        """Drop the successors of undecided leaves that their image sets miss, and label
+        again if any was dropped.
+
+        `labelling` is the one with every successor. The other leaves' successors are
+        left: their labels hold with all of them, and stay so in later rounds (only
+        leaves undecided here are split), so only the sets of these leaves are kept.
+        """
+        undecided = labelling.label == UNDECIDED
+        self.image_sets.keep_only(leaves[undecided])
+        test = np.flatnonzero(undecided[facts.src])
+        dst_nodes = leaves[facts.dst[test]]
+        missed = self.image_sets.missed(leaves[facts.src[test]], self.tree.lo[dst_nodes],
+                                        self.tree.hi[dst_nodes])
+        if missed.any():
+            keep = np.ones(len(facts.src), bool)
+            keep[test[missed]] = False
+            facts = replace(facts, src=facts.src[keep], dst=facts.dst[keep])
+            labelling = label_cells(facts)
+        return facts, labelling
 
 
 def _settings(model, method, budget, overrides):

@@ -590,4 +590,7 @@ def test_selected_and_truncated_flows_are_flows_of_their_own():
         assert Fraction(float(T.t_lo[i])) <= ends[-1] <= Fraction(float(T.t_hi[i]))
     assert T.status[0] == STOPPED and T.status[1] == OK
     np.testing.assert_array_equal(T.image_lo[1], R.image_lo[0])
+    # the sets at the full horizon are not the cut flow's: none (NaN) for it
+    assert np.isnan(T.image_m[0]).all() and np.isnan(T.image_A[0]).all()
+    np.testing.assert_array_equal(T.image_A[1], R.image_A[0])
     check_linear_images(T, A, lo[boxes], hi[boxes])

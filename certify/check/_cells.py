@@ -32,6 +32,7 @@ from functools import lru_cache
 import numpy as np
 
 from ._arith import ARITHMETICS, evaluate
+from ._floats import float_down, float_up
 
 __all__ = ["CheckContext", "CellTask", "cell_facts", "exact_cells", "grid_bounds"]
 
@@ -509,7 +510,10 @@ def _chunk_facts(context, task, arithmetic):
         ``image`` (0 not known, 1 known), ``escapes`` (bool), ``empty`` (the clipped image
         is empty), ``grid_lo``/``grid_hi`` (int arrays (N, n): the clipped image in units
         of the finest grid, see :func:`grid_bounds`), ``image_lo``/``image_hi`` (object
-        arrays (N, n) of Fractions: the clipped image; None where not known).
+        arrays (N, n) of Fractions: the clipped image; None where not known),
+        ``set_m`` (N, n), ``set_A`` (N, K, n, n), ``set_r_lo``/``set_r_hi`` (N, K, n):
+        float arrays of the sets ``m + A [r]`` at the horizon, ``r`` rounded outward,
+        ``K = MAX_SETS`` (NaN where the image or a set is not known).
     """
     ar = ARITHMETICS[arithmetic]()
     ar.enter()
@@ -537,6 +541,7 @@ def _chunk_facts(context, task, arithmetic):
     sets = [(np.broadcast_to(np.eye(n), (len(ids), n, n)), r)] * kinds
     image = [None] * n
     image_cells = np.zeros(0, int)
+    end_sets = _end_sets(N, n)
     k = 0
     while len(ids):
         s = start[ids] + k
@@ -558,6 +563,8 @@ def _chunk_facts(context, task, arithmetic):
             image = pieces if image[0] is None else [_concat(ar, image[i], pieces[i])
                                                      for i in range(n)]
             image_cells = np.concatenate([image_cells, ids[done]])
+            _keep_end_sets(ar, end_sets, ids[done], out.m_next[done],
+                           [(A[done], [ar.take(x, done) for x in r]) for A, r in out.sets_next])
         go = ok & (K[ids] > k + 1)
         keep = np.flatnonzero(go)
         X = [ar.take(x, keep) for x in X_next]
@@ -574,7 +581,40 @@ def _chunk_facts(context, task, arithmetic):
     facts = {"outside": outside, "n_valid": n_valid, "first_unkept": first_unkept,
              "crossing_step": crossing}
     facts.update(_images(ar, context, task, tube_boxes, image, image_cells))
+    facts.update(end_sets)
     return facts
+
+
+#: The most sets a frame rule carries (the ``set_*`` facts have room for that many).
+MAX_SETS = max(len(kinds) for kinds in FRAME_KINDS.values())
+
+
+def _end_sets(N, n):
+    """Room for the sets at the horizon of N cells (NaN: not known)."""
+    return {"set_m": np.full((N, n), np.nan), "set_A": np.full((N, MAX_SETS, n, n), np.nan),
+            "set_r_lo": np.full((N, MAX_SETS, n), np.nan),
+            "set_r_hi": np.full((N, MAX_SETS, n), np.nan)}
+
+
+def _keep_end_sets(ar, end_sets, cells, m, sets):
+    """Store the last step's sets of `cells` as floats, coordinates rounded outward."""
+    end_sets["set_m"][cells] = m
+    for k, (A, r) in enumerate(sets):
+        end_sets["set_A"][cells, k] = A
+        for i, x in enumerate(r):
+            lo, hi = _outward_floats(ar, x)
+            end_sets["set_r_lo"][cells, k, i] = lo
+            end_sets["set_r_hi"][cells, k, i] = hi
+
+
+def _outward_floats(ar, a):
+    """Floats at or below the lower ends of intervals `a` and at or above the upper ends
+    (-inf and inf where an end is not finite)."""
+    lo, hi = ar.lower(a), ar.upper(a)
+    if lo.dtype != object:  # the float pass: its ends are floats
+        return np.where(np.isnan(lo), -np.inf, lo), np.where(np.isnan(hi), np.inf, hi)
+    return (np.array([float_down(_to_fraction(x)) if x.is_finite() else -np.inf for x in lo]),
+            np.array([float_up(_to_fraction(x)) if x.is_finite() else np.inf for x in hi]))
 
 
 def _cell_midpoints(lo, hi):

@@ -29,8 +29,9 @@ import numpy as np
 from ..container import parameter_differences
 from ..errors import CertificateError, CertifyError
 from ..model import load_model
+from ._apart import sets_miss
 from ._arith import PASSES
-from ._cells import CellTask, CheckContext, cell_facts, exact_cells
+from ._cells import CellTask, CheckContext, _end_sets, cell_facts, exact_cells
 from ._claim import read_claim, rederive_claim
 from ._faces import confirm_face
 from ._programs import derive_programs
@@ -286,11 +287,14 @@ class _Facts:
         self.grid_hi = np.full((L, n), -1, np.int64)
         self.image_lo = np.full((L, n), None, dtype=object)
         self.image_hi = np.full((L, n), None, dtype=object)
+        for key, value in _end_sets(L, n).items():
+            setattr(self, key, value)
 
     def store(self, cells, facts):
         self.computed[cells] = True
         for key in ("outside", "n_valid", "first_unkept", "image", "escapes", "empty",
-                    "grid_lo", "grid_hi", "image_lo", "image_hi"):
+                    "grid_lo", "grid_hi", "image_lo", "image_hi", "set_m", "set_A", "set_r_lo",
+                    "set_r_hi"):
             getattr(self, key)[cells] = facts[key]
         self.crossing_step[cells] = facts["crossing_step"]
 
@@ -706,12 +710,12 @@ def _judge_all(cert, facts, tree, cells, unproven_regions=()):
     if len(sel):
         q, leaf = _leaves_meeting(tree, facts.grid_lo[sel], facts.grid_hi[sel])
         src = sel[q]
-        stored = cert.succ_start
-        owner = np.repeat(np.arange(cert.L), np.diff(stored))
-        known = set((owner * cert.L + cert.succ).tolist())
-        for s, d in zip(src.tolist(), leaf.tolist()):
-            if s * cert.L + d not in known and s not in missing:
-                missing[s] = d
+        owner = np.repeat(np.arange(cert.L), np.diff(cert.succ_start))
+        unlisted = ~np.isin(src.astype(np.int64) * cert.L + leaf,
+                            owner.astype(np.int64) * cert.L + cert.succ)
+        src, leaf = src[unlisted], leaf[unlisted]
+        for s, d in zip(*_met(cert, facts, src, leaf)):
+            missing.setdefault(s, d)
     judge = _Judge(cert, facts, tree, missing, unproven_regions)
     local = {}
     for c in np.asarray(cells).tolist():
@@ -719,6 +723,18 @@ def _judge_all(cert, facts, tree, cells, unproven_regions=()):
         if reasons:
             local[c] = reasons
     return judge, local
+
+
+def _met(cert, facts, src, leaf):
+    """The pairs (cell, leaf) whose leaf the cell's image sets are not proven to miss
+    (an unlisted leaf is allowed where they miss it), as two lists."""
+    if len(src) == 0:
+        return [], []
+    leaves, where = np.unique(leaf, return_inverse=True)
+    lo, hi = exact_cells(cert.window, cert.depth[leaves], cert.index[leaves])
+    met = ~sets_miss(facts.set_m[src], facts.set_A[src], facts.set_r_lo[src],
+                     facts.set_r_hi[src], lo, hi, where.reshape(-1))
+    return src[met].tolist(), leaf[met].tolist()
 
 
 def _propagate(cert, judge, failed):

@@ -33,7 +33,7 @@ from . import stacked
 from .evaluate import evaluate_boxes
 
 __all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
-           "join_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
+           "join_results", "select_results", "truncate_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
 
 #: A parallelepiped frame with a larger condition number is replaced by its QR factor.
 FRAME_CONDITION_LIMIT = 1e3
@@ -641,3 +641,53 @@ def join_results(parts):
               for name in _STEP_FIELDS + _BOX_FIELDS}
     joined["step_start"] = _step_starts(joined["n_steps"])
     return FlowResult(**joined)
+
+
+def truncate_results(result, n_steps):
+    """The flows of `result` cut after their first ``n_steps[b]`` steps.
+
+    A flow's first steps are a flow in their own right (each step starts from the end of
+    the one before), stopped at the end of its last kept step: that end box is its image
+    and the step's end time its horizon. Its image sets are not known (NaN): the sets
+    at the whole flow's horizon are not its sets.
+
+    Parameters
+    ----------
+    result : FlowResult
+    n_steps : ndarray of int, shape (N,)
+        Steps kept per box, between 1 and ``result.n_steps`` (a box that keeps all its
+        steps is left as it was).
+
+    Returns
+    -------
+    FlowResult
+    """
+    n_steps = np.asarray(n_steps, int)
+    cut = n_steps < result.n_steps
+    starts = _step_starts(n_steps)
+    rows = np.repeat(result.step_start - starts, n_steps) + np.arange(int(n_steps.sum()))
+    out = {name: None if getattr(result, name) is None else getattr(result, name)[rows]
+           for name in _STEP_FIELDS}
+    boxes = {name: getattr(result, name).copy() for name in _BOX_FIELDS}
+    last = result.step_start[cut] + n_steps[cut] - 1
+    boxes["n_steps"] = n_steps.copy()
+    boxes["status"][cut] = STOPPED
+    boxes["t_lo"][cut], boxes["t_hi"][cut] = iv.add(result.t0_lo[last], result.t0_hi[last],
+                                                    result.h[last], result.h[last])
+    boxes["image_lo"][cut], boxes["image_hi"][cut] = result.end_lo[last], result.end_hi[last]
+    # the sets at the horizon belong to the whole flow: a cut flow has none (NaN)
+    for name in ("image_m", "image_A", "image_r_lo", "image_r_hi"):
+        boxes[name][cut] = np.nan
+    return FlowResult(**out, **boxes, step_start=starts)
+
+
+def select_results(result, boxes):
+    """The flows of the boxes `boxes` of `result` (in that order), with their steps."""
+    boxes = np.asarray(boxes, int)
+    n_steps = result.n_steps[boxes]
+    starts = _step_starts(n_steps)
+    rows = np.repeat(result.step_start[boxes] - starts, n_steps) + np.arange(int(n_steps.sum()))
+    out = {name: None if getattr(result, name) is None else getattr(result, name)[rows]
+           for name in _STEP_FIELDS}
+    out.update({name: getattr(result, name)[boxes] for name in _BOX_FIELDS})
+    return FlowResult(**out, step_start=starts)

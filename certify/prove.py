@@ -21,7 +21,8 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .flow import DeadlinePassed, STOPPED, flow_boxes, frame_count, join_results
+from .flow import (DeadlinePassed, STOPPED, flow_boxes, frame_count, join_results,
+                   select_results, truncate_results)
 from .labels import CellFacts, Labelling, label_cells, DOOMED, OUTSIDE, SAFE, UNDECIDED
 from .steps import StepStore
 from .taylor import flow_programs
@@ -48,6 +49,8 @@ FOLLOW_GROWTH_LIMIT = 4.0
 #: freed when no successor holds it back from a label any more).
 PRUNE_ROUNDS = 3
 PRUNE_GAIN = 0.01
+#: Most passes that cut followed tubes at a decisive step end (:meth:`_Prover.extend`).
+DECISIVE_PASSES = 4
 
 
 @dataclass(frozen=True)
@@ -268,6 +271,22 @@ def _flow_piece(tubes, cell_lo, cell_hi):
         return tubes.flow(cell_lo, cell_hi)
 
 
+@dataclass(frozen=True)
+class _StepEnds:
+    """Step ends at which followed tubes could be cut (:meth:`_Prover._step_ends`).
+
+    Per candidate: ``box`` (its flow), ``pos`` (its step within the flow), ``kept``
+    (every step up to it keeps the limits); and the pairs ``query`` (candidate),
+    ``leaf`` (leaf number) of the leaves its box meets.
+    """
+
+    box: np.ndarray
+    pos: np.ndarray
+    kept: np.ndarray
+    query: np.ndarray
+    leaf: np.ndarray
+
+
 #: The per-node facts of :class:`_Prover` and their value for a new node. All but
 #: ``outside`` are determined by the node's tube (:meth:`_Prover.extend` swaps them);
 #: ``left_cell``: the tube stopped only where it left its cell.
@@ -334,7 +353,7 @@ class _Prover:
     def _analyse(self, nodes, follow=None):
         """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
         where they leave their cells and stop at the growth limit `follow`
-        (:meth:`extend`)."""
+        (:meth:`extend`). Returns the nodes flowed and their flows (None if none)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -343,19 +362,23 @@ class _Prover:
         self.first_unkept[nodes[outside]] = 0.0
         todo = nodes[~outside]
         if len(todo) == 0:
-            return
+            return todo, None
         tubes = self.tubes if follow is None else replace(self.tubes, follow=follow)
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
         result = self._flows(tubes, cell_lo, cell_hi)
         self._tube_facts(todo, result)
-        if self.image_sets is not None:
-            self.image_sets.put(todo, {"m": result.image_m, "A": result.image_A,
-                                       "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
+        self._put_image_sets(todo, result)
         if self.follows:
             ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
             self.left_cell[nodes] = False
             self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
+        return todo, result
+
+    def _put_image_sets(self, nodes, result):
+        if self.image_sets is not None:
+            self.image_sets.put(nodes, {"m": result.image_m, "A": result.image_A,
+                                        "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
 
     def _flows(self, tubes, cell_lo, cell_hi):
         """The flows of a round's new cells, in pieces on the runner's workers if any."""
@@ -438,6 +461,51 @@ class _Prover:
         kept[steps] |= (ends >= 0) & ((dip <= 0) | (8 * ends >= dip))
         return kept
 
+    def _step_ends(self, result, leaves):
+        """The step ends at which the flows of `result` could be cut, and their successors.
+
+        A tube may end at any step end (the checker re-derives everything from the steps
+        kept). The candidates are the step ends past ``min_horizon`` whose clipped box
+        does not escape; their successors are found among `leaves` as for an image.
+        """
+        S, N = len(result.h), len(result.n_steps)
+        box = np.repeat(np.arange(N), result.n_steps)
+        pos = np.arange(S) - result.step_start[box]
+        glo_end, _ = evaluate_limits(self.programs, result.end_lo, result.end_hi, self.params)
+        kept = np.all(self._kept(result, glo_end), axis=1)
+        first_bad = np.full(N, S)
+        np.minimum.at(first_bad, box[~kept], pos[~kept])
+        t1_lo, _ = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
+        ones = np.ones(S, bool)
+        lo, hi, escapes = self.tubes.clip(result.end_lo, result.end_hi, ones, ones)
+        steps = np.flatnonzero((t1_lo >= self.method.min_horizon) & ~escapes
+                               & np.all(lo <= hi, axis=1))
+        number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
+        number[leaves] = np.arange(len(leaves))
+        query, leaf = self.tree.leaves_meeting(lo[steps], hi[steps],
+                                               strict=self._thick_axes(lo[steps], hi[steps]))
+        return _StepEnds(box=box[steps], pos=pos[steps],
+                         kept=pos[steps] < first_bad[box[steps]], query=query,
+                         leaf=number[leaf])
+
+    @staticmethod
+    def _decisive_ends(ends, label, n_steps, pending):
+        """Per flow, how many steps to keep: up to its first candidate step end whose
+        successors are all safe or outside (with every step up to it kept) or all doomed
+        or outside under `label`; all of them for flows without one or not `pending`.
+        The labels are a guess only: the labelling that follows decides."""
+        count = len(ends.box)
+        outside = label == OUTSIDE
+        # per leaf first: string compares on the (many) pairs would be slow
+        not_safe = ((label != SAFE) & ~outside)[ends.leaf]
+        not_doomed = ((label != DOOMED) & ~outside)[ends.leaf]
+        not_safe = np.bincount(ends.query, not_safe, count) > 0
+        not_doomed = np.bincount(ends.query, not_doomed, count) > 0
+        decisive = ((~not_safe & ends.kept) | ~not_doomed) & pending[ends.box]
+        first = np.full(len(n_steps), np.iinfo(np.int64).max)
+        np.minimum.at(first, ends.box[decisive], ends.pos[decisive])
+        return np.where(first < n_steps, first + 1, n_steps)
+
     def _drift(self, result, box_of_step, n_boxes):
         """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``,
         for the trajectories that keep the limits up to ``T`` (their tube boxes may be cut
@@ -480,18 +548,55 @@ class _Prover:
         Only tubes that stopped where they left their cells are followed: the others
         stopped for a reason that a followed tube shares (the same steps again).
 
+        Then, up to :data:`DECISIVE_PASSES` times while it decides more leaves, the
+        leaves still undecided get their followed tubes cut at a step end whose
+        successors all share a fate in the labelling just made (:meth:`_decisive_ends`).
+
         Returns
         -------
         leaves, facts, labelling
             As :meth:`label`.
         """
         nodes = nodes[self.left_cell[nodes]]
+        leaves, label, back, (todo, full) = self._try_tubes(
+            nodes, lambda: self._analyse(nodes, follow=growth_limit))
+        if full is None:
+            return self.label()
+        pending = np.isin(todo, nodes[back])
+        ends = self._step_ends(full, leaves) if DECISIVE_PASSES else None
+        for _ in range(DECISIVE_PASSES):
+            keep = self._decisive_ends(ends, label, full.n_steps, pending)
+            cut = np.flatnonzero(keep < full.n_steps)
+            if len(cut) == 0:
+                break
+            tubes = truncate_results(select_results(full, cut), keep[cut])
+            chosen = todo[cut]
+            _, label, back, _ = self._try_tubes(
+                chosen, lambda: self._record_tubes(chosen, tubes))
+            if back.all() or (self.deadline is not None and time.monotonic() >= self.deadline):
+                break
+            pending[cut[~back]] = False
+        return self.label()
+
+    def _try_tubes(self, nodes, replace_tubes):
+        """Give `nodes` new tubes (``replace_tubes()``), label, and give the nodes left
+        undecided their old tubes back.
+
+        Returns
+        -------
+        leaves, label : ndarray
+            The leaves and their labels with the new tubes.
+        back : ndarray of bool
+            Per node: it got its old tube back.
+        out
+            What ``replace_tubes()`` returned.
+        """
         saved = {k: getattr(self, k)[nodes].copy() for k in _TUBE_FACTS}
         saved_sets = self.image_sets.take(nodes) if self.image_sets is not None else None
         refs = self.steps.refs(nodes)
-        self._analyse(nodes, follow=growth_limit)
+        out = replace_tubes()
         leaves, facts, labelling = self.label()
-        del facts  # its edges are made again below: not held through the second labelling
+        del facts  # its edges are made again later: not held through the next labelling
         number = np.full(len(self.tree), -1)
         number[leaves] = np.arange(len(leaves))
         back = labelling.label[number[nodes]] == UNDECIDED
@@ -500,7 +605,13 @@ class _Prover:
         self.steps.set_refs(nodes[back], refs[back])
         if saved_sets is not None:
             self.image_sets.put(nodes[back], {k: v[back] for k, v in saved_sets.items()})
-        return self.label()
+        return leaves, labelling.label, back, out
+
+    def _record_tubes(self, nodes, result):
+        """The facts, image sets and steps of `nodes` from the flows `result`."""
+        self._tube_facts(nodes, result)
+        self._put_image_sets(nodes, result)
+        self.steps.add(nodes, result)
 
     # -- labelling ---------------------------------------------------------------------
     def label(self):
@@ -788,6 +899,11 @@ def _prove(model, method, budget, progress, focus, runner):
                     stop_reason = "nothing left to refine for the focus"
                 break
             new, out_of_budget = split_shallowest(tree, und, budget, len(leaves), elapsed)
+            if out_of_budget and follow and focus is None and elapsed < budget.time_limit:
+                # the cell limit: the followed round adds no cells
+                extend, follow = FOLLOW_GROWTH_LIMIT, False
+                new = wanted
+                continue
             if out_of_budget:
                 stop_reason = out_of_budget
                 break

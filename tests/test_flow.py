@@ -21,7 +21,7 @@ from scipy.linalg import expm
 
 from certify import interval as iv
 from certify.flow import (NO_ENCLOSURE, NOT_FINITE, OK, STEP_LIMIT, STOPPED, flow_boxes,
-                          hull_of_set, interval_inverse)
+                          hull_of_set, interval_inverse, select_results, truncate_results)
 from certify.taylor import _build
 
 x, y, s, k, r = sympy.symbols("x y s k r", real=True)
@@ -565,3 +565,32 @@ def test_flow_without_sets_keeps_the_same_boxes():
         np.testing.assert_array_equal(getattr(bare, name), getattr(full, name))
     assert (bare.status == OK).all()
     check_linear_images(bare, A, lo, hi)
+
+
+def test_selected_and_truncated_flows_are_flows_of_their_own():
+    # the prover cuts followed tubes at a step end (certify/prove.py, _Prover.extend):
+    # the first k steps of a flow must again enclose the exact flow (scipy.linalg.expm
+    # of the rotation), with the k-th end box as image and its end time as horizon
+    A = np.array(LINEAR["rotation"], dtype=float)
+    lo = np.array([[0.5, -0.2], [1.0, 0.3], [-0.7, 0.1]])
+    hi = lo + np.array([[0.1, 0.05], [0.02, 0.2], [0.3, 0.3]])
+    R = flow_boxes(linear_programs("rotation", 4), lo, hi, [], min_horizon=2.0,
+                   max_horizon=2.0)
+    assert (R.status == OK).all() and (R.n_steps >= 4).all()
+    boxes = np.array([2, 0])
+    picked = select_results(R, boxes)
+    keep = np.array([R.n_steps[2] // 2, R.n_steps[0]])
+    T = truncate_results(picked, keep)
+    np.testing.assert_array_equal(T.n_steps, keep)
+    for i, b in enumerate(boxes):
+        for name in ("h", "e_lo", "e_hi", "end_lo", "end_hi", "t0_lo"):
+            np.testing.assert_array_equal(getattr(T, name)[T.steps_of(i)],
+                                          getattr(R, name)[R.steps_of(b)][:keep[i]])
+        ends = step_end_times(T, i)
+        assert Fraction(float(T.t_lo[i])) <= ends[-1] <= Fraction(float(T.t_hi[i]))
+    assert T.status[0] == STOPPED and T.status[1] == OK
+    np.testing.assert_array_equal(T.image_lo[1], R.image_lo[0])
+    # the sets at the full horizon are not the cut flow's: none (NaN) for it
+    assert np.isnan(T.image_m[0]).all() and np.isnan(T.image_A[0]).all()
+    np.testing.assert_array_equal(T.image_A[1], R.image_A[0])
+    check_linear_images(T, A, lo[boxes], hi[boxes])

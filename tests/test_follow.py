@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import gzip
 import json
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -25,6 +26,8 @@ from certify.check import check_certificate
 from certify.container import decode_array, encode_array
 from certify.model import load_model
 from certify.prove import prove
+
+prove_module = sys.modules["certify.prove"]  # the package exports a function of that name
 
 ROOT = Path(__file__).resolve().parent.parent
 #: A 2D model keeps the test short; following is on by default from three states on.
@@ -43,6 +46,17 @@ def runs(tmp_path_factory):
     return model, plain, followed, path
 
 
+@pytest.fixture(scope="module")
+def uncut(runs):
+    """The same followed proof without the passes that cut followed tubes short."""
+    passes = prove_module.DECISIVE_PASSES
+    prove_module.DECISIVE_PASSES = 0
+    try:
+        return prove(runs[0], max_depth=DEPTH, follow_undecided=True)
+    finally:
+        prove_module.DECISIVE_PASSES = passes
+
+
 def test_following_keeps_every_decided_label_and_decides_more(runs):
     _, plain, followed, _ = runs
     np.testing.assert_array_equal(plain.leaves, followed.leaves)
@@ -52,6 +66,18 @@ def test_following_keeps_every_decided_label_and_decides_more(runs):
     gained = ~decided & (after != "undecided")
     assert gained.any()  # not vacuous: following decides leaves at this depth
     assert followed.fractions["undecided"] < plain.fractions["undecided"]
+
+
+def test_cut_tubes_keep_every_decided_label_and_decide_more(runs, uncut):
+    # cutting a followed tube at a step end whose successors share a fate replaces the
+    # facts of undecided leaves only (docs/proof-loop.md): no decided leaf may change
+    followed = runs[2]
+    np.testing.assert_array_equal(uncut.leaves, followed.leaves)
+    before, after = uncut.labelling.label, followed.labelling.label
+    decided = before != "undecided"
+    np.testing.assert_array_equal(before[decided], after[decided])
+    assert (~decided & (after != "undecided")).any()  # not vacuous at this depth
+    assert followed.fractions["undecided"] < uncut.fractions["undecided"]
 
 
 def _numeric(model, exprs):
@@ -96,9 +122,12 @@ def test_followed_certificate_passes_the_checker(runs):
     assert result.valid, result.failures[:3]
 
 
-def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, tmp_path):
+@pytest.mark.parametrize("reference", ["plain", "uncut"])
+def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, uncut, reference, tmp_path):
+    # a leaf decided by following (reference plain) or by a cut tube (reference uncut)
     _, plain, followed, path = runs
-    gained = np.flatnonzero((plain.labelling.label == "undecided")
+    before = {"plain": plain, "uncut": uncut}[reference]
+    gained = np.flatnonzero((before.labelling.label == "undecided")
                             & (followed.labelling.label != "undecided"))
     with gzip.open(path, "rb") as f:
         data = json.loads(f.read())
@@ -117,3 +146,17 @@ def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, tmp_path):
         f.write(json.dumps(data).encode())
     result = check_certificate(tampered, jobs=1)
     assert not result.valid
+
+
+def test_the_cell_limit_still_gets_the_followed_round():
+    # a proof stopped by the cell limit has undecided leaves above max_depth; the
+    # followed round adds no cells, so it runs there too and only adds decided leaves
+    model = load_model(FERMENTER)
+    plain = prove(model, max_depth=8, max_cells=300, follow_undecided=False)
+    followed = prove(model, max_depth=8, max_cells=300, follow_undecided=True)
+    assert plain.stop_reason == followed.stop_reason == "cell limit 300 reached"
+    np.testing.assert_array_equal(plain.leaves, followed.leaves)
+    before, after = plain.labelling.label, followed.labelling.label
+    decided = before != "undecided"
+    np.testing.assert_array_equal(before[decided], after[decided])
+    assert (~decided & (after != "undecided")).any()

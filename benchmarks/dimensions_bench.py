@@ -88,9 +88,9 @@ def _one(name, depth, time_limit):
     print(json.dumps(row))
 
 
-def measure(name, depth, time_limit, repeat):
+def measure(name, depth, time_limit, repeat, floor_cells=2000):
     """One row per model: medians of wall and CPU over `repeat` proofs, RK4 at the same
-    resolution."""
+    resolution, the mixed floor of `floor_cells` sampled cells (none when 0)."""
     runs = [prove_once(name, depth, time_limit) for _ in range(repeat)]
     row = dict(runs[-1])
     row["wall"] = statistics.median(r["wall"] for r in runs)
@@ -99,14 +99,14 @@ def measure(name, depth, time_limit, repeat):
     model = load_model(ROOT / "models" / name)
     case = CASES.get(name, Case(name, horizon=100.0, dt=0.01))
     row["sim_wall"], row["sim_cpu"] = time_simulation(model, case, row["depth_reached"])
-    row["floor"] = mixed_floor(model, row["depth_reached"], case.horizon, case.dt)
+    row["floor"] = (mixed_floor(model, row["depth_reached"], case.horizon, case.dt,
+                                cells=floor_cells) if floor_cells else None)
     row.update(model=name, dim=len(model.states), horizon=case.horizon, repeat=repeat)
     f = row["fractions"]
     print(f"{name}: D {row['depth_reached']}, {row['cells']:,} cells, undecided "
           f"{100 * f['undecided']:.1f} %, safe {100 * f['safe']:.1f} %, doomed "
           f"{100 * f['doomed']:.1f} %; proof {row['wall']:.1f} s wall / {row['cpu']:.1f} s "
-          f"CPU, {row['peak_mb']:,.0f} MB; RK4 grid {row['sim_cpu']:.1f} s CPU ({row['stop']}); "
-          f"mixed floor {100 * row['floor'].share:.1f} %",
+          f"CPU, {row['peak_mb']:,.0f} MB; RK4 grid {row['sim_cpu']:.1f} s CPU ({row['stop']})",
           flush=True)
     return row
 
@@ -141,8 +141,9 @@ def render(rows, info, load_end):
             f"| {100 * f['safe']:.1f} | {100 * f['doomed']:.1f} | {100 * f['outside']:.1f} "
             f"| {r['wall']:.1f} | {r['cpu']:.1f} | {r['repeat']} | {r['peak_mb']:,.0f} "
             f"| {r['cert_mb']:.1f} | {r['horizon']:g} | {r['sim_cpu']:,.1f} "
-            f"| {r['sim_cpu'] / r['cpu']:.2f} | {r['stop']} | {floor_text(r['floor'])} "
-            f"| {sample_text(r['floor'])} |")
+            f"| {r['sim_cpu'] / r['cpu']:.2f} | {r['stop']} | "
+            + (f"{floor_text(r['floor'])} | {sample_text(r['floor'])} |" if r["floor"]
+               else "not measured | |"))
     return "\n".join(lines) + "\n"
 
 
@@ -166,6 +167,8 @@ def main(argv=None):
     parser.add_argument("--time-limit", type=float, help="time limit of each proof (s)")
     parser.add_argument("--max-depth", type=int, help="maximum depth of each proof")
     parser.add_argument("--repeat", type=int, default=1, help="proofs per model (median)")
+    parser.add_argument("--floor-cells", type=int, default=2000,
+                        help="cells sampled for the mixed floor (default 2000, 0 to skip)")
     parser.add_argument("--one", help=argparse.SUPPRESS)  # child process: one proof
     args = parser.parse_args(argv)
     if args.one:
@@ -174,7 +177,8 @@ def main(argv=None):
     names = [m if m.endswith(".toml") else m + ".toml" for m in args.models or []]
     names = names or library_models()
     info = machine()
-    rows = [measure(name, args.max_depth, args.time_limit, args.repeat) for name in names]
+    rows = [measure(name, args.max_depth, args.time_limit, args.repeat, args.floor_cells)
+            for name in names]
     load_end = ", ".join(f"{v:.1f}" for v in os.getloadavg())
     write_section(SECTION, render(rows, info, load_end))
     print(f"wrote section '{SECTION}' of benchmarks/results.md")

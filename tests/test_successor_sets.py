@@ -31,7 +31,7 @@ from certify.check._apart import sets_miss as checker_miss
 from certify.container import decode_array, encode_array
 from certify.image_sets import sets_miss as prover_miss
 
-from test_kept_rules import LIMIT, ROTATION, exact_x
+from test_kept_rules import ROTATION, assert_safe_starts_keep_the_limits
 
 prove_module = import_module("certify.prove")
 
@@ -162,17 +162,7 @@ def test_pruned_successors_decide_more_and_the_checker_agrees(rotation):
 
 
 def test_safe_starts_of_the_pruned_map_keep_the_limits_in_closed_form(rotation):
-    pruned, _, _ = rotation
-    tree, leaves = pruned.tree, pruned.leaves
-    safe = leaves[pruned.labelling.label == "safe"]
-    generator = np.random.default_rng(17)
-    lo, hi = tree.lo[safe], tree.hi[safe]
-    points = (lo[:, None, :] + generator.uniform(0, 1, (len(safe), 6, 2))
-              * (hi - lo)[:, None, :]).reshape(-1, 2)
-    points = points[np.abs(points[:, 0]) <= LIMIT]
-    t = np.linspace(0.0, 60.0, 60_001)
-    assert len(points) > 1000
-    assert np.all(np.abs(exact_x(points, t)).max(axis=1) <= LIMIT)
+    assert_safe_starts_keep_the_limits(rotation[0], seed=17)
 
 
 def test_a_safe_cell_stripped_of_the_successors_its_sets_meet_is_rejected(rotation, tmp_path):

@@ -141,27 +141,7 @@ def test_labels_agree_with_integrated_trajectories(compartments):
     def rate(t, x):
         return [-k12 * x[0] + k21 * x[1] - vmax * x[0] / (km + x[0]), k12 * x[0] - k21 * x[1]]
 
-    def over_cap(t, x):
-        return 30.0 - x[1]
-    over_cap.terminal = True
-    rng = np.random.default_rng(7)
-    for label in ("safe", "doomed"):
-        leaves = np.flatnonzero(cert.labels == label)
-        for leaf in rng.choice(leaves, size=min(40, len(leaves)), replace=False):
-            x0 = cert.lo[leaf] + rng.random(2) * (cert.hi[leaf] - cert.lo[leaf])
-            if cert.label_at(x0[None])[0] != label:
-                continue
-            lower, upper = cert.crossing_time_bounds(x0[None])
-            horizon = 200.0 if label == "safe" else float(upper[0]) + 1e-6
-            sol = solve_ivp(rate, (0, horizon), x0, method="LSODA", rtol=1e-10,
-                            atol=1e-12, events=over_cap)
-            crossed = len(sol.t_events[0]) > 0
-            if label == "safe":
-                # safe starts never pass the cap (a touch within the tolerance is allowed)
-                assert not crossed or sol.y_events[0][0][1] <= 30.0 + 1e-7, x0
-            else:
-                assert crossed, x0
-                assert sol.t_events[0][0] >= float(lower[0]) - 1e-7, x0
+    _assert_labels_agree(cert, rate, axis=1, cap=30.0, seed=7, count=40, safe_horizon=200.0)
 
 
 def _sei_rate(t, x, beta=0.5, sigma=0.3, gamma=0.2):
@@ -197,22 +177,32 @@ def test_the_sei_certificate_checks_and_agrees_with_trajectories(sei):
     assert check_certificate(path, jobs=1).valid
     cert = read_certificate(path)
 
+    _assert_labels_agree(cert, _sei_rate, axis=2, cap=0.04, seed=3, count=30,
+                         safe_horizon=400.0)
+
+
+def _assert_labels_agree(cert, rate, axis, cap, seed, count, safe_horizon):
+    """Random starts in up to `count` safe and doomed cells, integrated with scipy's LSODA
+    (tight tolerances): safe starts never pass ``x[axis] <= cap`` (a touch within the
+    tolerance is allowed) up to `safe_horizon`; doomed starts pass it within their
+    proven crossing-time bounds."""
     def over_cap(t, x):
-        return 0.04 - x[2]
+        return cap - x[axis]
     over_cap.terminal = True
-    rng = np.random.default_rng(3)
+    rng = np.random.default_rng(seed)
+    n = cert.lo.shape[1]
     for label in ("safe", "doomed"):
         leaves = np.flatnonzero(cert.labels == label)
-        for leaf in rng.choice(leaves, size=min(30, len(leaves)), replace=False):
-            x0 = cert.lo[leaf] + rng.random(3) * (cert.hi[leaf] - cert.lo[leaf])
+        for leaf in rng.choice(leaves, size=min(count, len(leaves)), replace=False):
+            x0 = cert.lo[leaf] + rng.random(n) * (cert.hi[leaf] - cert.lo[leaf])
             if cert.label_at(x0[None])[0] != label:
                 continue
             lower, upper = cert.crossing_time_bounds(x0[None])
-            horizon = 400.0 if label == "safe" else float(upper[0]) + 1e-6
-            sol = solve_ivp(_sei_rate, (0, horizon), x0, method="LSODA", rtol=1e-10,
+            horizon = safe_horizon if label == "safe" else float(upper[0]) + 1e-6
+            sol = solve_ivp(rate, (0, horizon), x0, method="LSODA", rtol=1e-10,
                             atol=1e-12, events=over_cap)
             crossed = len(sol.t_events[0]) > 0
             if label == "safe":
-                assert not crossed or sol.y_events[0][0][2] <= 0.04 + 1e-7, x0
+                assert not crossed or sol.y_events[0][0][axis] <= cap + 1e-7, x0
             else:
                 assert crossed and sol.t_events[0][0] >= float(lower[0]) - 1e-7, x0

@@ -899,11 +899,6 @@ def _prove(model, method, budget, progress, focus, runner):
                     stop_reason = "nothing left to refine for the focus"
                 break
             new, out_of_budget = split_shallowest(tree, und, budget, len(leaves), elapsed)
-            if out_of_budget and follow and focus is None and elapsed < budget.time_limit:
-                # the cell limit: the followed round adds no cells
-                extend, follow = FOLLOW_GROWTH_LIMIT, False
-                new = wanted
-                continue
             if out_of_budget:
                 stop_reason = out_of_budget
                 break

@@ -146,17 +146,3 @@ def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, uncut, reference,
         f.write(json.dumps(data).encode())
     result = check_certificate(tampered, jobs=1)
     assert not result.valid
-
-
-def test_the_cell_limit_still_gets_the_followed_round():
-    # a proof stopped by the cell limit has undecided leaves above max_depth; the
-    # followed round adds no cells, so it runs there too and only adds decided leaves
-    model = load_model(FERMENTER)
-    plain = prove(model, max_depth=8, max_cells=300, follow_undecided=False)
-    followed = prove(model, max_depth=8, max_cells=300, follow_undecided=True)
-    assert plain.stop_reason == followed.stop_reason == "cell limit 300 reached"
-    np.testing.assert_array_equal(plain.leaves, followed.leaves)
-    before, after = plain.labelling.label, followed.labelling.label
-    decided = before != "undecided"
-    np.testing.assert_array_equal(before[decided], after[decided])
-    assert (~decided & (after != "undecided")).any()

@@ -180,32 +180,28 @@ class ImageSetStore:
         two (or none: the caller leaves out cells whose centre ``m`` lies in such a leaf).
         """
         missed = np.zeros(len(src), bool)
+        if len(src) == 0:
+            return missed
         nodes, which = np.unique(src, return_inverse=True)
         which = which.reshape(-1)
-        m = self.take(nodes)["m"]
+        sets = _Sets(self.take(nodes))
         hoping = np.zeros((len(nodes), holds.shape[1]), bool)
         for h in range(holds.shape[1]):
             hoping[which[holds[:, h]], h] = True
-        pairs = np.arange(len(src))
-        if len(pairs) == 0:
-            return missed
-        box_lo, box_hi, point = lo[dst[pairs]], hi[dst[pairs]], m[which[pairs]]
+        box_lo, box_hi, point = lo[dst], hi[dst], sets.values["m"][which]
         far = np.max(np.abs(0.5 * (box_lo + box_hi) - point) / (box_hi - box_lo), axis=1)
-        pairs = pairs[np.lexsort((far, which[pairs]))]
+        # the pairs grouped by rank: each cell's nearest pair first, then its second, ...
+        pairs = np.lexsort((far, which))
         group = which[pairs]
         rank = np.arange(len(pairs)) - np.searchsorted(group, group)
         pairs = pairs[np.argsort(rank, kind="stable")]
         starts = np.searchsorted(np.sort(rank), np.arange(rank.max() + 2))
-        used = np.unique(which[pairs])
-        sets = _Sets(self.take(nodes[used]))
-        number = np.full(len(nodes), -1)
-        number[used] = np.arange(len(used))
         for j in range(len(starts) - 1):
             now = pairs[starts[j]:starts[j + 1]]
             now = now[np.any(holds[now] & hoping[which[now]], axis=1)]
             if len(now) == 0:
                 continue
-            miss = sets.missed(number[which[now]], dst[now], lo, hi)
+            miss = sets.missed(which[now], dst[now], lo, hi)
             missed[now[miss]] = True
             met = now[~miss]
             for h in range(holds.shape[1]):

@@ -640,15 +640,16 @@ class _Prover:
                           trapped=trapped, trapped_whole=whole)
         labelling = label_cells(facts)
         if self.image_sets is not None:
-            facts, labelling = self._prune_successors(leaves, facts, labelling)
+            facts, labelling = self._prune_successors(leaves, number, facts, labelling)
         return leaves, facts, labelling
 
-    def _prune_successors(self, leaves, facts, labelling):
+    def _prune_successors(self, leaves, number, facts, labelling):
         """Drop successors that undecided leaves' image sets miss where that may decide
         them, and label again; up to PRUNE_ROUNDS times, while that frees enough leaves
         (PRUNE_GAIN).
 
-        `labelling` is the one with every successor. The other leaves' successors are
+        `labelling` is the one with every successor; `number` maps tree nodes to leaf
+        numbers (-1 for inner nodes). The other leaves' successors are
         left: their labels hold with all of them, and stay so in later rounds (only
         leaves undecided here are split), so only the sets of these leaves are kept.
         A pair holds its cell back from `safe` when the leaf is neither safe nor
@@ -664,7 +665,7 @@ class _Prover:
             outside = label == OUTSIDE
             hopes = [(undecided & usable & facts.kept, (label != SAFE) & ~outside),
                      (undecided & usable, (label != DOOMED) & ~outside)]
-            self._centres_held_back(leaves, label, hopes)
+            self._centres_held_back(leaves, number, label, hopes)
             test = np.flatnonzero(np.any([hope[facts.src] for hope, _ in hopes], axis=0))
             holds = np.stack([hope[facts.src[test]] & against[facts.dst[test]]
                               for hope, against in hopes], axis=1)
@@ -690,7 +691,7 @@ class _Prover:
             labelling = label_cells(facts)
         return facts, labelling
 
-    def _centres_held_back(self, leaves, label, hopes):
+    def _centres_held_back(self, leaves, number, label, hopes):
         """Clear the hopes ``(hope, against)`` of leaves whose sets' centre ``m`` lies in
         a leaf of a label `against`: a leaf containing ``m`` meets every set, and is a
         successor when ``m`` lies within the open image box."""
@@ -700,8 +701,6 @@ class _Prover:
                         axis=1)
         cells, m = cells[within], m[within]
         q, leaf = self.tree.leaves_meeting(m, m)
-        number = np.full(len(self.tree), -1)
-        number[leaves] = np.arange(len(leaves))
         for hope, against in hopes:
             hope[cells[q[against[number[leaf]]]]] = False
 

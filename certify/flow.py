@@ -664,10 +664,7 @@ def truncate_results(result, n_steps):
     """
     n_steps = np.asarray(n_steps, int)
     cut = n_steps < result.n_steps
-    starts = _step_starts(n_steps)
-    rows = np.repeat(result.step_start - starts, n_steps) + np.arange(int(n_steps.sum()))
-    out = {name: None if getattr(result, name) is None else getattr(result, name)[rows]
-           for name in _STEP_FIELDS}
+    starts, out = _first_steps(result, result.step_start, n_steps)
     boxes = {name: getattr(result, name).copy() for name in _BOX_FIELDS}
     last = result.step_start[cut] + n_steps[cut] - 1
     boxes["n_steps"] = n_steps.copy()
@@ -684,10 +681,15 @@ def truncate_results(result, n_steps):
 def select_results(result, boxes):
     """The flows of the boxes `boxes` of `result` (in that order), with their steps."""
     boxes = np.asarray(boxes, int)
-    n_steps = result.n_steps[boxes]
-    starts = _step_starts(n_steps)
-    rows = np.repeat(result.step_start[boxes] - starts, n_steps) + np.arange(int(n_steps.sum()))
-    out = {name: None if getattr(result, name) is None else getattr(result, name)[rows]
-           for name in _STEP_FIELDS}
+    starts, out = _first_steps(result, result.step_start[boxes], result.n_steps[boxes])
     out.update({name: getattr(result, name)[boxes] for name in _BOX_FIELDS})
     return FlowResult(**out, step_start=starts)
+
+
+def _first_steps(result, step_start, n_steps):
+    """The step records of `result` beginning at ``step_start[b]``, ``n_steps[b]`` of
+    them per box: their new starts and the step fields."""
+    starts = _step_starts(n_steps)
+    rows = np.repeat(step_start - starts, n_steps) + np.arange(int(n_steps.sum()))
+    return starts, {name: None if getattr(result, name) is None else getattr(result, name)[rows]
+                    for name in _STEP_FIELDS}

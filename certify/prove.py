@@ -418,12 +418,12 @@ class _Prover:
             else result.image_hi
         # every trajectory moved by the integral of f over its tube: x(T) - x(0) lies in
         # the sum of h f(E) over the steps, which caps images along resting directions
-        dlo, dhi = self._drift(result, box_of_step, len(todo))
+        tube_open = self._tube_past_open_faces(result, box_of_step, len(todo))
+        dlo, dhi = self._drift(result, box_of_step, len(todo), tube_open)
         moved_lo, _ = iv.add(self.tree.lo[todo], self.tree.lo[todo], dlo, dhi)
         _, moved_hi = iv.add(self.tree.hi[todo], self.tree.hi[todo], dlo, dhi)
         raw_lo = np.where(ok[:, None], np.fmax(raw_lo, moved_lo), raw_lo)
         raw_hi = np.where(ok[:, None], np.fmin(raw_hi, moved_hi), raw_hi)
-        tube_open = self._tube_past_open_faces(result, box_of_step, len(todo))
         image_lo, image_hi, escapes = self.tubes.clip(raw_lo, raw_hi, ok, tube_open)
         # nothing is known after the time reached by a flow without an image
         first_unkept = np.where(ok, first_unkept, np.minimum(first_unkept, result.t_lo))
@@ -506,14 +506,14 @@ class _Prover:
         np.minimum.at(first, ends.box[decisive], ends.pos[decisive])
         return np.where(first < n_steps, first + 1, n_steps)
 
-    def _drift(self, result, box_of_step, n_boxes):
+    def _drift(self, result, box_of_step, n_boxes, tube_open):
         """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``,
-        for the trajectories that keep the limits up to ``T`` (their tube boxes may be cut
-        to the window, :func:`certify.faces.cut_to_window`)."""
+        for the trajectories that keep the limits up to ``T`` (the tube boxes of boxes
+        whose tubes do not reach past an open face, `tube_open`, are cut to the window,
+        :func:`certify.faces.cut_to_window`)."""
         elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
                                           result.e_hi, box_of_step, n_boxes)
-        escaping = self._tube_past_open_faces(result, box_of_step, n_boxes)[box_of_step]
-        elo, ehi = cut_to_window(self.window_sides, elo, ehi, escaping)
+        elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step])
         flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
         h = result.h[:, None]
         slo, shi = iv.mul(h, h, flo, fhi)

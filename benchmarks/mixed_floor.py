@@ -53,8 +53,8 @@ from certify import load_model
 from certify.simulate import simulate
 from certify.taylor import flow_programs
 
-__all__ = ["MixedFloor", "mixed_floor", "clopper_pearson", "floor_text", "floor_note",
-           "sample_text", "describe"]
+__all__ = ["MixedFloor", "mixed_floor", "cell_offsets", "clopper_pearson", "floor_text",
+           "floor_note", "sample_text", "describe"]
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -120,10 +120,13 @@ def clopper_pearson(k, n, level=0.95):
     return float(low), float(high)
 
 
-def _offsets(n, grid, random, rng):
-    """Positions of the starts inside a unit cell, shape (grid^n + random, n)."""
+def cell_offsets(n, grid, random=0, rng=None):
+    """Positions of starts inside a unit cell: a grid of `grid` points per axis with the
+    corners, then `random` uniform points from `rng`; shape (grid^n + random, n)."""
     ticks = np.linspace(0.0, 1.0, grid)
     lattice = np.array(list(itertools.product(ticks, repeat=n)), float).reshape(-1, n)
+    if random == 0:
+        return lattice
     return np.vstack([lattice, rng.uniform(0.0, 1.0, (random, n))])
 
 
@@ -195,7 +198,7 @@ def mixed_floor(model, depth, horizon, dt, *, cells=2000, grid=None, random=None
     side = (np.array([float(b) for _, b in model.window]) - lo) / 2 ** depth
     u = lo + rng.uniform(0.0, 1.0, (cells, n)) * side * 2 ** depth
     corner = lo + np.minimum(np.floor((u - lo) / side), 2 ** depth - 1) * side
-    offsets = _offsets(n, grid, random, rng)
+    offsets = cell_offsets(n, grid, random, rng)
     starts = (corner[:, None, :] + offsets[None, :, :] * side).reshape(-1, n)
     cell_of = np.repeat(np.arange(cells), len(offsets))
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 import sympy
 
-__all__ = ["label_fractions", "axis_threshold"]
+__all__ = ["label_fractions", "inside_shares", "axis_threshold"]
 
 LABELS = ("safe", "doomed", "outside", "undecided")
 SUBGRID = 8
@@ -75,26 +75,13 @@ def label_fractions(proof):
     exact : bool
         False when a straddling cell's split was estimated.
     """
-    from .evaluate import evaluate_limits
-
     tree, leaves = proof.tree, proof.leaves
     labels = proof.labelling.label
     vol = tree.volume_fraction(leaves)
-    lo, hi = tree.lo[leaves], tree.hi[leaves]
-    glo, ghi = evaluate_limits(_programs(proof), lo, hi, proof.params)
-    inside_all = np.all(glo >= 0, axis=1)
-    straddle = ~inside_all & (labels != "outside")
-    frac_in = np.where(labels == "outside", 0.0, 1.0)
-    exact = True
-    if straddle.any():
-        states = proof.model.state_symbols
-        thresholds = [axis_threshold(c.g, states) for c in proof.model.constraints]
-        idx = np.flatnonzero(straddle)
-        if all(t is not None for t in thresholds):
-            frac_in[idx] = _inside_fraction_exact(lo[idx], hi[idx], thresholds)
-        else:
-            exact = False
-            frac_in[idx] = _inside_fraction_estimate(proof, lo[idx], hi[idx])
+    scored = labels != "outside"
+    frac_in = np.zeros(len(leaves))
+    frac_in[scored], exact = inside_shares(proof, tree.lo[leaves[scored]],
+                                           tree.hi[leaves[scored]])
     fractions = {k: 0.0 for k in LABELS}
     for k in ("safe", "doomed", "undecided"):
         sel = labels == k
@@ -102,6 +89,40 @@ def label_fractions(proof):
     fractions["outside"] = float(1.0 - fractions["safe"] - fractions["doomed"]
                                  - fractions["undecided"])
     return fractions, exact
+
+
+def inside_shares(proof, lo, hi):
+    """Share of each box's volume that keeps the limits at time 0.
+
+    Parameters
+    ----------
+    proof : certify.prove.Proof
+        Gives the model's limits and the parameter enclosures.
+    lo, hi : ndarray, shape (N, n)
+        The boxes.
+
+    Returns
+    -------
+    shares : ndarray, shape (N,)
+        1 for boxes proven inside every limit; for the others the exact share when every
+        limit that cuts them is affine in one state, else an estimate on a sub-grid.
+    exact : bool
+        False when some share was estimated.
+    """
+    from .evaluate import evaluate_limits
+
+    glo, _ = evaluate_limits(_programs(proof), lo, hi, proof.params)
+    shares = np.ones(len(lo))
+    straddle = np.flatnonzero(~np.all(glo >= 0, axis=1))
+    if len(straddle) == 0:
+        return shares, True
+    states = proof.model.state_symbols
+    thresholds = [axis_threshold(c.g, states) for c in proof.model.constraints]
+    if all(t is not None for t in thresholds):
+        shares[straddle] = _inside_fraction_exact(lo[straddle], hi[straddle], thresholds)
+        return shares, True
+    shares[straddle] = _inside_fraction_estimate(proof, lo[straddle], hi[straddle])
+    return shares, False
 
 
 def _programs(proof):

@@ -1,5 +1,6 @@
-"""The mixed-cell floor of the benchmarks (benchmarks/mixed_floor.py) on toys with a
-closed-form answer: the estimate's 95 % interval must bracket the exact share."""
+"""The mixed-cell floors of the benchmarks (benchmarks/mixed_floor.py, band_floor.py) on
+toys with a closed-form answer: the estimate's 95 % interval must bracket the exact share,
+and the floor under a proof's band must name exactly the mixed cells."""
 
 from __future__ import annotations
 
@@ -8,11 +9,14 @@ from fractions import Fraction
 from itertools import product
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from certify.model import parse_model
+from certify.prove import prove
 
 sys.path.append(str(Path(__file__).resolve().parent.parent / "benchmarks"))  # not a package
+from band_floor import band_floor  # noqa: E402
 from mixed_floor import clopper_pearson, mixed_floor  # noqa: E402
 
 GROWTH_1D = """
@@ -96,3 +100,24 @@ def test_growth_2d_cells_on_the_separatrix():
     floor = mixed_floor(model, depth, horizon=25.0, dt=0.05, cells=1500, stream=2)
     assert floor.low <= exact <= floor.high
     assert floor.points_per_cell == 3 ** 2 + 13
+
+
+def test_band_floor_finds_every_mixed_leaf_of_a_proof():
+    # The same closed form s(t) = s0 e^t: a closed cell [a, b] x [c, d] holds a keeper
+    # (s0 <= 0, for instance its corner (a, c)) and a crosser (0 < s0 <= 1) exactly when
+    # a + c <= 0 < b + d. The proof must leave every such cell undecided, and the floor
+    # under its band must name exactly those cells, each wholly inside the limit.
+    depth = 4
+    model = parse_model(GROWTH_2D)
+    proof = prove(model, max_depth=depth, time_limit=None)
+    tree = proof.tree
+    exact = set()
+    for pos, leaf in enumerate(proof.leaves):
+        (a, b), (c, d) = tree.exact_box(leaf)
+        if a + c <= 0 < b + d:
+            exact.add(pos)
+    assert {int(p) for p in np.flatnonzero(proof.labelling.label == "undecided")} >= exact
+    floor = band_floor(proof, horizon=25.0, dt=0.05, grid=3)
+    assert {int(p) for p in floor.mixed} == exact
+    assert floor.floor == pytest.approx(len(exact) / 4 ** depth, rel=1e-12)
+    assert floor.unknown == 0

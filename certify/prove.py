@@ -30,6 +30,7 @@ from .trapping import find_regions, in_regions, trapped_cells
 from .faces import (analyse_faces, cut_at_invariant_faces, cut_to_window,
                     tube_past_open_faces)
 from .image_sets import ImageSetStore
+from .time_scale import TIME_KEYS, time_scale
 from .volumes import label_fractions
 from .evaluate import evaluate_boxes, evaluate_limits, parameter_enclosures
 
@@ -70,6 +71,9 @@ class Method:
     follow_undecided: bool | None = None
     #: which sets a tube carries (:data:`certify.flow.FRAME_RULES`)
     frames: str = "qr+parallelepiped"
+    #: the factor the default lengths of time above were scaled by to suit the model's
+    #: rate (:mod:`certify.time_scale`); 1 when the model or the caller gave any of them
+    time_scale: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -719,7 +723,11 @@ def _settings(model, method, budget, overrides):
         else:
             raise TypeError(f"prove() got an unexpected option {k!r}")
     kinds = {k: type(getattr(Method, k)) for k in METHOD_KEYS} | {"follow_undecided": bool}
-    method = method or Method(**{k: kinds[k](v) for k, v in m.items()})
+    m = {k: kinds[k](v) for k, v in m.items()}
+    if method is None and not set(TIME_KEYS) & set(m):
+        scale = time_scale(model).scale
+        m |= {k: getattr(Method, k) * scale for k in TIME_KEYS} | {"time_scale": scale}
+    method = method or Method(**m)
     budget = budget or Budget(**{k: type(getattr(Budget, k))(v) for k, v in b.items()})
     return method, budget
 

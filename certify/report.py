@@ -45,6 +45,8 @@ def proof_summary(proof, certificate_path=None):
         "depth_reached": depth,
         "finest_cells_per_side": [2 ** depth] * proof.tree.n,
         "rounds": proof.rounds,
+        "horizons": [proof.method.min_horizon, proof.method.max_horizon],
+        "time_scale": proof.method.time_scale,
         "stop_reason": proof.stop_reason,
         "interrupted": proof.interrupted,
         "faces": [{"state": model.states[f["axis"]].name, "side": f["side"],
@@ -104,6 +106,13 @@ def summary_table(summary):
     lines.append(f"finest cell 1/{summary['finest_cells_per_side'][0]} of each side, "
                  f"{summary['rounds']} rounds, {summary['seconds']:.1f} s{exact}")
     lines.append(f"stopped:   {summary['stop_reason']}")
+    unit = summary.get("time_unit") or "time units"
+    if "horizons" in summary:
+        shortest, longest = summary["horizons"]
+        scaled = ("" if summary["time_scale"] == 1 else
+                  f" (the defaults times {summary['time_scale']:.3g}, to suit the model's "
+                  f"rates; [settings] min_horizon etc. override)")
+        lines.append(f"horizons:  {shortest:.3g} to {longest:.3g} {unit}{scaled}")
     if summary.get("parameters_narrowed"):
         lines.append(f"proven only for {narrowed_text(summary['parameters_narrowed'])}")
     # faces come two per state, in state order (see certify.faces.analyse_faces)
@@ -121,7 +130,6 @@ def summary_table(summary):
                      f"{sum(r['cells'] for r in trap['regions'])} cells trapped"
                      + "".join(f"; {note}" for note in trap["notes"]))
     if summary["cells"]["doomed"] and summary.get("crossing_time_max") is not None:
-        unit = summary.get("time_unit") or "time units"
         lines.append(f"every doomed start crosses a limit within "
                      f"{summary['crossing_time_max']:.4g} {unit}")
     if summary.get("certificate"):

@@ -320,6 +320,27 @@ def test_a_parameter_box_under_which_a_side_lets_flow_out_is_noticed(compartment
     assert _check_cli(forged, capsys) == 1
 
 
+@pytest.mark.parametrize("kind", ["invariant", "limit", "inflow"])
+def test_a_no_outflow_side_cannot_be_promoted(compartments, tmp_path, capsys, kind):
+    # on X1 = 0 the central rate k21 X2 is >= 0, positive for X2 > 0 and 0 at X2 = 0, and
+    # the cap X2 <= 30 holds on part of it: neither identically 0, nor strictly inward
+    # everywhere, nor violating a limit everywhere (by inspection)
+    assert _face(load_certificate_json(compartments), 0, "lo")["kind"] == "no-outflow"
+    reasons = _rejected(compartments, tmp_path, capsys,
+                        lambda data: _face(data, 0, "lo").update(kind=kind))
+    assert f"face X1 lo is not proven to be of kind {kind!r}" in reasons
+
+
+def test_a_regression_check_confirms_the_sides_again(compartments, tmp_path):
+    # the same certificate checked against a revised model with k21 = -0.2: its stored
+    # no-outflow side X1 lo no longer holds (the rate k21 X2 is negative for X2 > 0)
+    revised = tmp_path / "revised.toml"
+    revised.write_text(TWO_COMPARTMENTS.replace("k21 = 0.2", "k21 = -0.2"))
+    result = check_certificate(compartments, model=revised, jobs=1)
+    assert not result.valid
+    assert "face X1 lo is not proven to be of kind 'no-outflow'" in result.message
+
+
 # -- tube boxes cut to the window --------------------------------------------------------
 def _cell_leaving_by_the_open_side(data):
     """A cell outside every trapping region some of whose starts cross x = -0.6 (closed

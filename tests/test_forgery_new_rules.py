@@ -40,7 +40,7 @@ from certify.container import encode_array, load_certificate_json
 from certify.errors import CertificateError
 
 from test_certificate_format import V2, _fermenter_rhs
-from test_forgery import (LOGISTIC, _cells, _check_cli, _claim_safe, _proven, _put,
+from test_forgery import (_cells, _check_cli, _claim_safe, _proven, _put,
                           _rejected, _set, _tampered, _undecided_at_the_threshold)
 from test_forgery import logistic  # noqa: F401  (the module's fixture)
 from test_kept_rules import DAMPING, ROTATION
@@ -316,7 +316,8 @@ def _face(data, axis, side):
 def test_an_open_side_the_flow_leaves_through_cannot_be_called_harmless(rotation, tmp_path,
                                                                         capsys, kind):
     # closed form: on x = -0.6 the rate -y + 0.03 is negative (outward) for y > 0.03,
-    # and x >= -0.9 holds there: the side is open. Its cover is forged to match
+    # and x >= -0.9 holds there: the side is open. Its cover is forged to match (one
+    # piece, the whole side, with the reason the kind would need)
     data = load_certificate_json(rotation)
     assert _face(data, 0, "lo")["kind"] == "open"
     assert -0.5 + DAMPING * 0.6 < 0
@@ -324,12 +325,10 @@ def test_an_open_side_the_flow_leaves_through_cannot_be_called_harmless(rotation
     def change(data):
         face = _face(data, 0, "lo")
         face["kind"] = kind
-        n = len(data["states"])
-        lo = np.array([[-0.6, -1.2]])
-        face["cover_lo"] = encode_array(lo.reshape(1, n), "<f8")
+        face["cover_lo"] = encode_array(np.array([[-0.6, -1.2]]), "<f8")
         face["cover_hi"] = encode_array(np.array([[-0.6, 1.2]]), "<f8")
-        face["cover_reason"] = encode_array(np.array([4 if kind == "no-outflow" else 2]),
-                                            "<i8")
+        reason = {"no-outflow": 4, "inflow": 2}.get(kind, 1)
+        face["cover_reason"] = encode_array(np.array([reason]), "<i8")
     reasons = _rejected(rotation, tmp_path, capsys, change)
     assert f"face x lo is not proven to be of kind {kind!r}" in reasons
 
@@ -531,7 +530,8 @@ def test_edited_steps_prove_no_earlier_crossing(logistic, tmp_path, capsys, edit
 
 
 @pytest.mark.parametrize("keep", [1, 4])
-def test_a_tube_cut_short_proves_no_false_safe_claim(logistic, tmp_path, capsys, keep):  # noqa: F811
+def test_a_tube_cut_short_proves_no_false_safe_claim(logistic, tmp_path, capsys,  # noqa: F811
+                                                     keep):
     # the undecided cell holding the unstable equilibrium 0.2: its starts below 0.2 cross
     # the floor (closed form). Claimed safe with its tube cut to its first steps (as a cut
     # tube is stored) and only its safe successors listed

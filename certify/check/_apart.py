@@ -45,11 +45,13 @@ def sets_miss(m, A, r_lo, r_hi, leaf_lo, leaf_hi, which=None):
     ar = ARITHMETICS["float"]()
     ar.enter()
     which = np.arange(P) if which is None else which
-    offset = [ar.sub(ar.take(ar.rationals(leaf_lo[:, i], leaf_hi[:, i]), which),
-                     ar.exact(m[:, i])) for i in range(n)]
-    for k in range(K):
-        coordinates = _matvec(ar, ar.inverse(A[:, k]), offset)
-        for i, c in enumerate(coordinates):
-            # a NaN end (no set, no inverse) makes both comparisons False
-            miss |= _true(ar.upper(c) < r_lo[:, k, i]) | _true(ar.lower(c) > r_hi[:, k, i])
+    # overflow and inf - inf give infinite and NaN ends, which never prove a miss
+    with np.errstate(all="ignore"):
+        offset = [ar.sub(ar.take(ar.rationals(leaf_lo[:, i], leaf_hi[:, i]), which),
+                         ar.exact(m[:, i])) for i in range(n)]
+        for k in range(K):
+            coordinates = _matvec(ar, ar.inverse(A[:, k]), offset)
+            for i, c in enumerate(coordinates):
+                # a NaN end (no set, no inverse) makes both comparisons False
+                miss |= _true(ar.upper(c) < r_lo[:, k, i]) | _true(ar.lower(c) > r_hi[:, k, i])
     return miss

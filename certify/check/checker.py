@@ -500,7 +500,8 @@ def _needs_steps(cert):
     label = cert.label
     claims = (label == "safe") | (label == "doomed") | \
              ((label == "undecided") & (cert.survival_lower > 0))
-    claims &= ~((label == "safe") & cert.trapped_whole)
+    # the flag skips the flow only behind a trapping region (else its steps are needed)
+    claims &= ~((label == "safe") & cert.trapped_whole & (cert.trapped >= 0))
     return np.where(claims & (label != "outside"), K, 0)
 
 

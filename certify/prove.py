@@ -537,12 +537,21 @@ class _Prover:
         for the trajectories that keep the limits up to ``T`` (the tube boxes of boxes
         whose tubes do not reach past an open face, `tube_open`, are cut to the window,
         :func:`certify.faces.cut_to_window`)."""
-        elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
-                                          result.e_hi, box_of_step, n_boxes)
-        elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step])
-        flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
-        h = result.h[:, None]
-        slo, shi = iv.mul(h, h, flo, fhi)
+        slo, shi = np.empty(result.e_lo.shape), np.empty(result.e_lo.shape)
+        # boxes whose steps fill about STEP_SLICE rows at a time (a box's steps together:
+        # the cut at invariant faces looks at all of them)
+        cuts = np.unique(np.searchsorted(result.step_start,
+                                         np.arange(0, len(result.h), STEP_SLICE)))
+        for first, last in zip(cuts, np.append(cuts[1:], n_boxes)):
+            rows = slice(result.step_start[first], result.step_start[last - 1]
+                         + result.n_steps[last - 1])
+            owner = box_of_step[rows] - first
+            elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo[rows],
+                                              result.e_hi[rows], owner, last - first)
+            elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step[rows]])
+            flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
+            h = result.h[rows, None]
+            slo[rows], shi[rows] = iv.mul(h, h, flo, fhi)
         lo, hi = np.zeros((n_boxes, self.n)), np.zeros((n_boxes, self.n))
         for j in range(int(result.n_steps.max(initial=0))):
             boxes = np.flatnonzero(result.n_steps > j)

@@ -540,11 +540,11 @@ class _Prover:
         slo, shi = np.empty(result.e_lo.shape), np.empty(result.e_lo.shape)
         # boxes whose steps fill about STEP_SLICE rows at a time (a box's steps together:
         # the cut at invariant faces looks at all of them)
-        cuts = np.unique(np.searchsorted(result.step_start,
-                                         np.arange(0, len(result.h), STEP_SLICE)))
-        for first, last in zip(cuts, np.append(cuts[1:], n_boxes)):
-            rows = slice(result.step_start[first], result.step_start[last - 1]
-                         + result.n_steps[last - 1])
+        cuts = np.unique(np.append(np.searchsorted(
+            result.step_start, np.arange(0, len(result.h), STEP_SLICE)), n_boxes))
+        for first, last in zip(cuts[:-1], cuts[1:]):
+            rows = slice(result.step_start[first],
+                         result.step_start[first] + result.n_steps[first:last].sum())
             owner = box_of_step[rows] - first
             elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo[rows],
                                               result.e_hi[rows], owner, last - first)

@@ -676,6 +676,7 @@ class _Prover:
                           horizon_hi=self.horizon_hi[leaves],
                           first_unkept=self.first_unkept[leaves], src=src, dst=dst,
                           trapped=trapped, trapped_whole=whole)
+        del src, dst  # facts hold them (pruning replaces them there)
         labelling = label_cells(facts)
         if self.image_sets is not None:
             facts, labelling = self._prune_successors(leaves, number, facts, labelling)
@@ -725,7 +726,10 @@ class _Prover:
                 break
             keep = np.ones(len(facts.src), bool)
             keep[test[missed]] = False
-            facts = replace(facts, src=facts.src[keep], dst=facts.dst[keep])
+            # in place, and the pairs tested dropped: the caller's facts would hold the
+            # edges before pruning through the labelling
+            facts.src, facts.dst = facts.src[keep], facts.dst[keep]
+            del test, holds, missed, held, keep
             labelling = label_cells(facts)
         return facts, labelling
 

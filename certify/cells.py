@@ -176,7 +176,10 @@ class CellTree:
             out_leaf.append(leaf.astype(dtype))
             first += len(block)
             size = int(np.clip(size * FRONTIER / max(widest, 1), 1, 1 << 16))
-        return np.concatenate(out_q), np.concatenate(out_leaf)
+        # one list joined and freed before the other: pairs can be tens of millions
+        query = np.concatenate(out_q)
+        del out_q
+        return query, np.concatenate(out_leaf)
 
     def _meeting_block(self, q, qlo, qhi, strict):
         """:meth:`leaves_meeting` for the queries `q`; also the most pairs at one level."""

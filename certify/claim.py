@@ -367,7 +367,7 @@ class _Auditor:
             return np.zeros(0, int)
         edge = movable[facts.src] & movable[facts.dst]
         # forward reachability: nodes that reach the targets in the reversed graph
-        reach = _reachable(len(leaves), facts.dst[edge], facts.src[edge], targets)
+        reach = _reachable(len(leaves), facts.dst, facts.src, edge, targets)
         return leaves[(reach & movable) | targets]
 
 

@@ -56,7 +56,10 @@ def encode_array(a, dtype="<f8"):
         ``{"dtype", "shape", "codec", "item", "data"}`` and, for floats with values
         binary32 cannot hold, ``"patch_at"`` and ``"patch"``.
     """
-    a = np.ascontiguousarray(np.asarray(a), dtype=dtype)
+    a = np.asarray(a)
+    if np.dtype(dtype).kind == "i" and a.dtype.kind == "i" and a.ndim == 1:
+        return _encode_ints(a, dtype)
+    a = np.ascontiguousarray(a, dtype=dtype)
     out = {"dtype": dtype, "shape": list(a.shape)}
     if a.dtype.kind == "f":
         with np.errstate(over="ignore"):
@@ -72,6 +75,20 @@ def encode_array(a, dtype="<f8"):
             out["patch"] = _pack(a.reshape(-1)[at])
         return out
     steps = np.diff(a, axis=0, prepend=np.zeros((1,) + a.shape[1:], a.dtype))
+    return _delta(out, steps)
+
+
+def _encode_ints(a, dtype):
+    """:func:`encode_array` of a 1-D integer array, without a copy of it in `dtype`
+    first (successor lists hold tens of millions of 32-bit leaf numbers)."""
+    steps = np.empty(len(a), dtype)
+    steps[:1] = a[:1]
+    np.subtract(a[1:], a[:-1], out=steps[1:], dtype=dtype)
+    return _delta({"dtype": dtype, "shape": [len(a)]}, steps)
+
+
+def _delta(out, steps):
+    """`out` with the differences `steps` stored in the narrowest integer type."""
     item = next(t for t in ("<i1", "<i2", "<i4", "<i8")
                 if steps.size == 0 or (np.iinfo(t).min <= steps.min()
                                        and steps.max() <= np.iinfo(t).max))

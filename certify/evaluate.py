@@ -8,6 +8,10 @@ from . import interval as iv
 
 __all__ = ["parameter_enclosures", "evaluate_boxes", "evaluate_limits"]
 
+#: Most boxes evaluated at once: a program's intermediate values take some hundreds of
+#: bytes a box, and a round's steps can number millions.
+BLOCK = 1 << 16
+
 
 def parameter_enclosures(model):
     """Float intervals enclosing each parameter's exact box, in model order.
@@ -45,6 +49,17 @@ def evaluate_boxes(program, lo, hi, params):
         Outward-rounded enclosures; NaN marks unusable rows.
     """
     n_rows = len(lo)
+    if n_rows > BLOCK:
+        out = None
+        for first in range(0, n_rows, BLOCK):
+            rows = slice(first, first + BLOCK)
+            box_lo = lo[rows]
+            part_lo, part_hi = evaluate_boxes(program, box_lo,
+                                              box_lo if hi is lo else hi[rows], params)
+            if out is None:
+                out = tuple(np.empty((n_rows,) + p.shape[1:]) for p in (part_lo, part_hi))
+            out[0][rows], out[1][rows] = part_lo, part_hi
+        return out
     # the state columns as interval arrays (certify.stacked) in one copy; a box of width
     # 0 and a parameter with one value are points, which the kernels multiply with
     # half the products, and a parameter enters with one row for every box

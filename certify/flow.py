@@ -628,7 +628,9 @@ def join_results(parts):
     Parameters
     ----------
     parts : list of FlowResult
-        Results of consecutive pieces of one batch (at least one).
+        Results of consecutive pieces of one batch (at least one). They are emptied: each
+        field is dropped from them once joined, so that the peak is the parts and one
+        joined field rather than twice all of them.
 
     Returns
     -------
@@ -636,9 +638,12 @@ def join_results(parts):
         The same records as :func:`flow_boxes` of the whole batch gives: every box's flow
         depends on that box alone.
     """
-    joined = {name: None if getattr(parts[0], name) is None
-              else np.concatenate([getattr(p, name) for p in parts])
-              for name in _STEP_FIELDS + _BOX_FIELDS}
+    joined = {}
+    for name in _STEP_FIELDS + _BOX_FIELDS:
+        joined[name] = None if getattr(parts[0], name) is None \
+            else np.concatenate([getattr(p, name) for p in parts])
+        for p in parts:
+            setattr(p, name, None)
     joined["step_start"] = _step_starts(joined["n_steps"])
     return FlowResult(**joined)
 

@@ -188,8 +188,11 @@ class ImageSetStore:
         hoping = np.zeros((len(nodes), holds.shape[1]), bool)
         for h in range(holds.shape[1]):
             hoping[which[holds[:, h]], h] = True
-        box_lo, box_hi, point = lo[dst], hi[dst], sets.values["m"][which]
-        far = np.max(np.abs(0.5 * (box_lo + box_hi) - point) / (box_hi - box_lo), axis=1)
+        # axis by axis: the pairs can be millions, boxes of them 64 bytes a pair in 4D
+        far = np.full(len(src), -np.inf)
+        for k in range(lo.shape[1]):
+            box_lo, box_hi, point = lo[dst, k], hi[dst, k], sets.values["m"][which, k]
+            far = np.maximum(far, np.abs(0.5 * (box_lo + box_hi) - point) / (box_hi - box_lo))
         # the pairs grouped by rank: each cell's nearest pair first, then its second, ...
         pairs = np.lexsort((far, which))
         group = which[pairs]

@@ -14,7 +14,7 @@ from scipy.sparse.csgraph import breadth_first_order, dijkstra
 
 from . import interval as iv
 
-__all__ = ["CellFacts", "Labelling", "label_cells"]
+__all__ = ["CellFacts", "Labelling", "label_cells", "reversed_graph", "unit_weights"]
 
 SAFE, DOOMED, OUTSIDE, UNDECIDED = "safe", "doomed", "outside", "undecided"
 
@@ -85,16 +85,36 @@ class Labelling:
     survival_lower: np.ndarray
 
 
-def _reachable(n_nodes, src, dst, targets):
-    """Nodes that reach a target along edges (BFS on the reversed graph)."""
+def reversed_graph(n_nodes, src, dst, keep, starts=()):
+    """The edges ``dst -> src`` kept by the mask `keep` and edges from a super node
+    ``n_nodes`` to the nodes `starts`, as a CSR matrix of shape ``(n_nodes + 1,) * 2``
+    with boolean data (one byte an edge: the caller gives the weights it needs).
+
+    Edge lists can hold a hundred edges a cell: they are copied once, in their (narrow)
+    index type, and freed once the matrix is made.
+    """
+    k = int(np.count_nonzero(keep))
+    rows = np.empty(k + len(starts), dst.dtype)
+    cols = np.empty(k + len(starts), src.dtype)
+    np.compress(keep, dst, out=rows[:k])
+    np.compress(keep, src, out=cols[:k])
+    rows[k:], cols[k:] = n_nodes, starts
+    return sp.csr_matrix((np.ones(len(rows), bool), (rows, cols)),
+                         shape=(n_nodes + 1, n_nodes + 1))
+
+
+def unit_weights(graph):
+    """`graph` with weight 1.0 on every edge (scipy.sparse.csgraph works on float64
+    weights; made here so that it does not copy the index arrays too)."""
+    return sp.csr_matrix((np.ones(graph.nnz), graph.indices, graph.indptr), shape=graph.shape)
+
+
+def _reachable(n_nodes, src, dst, keep, targets):
+    """Nodes that reach a target along the edges `keep` (BFS on the reversed graph)."""
     if not targets.any():
         return np.zeros(n_nodes, bool)
-    super_node = n_nodes
-    # edge lists stay in their (narrow) index type: they can hold a hundred edges a cell
-    rows = np.concatenate([dst, np.full(targets.sum(), super_node, dst.dtype)])
-    cols = np.concatenate([src, np.flatnonzero(targets).astype(src.dtype)])
-    g = sp.csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(n_nodes + 1, n_nodes + 1))
-    order = breadth_first_order(g, super_node, directed=True, return_predecessors=False)
+    g = unit_weights(reversed_graph(n_nodes, src, dst, keep, np.flatnonzero(targets)))
+    order = breadth_first_order(g, n_nodes, directed=True, return_predecessors=False)
     out = np.zeros(n_nodes + 1, bool)
     out[order] = True
     return out[:n_nodes]
@@ -105,7 +125,7 @@ def _safe(facts, L):
     candidate = (~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes) | trapped
     keep_edge = ~facts.outside[facts.dst] & ~trapped[facts.src]
     targets = ~candidate & ~facts.outside
-    bad = _reachable(L, facts.src[keep_edge], facts.dst[keep_edge], targets)
+    bad = _reachable(L, facts.src, facts.dst, keep_edge, targets)
     return candidate & ~bad
 
 
@@ -143,17 +163,17 @@ def _doomed(facts, L, safe):
 def _survival(facts, L, label):
     """Lower bounds L_c = min(first_unkept_c, T_c + min_d L_d) over non-outside successors."""
     source = np.where(facts.outside, 0.0, facts.first_unkept)
-    keep_edge = ~facts.outside[facts.dst]
-    src, dst = facts.src[keep_edge], facts.dst[keep_edge]
     finite = np.isfinite(source)
     super_node = L
-    # weights shifted by 1 so that zero weights survive the sparse format
-    rows = np.concatenate([dst, np.full(finite.sum(), super_node, dst.dtype)])
-    cols = np.concatenate([src, np.flatnonzero(finite).astype(src.dtype)])
-    w = np.concatenate([facts.horizon_lo[src], source[finite] + 1.0])
-    if len(rows) == 0:
+    g = reversed_graph(L, facts.src, facts.dst, ~facts.outside[facts.dst], np.flatnonzero(finite))
+    if g.nnz == 0:
         return np.where(finite, source, np.inf)
-    g = sp.csr_matrix((w, (rows, cols)), shape=(L + 1, L + 1))
+    # an edge d -> c weighs T_c, one from the super node source_c + 1 (shifted by 1 so
+    # that zero weights survive the sparse format)
+    w = facts.horizon_lo[g.indices]
+    first = g.indptr[super_node]
+    w[first:] = source[g.indices[first:]] + 1.0
+    g = sp.csr_matrix((w, g.indices, g.indptr), shape=g.shape)
     dist = dijkstra(g, directed=True, indices=super_node)[:L] - 1.0
     # float sums may round up: scale down so every bound stays a lower bound
     dist = np.where(np.isfinite(dist),

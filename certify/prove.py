@@ -23,7 +23,8 @@ from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
 from .flow import (DeadlinePassed, STOPPED, flow_boxes, frame_count, join_results,
                    select_results, truncate_results)
-from .labels import CellFacts, Labelling, label_cells, DOOMED, OUTSIDE, SAFE, UNDECIDED
+from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
+                     OUTSIDE, SAFE, UNDECIDED)
 from .steps import StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
@@ -38,8 +39,13 @@ __all__ = ["Method", "Budget", "Proof", "prove", "write_proof", "GROWTH_LIMIT"]
 
 #: A flow stops once its end box is this many times wider than its cell along some axis.
 GROWTH_LIMIT = 4.0
+#: Most steps whose limits are evaluated at once (:meth:`_Prover._step_verdicts`).
+STEP_SLICE = 1 << 16
 #: Fewest cells in a piece of a round's batch sent to a worker.
 MIN_PIECE = 64
+#: Most cells flowed at once: a flow's working arrays take some 12 kB a cell in 4D
+#: (a batch of 340,000 cells took 4 GB), its records a few hundred bytes a step.
+MAX_PIECE = 16384
 #: A followed tube (:meth:`_Prover.extend`) stops once its end box is this many times
 #: wider than its cell along some axis, not where it leaves the cell.
 FOLLOW_GROWTH_LIMIT = 4.0
@@ -385,11 +391,18 @@ class _Prover:
                                         "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
 
     def _flows(self, tubes, cell_lo, cell_hi):
-        """The flows of a round's new cells, in pieces on the runner's workers if any."""
-        if not self.runner.parallel:
+        """The flows of a round's new cells, in pieces of at most MAX_PIECE cells, on the
+        runner's workers if any (a cell's flow depends on that cell alone)."""
+        n_pieces = -(-len(cell_lo) // MAX_PIECE)
+        if self.runner.parallel:
+            n_pieces = max(n_pieces, min(2 * self.runner.n_workers,
+                                         -(-len(cell_lo) // MIN_PIECE)))
+        if n_pieces <= 1 and not self.runner.parallel:
             return tubes.flow(cell_lo, cell_hi, self.deadline)
-        n_pieces = max(1, min(2 * self.runner.n_workers, -(-len(cell_lo) // MIN_PIECE)))
-        pieces = np.array_split(np.arange(len(cell_lo)), n_pieces)
+        pieces = np.array_split(np.arange(len(cell_lo)), max(n_pieces, 1))
+        if not self.runner.parallel:
+            return join_results([tubes.flow(cell_lo[k], cell_hi[k], self.deadline)
+                                 for k in pieces])
         try:
             parts = self.runner.map(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
                                                   for k in pieces], self.deadline)
@@ -400,15 +413,12 @@ class _Prover:
     def _tube_facts(self, todo, result):
         S = len(result.h)
         box_of_step = np.repeat(np.arange(len(todo)), result.n_steps)
-        glo_end, ghi_end = evaluate_limits(self.programs, result.end_lo, result.end_hi,
-                                           self.params)
-        kept_step = np.all(self._kept(result, glo_end), axis=1) if S else np.zeros(0, bool)
+        # crossed: the rank-0 crossings, a step end box wholly violating one limit
+        kept_step, crossed = self._step_verdicts(result)
         t0_lo = result.t0_lo
         unkept_time = np.where(kept_step, np.inf, t0_lo)
         first_unkept = np.full(len(todo), np.inf)
         np.minimum.at(first_unkept, box_of_step, unkept_time)
-        # rank-0 crossings: a step end box wholly violating one limit
-        crossed = np.any(ghi_end < 0, axis=1) if S else np.zeros(0, bool)
         _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
         crossing = np.full(len(todo), np.inf)
         np.minimum.at(crossing, box_of_step, np.where(crossed, t1_hi, np.inf))
@@ -442,12 +452,29 @@ class _Prover:
         self.image_lo[todo] = image_lo
         self.image_hi[todo] = image_hi
 
-    def _kept(self, result, glo_end):
-        """Per step and limit: the limit is kept on the whole step (docs/design.md, section
-        5, rules (a), (b) and (c)); `glo_end` are the limits' lower bounds on the end boxes."""
-        glo, _ = evaluate_limits(self.programs, result.x_lo, result.x_hi, self.params)
-        rlo, _ = evaluate_limits(self.programs, result.e_lo, result.e_hi, self.params, rates=True)
-        h = result.h[:, None]
+    def _step_verdicts(self, result):
+        """Per step of `result`: every limit is kept on the whole step (:meth:`_kept`), and
+        some limit is violated on the whole end box; in slices of STEP_SLICE steps (the
+        limits' values take some hundreds of bytes a step)."""
+        S = len(result.h)
+        kept, crossed = np.zeros(S, bool), np.zeros(S, bool)
+        for first in range(0, S, STEP_SLICE):
+            rows = slice(first, first + STEP_SLICE)
+            glo_end, ghi_end = evaluate_limits(self.programs, result.end_lo[rows],
+                                               result.end_hi[rows], self.params)
+            kept[rows] = np.all(self._kept(result, rows, glo_end), axis=1)
+            crossed[rows] = np.any(ghi_end < 0, axis=1)
+        return kept, crossed
+
+    def _kept(self, result, rows, glo_end):
+        """Per step of the slice `rows` and limit: the limit is kept on the whole step
+        (docs/design.md, section 5, rules (a), (b) and (c)); `glo_end` are the limits'
+        lower bounds on the end boxes of these steps."""
+        glo, _ = evaluate_limits(self.programs, result.x_lo[rows], result.x_hi[rows],
+                                 self.params)
+        e_lo, e_hi = result.e_lo[rows], result.e_hi[rows]
+        rlo, _ = evaluate_limits(self.programs, e_lo, e_hi, self.params, rates=True)
+        h = result.h[rows, None]
         dlo = np.minimum(iv.mul(h, h, rlo, rlo)[0], 0.0)
         lower, _ = iv.add(glo, glo, dlo, dlo)
         kept = (lower >= 0) | (rlo >= 0)
@@ -457,7 +484,7 @@ class _Prover:
             return kept
         # (c) a solution dips below the lower of its two step ends by at most h^2 M / 8,
         # M an upper bound of the limit's second derivative along it
-        _, chi = evaluate_boxes(curvatures, result.e_lo[steps], result.e_hi[steps], self.params)
+        _, chi = evaluate_boxes(curvatures, e_lo[steps], e_hi[steps], self.params)
         hs = h[steps]
         _, h2 = iv.mul(hs, hs, hs, hs)
         _, dip = iv.mul(h2, h2, chi, chi)
@@ -475,8 +502,7 @@ class _Prover:
         S, N = len(result.h), len(result.n_steps)
         box = np.repeat(np.arange(N), result.n_steps)
         pos = np.arange(S) - result.step_start[box]
-        glo_end, _ = evaluate_limits(self.programs, result.end_lo, result.end_hi, self.params)
-        kept = np.all(self._kept(result, glo_end), axis=1)
+        kept, _ = self._step_verdicts(result)
         first_bad = np.full(N, S)
         np.minimum.at(first_bad, box[~kept], pos[~kept])
         t1_lo, _ = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
@@ -515,12 +541,21 @@ class _Prover:
         for the trajectories that keep the limits up to ``T`` (the tube boxes of boxes
         whose tubes do not reach past an open face, `tube_open`, are cut to the window,
         :func:`certify.faces.cut_to_window`)."""
-        elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo,
-                                          result.e_hi, box_of_step, n_boxes)
-        elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step])
-        flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
-        h = result.h[:, None]
-        slo, shi = iv.mul(h, h, flo, fhi)
+        slo, shi = np.empty(result.e_lo.shape), np.empty(result.e_lo.shape)
+        # boxes whose steps fill about STEP_SLICE rows at a time (a box's steps together:
+        # the cut at invariant faces looks at all of them)
+        cuts = np.unique(np.append(np.searchsorted(
+            result.step_start, np.arange(0, len(result.h), STEP_SLICE)), n_boxes))
+        for first, last in zip(cuts[:-1], cuts[1:]):
+            rows = slice(result.step_start[first],
+                         result.step_start[first] + result.n_steps[first:last].sum())
+            owner = box_of_step[rows] - first
+            elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo[rows],
+                                              result.e_hi[rows], owner, last - first)
+            elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step[rows]])
+            flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
+            h = result.h[rows, None]
+            slo[rows], shi[rows] = iv.mul(h, h, flo, fhi)
         lo, hi = np.zeros((n_boxes, self.n)), np.zeros((n_boxes, self.n))
         for j in range(int(result.n_steps.max(initial=0))):
             boxes = np.flatnonzero(result.n_steps > j)
@@ -629,9 +664,12 @@ class _Prover:
         query_nodes = np.flatnonzero(usable)[nonempty].astype(number.dtype)
         qlo, qhi = qlo[nonempty], qhi[nonempty]
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
+        # edges can be many: each pair array is freed once mapped, not held through the
+        # labelling
         src = query_nodes[q]
+        del q
         dst = number[leaf]
-        del q, leaf  # edges can be many: not held through the labelling
+        del leaf
         trapped, whole = trapped_cells(
             self.regions.regions, self.tree.lo[leaves], self.tree.hi[leaves],
             self.image_lo[leaves], self.image_hi[leaves],
@@ -642,6 +680,7 @@ class _Prover:
                           horizon_hi=self.horizon_hi[leaves],
                           first_unkept=self.first_unkept[leaves], src=src, dst=dst,
                           trapped=trapped, trapped_whole=whole)
+        del src, dst  # facts hold them (pruning replaces them there)
         labelling = label_cells(facts)
         if self.image_sets is not None:
             facts, labelling = self._prune_successors(leaves, number, facts, labelling)
@@ -691,7 +730,10 @@ class _Prover:
                 break
             keep = np.ones(len(facts.src), bool)
             keep[test[missed]] = False
-            facts = replace(facts, src=facts.src[keep], dst=facts.dst[keep])
+            # in place, and the pairs tested dropped: the caller's facts would hold the
+            # edges before pruning through the labelling
+            facts.src, facts.dst = facts.src[keep], facts.dst[keep]
+            del test, holds, missed, held, keep
             labelling = label_cells(facts)
         return facts, labelling
 
@@ -820,16 +862,18 @@ def _causes_first(tree, leaves, labelling, facts, wanted, spare):
     und = labelling.label == UNDECIDED
     own = ~facts.flow_ok | ~facts.kept | facts.escapes
     inner = und[facts.src] & und[facts.dst]
-    g = sp.csr_matrix((np.ones(int(inner.sum())), (facts.src[inner], facts.dst[inner])),
-                      shape=(L, L))
+    # the cycles of the reversed graph are those of the graph
+    g = unit_weights(reversed_graph(L, facts.src, facts.dst, inner))
     _, component = connected_components(g, directed=True, connection="strong")
+    del g
+    component = component[:L]
     size = np.bincount(component, minlength=L)
     cyclic = size[component] > 1
     cyclic[facts.src[inner & (facts.src == facts.dst)]] = True
-    decided = labelling.label[facts.dst] != UNDECIDED
-    decided &= labelling.label[facts.dst] != "outside"
+    # per leaf first: labels gathered per edge take 36 bytes an edge
+    decided = (labelling.label != UNDECIDED) & (labelling.label != OUTSIDE)
     border = np.zeros(L, bool)
-    border[facts.src[decided]] = True
+    border[facts.src[decided[facts.dst]]] = True
     cause = und & (own | cyclic | border)
     number = np.full(len(tree), -1)
     number[leaves] = np.arange(L)

@@ -739,6 +739,57 @@ def test_open_sides_are_reported_by_prove_and_show(tmp_path, capsys):
         ("y", "1.2", "open")]
 
 
+def test_safe_set_and_survival_bounds_agree_with_networkx():
+    # the safe fixpoint and the survival lower bounds of docs/design.md, section 5 on a
+    # random graph, against networkx (an outside reference): a candidate is safe unless
+    # it reaches a non-candidate inside the limits; L_c = min(first_unkept_c,
+    # T_c + min L_d) over successors d inside the limits is a shortest path from the
+    # cells' own bounds. Weights are multiples of 1/4 so that the sums are exact.
+    import networkx as nx
+
+    from certify.labels import CellFacts, label_cells
+
+    rng = np.random.default_rng(11)
+    L = 400
+    pairs = np.unique(rng.integers(0, L, (900, 2)), axis=0).astype(np.int32)
+    src, dst = pairs[:, 0], pairs[:, 1]
+    outside = rng.random(L) < 0.1
+    kept = rng.random(L) < 0.85
+    horizon = rng.integers(1, 9, L) / 4
+    first_unkept = np.where(kept, np.inf, rng.integers(0, 9, L) / 4)
+    facts = CellFacts(outside=outside, flow_ok=np.ones(L, bool), kept=kept,
+                      escapes=np.zeros(L, bool), crossing=np.full(L, np.inf),
+                      horizon_lo=horizon, horizon_hi=horizon, first_unkept=first_unkept,
+                      src=src, dst=dst)
+    with np.errstate(invalid="ignore"):  # as in prove(): inf bounds stay inf
+        labelling = label_cells(facts)
+    g = nx.DiGraph()
+    g.add_nodes_from(range(L))
+    g.add_edges_from((int(a), int(b)) for a, b in pairs if not outside[b])
+    candidate = ~outside & kept
+    bad = set()
+    for t in np.flatnonzero(~candidate & ~outside):
+        bad |= nx.ancestors(g, int(t)) | {int(t)}
+    safe = {int(c) for c in np.flatnonzero(candidate) if c not in bad}
+    assert 0 < len(safe) < L
+    assert set(np.flatnonzero(labelling.label == "safe").tolist()) == safe
+    # reversed graph: d -> c weighs T_c; a super node reaches c with c's own bound
+    r = nx.DiGraph()
+    r.add_weighted_edges_from((int(b), int(a), horizon[a]) for a, b in g.edges)
+    own = np.where(outside, 0.0, first_unkept)
+    r.add_weighted_edges_from(("start", int(c), own[c]) for c in np.flatnonzero(np.isfinite(own)))
+    dist = nx.single_source_dijkstra_path_length(r, "start")
+    for c in range(L):
+        if c in safe:
+            expected = np.inf
+        elif outside[c]:
+            expected = 0.0
+        else:
+            expected = dist.get(c, np.inf)
+        got = labelling.survival_lower[c]
+        assert got <= expected and (got >= expected * (1 - 1e-8) or expected == np.inf), c
+
+
 def test_refinement_splits_cycles_failures_and_borders_first():
     # a random graph on undecided leaves plus a few decided ones; the strongly
     # connected components come from networkx (an outside reference)

@@ -78,7 +78,8 @@ class Method:
     #: which sets a tube carries (:data:`certify.flow.FRAME_RULES`)
     frames: str = "qr+parallelepiped"
     #: the factor the default lengths of time above were scaled by to suit the model's
-    #: rate (:mod:`certify.time_scale`); 1 when the model or the caller gave any of them
+    #: rate (:mod:`certify.time_scale`); 1 when the model or the caller gave any of them,
+    #: and for models with controls
     time_scale: float = 1.0
 
 
@@ -766,7 +767,8 @@ def _settings(model, method, budget, overrides):
             raise TypeError(f"prove() got an unexpected option {k!r}")
     kinds = {k: type(getattr(Method, k)) for k in METHOD_KEYS} | {"follow_undecided": bool}
     m = {k: kinds[k](v) for k, v in m.items()}
-    if method is None and not set(TIME_KEYS) & set(m):
+    # a policy's pace is set by its controls' hold times, not by the model's rates
+    if method is None and not model.controls and not set(TIME_KEYS) & set(m):
         scale = time_scale(model).scale
         m |= {k: getattr(Method, k) * scale for k in TIME_KEYS} | {"time_scale": scale}
     method = method or Method(**m)

@@ -43,7 +43,7 @@ from certify.errors import CertificateError
 from certify.model import parse_model
 from certify.policy import prove_policy
 from certify.policy_output import read_policy, write_policy
-from certify.prove import prove
+from certify.prove import Method, prove
 
 from test_trapping import OSCILLATOR  # the damped oscillator of the trapping tests
 
@@ -231,8 +231,11 @@ ceiling = "x <= 1.2"
 """
 
 def _proven(tmp_path_factory, name, text, depth):
+    """A checked certificate of `text` at `depth`, proven with the unscaled lengths of time
+    (certify/time_scale.py), so that the cells the forgeries edit do not move with it."""
     path = tmp_path_factory.mktemp(name) / "certificate.json.gz"
-    write_certificate(path, certificate_data(prove(parse_model(text), max_depth=depth), {}))
+    proof = prove(parse_model(text), method=Method(), max_depth=depth)
+    write_certificate(path, certificate_data(proof, {}))
     assert check_certificate(path, jobs=1).valid
     return path
 

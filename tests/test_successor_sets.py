@@ -138,16 +138,18 @@ def test_sets_with_no_frame_miss_nothing():
 @pytest.fixture(scope="module")
 def rotation(tmp_path_factory):
     """The damped rotation at depth 6 with successors pruned by the image sets, and with
-    every leaf meeting the image box kept."""
+    every leaf meeting the image box kept. With the unscaled lengths of time: the tubes
+    then end near their cells, where the pruning matters (with three time constants most
+    end in the trapping region)."""
     model = load_model(ROTATION)
-    pruned = prove(model, max_depth=6)
+    pruned = prove(model, method=prove_module.Method(), max_depth=6)
     out = tmp_path_factory.mktemp("pruned")
     prove_module.write_proof(pruned, out, figures=False)
     patch = pytest.MonkeyPatch()
     patch.setattr(prove_module.ImageSetStore, "misses_that_help",
                   lambda self, src, dst, lo, hi, holds: np.zeros(len(src), bool))
     try:
-        whole = prove(model, max_depth=6)
+        whole = prove(model, method=prove_module.Method(), max_depth=6)
     finally:
         patch.undo()
     return pruned, whole, out / "certificate.json.gz"

@@ -43,52 +43,24 @@ def test_rate_is_the_modulus_of_the_eigenvalues():
     assert found.scale == pytest.approx(TIME_CONSTANTS_PLANE / 8.0, rel=1e-6)
 
 
-def test_rate_of_two_decays_is_the_faster_one():
-    # x' = -a x, y' = -b y: the Jacobian is diag(-a, -b) everywhere, spectral radius
-    # max(a, b) (common practice)
-    model = parse_model("""
-[model]
-name = "Two decays"
-time_unit = "d"
-[states]
-x = { range = [0, 1] }
-y = { range = [0, 1] }
-[parameters]
-a = 0.02
-b = 0.05
-[equations]
-x = "-a*x"
-y = "-b*y"
-[limits]
-floor = "x >= 0.1"
-""")
-    assert time_scale(model).rate == pytest.approx(0.05, rel=1e-6)
+def decays(rates, unit="d"):
+    """x_i' = -a_i x_i for the given rates, with a floor on the sum of the states."""
+    names = [f"x{i}" for i in range(len(rates))]
+    return parse_model("\n".join(
+        ["[model]", 'name = "Decays"', f'time_unit = "{unit}"', "[states]"]
+        + [f"{x} = {{ range = [0, 1] }}" for x in names]
+        + ["[equations]"] + [f'{x} = "-{a}*{x}"' for x, a in zip(names, rates)]
+        + ["[limits]", f'floor = "{" + ".join(names)} >= 0.1"']))
 
 
-def test_three_decays_take_one_time_constant():
-    # x_i' = -a_i x_i: the Jacobian is diagonal, its spectral radius the largest a_i
-    # (common practice); with three states the shortest horizon is
-    # TIME_CONSTANTS_SPACE time constants.
-    model = parse_model("""
-[model]
-name = "Three decays"
-time_unit = "h"
-[states]
-x = { range = [0, 1] }
-y = { range = [0, 1] }
-z = { range = [0, 1] }
-[parameters]
-a = 4
-[equations]
-x = "-a*x"
-y = "-a*y/2"
-z = "-a*z/4"
-[limits]
-floor = "x + y + z >= 0.1"
-""")
-    found = time_scale(model)
-    assert found.rate == pytest.approx(4.0, rel=1e-6)
-    assert found.scale == pytest.approx(TIME_CONSTANTS_SPACE / 4.0, rel=1e-6)
+@pytest.mark.parametrize("rates, constants", [((0.02, 0.05), TIME_CONSTANTS_PLANE),
+                                              ((4, 2, 1), TIME_CONSTANTS_SPACE)])
+def test_rate_of_decays_is_the_fastest_one(rates, constants):
+    # x_i' = -a_i x_i: the Jacobian is diag(-a_i) everywhere, its spectral radius the
+    # largest a_i (common practice); the shortest horizon is so many time constants
+    found = time_scale(decays(rates))
+    assert found.rate == pytest.approx(max(rates), rel=1e-6)
+    assert found.scale == pytest.approx(constants / max(rates), rel=1e-6)
 
 
 def test_a_field_at_rest_keeps_the_defaults():

@@ -108,7 +108,8 @@ def _interval_minimum(a, b, curv, h):
 
 def _track(sim, x0, lower, upper, horizon):
     """Over the grid: least margin bound before `lower` and overall, least margin at the
-    grid points and crossing bounds up to `upper` (all per start, over all limits)."""
+    grid points and crossing bounds up to `upper` (all per start, over all limits). The
+    grid interval that holds a start's `lower` is bounded up to `lower` only."""
     y0 = x0.T.ravel()
     solver = DOP853(sim.rhs, 0.0, y0, horizon, rtol=1e-10, atol=1e-12)
     grid = np.linspace(0.0, horizon, GRID_STEPS + 1)
@@ -118,6 +119,7 @@ def _track(sim, x0, lower, upper, horizon):
     overall = np.full(len(x0), np.inf)
     upto = m.min(axis=0)
     ends = np.unique(upper[np.isfinite(upper)])
+    starts = np.unique(lower[np.isfinite(lower)])
     k = 1
     while solver.status == "running":
         solver.step()
@@ -130,7 +132,12 @@ def _track(sim, x0, lower, upper, horizon):
                 low = _interval_minimum(m, m_new, 2 * np.maximum(np.abs(c), np.abs(c_new)),
                                         h).min(axis=0)
                 overall = np.minimum(overall, low)
-                before = np.where(t_prev < lower, np.minimum(before, low), before)
+                before = np.where(t <= lower, np.minimum(before, low), before)
+                for u in starts[(starts > t_prev) & (starts < t)]:
+                    m_u, c_u = sim.margins(dense(u))
+                    low_u = _interval_minimum(m, m_u, 2 * np.maximum(np.abs(c), np.abs(c_u)),
+                                              u - t_prev).min(axis=0)
+                    before = np.where(lower == u, np.minimum(before, low_u), before)
                 upto = np.where(t <= upper, np.minimum(upto, m_new.min(axis=0)), upto)
                 # the bounds themselves, which need not fall on the grid
                 for u in ends[(ends > t_prev) & (ends <= t)]:

@@ -394,16 +394,15 @@ class _Prover:
     def _flows(self, tubes, cell_lo, cell_hi):
         """The flows of a round's new cells, in pieces of at most MAX_PIECE cells, on the
         runner's workers if any (a cell's flow depends on that cell alone)."""
-        n_pieces = -(-len(cell_lo) // MAX_PIECE)
-        if self.runner.parallel:
-            n_pieces = max(n_pieces, min(2 * self.runner.n_workers,
-                                         -(-len(cell_lo) // MIN_PIECE)))
-        if n_pieces <= 1 and not self.runner.parallel:
-            return tubes.flow(cell_lo, cell_hi, self.deadline)
-        pieces = np.array_split(np.arange(len(cell_lo)), max(n_pieces, 1))
+        n = len(cell_lo)
+        n_pieces = -(-n // MAX_PIECE)
         if not self.runner.parallel:
+            if n_pieces <= 1:
+                return tubes.flow(cell_lo, cell_hi, self.deadline)
             return join_results([tubes.flow(cell_lo[k], cell_hi[k], self.deadline)
-                                 for k in pieces])
+                                 for k in np.array_split(np.arange(n), n_pieces)])
+        pieces = np.array_split(np.arange(n), max(n_pieces, min(2 * self.runner.n_workers,
+                                                                -(-n // MIN_PIECE)), 1))
         try:
             parts = self.runner.map(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
                                                   for k in pieces], self.deadline)

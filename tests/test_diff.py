@@ -195,3 +195,36 @@ def test_bad_pairs_exit_2_with_one_line(certs, other_certs, capsys, other, messa
 def test_unknown_fail_on_is_a_usage_error(certs, capsys):
     code = main(["diff", str(certs["coarse"]), str(certs["copy"]), "--fail-on", "safe_loss"])
     assert code == 2 and "invalid choice" in capsys.readouterr().err
+
+
+def test_check_refuses_to_compare_a_forged_certificate(certs, tmp_path, capsys):
+    # A doomed cell relabelled safe: it was proven to cross, so the claim is false
+    # (labels are theorems, docs/design.md section 5). Without --check the forged map
+    # passes the safe-loss gate; with it the checker rejects NEW and nothing is compared.
+    from test_forgery import _claim_safe, _tampered
+
+    def change(data):
+        _claim_safe(data, data["cells"]["label"].index("doomed"))
+
+    forged = _tampered(certs["coarse"] / "certificate.json.gz", tmp_path, change)
+    gate = ["diff", str(certs["coarse"]), str(forged), "--fail-on", "safe-loss",
+            "--out", str(tmp_path / "out")]
+    assert main(gate) == 0
+    capsys.readouterr()
+    assert main(gate + ["--check", "--workers", "1"]) == 1
+    out = capsys.readouterr().out
+    assert f"VALID OLD: {certs['coarse']}" in out
+    assert f"INVALID NEW: {forged}" in out and "not compared" in out
+    assert main(gate + ["--check", "--workers", "1", "--json"]) == 1
+    data = json.loads(capsys.readouterr().out)
+    assert data["compared"] is False
+    assert data["checked"]["OLD"]["valid"] and not data["checked"]["NEW"]["valid"]
+    assert data["checked"]["NEW"]["failures"]
+
+
+def test_check_passes_two_honest_certificates_through(certs, tmp_path, capsys):
+    code = main(["diff", str(certs["coarse"]), str(certs["copy"]), "--check", "--workers", "1",
+                 "--out", str(tmp_path)])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert out.count("VALID ") == 2 and "changed label" in out

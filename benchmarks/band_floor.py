@@ -25,6 +25,10 @@ misses mixed leaves (a grid of starts can miss a sliver of the other fate), so a
 from float caveats (RK4 errors are not bounded; a float solution read in a decided leaf
 near its side may belong to the neighbour) the figure errs low. Raising ``grid`` shows
 how far it has converged.
+
+``--count-at C`` also counts a proof made at a finer depth in cells of depth ``C``
+(:func:`undecided_at`): what a map of finer cells decides, said at the coarser cells'
+resolution.
 """
 
 from __future__ import annotations
@@ -45,7 +49,7 @@ from certify.taylor import flow_programs
 from certify.volumes import inside_shares
 from mixed_floor import _LimitWatch, cell_offsets
 
-__all__ = ["BandFloor", "band_floor", "label_grid"]
+__all__ = ["BandFloor", "band_floor", "label_grid", "undecided_at"]
 
 ROOT = Path(__file__).resolve().parent.parent
 CODES = {"undecided": 0, "safe": 1, "doomed": 2, "outside": 3}
@@ -181,6 +185,43 @@ def band_floor(proof, horizon, dt, *, grid=4, look_every=5, rel_tol=1e-6):
                      grid=grid, horizon=float(horizon), dt=float(dt))
 
 
+def undecided_at(proof, depth):
+    """The proof's undecided share counted in the cells of a coarser depth.
+
+    A cell of `depth` counts as decided when every leaf inside it carries one decided
+    label (or is outside); otherwise its whole share inside the limits at time 0 counts
+    as undecided. Leaves not deeper than `depth` count with their own label.
+
+    Parameters
+    ----------
+    proof : certify.prove.Proof
+    depth : int
+
+    Returns
+    -------
+    float
+        Share of the window.
+    """
+    tree, labels = proof.tree, proof.labelling.label
+    leaf_depth = tree.depth[proof.leaves]
+    shares, _ = inside_shares(proof, tree.lo[proof.leaves], tree.hi[proof.leaves])
+    weight = tree.volume_fraction(proof.leaves) * shares * (labels != "outside")
+    shallow = leaf_depth <= depth
+    total = float(np.sum(weight[shallow & (labels == "undecided")]))
+    deep = np.flatnonzero(~shallow)
+    if len(deep) == 0:
+        return total
+    parents = tree.index[proof.leaves[deep]] >> (leaf_depth[deep] - depth)[:, None]
+    _, group = np.unique(parents, axis=0, return_inverse=True)
+    group = group.ravel()
+    codes = np.array([CODES[k] for k in labels[deep]])
+    groups = group.max() + 1
+    holds = [np.bincount(group[codes == CODES[k]], minlength=groups) > 0
+             for k in ("undecided", "safe", "doomed")]
+    undecided = holds[0] | (holds[1] & holds[2])
+    return total + float(np.sum(weight[deep][undecided[group]]))
+
+
 def describe(result):
     """One line with the floor and its counts."""
     return (f"undecided {100 * result.undecided:.2f} %, mixed floor {100 * result.floor:.2f} % "
@@ -197,7 +238,7 @@ def main(argv=None):
     ----------
     argv : list of str, optional
         ``--model NAME`` (a file in models/), ``--depth D``, ``--grids G ...``,
-        ``--horizon T``, ``--dt H``.
+        ``--horizon T``, ``--dt H``, ``--count-at C``.
 
     Returns
     -------
@@ -207,16 +248,21 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--model", required=True)
     parser.add_argument("--depth", type=int, required=True)
-    parser.add_argument("--grids", type=int, nargs="+", default=[4])
+    parser.add_argument("--grids", type=int, nargs="*", default=[4])
+    parser.add_argument("--count-at", type=int, metavar="C",
+                        help="also count the proof's undecided share in cells of depth C")
     parser.add_argument("--horizon", type=float, default=120.0)
     parser.add_argument("--dt", type=float, default=0.01)
     args = parser.parse_args(argv)
     name = args.model if args.model.endswith(".toml") else args.model + ".toml"
     model = load_model(ROOT / "models" / name)
     started = time.process_time()
-    proof = prove(model, max_depth=args.depth, time_limit=None)
-    print(f"{name} depth {args.depth}: proof {time.process_time() - started:.1f} s CPU",
-          flush=True)
+    proof = prove(model, max_depth=args.depth, time_limit=1e9)
+    print(f"{name} depth {args.depth}: proof {time.process_time() - started:.1f} s CPU, "
+          f"undecided {100 * proof.fractions['undecided']:.2f} %", flush=True)
+    if args.count_at is not None:
+        print(f"  counted in cells of depth {args.count_at}: "
+              f"{100 * undecided_at(proof, args.count_at):.2f} % undecided", flush=True)
     for grid in args.grids:
         started = time.process_time()
         result = band_floor(proof, args.horizon, args.dt, grid=grid)

@@ -16,7 +16,7 @@ from certify.model import parse_model
 from certify.prove import prove
 
 sys.path.append(str(Path(__file__).resolve().parent.parent / "benchmarks"))  # not a package
-from band_floor import band_floor  # noqa: E402
+from band_floor import band_floor, undecided_at  # noqa: E402
 from mixed_floor import clopper_pearson, mixed_floor  # noqa: E402
 
 GROWTH_1D = """
@@ -121,3 +121,20 @@ def test_band_floor_finds_every_mixed_leaf_of_a_proof():
     assert {int(p) for p in floor.mixed} == exact
     assert floor.floor == pytest.approx(len(exact) / 4 ** depth, rel=1e-12)
     assert floor.unknown == 0
+
+
+def test_a_finer_map_counted_in_coarser_cells():
+    # s(t) = s0 e^t as above. Counted at its own depth the share is the proof's own;
+    # counted in cells of depth 4, every such cell that meets s = 0 in the sense above
+    # holds both fates, so no map decides it (docs/labels.md), and the count covers at
+    # least their share, all of it inside the limit.
+    model = parse_model(GROWTH_2D)
+    proof = prove(model, max_depth=5, time_limit=1e9)
+    assert undecided_at(proof, 5) == pytest.approx(proof.fractions["undecided"], rel=1e-12)
+    k = 2 ** 4
+    wx, wy = Fraction(3, k), Fraction(2, k)
+    mixed_cells = sum(1 for i, j in product(range(k), repeat=2)
+                      if -1 + i * wx + -1 + j * wy <= 0 < -1 + (i + 1) * wx + -1 + (j + 1) * wy)
+    coarse = undecided_at(proof, 4)
+    assert coarse >= mixed_cells / k ** 2 - 1e-12
+    assert coarse >= proof.fractions["undecided"] - 1e-12

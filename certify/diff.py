@@ -193,9 +193,7 @@ class _Limits:
     def inside_points(self, points):
         """Bool per point: within every limit (plain float evaluation, for estimates)."""
         mid = [0.5 * (p[0] + p[1]) for p in self.params]
-        inputs = np.concatenate([points, np.tile(mid, (len(points), 1))], 1) \
-            if mid else points
-        return np.all(self.programs.limits.point(inputs) >= 0, axis=1)
+        return np.all(self.programs.limits.point_at(points, mid) >= 0, axis=1)
 
 
 def _box_volume(lo, hi):
@@ -402,8 +400,7 @@ def _diff_limit_lines(ax, result, plane, centre, wlo, whi):
               & {c.text for c in result.limits[1].model.constraints})
     for tag, limits in zip(("OLD", "NEW"), result.limits):
         mid = [0.5 * (q[0] + q[1]) for q in limits.params]
-        inputs = np.concatenate([pts, np.tile(mid, (len(pts), 1))], 1) if mid else pts
-        g = limits.programs.limits.point(inputs)
+        g = limits.programs.limits.point_at(pts, mid)
         for k, c in enumerate(limits.model.constraints):
             G = g[:, k].reshape(X.shape)
             if c.text in drawn or not np.nanmin(G) < 0 < np.nanmax(G):

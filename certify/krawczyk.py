@@ -144,12 +144,6 @@ def evaluate(program, lo, hi, params):
             np.stack([o[1] for o in out], -1).reshape(count, len(out)))
 
 
-def _point(program, x, params):
-    """Float evaluation at points ``x`` (N, n) with the parameter midpoints."""
-    inputs = np.concatenate([x, np.tile(params, (len(x), 1))], 1)
-    return program.point(inputs)
-
-
 def _sum_last(lo, hi):
     """Interval sum over the last axis (left fold)."""
     slo, shi = lo[..., 0], hi[..., 0]
@@ -311,8 +305,8 @@ def _newton(system, x):
     step = np.full_like(x, np.inf)
     good = np.ones(len(x), bool)
     for _ in range(NEWTON_STEPS):
-        f = _point(system.values, x, p)
-        jac = _point(system.jacobian, x, p).reshape(len(x), n, n)
+        f = system.values.point_at(x, p)
+        jac = system.jacobian.point_at(x, p).reshape(len(x), n, n)
         good = np.isfinite(f).all(1) & np.isfinite(jac).all(axis=(1, 2))
         f[~good] = 0.0
         jac[~good] = np.eye(n)
@@ -367,7 +361,7 @@ def _preconditioned(system, point):
     ``C`` is invertible, which a successful Krawczyk test on ``C h`` proves.
     """
     n = len(point)
-    jac = _point(system.jacobian, point[None], system.point_params()).reshape(n, n)
+    jac = system.jacobian.point_at(point[None], system.point_params()).reshape(n, n)
     c = np.linalg.pinv(jac)
     inputs = system.inputs
     matrix = sympy.Matrix(n, n, [sympy.Rational(float(v)) for v in c.ravel()])

@@ -81,9 +81,7 @@ def _limit_values(proof, points):
     from .taylor import flow_programs
 
     params = _centre_params(proof)
-    inputs = np.concatenate([points, np.tile(params, (len(points), 1))], 1) \
-        if len(params) else points
-    return flow_programs(proof.model, 1).limits.point(inputs)
+    return flow_programs(proof.model, 1).limits.point_at(points, params)
 
 
 def _slice(proof, plane, fixed):

@@ -51,8 +51,7 @@ def _zero_lines(program, params, lo, hi, k, resolution=400):
     ys = np.linspace(lo[1], hi[1], resolution)
     X, Y = np.meshgrid(xs, ys)
     pts = np.stack([X.ravel(), Y.ravel()], 1)
-    inputs = np.concatenate([pts, np.tile(params, (len(pts), 1))], 1)
-    G = np.ma.masked_invalid(program.point(inputs)[:, k].reshape(X.shape))
+    G = np.ma.masked_invalid(program.point_at(pts, params)[:, k].reshape(X.shape))
     if G.count() == 0 or not (G.min() <= 0 <= G.max()):
         return []
     return contourpy.contour_generator(X, Y, G).lines(0.0)
@@ -74,7 +73,7 @@ def _arc_segments(line, boxes, keep):
 
 def _within_other_limits(program, params, line, k):
     """Points of a polyline of ``g_k = 0`` where every other limit holds (float check)."""
-    g = program.point(np.concatenate([line, np.tile(params, (len(line), 1))], 1))
+    g = program.point_at(line, params)
     others = np.delete(g, k, axis=1)
     return (others >= 0).all(1)
 
@@ -94,8 +93,8 @@ def _arc_arrows(ax, margins, params, segments, ks, lo, hi, sign):
     normal = np.stack([-d[pick, 1], d[pick, 0]], 1) / length[pick, None]
     mid = 0.5 * (segments[pick, 0] + segments[pick, 1])
     probe = mid + 1e-3 * normal * span
-    g = margins.point(np.concatenate([probe, np.tile(params, (len(probe), 1))], 1))
-    g_mid = margins.point(np.concatenate([mid, np.tile(params, (len(mid), 1))], 1))
+    g = margins.point_at(probe, params)
+    g_mid = margins.point_at(mid, params)
     rows = np.arange(len(pick))
     grows = g[rows, ks[pick]] > g_mid[rows, ks[pick]]
     direction = np.where((grows == (sign > 0))[:, None], normal, -normal) * 0.035 * span

@@ -367,6 +367,27 @@ class Program:
         shape = x.shape[:-1]
         return np.stack([np.broadcast_to(o, shape) for o in out], axis=-1)
 
+    def point_at(self, states, params):
+        """Plain float evaluation at state points, all with the same parameter values.
+
+        Parameters
+        ----------
+        states : ndarray, shape (N, n_states)
+            The leading inputs of each row.
+        params : sequence of float
+            The remaining inputs (for flow programs, the parameters), shared by every row.
+
+        Returns
+        -------
+        ndarray, shape (N, n_outputs)
+        """
+        states = np.asarray(states, dtype=float)
+        params = np.asarray(params, dtype=float).ravel()
+        inputs = np.empty((len(states), states.shape[1] + len(params)))
+        inputs[:, :states.shape[1]] = states
+        inputs[:, states.shape[1]:] = params
+        return self.point(inputs)
+
 
 def compile_program(exprs, inputs):
     """Compile expressions into one program.

@@ -111,22 +111,16 @@ def time_scale(model, samples=SAMPLES):
     points = lo + np.random.default_rng(0).uniform(size=(samples, n)) * (hi - lo)
     params = [0.5 * (float(q.lo) + float(q.hi)) for q in model.parameters]
 
-    def run(program, x):
-        inputs = np.empty((len(x), n + len(params)))
-        inputs[:, :n] = x
-        inputs[:, n:] = params
-        return np.asarray(program.point(inputs), float)
-
     with np.errstate(all="ignore"):
-        inside = np.all(run(programs.limits, points) >= 0, axis=1)
+        inside = np.all(programs.limits.point_at(points, params) >= 0, axis=1)
         if inside.any():
             points = points[inside]
         jacobian = np.empty((len(points), n, n))
         for k in range(n):
             d = np.zeros(n)
             d[k] = 1e-6 * (hi[k] - lo[k])
-            jacobian[:, :, k] = (run(programs.field, points + d)
-                                 - run(programs.field, points - d)) / (2 * d[k])
+            jacobian[:, :, k] = (programs.field.point_at(points + d, params)
+                                 - programs.field.point_at(points - d, params)) / (2 * d[k])
         usable = np.all(np.isfinite(jacobian), axis=(1, 2))
         radius = (np.max(np.abs(np.linalg.eigvals(jacobian[usable])), axis=1)
                   if usable.any() else np.array([np.nan]))

@@ -113,6 +113,8 @@ def test_point_evaluation_close_to_exact():
     # one point as a vector gives a vector
     assert PROGRAM.point(full[0]).shape == (2,)
     np.testing.assert_array_equal(PROGRAM.point(full[0]), values[0])
+    # the same with the parameter values given once for every row
+    np.testing.assert_array_equal(PROGRAM.point_at(pts, full[0, 2:]), values)
 
 
 def test_parameter_intervals_enclose_every_parameter_value():

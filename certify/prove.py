@@ -49,6 +49,9 @@ MAX_PIECE = 16384
 #: A followed tube (:meth:`_Prover.extend`) stops once its end box is this many times
 #: wider than its cell along some axis, not where it leaves the cell.
 FOLLOW_GROWTH_LIMIT = 4.0
+#: Cells per piece (and worker) of a followed round that the time limit cuts short: the
+#: pieces flowed before the limit are kept, the one it interrupts is lost.
+FOLLOW_PIECE = 2048
 #: Most times a labelling drops the successors that image sets miss and labels again
 #: (:meth:`_Prover._prune_successors`): leaves decided in one time free others. A
 #: labelling costs as much as the first, so it is redone only when the dropped
@@ -325,6 +328,8 @@ class _Prover:
         self.budget = budget
         self.progress = progress
         self.deadline = None  # set by _prove: a time.monotonic() the flow must not run past
+        self.label_seconds = 0.0  # how long the last labelling took
+        self.followed = None  # (tubes followed, tubes to follow) of the followed round
         self.params = parameter_enclosures(model)
         self.programs = flow_programs(model, method.order)
         self.limits_programs = self.programs
@@ -364,7 +369,8 @@ class _Prover:
     def _analyse(self, nodes, follow=None):
         """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
         where they leave their cells and stop at the growth limit `follow`
-        (:meth:`extend`). Returns the nodes flowed and their flows (None if none)."""
+        (:meth:`extend`), only as many as end before the deadline (less the time of two
+        labellings). Returns the nodes flowed and their flows (None if none)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -374,14 +380,22 @@ class _Prover:
         todo = nodes[~outside]
         if len(todo) == 0:
             return todo, None
-        tubes = self.tubes if follow is None else replace(self.tubes, follow=follow)
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
-        result = self._flows(tubes, cell_lo, cell_hi)
+        if follow is None:
+            tubes = self.tubes
+            result = self._flows(tubes, cell_lo, cell_hi, self.deadline)
+        else:
+            tubes = replace(self.tubes, follow=follow)
+            result = self._flows_in_time(tubes, cell_lo, cell_hi)
+            if result is None:
+                return todo[:0], None
+            todo = todo[:len(result.n_steps)]
+            cell_lo, cell_hi = cell_lo[:len(todo)], cell_hi[:len(todo)]
         self._tube_facts(todo, result)
         self._put_image_sets(todo, result)
         if self.follows:
             ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
-            self.left_cell[nodes] = False
+            self.left_cell[nodes[outside]] = False
             self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
         self.steps.add(todo, result)
         return todo, result
@@ -391,24 +405,41 @@ class _Prover:
             self.image_sets.put(nodes, {"m": result.image_m, "A": result.image_A,
                                         "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
 
-    def _flows(self, tubes, cell_lo, cell_hi):
+    def _flows(self, tubes, cell_lo, cell_hi, deadline):
         """The flows of a round's new cells, in pieces of at most MAX_PIECE cells, on the
         runner's workers if any (a cell's flow depends on that cell alone)."""
         n = len(cell_lo)
         n_pieces = -(-n // MAX_PIECE)
         if not self.runner.parallel:
             if n_pieces <= 1:
-                return tubes.flow(cell_lo, cell_hi, self.deadline)
-            return join_results([tubes.flow(cell_lo[k], cell_hi[k], self.deadline)
+                return tubes.flow(cell_lo, cell_hi, deadline)
+            return join_results([tubes.flow(cell_lo[k], cell_hi[k], deadline)
                                  for k in np.array_split(np.arange(n), n_pieces)])
         pieces = np.array_split(np.arange(n), max(n_pieces, min(2 * self.runner.n_workers,
                                                                 -(-n // MIN_PIECE)), 1))
         try:
             parts = self.runner.map(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
-                                                  for k in pieces], self.deadline)
+                                                  for k in pieces], deadline)
         except DeadlineReached:
             raise DeadlinePassed from None
         return join_results(parts)
+
+    def _flows_in_time(self, tubes, cell_lo, cell_hi):
+        """The flows of the first cells, in pieces of FOLLOW_PIECE cells a worker, that
+        end before the deadline less two labellings (the one of these tubes and the last
+        of the round); None when not one piece does. Without a deadline, all of them."""
+        if self.deadline is None:
+            return self._flows(tubes, cell_lo, cell_hi, None)
+        until = self.deadline - 2 * self.label_seconds
+        n = len(cell_lo)
+        size = FOLLOW_PIECE * self.runner.n_workers
+        parts = []
+        for k in np.array_split(np.arange(n), max(-(-n // size), 1)):
+            try:
+                parts.append(self._flows(tubes, cell_lo[k], cell_hi[k], until))
+            except DeadlinePassed:
+                break
+        return join_results(parts) if parts else None
 
     def _tube_facts(self, todo, result):
         S = len(result.h)
@@ -585,7 +616,9 @@ class _Prover:
         tubes get their old tubes back, which may now decide them too.
 
         Only tubes that stopped where they left their cells are followed: the others
-        stopped for a reason that a followed tube shares (the same steps again).
+        stopped for a reason that a followed tube shares (the same steps again). Under a
+        deadline only the tubes flowed in time are followed (:meth:`_flows_in_time`);
+        ``self.followed`` records how many of how many.
 
         Then, up to :data:`DECISIVE_PASSES` times while it decides more leaves, the
         leaves still undecided get their followed tubes cut at a step end whose
@@ -599,11 +632,13 @@ class _Prover:
         nodes = nodes[self.left_cell[nodes]]
         leaves, label, back, (todo, full) = self._try_tubes(
             nodes, lambda: self._analyse(nodes, follow=growth_limit))
+        self.followed = (len(todo), len(nodes))
         if full is None:
             return self.label()
         pending = np.isin(todo, nodes[back])
-        ends = self._step_ends(full, leaves) if DECISIVE_PASSES else None
-        for _ in range(DECISIVE_PASSES):
+        passes = 0 if self._past_deadline() else DECISIVE_PASSES
+        ends = self._step_ends(full, leaves) if passes else None
+        for _ in range(passes):
             keep = self._decisive_ends(ends, label, full.n_steps, pending)
             cut = np.flatnonzero(keep < full.n_steps)
             if len(cut) == 0:
@@ -612,10 +647,13 @@ class _Prover:
             chosen = todo[cut]
             _, label, back, _ = self._try_tubes(
                 chosen, lambda: self._record_tubes(chosen, tubes))
-            if back.all() or (self.deadline is not None and time.monotonic() >= self.deadline):
+            if back.all() or self._past_deadline():
                 break
             pending[cut[~back]] = False
         return self.label()
+
+    def _past_deadline(self):
+        return self.deadline is not None and time.monotonic() >= self.deadline
 
     def _try_tubes(self, nodes, replace_tubes):
         """Give `nodes` new tubes (``replace_tubes()``), label, and give the nodes left
@@ -654,6 +692,7 @@ class _Prover:
 
     # -- labelling ---------------------------------------------------------------------
     def label(self):
+        started = time.monotonic()
         leaves = self.tree.leaves()
         # edges can outnumber the cells a hundredfold: leaf numbers as narrow as they fit
         number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
@@ -684,6 +723,7 @@ class _Prover:
         labelling = label_cells(facts)
         if self.image_sets is not None:
             facts, labelling = self._prune_successors(leaves, number, facts, labelling)
+        self.label_seconds = time.monotonic() - started
         return leaves, facts, labelling
 
     def _prune_successors(self, leaves, number, facts, labelling):
@@ -898,6 +938,9 @@ def _prove(model, method, budget, progress, focus, runner):
     deadline = start + budget.time_limit
     follow = prover.follows
     extend = None
+    # why the followed round was run before max_depth (then the loop ends after it)
+    instead_of_refining = None
+    last_round = None  # (seconds, new cells) of the last round that split leaves
     try:
         new = tree.split([0]) if method.start_depth > 0 else np.array([0])
         for _ in range(1, method.start_depth):
@@ -907,14 +950,16 @@ def _prove(model, method, budget, progress, focus, runner):
             prover.deadline = None if snapshot is None else deadline
             if hasattr(progress, "starting"):
                 progress.starting(rounds + 1, len(tree.leaves()))
+            round_start = time.monotonic()
             if extend:
+                # a followed round keeps the tubes it flowed in time
                 leaves, facts, labelling = prover.extend(new, extend)
             else:
                 prover.analyse(new)
-            if snapshot is not None and time.monotonic() >= deadline:
-                raise DeadlinePassed
-            if not extend:
+                if snapshot is not None and time.monotonic() >= deadline:
+                    raise DeadlinePassed
                 leaves, facts, labelling = prover.label()
+                last_round = (time.monotonic() - round_start, len(new))
             extend = None
             rounds += 1
             # the steps of split cells are no longer needed (the proof is the leaves')
@@ -938,15 +983,23 @@ def _prove(model, method, budget, progress, focus, runner):
                 full = np.sum(2.0 ** (tree.n * (budget.max_depth - tree.depth[und])))
                 und = _causes_first(tree, leaves, labelling, facts, und,
                                     full <= budget.max_cells - len(leaves))
-            if len(und) == 0 and len(wanted) and focus is None and follow \
-                    and elapsed < budget.time_limit:
-                # one more round at the maximum depth: the undecided leaves' tubes followed
-                extend, follow = FOLLOW_GROWTH_LIMIT, False
-                new = wanted
-                continue
+            if len(wanted) and focus is None and follow \
+                    and elapsed + 2 * prover.label_seconds < budget.time_limit:
+                # one more round, at the maximum depth or when the budget cannot hold the
+                # next split: the undecided leaves' tubes followed
+                short = short_of_budget(tree, und, budget, len(leaves), elapsed, last_round)
+                if len(und) == 0 or short:
+                    extend, follow, instead_of_refining = FOLLOW_GROWTH_LIMIT, False, short
+                    new = wanted
+                    continue
+            if instead_of_refining:
+                stop_reason = (f"{instead_of_refining}; the undecided leaves' tubes were "
+                               f"followed instead{_cut_short(prover.followed)}")
+                break
             if len(und) == 0:
                 if len(wanted):
-                    stop_reason = f"maximum depth {budget.max_depth} reached"
+                    stop_reason = (f"maximum depth {budget.max_depth} reached"
+                                   f"{_cut_short(prover.followed)}")
                 elif focus is not None:
                     stop_reason = "nothing left to refine for the focus"
                 break
@@ -976,6 +1029,42 @@ def _prove(model, method, budget, progress, focus, runner):
                   stop_reason=stop_reason, trapping=prover.regions)
     proof.fractions, proof.fractions_exact = label_fractions(proof)
     return proof
+
+
+def _cut_short(followed):
+    """The words for a followed round that the time limit cut short ('' otherwise)."""
+    if followed is None or followed[0] == followed[1]:
+        return ""
+    return f" (the time limit cut the followed round short: {followed[0]} of {followed[1]} tubes)"
+
+
+def short_of_budget(tree, wanted, budget, n_leaves, elapsed, last_round):
+    """Why the budget cannot hold splitting the leaves `wanted` (None when it can).
+
+    The cell limit leaves no room for one more split, or the next round, at the last
+    splitting round's seconds per new cell, would end past the time limit.
+
+    Parameters
+    ----------
+    last_round : (float, int) or None
+        Seconds and new cells of the last round that split leaves.
+
+    Returns
+    -------
+    str or None
+    """
+    if len(wanted) == 0:
+        return None
+    room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
+    if room <= 0:
+        return f"cell limit {budget.max_cells} reached"
+    if last_round is None or last_round[1] == 0:
+        return None
+    seconds = last_round[0] / last_round[1] * min(len(wanted), room) * 2 ** tree.n
+    if elapsed + seconds > budget.time_limit:
+        return (f"the next round (about {seconds:.0f} s) would end past the time limit "
+                f"{budget.time_limit:g} s")
+    return None
 
 
 def split_shallowest(tree, wanted, budget, n_leaves, elapsed):

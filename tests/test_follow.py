@@ -146,3 +146,25 @@ def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, uncut, reference,
         f.write(json.dumps(data).encode())
     result = check_certificate(tampered, jobs=1)
     assert not result.valid
+
+
+def test_the_cell_limit_runs_the_followed_round(runs, tmp_path):
+    # When the cell limit stops refinement before max_depth, the undecided leaves' tubes
+    # are followed before the proof ends. The leaves are those of the same budget
+    # without following, every label decided there stays (docs/proof-loop.md), more is
+    # decided, and the checker agrees.
+    model, plain = runs[0], runs[1]
+    budget = {"max_depth": DEPTH + 3, "max_cells": len(plain.leaves)}
+    unfollowed = prove(model, follow_undecided=False, **budget)
+    followed = prove(model, follow_undecided=True, **budget)
+    assert unfollowed.stop_reason == f"cell limit {len(plain.leaves)} reached"
+    assert followed.stop_reason == (f"cell limit {len(plain.leaves)} reached; the undecided "
+                                    f"leaves' tubes were followed instead")
+    np.testing.assert_array_equal(unfollowed.leaves, followed.leaves)
+    before, after = unfollowed.labelling.label, followed.labelling.label
+    decided = before != "undecided"
+    np.testing.assert_array_equal(before[decided], after[decided])
+    assert followed.fractions["undecided"] < unfollowed.fractions["undecided"]
+    path = tmp_path / "limited.json.gz"
+    write_certificate(path, certificate_data(followed, {}))
+    assert check_certificate(path, jobs=1).valid

@@ -71,12 +71,15 @@ def test_round_past_the_limit_keeps_the_last_finished_round(late_flow):
 
 
 def test_followed_round_past_the_limit_gives_the_old_tubes_back(late_flow):
-    # the round that follows undecided tubes replaces steps: abandoning it must restore
-    # them (certify/steps.py, restore), so the proof is round 1's, bit for bit
+    # the round that follows undecided tubes keeps the tubes flowed in time: with a clock
+    # past the limit none is, so every leaf keeps its old tube and the proof is round
+    # 1's, bit for bit (certify/steps.py, restore)
     model = load_model(FOOD_CHAIN)
     start_depth = prove_module.Method().start_depth
     proof = prove(model, max_depth=start_depth, time_limit=600)
-    assert WITHIN.fullmatch(proof.stop_reason).groups() == ("2", "1")
+    assert proof.rounds == 2
+    assert re.fullmatch(r"maximum depth 3 reached \(the time limit cut the followed round "
+                        r"short: 0 of \d+ tubes\)", proof.stop_reason)
     first = prove(model, max_depth=start_depth, follow_undecided=False)
     np.testing.assert_array_equal(proof.labelling.label, first.labelling.label)
     for key in STEP_KEYS:
@@ -85,11 +88,55 @@ def test_followed_round_past_the_limit_gives_the_old_tubes_back(late_flow):
     assert _valid(proof)
 
 
+def test_followed_round_keeps_the_pieces_flowed_before_the_limit(monkeypatch):
+    # A clock that passes the limit after some flow steps: the pieces flowed before it
+    # keep their followed tubes, the rest their old ones. Replacing undecided leaves'
+    # tubes never undecides a leaf (docs/proof-loop.md), and the checker agrees.
+    model = load_model(FOOD_CHAIN)
+    start_depth = prove_module.Method().start_depth
+    full = prove(model, max_depth=start_depth, time_limit=600)
+    first = prove(model, max_depth=start_depth, follow_undecided=False)
+    monkeypatch.setattr(prove_module, "FOLLOW_PIECE", 2)
+    calls = []
+    monkeypatch.setattr(flow_module, "time", SimpleNamespace(
+        monotonic=lambda: calls.append(1) or 0.0))
+    prove(model, max_depth=start_depth, time_limit=600)   # counts the clock's readings
+    ticks = iter(range(len(calls) // 2 + 1))
+    monkeypatch.setattr(flow_module, "time", SimpleNamespace(
+        monotonic=lambda: 0.0 if next(ticks, None) is not None else math.inf))
+    proof = prove(model, max_depth=start_depth, time_limit=600)
+    done, total = map(int, re.search(r"short: (\d+) of (\d+) tubes", proof.stop_reason).groups())
+    assert 0 < done < total and done % 2 == 0
+    decided = first.labelling.label != "undecided"
+    np.testing.assert_array_equal(proof.labelling.label[decided], first.labelling.label[decided])
+    assert np.sum(proof.labelling.label == "undecided") <= np.sum(~decided)
+    assert np.sum(proof.labelling.label == "undecided") >= np.sum(full.labelling.label == "undecided")
+    assert _valid(proof)
+
+
+def test_short_of_budget_foresees_the_next_round():
+    # the last splitting round took 10 s for 100 new cells; splitting 50 leaves of a
+    # 3-state model makes 400 cells, about 40 s (common practice: a linear forecast)
+    tree = SimpleNamespace(n=3)
+    budget = prove_module.Budget(max_depth=9, max_cells=10_000, time_limit=300)
+    wanted = np.arange(50)
+    assert prove_module.short_of_budget(tree, wanted, budget, 1000, 250.0, (10.0, 100)) is None
+    reason = prove_module.short_of_budget(tree, wanted, budget, 1000, 270.0, (10.0, 100))
+    assert reason == "the next round (about 40 s) would end past the time limit 300 s"
+    # no room for one more split (7 new leaves a split)
+    assert prove_module.short_of_budget(tree, wanted, budget, 9_994, 0.0, None) == \
+        "cell limit 10000 reached"
+    assert prove_module.short_of_budget(tree, wanted[:0], budget, 9_994, 0.0, None) is None
+
+
 def test_short_time_limit_on_a_3d_model_ends_with_a_valid_proof():
-    # real clock: whether the limit passes between rounds or within one depends on the
-    # machine; either way the run says so and keeps a complete, valid proof
+    # real clock: whether the limit passes between rounds or within one, or the next
+    # round is foreseen to end past it (then the undecided tubes are followed instead),
+    # depends on the machine; either way the run says so and keeps a complete, valid proof
     proof = prove(load_model(FOOD_CHAIN), max_depth=12, time_limit=3)
-    assert proof.stop_reason.startswith("time limit 3 s reached")
+    assert proof.stop_reason.startswith("time limit 3 s reached") or re.match(
+        r"the next round \(about \d+ s\) would end past the time limit 3 s; the undecided "
+        r"leaves' tubes were followed instead", proof.stop_reason)
     within = WITHIN.fullmatch(proof.stop_reason)
     if within:
         assert int(within.group(2)) == proof.rounds == int(within.group(1)) - 1

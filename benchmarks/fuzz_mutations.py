@@ -1,0 +1,446 @@
+"""The edits of the forgery fuzzer (benchmarks/forgery_fuzz.py): one random edit of a
+decoded certificate per call, by family.
+
+Every edit works on the raw certificate dictionary (docs/certificate-format.md): arrays
+are decoded with :func:`certify.container.decode_array`, changed, and encoded again with
+:func:`certify.container.encode_array`, so the file stays well formed unless the edit
+itself breaks it. An edit returns a short description, or None when it does not apply to
+this certificate (the fuzzer then draws again).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from fractions import Fraction
+
+import numpy as np
+
+from certify.container import decode_array, encode_array, fraction_text
+
+SPECIAL_FLOATS = (np.nan, np.inf, -np.inf, -0.0, 5e-324, 1e308, -1e308, 0.0)
+SPECIAL_TEXTS = ("nan", "inf", "1/0", "", "0x10", 1.5, True, None, "1e400", "-0")
+LABELS = ("safe", "doomed", "outside", "undecided")
+
+CELL_FLOATS = ("crossing_upper", "survival_lower", "horizon", "step_h", "step_E")
+CELL_INTS = ("depth", "index", "rank", "successor_start", "successors", "step_start",
+             "trapped")
+
+
+# -- access ------------------------------------------------------------------------------
+def _get(data, path):
+    for key in path:
+        data = data[key]
+    return data
+
+
+def _array(data, path):
+    return decode_array(_get(data, path))
+
+
+def _put(data, path, a):
+    parent = _get(data, path[:-1])
+    parent[path[-1]] = encode_array(a, parent[path[-1]]["dtype"])
+
+
+def _float_sites(data):
+    """Paths of float arrays with values, weighted: the cells' arrays three times."""
+    sites = [("cells", k) for k in CELL_FLOATS for _ in range(3)]
+    sites.append(("parameter_floats",))
+    for i, face in enumerate(data["faces"]):
+        for key in ("cover_lo", "cover_hi"):
+            sites.append(("faces", i, key))
+    return [s for s in sites if _array(data, s).size]
+
+
+def _int_sites(data):
+    sites = [("cells", k) for k in CELL_INTS for _ in range(3)]
+    for i, face in enumerate(data["faces"]):
+        sites.append(("faces", i, "cover_reason"))
+    for k, region in enumerate(data.get("regions", [])):
+        for key in ("cover_depths", "cover_index", "cover_class"):
+            if key in region:
+                sites.append(("regions", k, key))
+    return [s for s in sites if _array(data, s).size]
+
+
+def _exact_sites(data):
+    """Paths of exact numbers ``"p/q"`` (a matrix entry stands for its symmetric pair)."""
+    sites = [("window", k, j) for k in range(len(data["window"])) for j in (0, 1)]
+    sites += [("parameters", name, j) for name in data["parameters"] for j in (0, 1)]
+    for k, region in enumerate(data.get("regions", [])):
+        n = len(region["centre"])
+        sites += [("regions", k, "centre", i) for i in range(n)]
+        sites += [("regions", k, "matrix", i, j) for i in range(n) for j in range(i, n)]
+        sites += [("regions", k, "box", i, j) for i in range(n) for j in (0, 1)]
+        sites.append(("regions", k, "level"))
+    return sites
+
+
+def _pick(rng, items):
+    return items[int(rng.integers(len(items)))]
+
+
+def _element(rng, data, site, a):
+    """A flat position in `a`: for crossing/survival bounds mostly a finite, non-zero one
+    (those carry claims)."""
+    flat = a.reshape(-1)
+    if site[-1] in ("crossing_upper", "survival_lower") and rng.random() < 0.8:
+        live = np.flatnonzero(np.isfinite(flat) & (flat != 0))
+        if len(live):
+            return int(_pick(rng, live))
+    return int(rng.integers(flat.size))
+
+
+# -- numbers -----------------------------------------------------------------------------
+def _float_edit(kind):
+    def edit(rng, data):
+        site = _pick(rng, _float_sites(data))
+        a = _array(data, site)
+        flat = a.reshape(-1)
+        i = _element(rng, data, site, a)
+        old = float(flat[i])
+        if kind == "ulp":
+            new = float(np.nextafter(old, np.inf if rng.random() < 0.5 else -np.inf))
+        elif kind == "small":
+            new = old * (1 + float(rng.choice([-1, 1])) * 10 ** rng.uniform(-9, -3))
+        elif kind == "large":
+            new = float(rng.choice([0.5, 0.9, 1.1, 2.0, 10.0, 0.1, -1.0])) * old \
+                if rng.random() < 0.7 else old + float(rng.choice([-1, 1, -10, 10]))
+        else:
+            new = float(_pick(rng, SPECIAL_FLOATS))
+        if np.array_equal(np.float64(new), np.float64(old), equal_nan=True) and \
+                np.signbit(new) == np.signbit(old):
+            return None
+        flat[i] = new
+        _put(data, site, a)
+        return f"{'.'.join(map(str, site))}[{i}]: {old!r} -> {new!r}"
+    return edit
+
+
+def _int_edit(rng, data):
+    site = _pick(rng, _int_sites(data))
+    a = _array(data, site)
+    flat = a.reshape(-1)
+    i = int(rng.integers(flat.size))
+    old = int(flat[i])
+    new = _pick(rng, [old + 1, old - 1, -1, 0, int(rng.integers(-2, max(abs(old), 4) + 3)),
+                      1 << 40, -(1 << 62)])
+    if new == old:
+        return None
+    flat[i] = new
+    _put(data, site, a)
+    return f"{'.'.join(map(str, site))}[{i}]: {old} -> {new}"
+
+
+def _exact_edit(rng, data):
+    site = _pick(rng, _exact_sites(data))
+    old = _get(data, site)
+    q = Fraction(old)
+    choice = rng.integers(6)
+    if choice == 0:
+        new = _pick(rng, SPECIAL_TEXTS)
+    else:
+        scale = {1: Fraction(1, 10 ** 12), 2: Fraction(1, 10 ** 6), 3: Fraction(1, 10),
+                 4: Fraction(1), 5: Fraction(2)}[int(choice)]
+        new = fraction_text(q + (scale * (abs(q) if q and choice < 5 else 1))
+                            * (1 if rng.random() < 0.5 else -1))
+    if new == old:
+        return None
+    _get(data, site[:-1])[site[-1]] = new
+    if site[0] == "regions" and site[2] == "matrix":     # keep the matrix symmetric
+        _get(data, site[:-2])[site[-1]][site[-2]] = new
+    return f"{'.'.join(map(str, site))}: {old!r} -> {new!r}"
+
+
+# -- the cells as a table ----------------------------------------------------------------
+class Cells:
+    """The per-cell data of a certificate as Python lists, for edits that move cells,
+    steps and successors; :meth:`write` stores it back consistently (offsets rebuilt)."""
+
+    SCALARS = ("depth", "rank", "crossing_upper", "survival_lower", "trapped")
+
+    def __init__(self, data):
+        c = data["cells"]
+        self.cols = {k: list(_array(data, ("cells", k))) for k in self.SCALARS}
+        self.cols["index"] = list(_array(data, ("cells", "index")))
+        self.cols["horizon"] = list(_array(data, ("cells", "horizon")))
+        self.cols["label"] = list(c["label"])
+        self.cols["image_known"] = list(c["image_known"])
+        self.cols["trapped_whole"] = list(c["trapped_whole"])
+        ss, succ = _array(data, ("cells", "successor_start")), _array(data, ("cells", "successors"))
+        self.cols["succ"] = [list(succ[ss[j]:ss[j + 1]]) for j in range(len(ss) - 1)]
+        st = _array(data, ("cells", "step_start"))
+        h, E = _array(data, ("cells", "step_h")), _array(data, ("cells", "step_E"))
+        self.n = E.shape[1]
+        self.cols["steps"] = [[(h[r], E[r]) for r in range(st[j], st[j + 1])]
+                              for j in range(len(st) - 1)]
+
+    @property
+    def L(self):
+        return len(self.cols["label"])
+
+    def cells_with(self, test):
+        return [j for j in range(self.L) if test(j)]
+
+    def swap(self, a, b, keys):
+        for k in keys:
+            col = self.cols[k]
+            col[a], col[b] = col[b], col[a]
+
+    def reorder(self, order, renumber=True):
+        """Cells in the new `order` (a list of old numbers, cells may repeat or go);
+        successor numbers follow their cells when `renumber` (a dropped one is removed)."""
+        new_of = {old: new for new, old in enumerate(order)}
+        for k, col in self.cols.items():
+            self.cols[k] = [col[j] for j in order]
+        if renumber:
+            self.cols["succ"] = [[new_of[s] for s in succ if s in new_of]
+                                 for succ in self.cols["succ"]]
+
+    def write(self, data):
+        c = data["cells"]
+        c["count"] = self.L
+        for k in self.SCALARS + ("index", "horizon"):
+            c[k] = encode_array(np.array(self.cols[k]).reshape((self.L,) + np.shape(
+                self.cols[k][0]) if self.L else (0,)), c[k]["dtype"])
+        for k in ("label", "image_known", "trapped_whole"):
+            c[k] = list(self.cols[k])
+        lengths = [len(s) for s in self.cols["succ"]]
+        c["successor_start"] = encode_array(np.concatenate([[0], np.cumsum(lengths)]), "<i8")
+        c["successors"] = encode_array(np.array([s for succ in self.cols["succ"] for s in succ],
+                                                np.int64), "<i8")
+        rows = [r for steps in self.cols["steps"] for r in steps]
+        c["step_start"] = encode_array(np.concatenate(
+            [[0], np.cumsum([len(s) for s in self.cols["steps"]])]), "<i8")
+        c["step_h"] = encode_array(np.array([h for h, _ in rows], float))
+        c["step_E"] = encode_array(np.array([E for _, E in rows], float).reshape(-1, self.n, 2))
+
+
+def _label_edit(rng, data):
+    """Relabel a cell: a plain label change, or a forger's consistent one (rank and
+    bounds made to look right)."""
+    cells = Cells(data)
+    j = int(rng.integers(cells.L))
+    col = cells.cols
+    old = col["label"][j]
+    new = _pick(rng, [x for x in LABELS if x != old])
+    col["label"][j] = new
+    note = "plain"
+    if rng.random() < 0.7:
+        note = "with its rank and bounds"
+        doomed_ranks = [r for r, lab in zip(col["rank"], col["label"]) if lab == "doomed"]
+        if new == "safe":
+            col["rank"][j], col["crossing_upper"][j], col["survival_lower"][j] = -1, np.inf, np.inf
+        elif new == "undecided":
+            col["rank"][j], col["crossing_upper"][j] = -1, np.inf
+            col["survival_lower"][j] = min(col["survival_lower"][j], 0.0)
+        elif new == "outside":
+            col["rank"][j], col["crossing_upper"][j], col["survival_lower"][j] = 0, 0.0, 0.0
+        else:
+            col["rank"][j] = _pick(rng, [0, max(doomed_ranks, default=0) + 1])
+            col["crossing_upper"][j] = float(_pick(rng, [1e3, 1e308, col["horizon"][j][1]]))
+            col["survival_lower"][j] = 0.0
+    cells.write(data)
+    return f"cell {j}: {old} -> {new} ({note})"
+
+
+def _steps_edit(rng, data):
+    cells = Cells(data)
+    have = cells.cells_with(lambda j: len(cells.cols["steps"][j]) > 0)
+    if not have:
+        return None
+    j = _pick(rng, have)
+    steps = cells.cols["steps"][j]
+    k = int(rng.integers(len(steps)))
+    what = rng.integers(4)
+    if what == 0:
+        del steps[k]
+        note = f"dropped step {k}"
+    elif what == 1:
+        steps.insert(k, steps[k])
+        note = f"duplicated step {k}"
+    elif what == 2:
+        if len(steps) < 2:
+            return None
+        k = min(k, len(steps) - 2)
+        steps[k], steps[k + 1] = steps[k + 1], steps[k]
+        note = f"swapped steps {k} and {k + 1}"
+    else:
+        other = _pick(rng, have)
+        if other == j:
+            return None
+        cells.cols["steps"][j], cells.cols["steps"][other] = cells.cols["steps"][other], steps
+        note = f"swapped all steps with cell {other}"
+    cells.write(data)
+    return f"cell {j}: {note}"
+
+
+def _successors_edit(rng, data):
+    cells = Cells(data)
+    j = int(rng.integers(cells.L))
+    succ = cells.cols["succ"][j]
+    what = rng.integers(5)
+    if what == 0 and succ:
+        note = f"dropped successor {succ.pop(int(rng.integers(len(succ))))}"
+    elif what == 1 and succ:
+        s = _pick(rng, succ)
+        succ.append(s)
+        note = f"duplicated successor {s}"
+    elif what == 2 and len(succ) > 1:
+        succ.reverse()
+        note = "reversed the successors"
+    elif what == 3:
+        s = int(rng.integers(cells.L))
+        succ.append(s)
+        note = f"added successor {s}"
+    elif what == 4 and succ:
+        i = int(rng.integers(len(succ)))
+        old, succ[i] = succ[i], int(rng.integers(cells.L))
+        note = f"successor {old} -> {succ[i]}"
+    else:
+        return None
+    cells.write(data)
+    return f"cell {j}: {note}"
+
+
+def _cells_edit(rng, data):
+    cells = Cells(data)
+    L = cells.L
+    what = rng.integers(5)
+    a, b = (int(x) for x in rng.choice(L, 2, replace=False))
+    if what == 0:
+        renumber = rng.random() < 0.5
+        cells.reorder([j for j in range(L) if j != a], renumber)
+        note = f"dropped cell {a} ({'renumbered' if renumber else 'numbers kept'})"
+    elif what == 1:
+        cells.reorder(list(range(L)) + [a])
+        note = f"duplicated cell {a}"
+    elif what == 2:
+        order = [int(x) for x in rng.permutation(L)]
+        renumber = rng.random() < 0.8
+        cells.reorder(order, renumber)
+        note = f"permuted the cells ({'renumbered' if renumber else 'numbers kept'})"
+    elif what == 3:
+        cells.swap(a, b, ("depth", "index"))
+        note = f"swapped the addresses of cells {a} and {b}"
+    else:
+        keys = [k for k in cells.cols if k not in ("depth", "index")]
+        cells.swap(a, b, keys)
+        note = f"swapped the data of cells {a} and {b}"
+    cells.write(data)
+    return note
+
+
+# -- method, model and structure ---------------------------------------------------------
+def _method_edit(rng, data):
+    method = data["method"]
+    key = _pick(rng, sorted(method) + ["frames", "order", "order", "(all)"])
+    if key == "(all)":
+        data["method"] = _pick(rng, [{}, [], None, "qr"])
+        return "method replaced"
+    if key == "frames":
+        new = _pick(rng, ["qr", "qr+parallelepiped", "parallelepiped", "", None, "(gone)"])
+    elif key == "order":
+        new = _pick(rng, [1, 2, 3, 4, 5, 6, 8, 0, 9, -1, "4", 4.0, True, None])
+    else:
+        old = method[key]
+        new = _pick(rng, [None, "x", 0, -1, 1e308, float("nan")] +
+                    ([old * 2, old / 2] if isinstance(old, (int, float)) and
+                     not isinstance(old, bool) else [not old]))
+    old = method.get(key, "(gone)")
+    if new == "(gone)":
+        method.pop(key, None)
+    else:
+        method[key] = new
+    return f"method.{key}: {old!r} -> {new!r}"
+
+
+NUMBER = re.compile(r"(?<![A-Za-z_\d.])(\d+(?:\.\d+)?(?:[eE][-+]?\d+)?)")
+
+
+def _model_edit(rng, data):
+    """Edit the stored model text (a number, an inequality) and, as a forger would,
+    its hash; or the hash, name, states, version or format alone."""
+    model = data["model"]
+    text = model["text"]
+    what = rng.integers(8)
+    if what <= 3:
+        numbers = list(NUMBER.finditer(text))
+        if not numbers:
+            return None
+        m = _pick(rng, numbers)
+        old = Fraction(m.group(1))
+        new = old + _pick(rng, [Fraction(1, 10 ** 9), Fraction(1, 10 ** 3), Fraction(1, 10),
+                                Fraction(1)]) * (1 if rng.random() < 0.5 else -1)
+        text = text[:m.start()] + _decimal(new) + text[m.end():]
+        note = f"model number {m.group(1)} -> {_decimal(new)}"
+    elif what == 4:
+        swaps = [(m.start(), m.group()) for m in re.finditer(r"<=|>=", text)]
+        if not swaps:
+            return None
+        at, sign = _pick(rng, swaps)
+        text = text[:at] + ("<=" if sign == ">=" else ">=") + text[at + 2:]
+        note = f"inequality {sign} at {at} turned round"
+    elif what == 5:
+        model["sha256"] = "0" * 64
+        return "model.sha256 zeroed"
+    elif what == 6:
+        key = _pick(rng, ["version", "format", "states", "name", "summary"])
+        value = {"version": _pick(rng, [2, 4, "3", None]), "format": "certify",
+                 "states": list(reversed(data["states"])), "name": "other",
+                 "summary": {"forged": True}}[key]
+        if key == "name":
+            model["name"] = value
+        else:
+            data[key] = value
+        return f"{key} replaced"
+    else:
+        return _exact_edit(rng, data)
+    model["text"] = text
+    if rng.random() < 0.9:
+        model["sha256"] = hashlib.sha256(text.encode("utf-8")).hexdigest()
+        note += " (hash updated)"
+    return note
+
+
+def _decimal(q):
+    """A decimal text of a rational with a terminating expansion (the edits above)."""
+    if q < 0:
+        return "-" + _decimal(-q)
+    whole, rest = divmod(q.numerator, q.denominator)
+    digits = ""
+    while rest:
+        rest *= 10
+        d, rest = divmod(rest, q.denominator)
+        digits += str(d)
+    return f"{whole}.{digits}" if digits else str(whole)
+
+
+def _structure_edit(rng, data):
+    """Remove a key, or give it a value of the wrong type."""
+    where = _pick(rng, [data, data["cells"], _pick(rng, data["faces"])])
+    key = _pick(rng, sorted(where))
+    if rng.random() < 0.5:
+        del where[key]
+        return f"key {key!r} removed"
+    where[key] = _pick(rng, [None, [], {}, "x", -1, 1.5, [[0]]])
+    return f"key {key!r} given a wrong type"
+
+
+#: The families and their edits.
+FAMILIES = {
+    "label": _label_edit,
+    "float-ulp": _float_edit("ulp"),
+    "float-small": _float_edit("small"),
+    "float-large": _float_edit("large"),
+    "float-special": _float_edit("special"),
+    "integer": _int_edit,
+    "exact-number": _exact_edit,
+    "steps": _steps_edit,
+    "successors": _successors_edit,
+    "cells": _cells_edit,
+    "method": _method_edit,
+    "model": _model_edit,
+    "structure": _structure_edit,
+}

@@ -33,7 +33,10 @@ may run minutes); ``tests/test_forgery_fuzz.py`` runs a few fixed seeds.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import copy
+import io
+import shutil
 import signal
 import sys
 import tempfile
@@ -47,16 +50,19 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # the fuzzer's own modules
-from fuzz_mutations import FAMILIES  # noqa: E402
+from fuzz_claims import claim_edit, false_verdict  # noqa: E402
+from fuzz_mutations import FAMILIES as EDITS  # noqa: E402
 from fuzz_oracle import EPS, Oracle, cell_points, claims_time, false_claims, later  # noqa: E402
 
 from certify.certificate import certificate_data, read_certificate  # noqa: E402
 from certify.check import check_certificate  # noqa: E402
+from certify.cli import main as cli  # noqa: E402
 from certify.container import decode_array, load_certificate_json, write_certificate  # noqa: E402
 from certify.errors import CertifyError  # noqa: E402
 from certify.model import parse_model  # noqa: E402
 from certify.prove import prove  # noqa: E402
 
+ROOT = Path(__file__).resolve().parent.parent
 #: Subjects: model text, proof options, the oracle's long horizon. Each a scenario of
 #: our own, with fates known in closed form or by solve_ivp.
 SUBJECTS = {
@@ -112,8 +118,20 @@ z = "0.2*x - 0.3*z"
 xcap = "x <= 0.8"
 zfloor = "z >= -0.6"
 """, {"max_depth": 2, "start_depth": 2}, 100.0),
+    # a version-2 certificate (stored frames m, A per step) of the demo fermenter at
+    # depth 3, read from the tests' data instead of proven: its model is the stored text
+    # claim certificates (``certify claim``) on the damped rotation: a safe region near the
+    # origin (proven), and one whose starts run into the wall (refuted by a point)
+    "claim-proven": ("rotation", {"claim": ["--region", "x=-0.3:0.3,y=-0.3:0.3", "--expect",
+                                            "safe", "--max-depth", "3"]}, 100.0),
+    "claim-refuted": ("rotation", {"claim": ["--region", "x=0.4:0.55,y=-0.7:-0.5",
+                                             "--expect", "safe", "--max-depth", "3"]}, 100.0),
+    "fermenter-v2": (None, {"file": ROOT / "tests" / "data" /
+                            "fermenter_v2_depth3.certificate.json.gz"}, 100.0),
 }
 
+#: The edit families: those of fuzz_mutations, and the claim record's.
+FAMILIES = {**EDITS, "claim": claim_edit}
 OUTCOMES = ("malformed", "rejected", "accepted-same", "accepted-weaker", "accepted-stronger",
             "accepted-false", "crash", "query-crash")
 #: Seconds a single check may take before it counts as a hang (reported as a crash).
@@ -194,14 +212,18 @@ def judge(subject, data, seed):
     claims = read_claims(data)
     base = subject.claims
     same_model = claims.model_key == base.model_key and claims.window == base.window
-    if same_model and claims.cells == base.cells:
+    record = data.get("claim")
+    same_record = record == subject.data.get("claim")
+    if same_model and claims.cells == base.cells and same_record:
         return "accepted-same", None
     check = {addr for addr, claim in claims.cells.items()
              if not same_model or stronger(claim, base.cells.get(addr))}
-    if not check:
+    if not check and same_record:
         return "accepted-weaker", None
     oracle = subject.oracle(claims.model_key[:2])
     problems = []
+    if record is not None and (not same_model or not same_record):
+        problems += false_verdict(oracle, record, data["states"], seed)
     points = []
     for (depth, index), claim in claims.cells.items():
         # the original's sample points everywhere (their fates are cached), and more of
@@ -220,7 +242,8 @@ def judge(subject, data, seed):
         return "query-crash", traceback.format_exc(limit=4)
     if problems:
         return "accepted-false", "; ".join(problems[:3])
-    return "accepted-stronger", f"{len(check)} cells claim more; simulation agrees"
+    return "accepted-stronger", (f"{len(check)} cells claim more" if check else
+                                 "the claim record changed") + "; simulation agrees"
 
 
 def _query_problems(subject, data, oracle, points):
@@ -282,9 +305,18 @@ def make_subject(name, folder):
     """Prove a subject, write and check its certificate, and check its claims against
     simulation (the original must be VALID and true, or the fuzzer means nothing)."""
     text, options, horizon = SUBJECTS[name]
-    proof = prove(parse_model(text), **options)
     path = Path(folder) / f"{name}.json.gz"
-    write_certificate(path, certificate_data(proof, {}))
+    if "file" in options:
+        write_certificate(path, load_certificate_json(options["file"]))
+    elif "claim" in options:
+        model = Path(folder) / f"{name}.toml"
+        model.write_text(SUBJECTS[text][0])
+        out = Path(folder) / name
+        with contextlib.redirect_stdout(io.StringIO()):
+            cli(["claim", str(model), *options["claim"], "--out", str(out), "--quiet"])
+        shutil.copy(out / "certificate.json.gz", path)
+    else:
+        write_certificate(path, certificate_data(prove(parse_model(text), **options), {}))
     result = check_certificate(path, jobs=1)
     if not result.valid:
         raise RuntimeError(f"{name}: the original certificate does not check: {result.message}")
@@ -299,6 +331,8 @@ def make_subject(name, folder):
             problems += false_claims(oracle, *claim, p)
             points.append(p)
     problems += _query_problems(subject, data, oracle, np.array(points))
+    if data.get("claim") is not None:
+        problems += false_verdict(oracle, data["claim"], data["states"], 0)
     if problems:
         raise RuntimeError(f"{name}: the original certificate claims something false: "
                            f"{problems[:3]}")
@@ -341,8 +375,7 @@ def fuzz(subject, mutants, seed, families=None, folder=None):
                 if outcome is None:
                     continue
                 done += 1
-                keep = outcome in ("accepted-stronger", "accepted-false", "crash",
-                                   "query-crash", "accepted-weaker") or note
+                keep = outcome.startswith("accepted") or outcome.endswith("crash") or note
                 tally.add(family, outcome, f"{what}: {note}" if keep else None)
     tally.seconds = time.monotonic() - start
     return tally
@@ -360,7 +393,7 @@ def report(name, tally, show):
     for family, outcome, note in tally.notes:
         by_outcome[outcome].append(f"- [{family}] {note}")
     for outcome in ("accepted-false", "crash", "query-crash", "accepted-stronger",
-                    "accepted-weaker", "malformed"):
+                    "accepted-weaker", "accepted-same", "malformed"):
         if by_outcome[outcome]:
             lines += ["", f"{outcome}:"] + by_outcome[outcome][:show]
     return "\n".join(lines)

@@ -22,7 +22,8 @@ SPECIAL_FLOATS = (np.nan, np.inf, -np.inf, -0.0, 5e-324, 1e308, -1e308, 0.0)
 SPECIAL_TEXTS = ("nan", "inf", "1/0", "", "0x10", 1.5, True, None, "1e400", "-0")
 LABELS = ("safe", "doomed", "outside", "undecided")
 
-CELL_FLOATS = ("crossing_upper", "survival_lower", "horizon", "step_h", "step_E")
+CELL_FLOATS = ("crossing_upper", "survival_lower", "horizon", "step_h", "step_E",
+               "set0_m", "step_m", "step_A")  # the last three: version 2 only
 CELL_INTS = ("depth", "index", "rank", "successor_start", "successors", "step_start",
              "trapped")
 
@@ -45,7 +46,7 @@ def _put(data, path, a):
 
 def _float_sites(data):
     """Paths of float arrays with values, weighted: the cells' arrays three times."""
-    sites = [("cells", k) for k in CELL_FLOATS for _ in range(3)]
+    sites = [("cells", k) for k in CELL_FLOATS for _ in range(3) if k in data["cells"]]
     sites.append(("parameter_floats",))
     for i, face in enumerate(data["faces"]):
         for key in ("cover_lo", "cover_hi"):
@@ -156,24 +157,25 @@ def _exact_edit(rng, data):
 # -- the cells as a table ----------------------------------------------------------------
 class Cells:
     """The per-cell data of a certificate as Python lists, for edits that move cells,
-    steps and successors; :meth:`write` stores it back consistently (offsets rebuilt)."""
+    steps and successors; :meth:`write` stores it back consistently (offsets rebuilt).
+    ``steps`` holds per cell a list of step rows (one value per key of ``step_keys``)."""
 
-    SCALARS = ("depth", "rank", "crossing_upper", "survival_lower", "trapped")
+    ARRAYS = ("depth", "index", "rank", "crossing_upper", "survival_lower", "horizon",
+              "trapped", "set0_m", "set0_r")
+    LISTS = ("label", "image_known", "trapped_whole")
 
     def __init__(self, data):
         c = data["cells"]
-        self.cols = {k: list(_array(data, ("cells", k))) for k in self.SCALARS}
-        self.cols["index"] = list(_array(data, ("cells", "index")))
-        self.cols["horizon"] = list(_array(data, ("cells", "horizon")))
-        self.cols["label"] = list(c["label"])
-        self.cols["image_known"] = list(c["image_known"])
-        self.cols["trapped_whole"] = list(c["trapped_whole"])
+        self.arrays = [k for k in self.ARRAYS if k in c]
+        self.step_keys = [k for k in ("step_h", "step_E", "step_m", "step_A") if k in c]
+        self.cols = {k: list(_array(data, ("cells", k))) for k in self.arrays}
+        self.cols.update({k: list(c[k]) for k in self.LISTS})
         ss, succ = _array(data, ("cells", "successor_start")), _array(data, ("cells", "successors"))
         self.cols["succ"] = [list(succ[ss[j]:ss[j + 1]]) for j in range(len(ss) - 1)]
         st = _array(data, ("cells", "step_start"))
-        h, E = _array(data, ("cells", "step_h")), _array(data, ("cells", "step_E"))
-        self.n = E.shape[1]
-        self.cols["steps"] = [[(h[r], E[r]) for r in range(st[j], st[j + 1])]
+        stepped = [_array(data, ("cells", k)) for k in self.step_keys]
+        self.row_shapes = [a.shape[1:] for a in stepped]
+        self.cols["steps"] = [[tuple(a[r] for a in stepped) for r in range(st[j], st[j + 1])]
                               for j in range(len(st) - 1)]
 
     @property
@@ -201,10 +203,10 @@ class Cells:
     def write(self, data):
         c = data["cells"]
         c["count"] = self.L
-        for k in self.SCALARS + ("index", "horizon"):
-            c[k] = encode_array(np.array(self.cols[k]).reshape((self.L,) + np.shape(
-                self.cols[k][0]) if self.L else (0,)), c[k]["dtype"])
-        for k in ("label", "image_known", "trapped_whole"):
+        for k in self.arrays:
+            c[k] = encode_array(np.array(self.cols[k]).reshape(
+                (self.L,) + np.shape(self.cols[k][0])), c[k]["dtype"])
+        for k in self.LISTS:
             c[k] = list(self.cols[k])
         lengths = [len(s) for s in self.cols["succ"]]
         c["successor_start"] = encode_array(np.concatenate([[0], np.cumsum(lengths)]), "<i8")
@@ -213,8 +215,9 @@ class Cells:
         rows = [r for steps in self.cols["steps"] for r in steps]
         c["step_start"] = encode_array(np.concatenate(
             [[0], np.cumsum([len(s) for s in self.cols["steps"]])]), "<i8")
-        c["step_h"] = encode_array(np.array([h for h, _ in rows], float))
-        c["step_E"] = encode_array(np.array([E for _, E in rows], float).reshape(-1, self.n, 2))
+        for i, (k, shape) in enumerate(zip(self.step_keys, self.row_shapes)):
+            c[k] = encode_array(np.array([r[i] for r in rows], float).reshape((-1,) + shape),
+                                c[k]["dtype"])
 
 
 def _label_edit(rng, data):
@@ -232,6 +235,11 @@ def _label_edit(rng, data):
         doomed_ranks = [r for r, lab in zip(col["rank"], col["label"]) if lab == "doomed"]
         if new == "safe":
             col["rank"][j], col["crossing_upper"][j], col["survival_lower"][j] = -1, np.inf, np.inf
+            if data.get("regions") and rng.random() < 0.4:   # claimed trapped instead
+                col["trapped"][j] = int(rng.integers(len(data["regions"])))
+                col["trapped_whole"][j] = bool(rng.random() < 0.5)
+                note += f", trapped in region {col['trapped'][j]}" + \
+                    (" whole" if col["trapped_whole"][j] else "")
         elif new == "undecided":
             col["rank"][j], col["crossing_upper"][j] = -1, np.inf
             col["survival_lower"][j] = min(col["survival_lower"][j], 0.0)
@@ -330,6 +338,56 @@ def _cells_edit(rng, data):
         note = f"swapped the data of cells {a} and {b}"
     cells.write(data)
     return note
+
+
+def _claims_edit(rng, data):
+    """Give a cell a new bound or rank, as a forger claiming more would: a survival bound
+    where there was none, an earlier crossing, a lower rank, a trapping region."""
+    cells = Cells(data)
+    j = int(rng.integers(cells.L))
+    col = cells.cols
+    T = float(col["horizon"][j][1])
+    key = _pick(rng, ["survival_lower", "crossing_upper", "rank", "trapped"])
+    old = col[key][j]
+    if key == "survival_lower":
+        new = float(_pick(rng, [T, T / 2, 2 * T, 1e-3, np.inf, float(rng.uniform(0, 3 * T))]))
+    elif key == "crossing_upper":
+        new = float(_pick(rng, [T, T / 2, 0.0, float(rng.uniform(0, 3 * T)), np.inf]))
+    elif key == "rank":
+        new = int(_pick(rng, [0, 1, old - 1, old + 1, -1]))
+    else:
+        if not data.get("regions"):
+            return None
+        new = int(rng.integers(-1, len(data["regions"])))
+        col["trapped_whole"][j] = bool(rng.random() < 0.5)
+    if new == old:
+        return None
+    col[key][j] = new
+    cells.write(data)
+    return f"cell {j} ({col['label'][j]}): {key} {old!r} -> {new!r}"
+
+
+FACE_KINDS = ("limit", "inflow", "invariant", "no-outflow", "open")
+
+
+def _faces_edit(rng, data):
+    """Claim another kind for a window face, or move its cover."""
+    faces = data["faces"]
+    k = int(rng.integers(len(faces)))
+    face = faces[k]
+    what = rng.integers(4)
+    if what <= 1:
+        old = face["kind"]
+        face["kind"] = _pick(rng, [x for x in FACE_KINDS if x != old])
+        return f"face {k} ({face['axis']} {face['side']}): {old} -> {face['kind']}"
+    if what == 2:
+        other = int(rng.integers(len(faces)))
+        if other == k:
+            return None
+        face["kind"], faces[other]["kind"] = faces[other]["kind"], face["kind"]
+        return f"faces {k} and {other} swapped their kinds"
+    face["side"] = "hi" if face["side"] == "lo" else "lo"
+    return f"face {k}: side turned round"
 
 
 # -- method, model and structure ---------------------------------------------------------
@@ -431,6 +489,8 @@ def _structure_edit(rng, data):
 #: The families and their edits.
 FAMILIES = {
     "label": _label_edit,
+    "claims": _claims_edit,
+    "faces": _faces_edit,
     "float-ulp": _float_edit("ulp"),
     "float-small": _float_edit("small"),
     "float-large": _float_edit("large"),

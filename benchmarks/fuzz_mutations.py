@@ -227,7 +227,8 @@ def _label_edit(rng, data):
     j = int(rng.integers(cells.L))
     col = cells.cols
     old = col["label"][j]
-    new = _pick(rng, [x for x in LABELS if x != old])
+    # promotions to safe and doomed (the forger's aim) twice as often as the others
+    new = _pick(rng, [x for x in LABELS + ("safe", "doomed") if x != old])
     col["label"][j] = new
     note = "plain"
     if rng.random() < 0.7:
@@ -344,10 +345,15 @@ def _claims_edit(rng, data):
     """Give a cell a new bound or rank, as a forger claiming more would: a survival bound
     where there was none, an earlier crossing, a lower rank, a trapping region."""
     cells = Cells(data)
-    j = int(rng.integers(cells.L))
     col = cells.cols
-    T = float(col["horizon"][j][1])
     key = _pick(rng, ["survival_lower", "crossing_upper", "rank", "trapped"])
+    # mostly the cells whose claims use the key: survival bounds of doomed and undecided
+    # cells, crossing bounds and ranks of doomed ones, regions of safe ones
+    wanted = {"survival_lower": ("doomed", "undecided"), "crossing_upper": ("doomed",),
+              "rank": ("doomed",), "trapped": ("safe",)}[key]
+    users = cells.cells_with(lambda j: col["label"][j] in wanted)
+    j = _pick(rng, users) if users and rng.random() < 0.8 else int(rng.integers(cells.L))
+    T = float(col["horizon"][j][1])
     old = col[key][j]
     if key == "survival_lower":
         new = float(_pick(rng, [T, T / 2, 2 * T, 1e-3, np.inf, float(rng.uniform(0, 3 * T))]))

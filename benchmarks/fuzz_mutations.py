@@ -373,6 +373,39 @@ def _claims_edit(rng, data):
     return f"cell {j} ({col['label'][j]}): {key} {old!r} -> {new!r}"
 
 
+def _forgery_edit(rng, data):
+    """A forger's consistent set of edits around one undecided cell: relabel it and
+    everything it reaches safe (a closed set), or drop its successors that are not safe
+    and relabel it safe, or make it and everything it reaches doomed with ranks falling
+    along the successors (largest crossing bound)."""
+    cells = Cells(data)
+    col = cells.cols
+    undecided = cells.cells_with(lambda j: col["label"][j] == "undecided")
+    if not undecided:
+        return None
+    j = _pick(rng, undecided)
+    what = _pick(rng, ["closed safe set", "successors dropped", "doomed chain"])
+    if what == "successors dropped":
+        col["succ"][j] = [d for d in col["succ"][j] if col["label"][d] in ("safe", "outside")]
+        reach = [j]
+    else:
+        reach, seen = [j], {j}
+        for c in reach:
+            for d in col["succ"][c]:
+                if d not in seen and col["label"][d] not in ("safe", "outside"):
+                    seen.add(d)
+                    reach.append(d)
+    for rank, c in enumerate(reversed(reach)):
+        if what == "doomed chain":
+            col["label"][c], col["rank"][c] = "doomed", rank + 1
+            col["crossing_upper"][c], col["survival_lower"][c] = 1e300, 0.0
+        else:
+            col["label"][c], col["rank"][c] = "safe", -1
+            col["crossing_upper"][c], col["survival_lower"][c] = np.inf, np.inf
+    cells.write(data)
+    return f"cell {j}: {what} ({len(reach)} cells relabelled)"
+
+
 FACE_KINDS = ("limit", "inflow", "invariant", "no-outflow", "open")
 
 
@@ -483,7 +516,13 @@ def _decimal(q):
 
 def _structure_edit(rng, data):
     """Remove a key, or give it a value of the wrong type."""
-    where = _pick(rng, [data, data["cells"], _pick(rng, data["faces"])])
+    places = [data, data["cells"], data["model"], data["parameters"],
+              _pick(rng, data["faces"])] + list(data.get("regions", []))
+    claim = data.get("claim")
+    if isinstance(claim, dict):
+        places += [claim, claim["region"]] + ([claim["counterexample"]] if isinstance(
+            claim.get("counterexample"), dict) else [])
+    where = _pick(rng, [p for p in places if isinstance(p, dict) and p])
     key = _pick(rng, sorted(where))
     if rng.random() < 0.5:
         del where[key]
@@ -496,6 +535,7 @@ def _structure_edit(rng, data):
 FAMILIES = {
     "label": _label_edit,
     "claims": _claims_edit,
+    "forgery": _forgery_edit,
     "faces": _faces_edit,
     "float-ulp": _float_edit("ulp"),
     "float-small": _float_edit("small"),

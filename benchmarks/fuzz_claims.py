@@ -47,6 +47,8 @@ def claim_edit(rng, data):
     if what == "until":
         old = claim.get("until")
         claim["until"] = _pick(rng, [None, "0", "1/1000", "1", "10", "1000", "-1", "x"])
+        if claim["until"] == old:
+            return None
         return f"claim.until: {old!r} -> {claim['until']!r}"
     if what == "region":
         name = _pick(rng, sorted(claim["region"]))
@@ -68,6 +70,8 @@ def claim_edit(rng, data):
     if what == "limit":
         old = example.get("limit")
         example["limit"] = _pick(rng, ["disc", "wall", "prey", "predator", None, "bogus"])
+        if example["limit"] == old:
+            return None
         return f"counterexample.limit: {old!r} -> {example['limit']!r}"
     if what == "time":
         old = list(example["crossing_time"]) if example.get("crossing_time") else None

@@ -11,6 +11,7 @@ this certificate (the fuzzer then draws again).
 from __future__ import annotations
 
 import hashlib
+import itertools
 import re
 from fractions import Fraction
 
@@ -200,6 +201,37 @@ class Cells:
             self.cols["succ"] = [[new_of[s] for s in succ if s in new_of]
                                  for succ in self.cols["succ"]]
 
+    def split(self, a):
+        """Replace cell `a` by its 2^n children, each with a copy of its data; every
+        successor list naming `a` names all the children instead."""
+        n = len(self.cols["index"][a])
+        children = list(range(self.L, self.L + (1 << n)))
+        self.reorder(list(range(self.L)) + [a] * (1 << n), renumber=False)
+        for child, offset in zip(children, itertools.product((0, 1), repeat=n)):
+            self.cols["depth"][child] = self.cols["depth"][a] + 1
+            self.cols["index"][child] = 2 * np.asarray(self.cols["index"][a]) + offset
+        self.cols["succ"] = [[t for s in succ for t in (children if s == a else [s])]
+                             for succ in self.cols["succ"]]
+        self.reorder([j for j in range(self.L) if j != a])
+
+    def merge(self, a):
+        """Replace cell `a` and its siblings (all leaves) by their parent, which takes the
+        data of `a`; successor lists naming a sibling name the parent. None when the
+        siblings are not all leaves."""
+        depth, index = self.cols["depth"][a], np.asarray(self.cols["index"][a])
+        if depth == 0:
+            return None
+        parent = index // 2
+        siblings = [j for j in range(self.L) if self.cols["depth"][j] == depth and
+                    np.array_equal(np.asarray(self.cols["index"][j]) // 2, parent)]
+        if len(siblings) != 1 << len(index):
+            return None
+        self.cols["depth"][a], self.cols["index"][a] = depth - 1, parent
+        self.cols["succ"] = [sorted({a if s in siblings else s for s in succ})
+                             for succ in self.cols["succ"]]
+        self.reorder([j for j in range(self.L) if j == a or j not in siblings])
+        return f"merged cell {a} with its siblings into their parent, with the data of {a}"
+
     def write(self, data):
         c = data["cells"]
         c["count"] = self.L
@@ -316,9 +348,16 @@ def _successors_edit(rng, data):
 def _cells_edit(rng, data):
     cells = Cells(data)
     L = cells.L
-    what = rng.integers(5)
+    what = rng.integers(7)
     a, b = (int(x) for x in rng.choice(L, 2, replace=False))
-    if what == 0:
+    if what == 5:
+        note = f"split cell {a} into its children, each with its data"
+        cells.split(a)
+    elif what == 6:
+        note = cells.merge(a)
+        if note is None:
+            return None
+    elif what == 0:
         renumber = rng.random() < 0.5
         cells.reorder([j for j in range(L) if j != a], renumber)
         note = f"dropped cell {a} ({'renumbered' if renumber else 'numbers kept'})"

@@ -14,7 +14,7 @@ from fractions import Fraction
 
 import numpy as np
 
-from fuzz_mutations import _array, _pick, _put
+from fuzz_mutations import decoded, pick, store
 from fuzz_oracle import EPS, later
 
 
@@ -30,31 +30,31 @@ def claim_edit(rng, data):
     claim = data.get("claim")
     if not isinstance(claim, dict):
         return None
-    what = _pick(rng, ["verdict", "expect", "until", "region", "point", "limit", "time",
+    what = pick(rng, ["verdict", "expect", "until", "region", "point", "limit", "time",
                        "flow", "volume", "drop"])
     example = claim.get("counterexample")
     if what == "verdict":
         old = claim["verdict"]
-        claim["verdict"] = _pick(rng, [v for v in ("proven", "refuted", "inconclusive")
+        claim["verdict"] = pick(rng, [v for v in ("proven", "refuted", "inconclusive")
                                        if v != old])
         return f"claim.verdict: {old} -> {claim['verdict']}"
     if what == "expect":
         old = claim["expect"]
-        claim["expect"] = _pick(rng, [v for v in ("safe", "doomed", "stays") if v != old])
+        claim["expect"] = pick(rng, [v for v in ("safe", "doomed", "stays") if v != old])
         if claim["expect"] == "stays" and claim.get("until") is None:
-            claim["until"] = _pick(rng, ["1", "10", "1/10"])
+            claim["until"] = pick(rng, ["1", "10", "1/10"])
         return f"claim.expect: {old} -> {claim['expect']} (until {claim.get('until')})"
     if what == "until":
         old = claim.get("until")
-        claim["until"] = _pick(rng, [None, "0", "1/1000", "1", "10", "1000", "-1", "x"])
+        claim["until"] = pick(rng, [None, "0", "1/1000", "1", "10", "1000", "-1", "x"])
         if claim["until"] == old:
             return None
         return f"claim.until: {old!r} -> {claim['until']!r}"
     if what == "region":
-        name = _pick(rng, sorted(claim["region"]))
+        name = pick(rng, sorted(claim["region"]))
         j = int(rng.integers(2))
         old = claim["region"][name][j]
-        step = _pick(rng, [Fraction(1, 10 ** 9), Fraction(1, 100), Fraction(1, 10)])
+        step = pick(rng, [Fraction(1, 10 ** 9), Fraction(1, 100), Fraction(1, 10)])
         new = Fraction(old) + step * (1 if rng.random() < 0.5 else -1)
         claim["region"][name][j] = f"{new.numerator}/{new.denominator}"
         return f"claim.region.{name}[{j}]: {old} -> {claim['region'][name][j]}"
@@ -63,13 +63,13 @@ def claim_edit(rng, data):
     if what == "point":
         i = int(rng.integers(len(example["point"])))
         old = example["point"][i]
-        example["point"][i] = float(_pick(rng, [np.nextafter(old, np.inf),
+        example["point"][i] = float(pick(rng, [np.nextafter(old, np.inf),
                                                 np.nextafter(old, -np.inf), old + 0.01,
                                                 old - 0.01, old + 0.1, old - 0.1]))
         return f"counterexample.point[{i}]: {old!r} -> {example['point'][i]!r}"
     if what == "limit":
         old = example.get("limit")
-        example["limit"] = _pick(rng, ["disc", "wall", "prey", "predator", None, "bogus"])
+        example["limit"] = pick(rng, ["disc", "wall", "prey", "predator", None, "bogus"])
         if example["limit"] == old:
             return None
         return f"counterexample.limit: {old!r} -> {example['limit']!r}"
@@ -79,7 +79,7 @@ def claim_edit(rng, data):
         j = int(rng.integers(2))
         value = [lo, hi][j]
         base = value if value is not None else 1.0
-        new = _pick(rng, [None, 0.0, float(np.nextafter(base, -np.inf)),
+        new = pick(rng, [None, 0.0, float(np.nextafter(base, -np.inf)),
                           float(np.nextafter(base, np.inf)), base / 2, base * 2, base + 1])
         pair = [lo, hi]
         pair[j] = new
@@ -89,20 +89,20 @@ def claim_edit(rng, data):
         sites = _claim_float_sites(claim)
         if not sites:
             return None
-        site = _pick(rng, sites)
-        a = _array(data, site)
+        site = pick(rng, sites)
+        a = decoded(data, site)
         flat = a.reshape(-1)
         if not flat.size:
             return None
         i = int(rng.integers(flat.size))
         old = float(flat[i])
-        flat[i] = _pick(rng, [np.nextafter(old, np.inf), np.nextafter(old, -np.inf),
+        flat[i] = pick(rng, [np.nextafter(old, np.inf), np.nextafter(old, -np.inf),
                               old * 1.001, old * 0.5, -old, np.nan])
-        _put(data, site, a)
+        store(data, site, a)
         return f"{'.'.join(site)}[{i}]: {old!r} -> {float(flat[i])!r}"
     if what == "volume":
         old = claim.get("undecided_volume")
-        claim["undecided_volume"] = _pick(rng, [0.0, -1.0, 1e-9, None, "x"])
+        claim["undecided_volume"] = pick(rng, [0.0, -1.0, 1e-9, None, "x"])
         return f"claim.undecided_volume: {old!r} -> {claim['undecided_volume']!r}"
     example.pop("flow", None)
     return "counterexample.flow removed"

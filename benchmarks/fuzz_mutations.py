@@ -36,11 +36,13 @@ def _get(data, path):
     return data
 
 
-def _array(data, path):
+def decoded(data, path):
+    """The array stored at `path` (a tuple of keys) of a raw certificate, decoded."""
     return decode_array(_get(data, path))
 
 
-def _put(data, path, a):
+def store(data, path, a):
+    """Encode `a` at `path` of a raw certificate, with the stored array's dtype."""
     parent = _get(data, path[:-1])
     parent[path[-1]] = encode_array(a, parent[path[-1]]["dtype"])
 
@@ -52,7 +54,7 @@ def _float_sites(data):
     for i, face in enumerate(data["faces"]):
         for key in ("cover_lo", "cover_hi"):
             sites.append(("faces", i, key))
-    return [s for s in sites if _array(data, s).size]
+    return [s for s in sites if decoded(data, s).size]
 
 
 def _int_sites(data):
@@ -63,7 +65,7 @@ def _int_sites(data):
         for key in ("cover_depths", "cover_index", "cover_class"):
             if key in region:
                 sites.append(("regions", k, key))
-    return [s for s in sites if _array(data, s).size]
+    return [s for s in sites if decoded(data, s).size]
 
 
 def _exact_sites(data):
@@ -79,7 +81,8 @@ def _exact_sites(data):
     return sites
 
 
-def _pick(rng, items):
+def pick(rng, items):
+    """One of `items`, drawn uniformly by `rng` (any items, unlike ``rng.choice``)."""
     return items[int(rng.integers(len(items)))]
 
 
@@ -90,15 +93,15 @@ def _element(rng, data, site, a):
     if site[-1] in ("crossing_upper", "survival_lower") and rng.random() < 0.8:
         live = np.flatnonzero(np.isfinite(flat) & (flat != 0))
         if len(live):
-            return int(_pick(rng, live))
+            return int(pick(rng, live))
     return int(rng.integers(flat.size))
 
 
 # -- numbers -----------------------------------------------------------------------------
 def _float_edit(kind):
     def edit(rng, data):
-        site = _pick(rng, _float_sites(data))
-        a = _array(data, site)
+        site = pick(rng, _float_sites(data))
+        a = decoded(data, site)
         flat = a.reshape(-1)
         i = _element(rng, data, site, a)
         old = float(flat[i])
@@ -110,38 +113,38 @@ def _float_edit(kind):
             new = float(rng.choice([0.5, 0.9, 1.1, 2.0, 10.0, 0.1, -1.0])) * old \
                 if rng.random() < 0.7 else old + float(rng.choice([-1, 1, -10, 10]))
         else:
-            new = float(_pick(rng, SPECIAL_FLOATS))
+            new = float(pick(rng, SPECIAL_FLOATS))
         if np.array_equal(np.float64(new), np.float64(old), equal_nan=True) and \
                 np.signbit(new) == np.signbit(old):
             return None
         flat[i] = new
-        _put(data, site, a)
+        store(data, site, a)
         return f"{'.'.join(map(str, site))}[{i}]: {old!r} -> {new!r}"
     return edit
 
 
 def _int_edit(rng, data):
-    site = _pick(rng, _int_sites(data))
-    a = _array(data, site)
+    site = pick(rng, _int_sites(data))
+    a = decoded(data, site)
     flat = a.reshape(-1)
     i = int(rng.integers(flat.size))
     old = int(flat[i])
-    new = _pick(rng, [old + 1, old - 1, -1, 0, int(rng.integers(-2, max(abs(old), 4) + 3)),
+    new = pick(rng, [old + 1, old - 1, -1, 0, int(rng.integers(-2, max(abs(old), 4) + 3)),
                       1 << 40, -(1 << 62)])
     if new == old:
         return None
     flat[i] = new
-    _put(data, site, a)
+    store(data, site, a)
     return f"{'.'.join(map(str, site))}[{i}]: {old} -> {new}"
 
 
 def _exact_edit(rng, data):
-    site = _pick(rng, _exact_sites(data))
+    site = pick(rng, _exact_sites(data))
     old = _get(data, site)
     q = Fraction(old)
     choice = rng.integers(6)
     if choice == 0:
-        new = _pick(rng, SPECIAL_TEXTS)
+        new = pick(rng, SPECIAL_TEXTS)
     else:
         scale = {1: Fraction(1, 10 ** 12), 2: Fraction(1, 10 ** 6), 3: Fraction(1, 10),
                  4: Fraction(1), 5: Fraction(2)}[int(choice)]
@@ -169,12 +172,12 @@ class Cells:
         c = data["cells"]
         self.arrays = [k for k in self.ARRAYS if k in c]
         self.step_keys = [k for k in ("step_h", "step_E", "step_m", "step_A") if k in c]
-        self.cols = {k: list(_array(data, ("cells", k))) for k in self.arrays}
+        self.cols = {k: list(decoded(data, ("cells", k))) for k in self.arrays}
         self.cols.update({k: list(c[k]) for k in self.LISTS})
-        ss, succ = _array(data, ("cells", "successor_start")), _array(data, ("cells", "successors"))
+        ss, succ = decoded(data, ("cells", "successor_start")), decoded(data, ("cells", "successors"))
         self.cols["succ"] = [list(succ[ss[j]:ss[j + 1]]) for j in range(len(ss) - 1)]
-        st = _array(data, ("cells", "step_start"))
-        stepped = [_array(data, ("cells", k)) for k in self.step_keys]
+        st = decoded(data, ("cells", "step_start"))
+        stepped = [decoded(data, ("cells", k)) for k in self.step_keys]
         self.row_shapes = [a.shape[1:] for a in stepped]
         self.cols["steps"] = [[tuple(a[r] for a in stepped) for r in range(st[j], st[j + 1])]
                               for j in range(len(st) - 1)]
@@ -260,7 +263,7 @@ def _label_edit(rng, data):
     col = cells.cols
     old = col["label"][j]
     # promotions to safe and doomed (the forger's aim) twice as often as the others
-    new = _pick(rng, [x for x in LABELS + ("safe", "doomed") if x != old])
+    new = pick(rng, [x for x in LABELS + ("safe", "doomed") if x != old])
     col["label"][j] = new
     note = "plain"
     if rng.random() < 0.7:
@@ -279,8 +282,8 @@ def _label_edit(rng, data):
         elif new == "outside":
             col["rank"][j], col["crossing_upper"][j], col["survival_lower"][j] = 0, 0.0, 0.0
         else:
-            col["rank"][j] = _pick(rng, [0, max(doomed_ranks, default=0) + 1])
-            col["crossing_upper"][j] = float(_pick(rng, [1e3, 1e308, col["horizon"][j][1]]))
+            col["rank"][j] = pick(rng, [0, max(doomed_ranks, default=0) + 1])
+            col["crossing_upper"][j] = float(pick(rng, [1e3, 1e308, col["horizon"][j][1]]))
             col["survival_lower"][j] = 0.0
     cells.write(data)
     return f"cell {j}: {old} -> {new} ({note})"
@@ -291,7 +294,7 @@ def _steps_edit(rng, data):
     have = cells.cells_with(lambda j: len(cells.cols["steps"][j]) > 0)
     if not have:
         return None
-    j = _pick(rng, have)
+    j = pick(rng, have)
     steps = cells.cols["steps"][j]
     k = int(rng.integers(len(steps)))
     what = rng.integers(4)
@@ -308,7 +311,7 @@ def _steps_edit(rng, data):
         steps[k], steps[k + 1] = steps[k + 1], steps[k]
         note = f"swapped steps {k} and {k + 1}"
     else:
-        other = _pick(rng, have)
+        other = pick(rng, have)
         if other == j:
             return None
         cells.cols["steps"][j], cells.cols["steps"][other] = cells.cols["steps"][other], steps
@@ -325,7 +328,7 @@ def _successors_edit(rng, data):
     if what == 0 and succ:
         note = f"dropped successor {succ.pop(int(rng.integers(len(succ))))}"
     elif what == 1 and succ:
-        s = _pick(rng, succ)
+        s = pick(rng, succ)
         succ.append(s)
         note = f"duplicated successor {s}"
     elif what == 2 and len(succ) > 1:
@@ -385,21 +388,21 @@ def _claims_edit(rng, data):
     where there was none, an earlier crossing, a lower rank, a trapping region."""
     cells = Cells(data)
     col = cells.cols
-    key = _pick(rng, ["survival_lower", "crossing_upper", "rank", "trapped"])
+    key = pick(rng, ["survival_lower", "crossing_upper", "rank", "trapped"])
     # mostly the cells whose claims use the key: survival bounds of doomed and undecided
     # cells, crossing bounds and ranks of doomed ones, regions of safe ones
     wanted = {"survival_lower": ("doomed", "undecided"), "crossing_upper": ("doomed",),
               "rank": ("doomed",), "trapped": ("safe",)}[key]
     users = cells.cells_with(lambda j: col["label"][j] in wanted)
-    j = _pick(rng, users) if users and rng.random() < 0.8 else int(rng.integers(cells.L))
+    j = pick(rng, users) if users and rng.random() < 0.8 else int(rng.integers(cells.L))
     T = float(col["horizon"][j][1])
     old = col[key][j]
     if key == "survival_lower":
-        new = float(_pick(rng, [T, T / 2, 2 * T, 1e-3, np.inf, float(rng.uniform(0, 3 * T))]))
+        new = float(pick(rng, [T, T / 2, 2 * T, 1e-3, np.inf, float(rng.uniform(0, 3 * T))]))
     elif key == "crossing_upper":
-        new = float(_pick(rng, [T, T / 2, 0.0, float(rng.uniform(0, 3 * T)), np.inf]))
+        new = float(pick(rng, [T, T / 2, 0.0, float(rng.uniform(0, 3 * T)), np.inf]))
     elif key == "rank":
-        new = int(_pick(rng, [0, 1, old - 1, old + 1, -1]))
+        new = int(pick(rng, [0, 1, old - 1, old + 1, -1]))
     else:
         if not data.get("regions"):
             return None
@@ -422,8 +425,8 @@ def _forgery_edit(rng, data):
     undecided = cells.cells_with(lambda j: col["label"][j] == "undecided")
     if not undecided:
         return None
-    j = _pick(rng, undecided)
-    what = _pick(rng, ["closed safe set", "successors dropped", "doomed chain"])
+    j = pick(rng, undecided)
+    what = pick(rng, ["closed safe set", "successors dropped", "doomed chain"])
     if what == "successors dropped":
         col["succ"][j] = [d for d in col["succ"][j] if col["label"][d] in ("safe", "outside")]
         reach = [j]
@@ -456,7 +459,7 @@ def _faces_edit(rng, data):
     what = rng.integers(4)
     if what <= 1:
         old = face["kind"]
-        face["kind"] = _pick(rng, [x for x in FACE_KINDS if x != old])
+        face["kind"] = pick(rng, [x for x in FACE_KINDS if x != old])
         return f"face {k} ({face['axis']} {face['side']}): {old} -> {face['kind']}"
     if what == 2:
         other = int(rng.integers(len(faces)))
@@ -471,17 +474,17 @@ def _faces_edit(rng, data):
 # -- method, model and structure ---------------------------------------------------------
 def _method_edit(rng, data):
     method = data["method"]
-    key = _pick(rng, sorted(method) + ["frames", "order", "order", "(all)"])
+    key = pick(rng, sorted(method) + ["frames", "order", "order", "(all)"])
     if key == "(all)":
-        data["method"] = _pick(rng, [{}, [], None, "qr"])
+        data["method"] = pick(rng, [{}, [], None, "qr"])
         return "method replaced"
     if key == "frames":
-        new = _pick(rng, ["qr", "qr+parallelepiped", "parallelepiped", "", None, "(gone)"])
+        new = pick(rng, ["qr", "qr+parallelepiped", "parallelepiped", "", None, "(gone)"])
     elif key == "order":
-        new = _pick(rng, [1, 2, 3, 4, 5, 6, 8, 0, 9, -1, "4", 4.0, True, None])
+        new = pick(rng, [1, 2, 3, 4, 5, 6, 8, 0, 9, -1, "4", 4.0, True, None])
     else:
         old = method[key]
-        new = _pick(rng, [None, "x", 0, -1, 1e308, float("nan")] +
+        new = pick(rng, [None, "x", 0, -1, 1e308, float("nan")] +
                     ([old * 2, old / 2] if isinstance(old, (int, float)) and
                      not isinstance(old, bool) else [not old]))
     old = method.get(key, "(gone)")
@@ -505,9 +508,9 @@ def _model_edit(rng, data):
         numbers = list(NUMBER.finditer(text))
         if not numbers:
             return None
-        m = _pick(rng, numbers)
+        m = pick(rng, numbers)
         old = Fraction(m.group(1))
-        new = old + _pick(rng, [Fraction(1, 10 ** 9), Fraction(1, 10 ** 3), Fraction(1, 10),
+        new = old + pick(rng, [Fraction(1, 10 ** 9), Fraction(1, 10 ** 3), Fraction(1, 10),
                                 Fraction(1)]) * (1 if rng.random() < 0.5 else -1)
         text = text[:m.start()] + _decimal(new) + text[m.end():]
         note = f"model number {m.group(1)} -> {_decimal(new)}"
@@ -515,15 +518,15 @@ def _model_edit(rng, data):
         swaps = [(m.start(), m.group()) for m in re.finditer(r"<=|>=", text)]
         if not swaps:
             return None
-        at, sign = _pick(rng, swaps)
+        at, sign = pick(rng, swaps)
         text = text[:at] + ("<=" if sign == ">=" else ">=") + text[at + 2:]
         note = f"inequality {sign} at {at} turned round"
     elif what == 5:
         model["sha256"] = "0" * 64
         return "model.sha256 zeroed"
     elif what == 6:
-        key = _pick(rng, ["version", "format", "states", "name", "summary"])
-        value = {"version": _pick(rng, [2, 4, "3", None]), "format": "certify",
+        key = pick(rng, ["version", "format", "states", "name", "summary"])
+        value = {"version": pick(rng, [2, 4, "3", None]), "format": "certify",
                  "states": list(reversed(data["states"])), "name": "other",
                  "summary": {"forged": True}}[key]
         if key == "name":
@@ -556,17 +559,17 @@ def _decimal(q):
 def _structure_edit(rng, data):
     """Remove a key, or give it a value of the wrong type."""
     places = [data, data["cells"], data["model"], data["parameters"],
-              _pick(rng, data["faces"])] + list(data.get("regions", []))
+              pick(rng, data["faces"])] + list(data.get("regions", []))
     claim = data.get("claim")
     if isinstance(claim, dict):
         places += [claim, claim["region"]] + ([claim["counterexample"]] if isinstance(
             claim.get("counterexample"), dict) else [])
-    where = _pick(rng, [p for p in places if isinstance(p, dict) and p])
-    key = _pick(rng, sorted(where))
+    where = pick(rng, [p for p in places if isinstance(p, dict) and p])
+    key = pick(rng, sorted(where))
     if rng.random() < 0.5:
         del where[key]
         return f"key {key!r} removed"
-    where[key] = _pick(rng, [None, [], {}, "x", -1, 1.5, [[0]]])
+    where[key] = pick(rng, [None, [], {}, "x", -1, 1.5, [[0]]])
     return f"key {key!r} given a wrong type"
 
 

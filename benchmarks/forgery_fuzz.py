@@ -10,8 +10,7 @@ For each subject (:data:`SUBJECTS`: three models proven at low depth, two claim
 certificates of ``certify claim``, and a version-2 certificate from the tests' data) it
 writes the certificate, checks it VALID, and checks its own claims against simulation at
 sample points of every cell (a cross-check of the prover and of the oracle). Then, per
-mutant,
-it makes ONE random edit of a family of :data:`FAMILIES` to a copy of the
+mutant, it makes ONE random edit of a family of :data:`FAMILIES` to a copy of the
 certificate (decoded, edited, encoded again), and runs the independent checker
 (``check_certificate``, one process). The outcome of a mutant is one of
 

@@ -388,6 +388,31 @@ class Program:
         inputs[:, states.shape[1]:] = params
         return self.point(inputs)
 
+    def point_jacobian(self, states, params, steps):
+        """Central-difference Jacobian in the leading inputs (plain floats, not rigorous).
+
+        Parameters
+        ----------
+        states : ndarray, shape (N, n_states)
+        params : sequence of float
+            As for :meth:`point_at`.
+        steps : ndarray, shape (n_states,)
+            The difference step of each state.
+
+        Returns
+        -------
+        ndarray, shape (N, n_outputs, n_states)
+        """
+        states = np.asarray(states, dtype=float)
+        n = states.shape[1]
+        out = np.empty((len(states), self.n_outputs, n))
+        for k in range(n):
+            d = np.zeros(n)
+            d[k] = steps[k]
+            out[:, :, k] = (self.point_at(states + d, params)
+                            - self.point_at(states - d, params)) / (2 * steps[k])
+        return out
+
 
 def compile_program(exprs, inputs):
     """Compile expressions into one program.

@@ -115,12 +115,7 @@ def time_scale(model, samples=SAMPLES):
         inside = np.all(programs.limits.point_at(points, params) >= 0, axis=1)
         if inside.any():
             points = points[inside]
-        jacobian = np.empty((len(points), n, n))
-        for k in range(n):
-            d = np.zeros(n)
-            d[k] = 1e-6 * (hi[k] - lo[k])
-            jacobian[:, :, k] = (programs.field.point_at(points + d, params)
-                                 - programs.field.point_at(points - d, params)) / (2 * d[k])
+        jacobian = programs.field.point_jacobian(points, params, 1e-6 * (hi - lo))
         usable = np.all(np.isfinite(jacobian), axis=(1, 2))
         radius = (np.max(np.abs(np.linalg.eigvals(jacobian[usable])), axis=1)
                   if usable.any() else np.array([np.nan]))

@@ -58,6 +58,11 @@ COARSE_DIRECTIONS = 256
 SCALE_STEPS = (2.0, 2.0 ** 0.5, 2.0 ** 0.25, 2.0 ** 0.125)
 #: The box B is the bounding box of the ellipsoid {V <= level} widened by this factor.
 BOX_MARGIN = 1.25
+#: Central-difference step, as a share of the window's sides, of the linearisation of a
+#: model with kinks (abs, min, max), which has no Jacobian program.
+KINK_STEP = 1e-7
+#: Newton steps from each unresolved box of such a model.
+KINK_NEWTON_STEPS = 20
 
 
 @dataclass(frozen=True)
@@ -444,8 +449,8 @@ def _candidates(programs, params, model, centre, rng):
     """
     n = len(centre)
     mid = np.array([0.5 * (a + b) for a, b in params], float)
-    jac = programs.jacobian.point(np.concatenate([centre, mid])).reshape(n, n)
     width = np.array([float(b - a) for a, b in model.window])
+    jac = _linearisation(programs, centre, mid, width)
     samples = _parameter_samples(params, rng)
     out = []
     for scale in (width, np.where(np.abs(centre) > 0, np.abs(centre), width), np.ones(n)):
@@ -465,6 +470,49 @@ def _candidates(programs, params, model, centre, rng):
                 best, scale = found, trial
     found = [t[0] for t in out] + ([best] if best is not start else [])
     return sorted(found, key=lambda t: -t[0])
+
+
+def _linearisation(programs, point, mid, width):
+    """The float Jacobian of the field at `point`: from its program, or by central
+    differences for models with kinks (which have none; the point lies off the kinks)."""
+    n = len(point)
+    if programs.jacobian is not None:
+        return programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n)
+    return programs.field.point_jacobian(point[None], mid, KINK_STEP * width)[0]
+
+
+def _kink_estimates(model, programs, params, found):
+    """Float estimates of the stable equilibria inside the limits of a model with kinks.
+
+    Its equilibria are not proven (:func:`certify.points.find_equilibria` only excludes
+    them), so Newton's method with a central-difference Jacobian starts from the centre
+    of each box the search left unresolved; the ends inside the window, inside the
+    limits, with eigenvalues of negative real part, without repeats. Only a region's
+    invariance is proven, not the equilibrium inside it.
+    """
+    mid = np.array([0.5 * (a + b) for a, b in params], float)
+    lo = np.array([float(a) for a, _ in model.window])
+    hi = np.array([float(b) for _, b in model.window])
+    width = hi - lo
+    estimates = []
+    for box in found.unresolved:
+        x = 0.5 * (box[:, 0] + box[:, 1])
+        for _ in range(KINK_NEWTON_STEPS):
+            jac = _linearisation(programs, x, mid, width)
+            if not np.all(np.isfinite(jac)) or np.linalg.det(jac) == 0:
+                break
+            x = x - np.linalg.solve(jac, programs.field.point_at(x[None], mid)[0])
+        f = programs.field.point_at(x[None], mid)[0]
+        if not (np.all(np.isfinite(x)) and np.all(np.abs(f) <= 1e-9 * (1 + np.abs(x)))
+                and np.all((lo <= x) & (x <= hi))):
+            continue
+        if any(np.all(np.abs(x - e) <= 1e-7 * width) for e in estimates):
+            continue
+        inside = not programs.limits.n_outputs or \
+            np.all(programs.limits.point_at(x[None], mid) > 0)
+        if inside and np.all(np.linalg.eigvals(_linearisation(programs, x, mid, width)).real < 0):
+            estimates.append(x)
+    return estimates
 
 
 def _region_at(model, programs, params, point, rng, max_depth, max_boxes):
@@ -497,7 +545,8 @@ def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000,
     ----------
     model : certify.model.Model
     programs : certify.taylor.FlowPrograms
-        Of Taylor order at least 2 (the Jacobian is needed).
+        Of Taylor order at least 2 (the Jacobian is needed), or of order 1 for a model
+        with kinks (linearised by central differences at float equilibrium estimates).
     params : sequence of (float, float)
         Parameter enclosures.
     max_depth : int
@@ -513,19 +562,22 @@ def find_regions(model, programs, params, *, max_depth=16, max_boxes=200_000,
     """
     from .points import find_equilibria
 
-    if programs.jacobian is None or model.uses_kinks:
-        return RegionSearch((), ("the model has no Jacobian (abs, min or max)",))
+    if programs.jacobian is None and not model.uses_kinks:
+        return RegionSearch((), ("the flow programs have no Jacobian (Taylor order 1)",))
     rng = np.random.default_rng(20261204)
     regions, notes = [], []
     with np.errstate(all="ignore"):
-        for eq in (equilibria if equilibria is not None
-                   else find_equilibria(model)).equilibria:
-            if eq.stability != "stable" or eq.limits != "inside":
-                continue
-            region, note = _region_at(model, programs, params, eq.centre, rng,
+        found = equilibria if equilibria is not None else find_equilibria(model)
+        if model.uses_kinks:
+            points = _kink_estimates(model, programs, params, found)
+        else:
+            points = [eq.centre for eq in found.equilibria
+                      if eq.stability == "stable" and eq.limits == "inside"]
+        for point in points:
+            region, note = _region_at(model, programs, params, point, rng,
                                       max_depth, max_boxes)
             if region is None:
-                notes.append(f"equilibrium near {np.round(eq.centre, 6).tolist()}: {note}")
+                notes.append(f"equilibrium near {np.round(point, 6).tolist()}: {note}")
             else:
                 regions.append(region)
     return RegionSearch(tuple(regions), tuple(notes))

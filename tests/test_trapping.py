@@ -11,6 +11,9 @@ References named beside the checks:
   ``solve_ivp`` (DOP853, rtol 1e-10, atol 1e-12).
 * The damped linear oscillator ``x' = y, y' = -x - y/2`` (closed form: eigenvalues
   ``(-1/2 +- i sqrt(15)/2) / 2``, a stable focus at 0).
+* The same oscillator with a stiffer spring beyond ``x = 1`` (a ``max`` kink, our own
+  toy): below the kink it is the linear oscillator, so its rest state is 0 with the
+  eigenvalues above.
 """
 
 from fractions import Fraction
@@ -50,6 +53,7 @@ y = "-k*x - c*y"
 x_cap = "x <= 1.5"
 x_floor = "x >= -1.5"
 """
+KINKED = OSCILLATOR.replace('"-k*x - c*y"', '"-k*x - c*y - 4*max(x - 1, 0)"')
 PENDULUM = ROOT / "tests" / "data" / "prove_damped_pendulum.toml"
 FOOD_CHAIN = ROOT / "models" / "microbial_food_chain.toml"
 
@@ -89,9 +93,10 @@ def _V(region, x):
     return np.einsum("ki,ij,kj->k", d, region.matrix, d)
 
 
-@pytest.fixture(scope="module", params=["oscillator", "pendulum", "food_chain"])
+@pytest.fixture(scope="module", params=["oscillator", "kinked", "pendulum", "food_chain"])
 def case(request):
-    model = {"oscillator": _oscillator, "pendulum": lambda: load_model(PENDULUM),
+    model = {"oscillator": _oscillator, "kinked": lambda: parse_model(KINKED),
+             "pendulum": lambda: load_model(PENDULUM),
              "food_chain": lambda: load_model(FOOD_CHAIN)}[request.param]()
     return model, _region(model)
 
@@ -181,6 +186,21 @@ def test_oscillator_certificate_is_valid_and_uses_the_region(oscillator_cert):
     with np.errstate(all="ignore"):  # as prove() does: NaN marks unusable bounds
         plain = label_cells(type(proof.facts)(**{**proof.facts.__dict__, "trapped": None}))
     assert (plain.label == "safe").sum() < (proof.labelling.label == "safe").sum()
+    result = check_certificate(cert, jobs=1)
+    assert result.valid, result.failures[:3]
+
+
+def test_kinked_certificate_is_valid_and_uses_the_region(tmp_path):
+    # a model with a kink is stepped at order 1 and has no Jacobian program; its region
+    # is linearised by central differences and proven with the natural interval form,
+    # and the checker re-verifies it with its own arithmetic
+    proof = prove(parse_model(KINKED), method=Method(), max_depth=5)
+    assert len(proof.trapping.regions) == 1
+    trapped = proof.facts.trapped >= 0
+    assert trapped.any()
+    assert np.all(proof.labelling.label[trapped] == "safe")
+    cert = tmp_path / "kinked.json.gz"
+    write_certificate(cert, certificate_data(proof, {}))
     result = check_certificate(cert, jobs=1)
     assert result.valid, result.failures[:3]
 

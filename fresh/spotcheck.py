@@ -11,7 +11,7 @@ events on every limit margin) up to a long horizon. The right-hand sides and mar
 below are transcribed by hand from the model files, independently of certify's parser.
 A ``safe`` start that crosses, a ``doomed`` start that does not cross by its proven
 upper bound, or any labelled start crossing before its proven lower bound, is a
-contradiction (printed, and appended to fresh/SOUNDNESS.txt).
+contradiction (printed, and appended to SOUNDNESS.txt at the worktree root).
 """
 
 from __future__ import annotations
@@ -49,13 +49,13 @@ def cstr(p):
     return f, lambda x: [400 - x[1]]
 
 
-def glucose(p):
+def glucose(p, kink=True):
     p1, p2, p3, n, gam, h, Gb, Ib = 0.03, 0.02, 1.3e-5, 0.2, 0.005, 85, 90, 10
 
     def f(t, x):
         G, X, I = x
         return [-(p1 + X) * G + p1 * Gb, -p2 * X + p3 * (I - Ib),
-                -n * (I - Ib) + gam * max(G - h, 0)]
+                -n * (I - Ib) + gam * (max(G - h, 0) if kink else G - h)]
     return f, lambda x: [x[0] - 70]
 
 
@@ -85,6 +85,8 @@ def npzd(p):
 MODELS = {"seihr_beds": (seihr, {}, 3000.0),
           "cstr_jacket": (cstr, {}, 300.0),
           "glucose_minimal": (glucose, {}, 5000.0),
+          "glucose_wideX": (glucose, {}, 5000.0),
+          "glucose_smooth": (lambda p: glucose(p, kink=False), {}, 5000.0),
           "food_chain_hp": (food_chain, {}, 5000.0),
           "npzd_mixing": (npzd, {"m": (0.02, 0.04)}, 5000.0)}
 
@@ -145,7 +147,7 @@ def main(argv=None):
             print("CONTRADICTION", line, flush=True)
     print(stem, "labels of the sampled starts:", counts, "contradictions:", len(bad))
     if bad:
-        with open(Path(__file__).with_name("SOUNDNESS.txt"), "a") as out:
+        with open(Path(__file__).resolve().parent.parent / "SOUNDNESS.txt", "a") as out:
             out.write("\n".join(bad) + "\n")
     return 1 if bad else 0
 

@@ -2,7 +2,7 @@
 
 Run from the worktree root::
 
-    PYTHONPATH=$PWD /work/main/.venv/bin/python fresh/spotcheck.py MODEL CERT [--n 2000]
+    .venv/bin/python benchmarks/fresh_models/spotcheck.py MODEL CERT [--n 2000]
 
 Draws N uniform starts in the window (and, for interval parameters, a uniform constant
 value per start), asks the certificate for each start's label and crossing-time bounds,

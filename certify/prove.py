@@ -52,6 +52,9 @@ FOLLOW_GROWTH_LIMIT = 4.0
 #: Cells per piece (and worker) of a followed round that the time limit cuts short: the
 #: pieces flowed before the limit are kept, the one it interrupts is lost.
 FOLLOW_PIECE = 2048
+#: Labellings' worth of time a followed round keeps from the time limit for its own
+#: labelling, the decisive passes (their step ends, a pass or two) and the last one.
+FOLLOW_RESERVE = 5
 #: Most times a labelling drops the successors that image sets miss and labels again
 #: (:meth:`_Prover._prune_successors`): leaves decided in one time free others. A
 #: labelling costs as much as the first, so it is redone only when the dropped
@@ -369,8 +372,9 @@ class _Prover:
     def _analyse(self, nodes, follow=None):
         """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
         where they leave their cells and stop at the growth limit `follow`
-        (:meth:`extend`), only as many as end before the deadline (less the time of two
-        labellings). Returns the nodes flowed and their flows (None if none)."""
+        (:meth:`extend`), only as many as end before the deadline (less the time of
+        FOLLOW_RESERVE labellings). Returns the nodes flowed and their flows (None if
+        none)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -426,11 +430,12 @@ class _Prover:
 
     def _flows_in_time(self, tubes, cell_lo, cell_hi):
         """The flows of the first cells, in pieces of FOLLOW_PIECE cells a worker, that
-        end before the deadline less two labellings (the one of these tubes and the last
-        of the round); None when not one piece does. Without a deadline, all of them."""
+        end before the deadline less FOLLOW_RESERVE labellings (the one of these tubes,
+        the decisive passes' and the last of the round); None when not one piece does.
+        Without a deadline, all of them."""
         if self.deadline is None:
             return self._flows(tubes, cell_lo, cell_hi, None)
-        until = self.deadline - 2 * self.label_seconds
+        until = self.deadline - FOLLOW_RESERVE * self.label_seconds
         n = len(cell_lo)
         size = FOLLOW_PIECE * self.runner.n_workers
         parts = []
@@ -636,7 +641,9 @@ class _Prover:
         if full is None:
             return self.label()
         pending = np.isin(todo, nodes[back])
-        passes = 0 if self._past_deadline() else DECISIVE_PASSES
+        # under a deadline: the step ends, a pass and the last labelling cost about three
+        # labellings, every further pass and the last one about two
+        passes = DECISIVE_PASSES if self._time_left() >= 3 * self.label_seconds else 0
         ends = self._step_ends(full, leaves) if passes else None
         for _ in range(passes):
             keep = self._decisive_ends(ends, label, full.n_steps, pending)
@@ -647,13 +654,14 @@ class _Prover:
             chosen = todo[cut]
             _, label, back, _ = self._try_tubes(
                 chosen, lambda: self._record_tubes(chosen, tubes))
-            if back.all() or self._past_deadline():
+            if back.all() or self._time_left() < 2 * self.label_seconds:
                 break
             pending[cut[~back]] = False
         return self.label()
 
-    def _past_deadline(self):
-        return self.deadline is not None and time.monotonic() >= self.deadline
+    def _time_left(self):
+        """Seconds to the deadline (inf without one)."""
+        return np.inf if self.deadline is None else self.deadline - time.monotonic()
 
     def _try_tubes(self, nodes, replace_tubes):
         """Give `nodes` new tubes (``replace_tubes()``), label, and give the nodes left
@@ -984,7 +992,7 @@ def _prove(model, method, budget, progress, focus, runner):
                 und = _causes_first(tree, leaves, labelling, facts, und,
                                     full <= budget.max_cells - len(leaves))
             if len(wanted) and focus is None and follow \
-                    and elapsed + 2 * prover.label_seconds < budget.time_limit:
+                    and elapsed + FOLLOW_RESERVE * prover.label_seconds < budget.time_limit:
                 # one more round, at the maximum depth or when the budget cannot hold the
                 # next split: the undecided leaves' tubes followed
                 short = short_of_budget(tree, und, budget, len(leaves), elapsed, last_round)

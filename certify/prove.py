@@ -55,6 +55,9 @@ FOLLOW_PIECE = 2048
 #: Labellings' worth of time a followed round keeps from the time limit for its own
 #: labelling, the decisive passes (their step ends, a pass or two) and the last one.
 FOLLOW_RESERVE = 5
+#: Share of the time a followed round left that a last, partial round may take: its
+#: leaves are as many as fit at the last splitting round's seconds per new cell.
+TIME_FIT_SHARE = 0.8
 #: Most times a labelling drops the successors that image sets miss and labels again
 #: (:meth:`_Prover._prune_successors`): leaves decided in one time free others. A
 #: labelling costs as much as the first, so it is redone only when the dropped
@@ -948,6 +951,7 @@ def _prove(model, method, budget, progress, focus, runner):
     extend = None
     # why the followed round was run before max_depth (then the loop ends after it)
     instead_of_refining = None
+    split_in_time = None  # leaves split in the time the followed round left
     last_round = None  # (seconds, new cells) of the last round that split leaves
     try:
         new = tree.split([0]) if method.start_depth > 0 else np.array([0])
@@ -1001,8 +1005,18 @@ def _prove(model, method, budget, progress, focus, runner):
                     new = wanted
                     continue
             if instead_of_refining:
+                # the time the followed round left: as many splits as fit in it
+                fit = 0 if split_in_time is not None else \
+                    time_fit(tree, budget, elapsed, last_round)
+                if fit and len(und):
+                    new, _ = split_shallowest(tree, und, budget, len(leaves), elapsed, most=fit)
+                    if new is not None:
+                        split_in_time = len(new) // 2 ** tree.n
+                        continue
+                then = (f", then {split_in_time} leaves split in the time left"
+                        if split_in_time else "")
                 stop_reason = (f"{instead_of_refining}; the undecided leaves' tubes were "
-                               f"followed instead{_cut_short(prover.followed)}")
+                               f"followed instead{_cut_short(prover.followed)}{then}")
                 break
             if len(und) == 0:
                 if len(wanted):
@@ -1075,8 +1089,18 @@ def short_of_budget(tree, wanted, budget, n_leaves, elapsed, last_round):
     return None
 
 
-def split_shallowest(tree, wanted, budget, n_leaves, elapsed):
-    """Split the shallowest of the leaves `wanted`, as many as the budget has room for.
+def time_fit(tree, budget, elapsed, last_round):
+    """How many leaves can be split in TIME_FIT_SHARE of the time left, at the last
+    splitting round's seconds per new cell (0 when unknown)."""
+    if last_round is None or last_round[1] == 0 or last_round[0] <= 0:
+        return 0
+    seconds = last_round[0] / last_round[1] * 2 ** tree.n
+    return max(int(TIME_FIT_SHARE * (budget.time_limit - elapsed) / seconds), 0)
+
+
+def split_shallowest(tree, wanted, budget, n_leaves, elapsed, most=None):
+    """Split the shallowest of the leaves `wanted`, as many as the budget has room for
+    (and at most `most`).
 
     Returns
     -------
@@ -1090,6 +1114,8 @@ def split_shallowest(tree, wanted, budget, n_leaves, elapsed):
     room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
     if room <= 0:
         return None, f"cell limit {budget.max_cells} reached"
+    if most is not None:
+        room = min(room, most)
     wanted = wanted[np.argsort(tree.depth[wanted], kind="stable")][:room]
     return tree.split(wanted), None
 

@@ -127,6 +127,9 @@ def test_short_of_budget_foresees_the_next_round():
     assert prove_module.short_of_budget(tree, wanted, budget, 9_994, 0.0, None) == \
         "cell limit 10000 reached"
     assert prove_module.short_of_budget(tree, wanted[:0], budget, 9_994, 0.0, None) is None
+    # in the 100 s left, 80 % at 0.8 s a split leaf (8 new cells at 0.1 s): 100 leaves
+    assert prove_module.time_fit(tree, budget, 200.0, (10.0, 100)) == 100
+    assert prove_module.time_fit(tree, budget, 200.0, None) == 0
 
 
 def test_short_time_limit_on_a_3d_model_ends_with_a_valid_proof():

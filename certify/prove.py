@@ -53,8 +53,8 @@ FOLLOW_GROWTH_LIMIT = 4.0
 #: pieces flowed before the limit are kept, the one it interrupts is lost.
 FOLLOW_PIECE = 2048
 #: Labellings' worth of time a followed round keeps from the time limit for its own
-#: labelling, the decisive passes (their step ends, a pass or two) and the last one.
-FOLLOW_RESERVE = 5
+#: labelling and the last one; its decisive passes run only in time its flows leave.
+FOLLOW_RESERVE = 2
 #: Share of the time a followed round left that a last, partial round may take: its
 #: leaves are as many as fit at the last splitting round's seconds per new cell.
 TIME_FIT_SHARE = 0.8
@@ -433,9 +433,9 @@ class _Prover:
 
     def _flows_in_time(self, tubes, cell_lo, cell_hi):
         """The flows of the first cells, in pieces of FOLLOW_PIECE cells a worker, that
-        end before the deadline less FOLLOW_RESERVE labellings (the one of these tubes,
-        the decisive passes' and the last of the round); None when not one piece does.
-        Without a deadline, all of them."""
+        end before the deadline less FOLLOW_RESERVE labellings (the one of these tubes
+        and the last of the round); None when not one piece does. Without a deadline,
+        all of them."""
         if self.deadline is None:
             return self._flows(tubes, cell_lo, cell_hi, None)
         until = self.deadline - FOLLOW_RESERVE * self.label_seconds
@@ -995,8 +995,8 @@ def _prove(model, method, budget, progress, focus, runner):
                 full = np.sum(2.0 ** (tree.n * (budget.max_depth - tree.depth[und])))
                 und = _causes_first(tree, leaves, labelling, facts, und,
                                     full <= budget.max_cells - len(leaves))
-            if len(wanted) and focus is None and follow \
-                    and elapsed + FOLLOW_RESERVE * prover.label_seconds < budget.time_limit:
+            follow_until = budget.time_limit - (FOLLOW_RESERVE + 1) * prover.label_seconds
+            if len(wanted) and focus is None and follow and elapsed < follow_until:
                 # one more round, at the maximum depth or when the budget cannot hold the
                 # next split: the undecided leaves' tubes followed
                 short = short_of_budget(tree, und, budget, len(leaves), elapsed, last_round)

@@ -39,7 +39,7 @@ import numpy as np
 from . import interval as iv
 from .evaluate import evaluate_boxes, evaluate_limits
 from .faces import _bisect_until_proven
-from .trapping import _binary
+from .trapping import KINK_STEP, _binary, float_jacobians
 
 __all__ = ["BoxRegion", "find_box_region", "prove_box_region", "float_equilibria",
            "float_margins", "parameter_grid", "FACTORS", "ATTEMPTS"]
@@ -251,15 +251,14 @@ def prove_box_region(programs, params, centre, frame, radii, *, sensitivity=None
     return BoxRegion(centre=centre, frame=frame, radii=radii, pieces=pieces + len(cover[0]))
 
 
-def _newton(programs, x, p, steps=30):
-    """Float Newton iterations for ``f(x, p) = 0`` from the rows of `x` (NaN rows fail)."""
+def _newton(programs, x, p, steps=30, differences=None):
+    """Float Newton iterations for ``f(x, p) = 0`` from the rows of `x` (NaN rows fail);
+    `differences` are the central-difference steps of a model without a Jacobian
+    program (:func:`certify.trapping.float_jacobians`)."""
     x = np.array(x, float, ndmin=2)
-    n = x.shape[1]
-    params = np.broadcast_to(p, (len(x), len(p)))
     for _ in range(steps):
-        inputs = np.concatenate([x, params], axis=1)
-        f = programs.field.point(inputs)
-        jac = programs.jacobian.point(inputs).reshape(-1, n, n)
+        f = programs.field.point_at(x, p)
+        jac = float_jacobians(programs, x, p, differences)
         ok = np.all(np.isfinite(jac), axis=(1, 2)) & (np.abs(np.linalg.det(jac)) > 0)
         step = np.full_like(x, np.nan)
         if np.any(ok):
@@ -277,23 +276,25 @@ def _equilibrium(programs, x, p):
 def float_equilibria(model, programs, p, starts=None):
     """Float estimates of the equilibria at the parameter point `p` (not rigorous).
 
-    Newton's method from a grid of ``starts`` points per state over the window (by
-    default about 400 points in all); the ends inside the window, without repeats.
+    Newton's method from `starts`: a grid of that many points per state over the window
+    (by default about 400 points in all), or an array of points, shape (m, n); the ends
+    inside the window, without repeats. Programs without a Jacobian (models with kinks)
+    are differenced centrally, in steps of ``KINK_STEP`` of the window's sides.
 
     Returns
     -------
     list of ndarray, shape (n,)
     """
-    if starts is None:
-        starts = max(3, int(400 ** (1 / len(model.window))))
     lo = np.array([float(a) for a, _ in model.window])
     hi = np.array([float(b) for _, b in model.window])
-    axes = [a + (b - a) * (np.arange(starts) + 0.5) / starts for a, b in zip(lo, hi)]
+    if starts is None or np.ndim(starts) == 0:
+        count = starts or max(3, int(400 ** (1 / len(model.window))))
+        axes = [a + (b - a) * (np.arange(count) + 0.5) / count for a, b in zip(lo, hi)]
+        starts = np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, len(lo))
     found = []
     tol = 1e-7 * (hi - lo)
     with np.errstate(all="ignore"):
-        ends = _newton(programs, np.stack(np.meshgrid(*axes, indexing="ij"), -1)
-                       .reshape(-1, len(lo)), p)
+        ends = _newton(programs, starts, p, differences=KINK_STEP * (hi - lo))
         for x in ends:
             if not np.all(np.isfinite(x)) or np.any(x < lo - tol) or np.any(x > hi + tol):
                 continue

@@ -61,8 +61,6 @@ BOX_MARGIN = 1.25
 #: Central-difference step, as a share of the window's sides, of the linearisation of a
 #: model with kinks (abs, min, max), which has no Jacobian program.
 KINK_STEP = 1e-7
-#: Newton steps from each unresolved box of such a model.
-KINK_NEWTON_STEPS = 20
 
 
 @dataclass(frozen=True)
@@ -472,42 +470,41 @@ def _candidates(programs, params, model, centre, rng):
     return sorted(found, key=lambda t: -t[0])
 
 
-def _linearisation(programs, point, mid, width):
-    """The float Jacobian of the field at `point`: from its program, or by central
-    differences for models with kinks (which have none; the point lies off the kinks)."""
-    n = len(point)
+def float_jacobians(programs, x, p, steps):
+    """Float Jacobians of the field at the rows of `x`, parameters `p`: from the
+    Jacobian program, or by central differences of `steps` for a model with kinks
+    (which has none; the points should lie off the kinks). Not rigorous.
+
+    Returns
+    -------
+    ndarray, shape (N, n, n)
+    """
+    n = x.shape[1]
     if programs.jacobian is not None:
-        return programs.jacobian.point(np.concatenate([point, mid])).reshape(n, n)
-    return programs.field.point_jacobian(point[None], mid, KINK_STEP * width)[0]
+        return programs.jacobian.point_at(x, p).reshape(-1, n, n)
+    return programs.field.point_jacobian(x, p, steps)
+
+
+def _linearisation(programs, point, mid, width):
+    """The float Jacobian of the field at `point` (:func:`float_jacobians`)."""
+    return float_jacobians(programs, point[None], mid, KINK_STEP * width)[0]
 
 
 def _kink_estimates(model, programs, params, found):
     """Float estimates of the stable equilibria inside the limits of a model with kinks.
 
     Its equilibria are not proven (:func:`certify.points.find_equilibria` only excludes
-    them), so Newton's method with a central-difference Jacobian starts from the centre
-    of each box the search left unresolved; the ends inside the window, inside the
-    limits, with eigenvalues of negative real part, without repeats. Only a region's
-    invariance is proven, not the equilibrium inside it.
+    them), so Newton's method (:func:`certify.atlas_regions.float_equilibria`, with a
+    central-difference Jacobian) starts from the centre of each box the search left
+    unresolved; the ends inside the limits whose eigenvalues have negative real parts
+    are kept. Only a region's invariance is proven, not the equilibrium inside it.
     """
+    from .atlas_regions import float_equilibria
+
     mid = np.array([0.5 * (a + b) for a, b in params], float)
-    lo = np.array([float(a) for a, _ in model.window])
-    hi = np.array([float(b) for _, b in model.window])
-    width = hi - lo
+    width = np.array([float(b - a) for a, b in model.window])
     estimates = []
-    for box in found.unresolved:
-        x = 0.5 * (box[:, 0] + box[:, 1])
-        for _ in range(KINK_NEWTON_STEPS):
-            jac = _linearisation(programs, x, mid, width)
-            if not np.all(np.isfinite(jac)) or np.linalg.det(jac) == 0:
-                break
-            x = x - np.linalg.solve(jac, programs.field.point_at(x[None], mid)[0])
-        f = programs.field.point_at(x[None], mid)[0]
-        if not (np.all(np.isfinite(x)) and np.all(np.abs(f) <= 1e-9 * (1 + np.abs(x)))
-                and np.all((lo <= x) & (x <= hi))):
-            continue
-        if any(np.all(np.abs(x - e) <= 1e-7 * width) for e in estimates):
-            continue
+    for x in float_equilibria(model, programs, mid, starts=found.unresolved.mean(axis=2)):
         inside = not programs.limits.n_outputs or \
             np.all(programs.limits.point_at(x[None], mid) > 0)
         if inside and np.all(np.linalg.eigvals(_linearisation(programs, x, mid, width)).real < 0):

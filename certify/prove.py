@@ -1080,9 +1080,10 @@ def short_of_budget(tree, wanted, budget, n_leaves, elapsed, last_round):
     room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
     if room <= 0:
         return f"cell limit {budget.max_cells} reached"
-    if last_round is None or last_round[1] == 0:
+    per_split = _seconds_per_split(tree, last_round)
+    if per_split is None:
         return None
-    seconds = last_round[0] / last_round[1] * min(len(wanted), room) * 2 ** tree.n
+    seconds = per_split * min(len(wanted), room)
     if elapsed + seconds > budget.time_limit:
         return (f"the next round (about {seconds:.0f} s) would end past the time limit "
                 f"{budget.time_limit:g} s")
@@ -1092,10 +1093,18 @@ def short_of_budget(tree, wanted, budget, n_leaves, elapsed, last_round):
 def time_fit(tree, budget, elapsed, last_round):
     """How many leaves can be split in TIME_FIT_SHARE of the time left, at the last
     splitting round's seconds per new cell (0 when unknown)."""
-    if last_round is None or last_round[1] == 0 or last_round[0] <= 0:
+    per_split = _seconds_per_split(tree, last_round)
+    if not per_split:
         return 0
-    seconds = last_round[0] / last_round[1] * 2 ** tree.n
-    return max(int(TIME_FIT_SHARE * (budget.time_limit - elapsed) / seconds), 0)
+    return max(int(TIME_FIT_SHARE * (budget.time_limit - elapsed) / per_split), 0)
+
+
+def _seconds_per_split(tree, last_round):
+    """Seconds one split leaf costs (its 2^n new cells) at the last splitting round's
+    pace; None when there was no such round."""
+    if last_round is None or last_round[1] == 0:
+        return None
+    return last_round[0] / last_round[1] * 2 ** tree.n
 
 
 def split_shallowest(tree, wanted, budget, n_leaves, elapsed, most=None):

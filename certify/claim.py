@@ -408,7 +408,7 @@ def _point_crossings(auditor, proof, points, horizon):
     m = proof.method
     spread = POINT_SPREAD * (proof.tree.hi[0] - proof.tree.lo[0])
     lo, hi = points - spread, points + spread
-    programs = flow_programs(proof.model, m.order)
+    programs = flow_programs(proof.model, m.order, m.kinks)
 
     def crossed(ids, end_lo, end_hi, t_lo, t_hi):
         return np.any(auditor._limits(end_lo, end_hi)[1] < 0, axis=1)

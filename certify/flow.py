@@ -31,6 +31,7 @@ import numpy as np
 from . import interval as iv
 from . import stacked
 from .evaluate import evaluate_boxes
+from .taylor import chosen_arguments
 
 __all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
            "join_results", "select_results", "truncate_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
@@ -412,6 +413,54 @@ def _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
     return new_m, new_sets, endlo, endhi, usable, growth
 
 
+def _branch_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
+    """:func:`_taylor_step` of each box with the programs of the smooth branch that the
+    model's right-hand side is on its a-priori box ``E`` (``programs.branches``), and
+    with `programs` (order 1) where a kink may lie in ``E``; also the order of each."""
+    N = len(m)
+    branches = programs.branches
+    if branches is None:
+        return (_taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames),
+                np.full(N, programs.order))
+    slo, shi = evaluate_boxes(branches.switches, elo, ehi, params)
+    choice = chosen_arguments(branches.sites, slo, shi)
+    known = np.all(choice >= 0, axis=1)
+    groups = [(programs, np.flatnonzero(~known))]
+    rows = np.flatnonzero(known)
+    if len(rows):
+        patterns, which = np.unique(choice[rows], axis=0, return_inverse=True)
+        groups += [(branches.programs(tuple(int(v) for v in pattern)),
+                    rows[which.ravel() == g]) for g, pattern in enumerate(patterns)]
+    order = np.empty(N, int)
+    out = None
+    for progs, rows in groups:
+        if len(rows) == 0:
+            continue
+        part = _taylor_step(progs, m[rows], [tuple(a[rows] for a in one) for one in sets],
+                            xlo[rows], xhi[rows], elo[rows], ehi[rows], h[rows], params,
+                            frames)
+        if out is None:
+            out = _scatter_like(part, N)
+        _scatter(out, part, rows)
+        order[rows] = progs.order
+    return out, order
+
+
+def _scatter_like(part, N):
+    """Empty arrays of `N` rows shaped like the nested arrays of `part`."""
+    if isinstance(part, (tuple, list)):
+        return [_scatter_like(p, N) for p in part]
+    return np.empty((N,) + part.shape[1:], part.dtype)
+
+
+def _scatter(out, part, rows):
+    if isinstance(part, (tuple, list)):
+        for o, p in zip(out, part):
+            _scatter(o, p, rows)
+    else:
+        out[rows] = part
+
+
 def _repeat(K, *arrays):
     """Each array `K` times along its first axis (the rows of `K` stacked sets)."""
     return [np.concatenate([a] * K) if K > 1 else a for a in arrays]
@@ -522,7 +571,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
             elo[retry], ehi[retry] = a_lo, a_hi
             ok[retry] = a_ok
         failed = ~ok
-        new = _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames)
+        new, order = _branch_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames)
         new_m, new_sets, endlo, endhi, usable, growth = new
         new_A, nrlo, nrhi = new_sets[0]
         bad = failed | ~usable
@@ -553,7 +602,7 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
         done |= finish
         keep = ~done
         with np.errstate(divide="ignore", invalid="ignore"):
-            factor = np.clip((REMAINDER_SHARE / growth) ** (1.0 / programs.order), 0.5, 1.25)
+            factor = np.clip((REMAINDER_SHARE / growth) ** (1.0 / order), 0.5, 1.25)
         factor = np.where(np.isfinite(factor), factor, 0.5)
         factor = np.where(clean, factor, np.minimum(factor, 1.0))
         ids, h = ids[keep], (h * factor)[keep]

@@ -90,6 +90,10 @@ class Method:
     #: rate (:mod:`certify.time_scale`); 1 when the model or the caller gave any of them,
     #: and for models with controls
     time_scale: float = 1.0
+    #: how models with ``abs``, ``min`` or ``max`` are stepped: ``"branches"``, at
+    #: ``order`` where a step's a-priori box keeps every kink on one side and at order 1
+    #: elsewhere; ``"order-1"``, at order 1 everywhere (docs/method.md)
+    kinks: str = "branches"
 
 
 @dataclass(frozen=True)
@@ -211,7 +215,7 @@ class _Tubes:
     @cached_property
     def programs(self):
         """certify.taylor.FlowPrograms: the compiled programs of the model."""
-        return flow_programs(self.model, self.method.order)
+        return flow_programs(self.model, self.method.order, self.method.kinks)
 
     def __getstate__(self):
         # compiled programs do not pickle: a worker compiles its own
@@ -337,7 +341,7 @@ class _Prover:
         self.label_seconds = 0.0  # how long the last labelling took
         self.followed = None  # (tubes followed, tubes to follow) of the followed round
         self.params = parameter_enclosures(model)
-        self.programs = flow_programs(model, method.order)
+        self.programs = flow_programs(model, method.order, method.kinks)
         self.limits_programs = self.programs
         self.tree = CellTree(model.window)
         self.n = self.tree.n

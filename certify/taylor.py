@@ -7,16 +7,17 @@ They are derived once per model with sympy and compiled into interval programs.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from functools import lru_cache
 
+import numpy as np
 import sympy
 
 from .expr import substitute
 from .program import Program, compile_program
 
-__all__ = ["FlowPrograms", "taylor_coefficients", "flow_programs", "fixed_parameters",
-           "jacobian_is_cut"]
+__all__ = ["FlowPrograms", "Branches", "taylor_coefficients", "flow_programs",
+           "fixed_parameters", "jacobian_is_cut", "kink_sites", "branch_equations"]
 
 
 def taylor_coefficients(equations, states, order):
@@ -74,6 +75,10 @@ class FlowPrograms:
     limit_curvatures : Program or None
         ``grad(grad g_j . f) . f``, the second derivative of ``g_j`` along a solution (one
         output per constraint); None for models with ``abs``, ``min`` or ``max``.
+    branches : Branches or None
+        For models with ``abs``, ``min`` or ``max`` stepped at a higher order: the smooth
+        branches a step may use where its a-priori box keeps every kink on one side;
+        None otherwise (these programs are then stepped at their own order).
     """
 
     order: int
@@ -87,6 +92,117 @@ class FlowPrograms:
     limits: Program
     limit_rates: Program
     limit_curvatures: Program | None
+    branches: "Branches | None" = None
+
+
+def kink_sites(equations):
+    """The ``max``, ``min`` and ``abs`` of `equations`, innermost first, each once.
+
+    Returns
+    -------
+    list of (sympy.Expr, tuple of sympy.Expr, bool)
+        Per site: the expression, its arguments and whether it is a maximum. ``abs(a)``
+        is the maximum of ``a`` and ``-a``.
+    """
+    sites, seen = [], set()
+    for equation in equations:
+        for node in sympy.postorder_traversal(equation):
+            if node in seen or not isinstance(node, (sympy.Max, sympy.Min, sympy.Abs)):
+                continue
+            seen.add(node)
+            if isinstance(node, sympy.Abs):
+                sites.append((node, (node.args[0], -node.args[0]), True))
+            else:
+                sites.append((node, tuple(node.args), isinstance(node, sympy.Max)))
+    return sites
+
+
+def switch_expressions(sites):
+    """The differences ``a_i - a_j`` (``i < j``) of the arguments of every site, in site
+    order: their signs on a box say which argument a site equals there."""
+    return [args[i] - args[j] for _, args, _ in sites
+            for i in range(len(args)) for j in range(i + 1, len(args))]
+
+
+def branch_equations(equations, sites, choice):
+    """`equations` with site ``s`` replaced by its argument ``choice[s]`` (inner sites
+    inside the chosen arguments replaced too)."""
+    replacement = {}
+    for (expr, args, _), k in zip(sites, choice):
+        replacement[expr] = args[k].xreplace(replacement)
+    return tuple(e.xreplace(replacement) for e in equations)
+
+
+def chosen_arguments(sites, lo, hi):
+    """Per box and site, the argument the site equals on the whole box, -1 where none
+    is known.
+
+    Parameters
+    ----------
+    sites : list
+        :func:`kink_sites`.
+    lo, hi : ndarray, shape (N, D)
+        Enclosures of :func:`switch_expressions` on the boxes.
+
+    Returns
+    -------
+    ndarray of int, shape (N, len(sites))
+        A maximum equals ``a_i`` where ``a_i - a_j >= 0`` for every ``j`` (a minimum
+        where ``<= 0``); the first such ``i``.
+    """
+    out = np.full((len(lo), len(sites)), -1)
+    column = 0
+    for s, (_, args, is_max) in enumerate(sites):
+        k = len(args)
+        above = np.ones((len(lo), k), bool)  # a_i is the site's value so far
+        for i in range(k):
+            for j in range(i + 1, k):
+                i_wins = lo[:, column] >= 0 if is_max else hi[:, column] <= 0
+                j_wins = hi[:, column] <= 0 if is_max else lo[:, column] >= 0
+                above[:, i] &= i_wins
+                above[:, j] &= j_wins
+                column += 1
+        for i in reversed(range(k)):
+            out[above[:, i], s] = i
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class Branches:
+    """The smooth branches of a model with kinks (docs/method.md, "Models with kinks").
+
+    On a box where every site keeps one argument (the signs of the switches), the
+    right-hand side is the branch with those arguments, a smooth function there, and a
+    step may use its Taylor coefficients of full order.
+
+    Attributes
+    ----------
+    sites : list
+        :func:`kink_sites` of the equations.
+    switches : Program
+        :func:`switch_expressions` of the sites.
+    equations, states, parameters, limits : tuple
+        What the branch programs are compiled from.
+    order : int
+        Their Taylor order.
+    """
+
+    sites: list
+    switches: Program
+    equations: tuple
+    states: tuple
+    parameters: tuple
+    limits: tuple
+    order: int
+    _built: dict = field(default_factory=dict, compare=False, repr=False)
+
+    def programs(self, choice):
+        """The programs of the branch `choice` (a tuple: the argument of each site)."""
+        if choice not in self._built:
+            equations = branch_equations(self.equations, self.sites, choice)
+            self._built[choice] = _build(equations, self.states, self.parameters,
+                                         self.limits, self.order, False)
+        return self._built[choice]
 
 
 def lie_derivatives(functions, equations, states):
@@ -127,15 +243,18 @@ def _build(equations, states, parameters, limits, order, smooth=True):
     )
 
 
-def flow_programs(model, order):
+def flow_programs(model, order, kinks="branches"):
     """Compile (once, cached) the programs a validated step of `model` needs.
 
     Parameters
     ----------
     model : certify.model.Model
     order : int
-        Taylor order, 1..8. Models with ``abs``, ``min`` or ``max`` use order 1,
-        which needs no derivative of the right-hand side.
+        Taylor order, 1..8. Models with ``abs``, ``min`` or ``max`` are stepped at order
+        1, which needs no derivative of the right-hand side, except where a step's
+        a-priori box keeps every kink on one side: with `kinks` ``"branches"`` such a
+        step uses the smooth branch there at `order` (:class:`Branches`).
+    kinks : {"branches", "order-1"}
 
     Returns
     -------
@@ -153,16 +272,28 @@ def flow_programs(model, order):
     derivative is taken (sympy then merges constants); interval parameters stay
     inputs. Every program still takes all parameters as inputs, in model order.
     """
-    if model.uses_kinks:
-        order = 1
+    smooth = not model.uses_kinks
     values = dict(fixed_parameters(model))
     label = model.path or "<model text>"
     equations = tuple(substitute(e, model.conditions[key], values, label=label, key=key)
                       for key, e in zip(model.equation_keys, model.equations))
     limits = tuple(substitute(c.g, model.conditions[key], values, label=label, key=key)
                    for key, c in zip(model.constraint_keys, model.constraints))
-    return _build(equations, tuple(model.state_symbols), tuple(model.parameter_symbols),
-                  limits, int(order), not model.uses_kinks)
+    states, parameters = tuple(model.state_symbols), tuple(model.parameter_symbols)
+    if smooth:
+        return _build(equations, states, parameters, limits, int(order), True)
+    if kinks != "branches" or order == 1:
+        return _build(equations, states, parameters, limits, 1, False)
+    return _with_branches(equations, states, parameters, limits, int(order))
+
+
+@lru_cache(maxsize=32)
+def _with_branches(equations, states, parameters, limits, order):
+    programs = _build(equations, states, parameters, limits, 1, False)
+    sites = kink_sites(equations)
+    switches = compile_program(switch_expressions(sites), tuple(states) + tuple(parameters))
+    return replace(programs, branches=Branches(sites, switches, equations, states,
+                                               parameters, limits, order))
 
 
 def fixed_parameters(model):

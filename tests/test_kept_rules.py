@@ -42,7 +42,7 @@ def proofs(tmp_path_factory):
     patch = pytest.MonkeyPatch()
     original = prove_module.flow_programs
     patch.setattr(prove_module, "flow_programs",
-                  lambda m, order: replace(original(m, order), limit_curvatures=None))
+                  lambda m, *args: replace(original(m, *args), limit_curvatures=None))
     try:
         without = prove(model, max_depth=6)
     finally:

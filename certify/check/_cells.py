@@ -25,7 +25,7 @@ sound.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from fractions import Fraction
 from functools import lru_cache
 
@@ -211,7 +211,7 @@ def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=No
     end's frames are the checker's own.
     """
     progs = context.programs
-    n, q = progs.n, progs.order
+    n = progs.n
     params = _params(ar, context)
     hh = ar.exact(h)
     tube, ok, reach = _picard(ar, progs, params, hh, X_bounds, E_bounds)
@@ -220,34 +220,8 @@ def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=No
                                        reach)
     field, rates = tube[:n], tube[n:]
     E = [ar.box(E_bounds[:, k, 0], E_bounds[:, k, 1]) for k in range(n)]
-    remainder = _joined(ar, progs.remainder, ar.cover(E, ar.pieces.remainder), params)
-    powers = [None, hh] + [ar.pow_int(hh, k) for k in range(2, q + 1)]
-    # T(m) + h^q f^[q](E)
     point = [ar.exact(m[:, k]) for k in range(n)]
-    Y = list(point)
-    if q > 1:
-        coeff = evaluate(progs.coefficients, ar, point + params)
-        for k in range(1, q):
-            for i in range(n):
-                Y[i] = ar.add(Y[i], ar.mul(powers[k], coeff[(k - 1) * n + i]))
-    Y = [ar.add(Y[i], ar.mul(powers[q], remainder[i])) for i in range(n)]
-    # DT(J) = I + sum h^k Df^[k](J)
-    D = [[ar.exact(np.full(len(h), float(i == j))) for j in range(n)] for i in range(n)]
-    if q > 1:
-        # the Jacobian of f on J cut at m into 2^n parts where the prover cuts its own J
-        J = [ar.hull(X[k], point[k]) for k in range(n)]
-        parts = ar.split_at(J, point) if progs.cut_jacobian else [J]
-        jac = _joined(ar, progs.jacobian,
-                      [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
-                      params)
-        if q > 2:
-            jac = jac + _joined(ar, progs.higher_jacobians,
-                                ar.cover(J, ar.pieces.jacobians[-1]), params)
-        for k in range(1, q):
-            for i in range(n):
-                for j in range(n):
-                    term = ar.mul(powers[k], jac[(k - 1) * n * n + i * n + j])
-                    D[i][j] = ar.add(D[i][j], term)
+    Y, D = _taylor_by_branch(ar, progs, params, hh, X, E, point)
     if m_next is None:
         m_next = np.stack([_mid(ar, y) for y in Y], 1)
     new_m = [ar.exact(m_next[:, k]) for k in range(n)]
@@ -289,6 +263,72 @@ def _step(ar, context, X, X_bounds, m, sets, h, E_bounds, m_next=None, A_next=No
     return StepOutcome(ok=ok, kept=kept, crossed=crossed, X_next=X_next, E=E,
                        E_bounds=E_bounds, m_next=m_next, sets_next=sets_next,
                        moved=[ar.mul(hh, f) for f in field])
+
+
+def _taylor_by_branch(ar, progs, params, hh, X, E, point):
+    """``Y = T(m) + h^q f^[q](E)`` and ``DT(J)`` of the steps, each with the Taylor
+    programs of the smooth branch that ``f`` is on its tube ``E`` where the model has
+    kinks and ``method.kinks`` is ``"branches"`` (:class:`CheckBranches`), else with
+    `progs` (models with kinks: order 1)."""
+    branches = progs.branches
+    if branches is None:
+        return _taylor(ar, progs, params, hh, X, E, point)
+    N = len(ar.lower(point[0]))
+    switch = evaluate(branches.switches, ar, list(E) + params)
+    positive = np.stack([np.broadcast_to(_true(ar.lower(s) >= 0), N) for s in switch], axis=1)
+    negative = np.stack([np.broadcast_to(_true(ar.upper(s) <= 0), N) for s in switch], axis=1)
+    choices = branches.choices(positive, negative)
+    known = np.all(choices >= 0, axis=1)
+    groups = [(None, np.flatnonzero(~known))]
+    patterns, which = np.unique(choices[known], axis=0, return_inverse=True)
+    groups += [(tuple(int(v) for v in p), np.flatnonzero(known)[which.ravel() == g])
+               for g, p in enumerate(patterns)]
+    n = progs.n
+    Y = [ar.exact(np.zeros(N)) for _ in range(n)]
+    D = [[ar.exact(np.zeros(N)) for _ in range(n)] for _ in range(n)]
+    for choice, rows in groups:
+        if len(rows) == 0:
+            continue
+        own = progs if choice is None else replace(progs, **branches.taylor(choice))
+        part = [[ar.take(a, rows) for a in box] for box in (X, E, point)]
+        y, d = _taylor(ar, own, params, ar.take(hh, rows), *part)
+        Y = [ar.put(a, rows, b) for a, b in zip(Y, y)]
+        D = [[ar.put(a, rows, b) for a, b in zip(row_a, row_b)] for row_a, row_b in zip(D, d)]
+    return Y, D
+
+
+def _taylor(ar, progs, params, hh, X, E, point):
+    """``Y = T(m) + h^q f^[q](E)`` and ``DT(J) = I + sum h^k Df^[k](J)`` with
+    ``J = hull(X, m)`` (`point` is ``m``), at the order of `progs`."""
+    n, q = progs.n, progs.order
+    remainder = _joined(ar, progs.remainder, ar.cover(E, ar.pieces.remainder), params)
+    powers = [None, hh] + [ar.pow_int(hh, k) for k in range(2, q + 1)]
+    # T(m) + h^q f^[q](E)
+    Y = list(point)
+    if q > 1:
+        coeff = evaluate(progs.coefficients, ar, point + params)
+        for k in range(1, q):
+            for i in range(n):
+                Y[i] = ar.add(Y[i], ar.mul(powers[k], coeff[(k - 1) * n + i]))
+    Y = [ar.add(Y[i], ar.mul(powers[q], remainder[i])) for i in range(n)]
+    # DT(J) = I + sum h^k Df^[k](J)
+    D = [[ar.exact(np.full(len(ar.lower(point[0])), float(i == j))) for j in range(n)] for i in range(n)]
+    if q > 1:
+        # the Jacobian of f on J cut at m into 2^n parts where the prover cuts its own J
+        J = [ar.hull(X[k], point[k]) for k in range(n)]
+        parts = ar.split_at(J, point) if progs.cut_jacobian else [J]
+        jac = _joined(ar, progs.jacobian,
+                      [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
+                      params)
+        if q > 2:
+            jac = jac + _joined(ar, progs.higher_jacobians,
+                                ar.cover(J, ar.pieces.jacobians[-1]), params)
+        for k in range(1, q):
+            for i in range(n):
+                for j in range(n):
+                    term = ar.mul(powers[k], jac[(k - 1) * n * n + i * n + j])
+                    D[i][j] = ar.add(D[i][j], term)
+    return Y, D
 
 
 def _kept_by_curvature(ar, context, hh, E, g, g_end, kept_by):

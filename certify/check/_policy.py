@@ -245,7 +245,7 @@ def _labels(inclusion, labels, choice, n_settings, data, path):
 def _context(cert, model, tree):
     """The checker's context for a certificate whose own check already passed."""
     params = tuple((p.lo, p.hi) for p in model.parameters)
-    return CheckContext(programs=derive_programs(model, cert.order), params=params,
+    return CheckContext(programs=derive_programs(model, cert.order, cert.kinks), params=params,
                         window=cert.window, grid_depth=tree.max_depth,
                         open_faces=tuple((a, s) for a, s, kind in cert.faces if kind == "open"),
                         invariant_faces=tuple((a, s) for a, s, kind in cert.faces

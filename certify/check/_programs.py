@@ -26,16 +26,17 @@ Instructions are plain tuples, so they travel to worker processes by pickling.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from fractions import Fraction
 
+import numpy as np
 import sympy
 
 from ..errors import CertificateError
 from ..expr import substitute
 
-__all__ = ["Program", "CheckPrograms", "compile_expressions", "derive_programs",
-           "with_one_limit"]
+__all__ = ["Program", "CheckPrograms", "CheckBranches", "compile_expressions",
+           "derive_programs", "with_one_limit"]
 
 _UNARY = {
     sympy.exp: "exp", sympy.log: "log", sympy.sin: "sin", sympy.cos: "cos",
@@ -282,6 +283,110 @@ class CheckPrograms:
     states: tuple
     limit_expressions: tuple = ()
     curvatures: Program | None = None
+    branches: "CheckBranches | None" = None
+
+
+@dataclass(frozen=True, eq=False)
+class CheckBranches:
+    """The smooth branches of a model with ``abs``, ``min`` or ``max``, derived by the
+    checker (``method.kinks = "branches"``).
+
+    A site is a ``max`` or ``min`` (``abs(a)``: the maximum of ``a`` and ``-a``) with its
+    arguments, innermost sites first. On a box where ``a_i - a_j >= 0`` for every other
+    argument ``j`` (a ``min``: ``<= 0``), the site equals ``a_i`` on the whole box; where
+    every site is so resolved, ``f`` is the branch with those arguments there, and the
+    step uses that branch's Taylor programs of order ``order``.
+
+    Attributes
+    ----------
+    sites : tuple of (sympy.Expr, tuple, bool)
+        Expression, arguments, whether it is a maximum.
+    switches : Program
+        The differences ``a_i - a_j`` (``i < j``) of every site's arguments, in site order.
+    equations : tuple of sympy.Expr
+    states, inputs : tuple of sympy.Symbol
+    order : int
+    """
+
+    sites: tuple
+    switches: Program
+    equations: tuple
+    states: tuple
+    inputs: tuple
+    order: int
+    built: dict = field(default_factory=dict, compare=False, repr=False)
+
+    def choices(self, positive, negative):
+        """Per box and site the argument it equals, -1 where none is proven.
+
+        Parameters
+        ----------
+        positive, negative : ndarray of bool, shape (N, D)
+            A switch is ``>= 0`` / ``<= 0`` on the whole box.
+
+        Returns
+        -------
+        ndarray of int, shape (N, number of sites)
+            The first argument that the signs prove to be the site's value.
+        """
+        out = np.full((len(positive), len(self.sites)), -1)
+        column = 0
+        for s, (_, args, is_max) in enumerate(self.sites):
+            wins = np.ones((len(positive), len(args)), bool)
+            for i in range(len(args)):
+                for j in range(i + 1, len(args)):
+                    wins[:, i] &= positive[:, column] if is_max else negative[:, column]
+                    wins[:, j] &= negative[:, column] if is_max else positive[:, column]
+                    column += 1
+            for i in reversed(range(len(args))):
+                out[wins[:, i], s] = i
+        return out
+
+    def taylor(self, choice):
+        """The Taylor programs of the branch `choice` (one argument index per site):
+        ``order``, ``remainder``, ``coefficients``, ``jacobian``, ``higher_jacobians``,
+        ``cut_jacobian`` as in :class:`CheckPrograms`."""
+        if choice not in self.built:
+            replacement = {}
+            for (expr, args, _), k in zip(self.sites, choice):
+                replacement[expr] = args[k].xreplace(replacement)
+            equations = tuple(e.xreplace(replacement) for e in self.equations)
+            self.built[choice] = _taylor_programs(equations, self.states, self.inputs,
+                                                  self.order)
+        return self.built[choice]
+
+
+def _kink_sites(equations):
+    """The ``max``/``min``/``abs`` of `equations`, innermost first, each once."""
+    sites, seen = [], set()
+    for equation in equations:
+        for node in sympy.postorder_traversal(equation):
+            if node in seen or not isinstance(node, (sympy.Max, sympy.Min, sympy.Abs)):
+                continue
+            seen.add(node)
+            if isinstance(node, sympy.Abs):
+                sites.append((node, (node.args[0], -node.args[0]), True))
+            else:
+                sites.append((node, tuple(node.args), isinstance(node, sympy.Max)))
+    return tuple(sites)
+
+
+def _taylor_programs(equations, states, inputs, order):
+    """The programs of one Taylor step of ``x' = equations`` at `order` (a dict of the
+    :class:`CheckPrograms` fields they fill)."""
+    x = sympy.Matrix(states)
+    coefficients = taylor_coefficients(equations, states, order)
+    middle = coefficients[1:order]
+    df = sympy.Matrix(equations).jacobian(x)
+    return {"order": order,
+            "remainder": compile_expressions(list(coefficients[order]), inputs),
+            "coefficients": compile_expressions([e for c in middle for e in c], inputs)
+            if middle else None,
+            "jacobian": compile_expressions(list(df), inputs) if middle else None,
+            "higher_jacobians": compile_expressions(
+                [e for c in middle[1:] for e in c.jacobian(x)], inputs)
+            if len(middle) > 1 else None,
+            "cut_jacobian": _cut(df, states)}
 
 
 def taylor_coefficients(equations, states, order):
@@ -294,7 +399,7 @@ def taylor_coefficients(equations, states, order):
     return coefficients[:order + 1]
 
 
-def derive_programs(model, order):
+def derive_programs(model, order, kinks="order-1"):
     """Derive and compile the checker's programs for a model.
 
     Parameters
@@ -303,6 +408,10 @@ def derive_programs(model, order):
         With the parameter boxes the certificate states.
     order : int
         The Taylor order the certificate states (``method.order``).
+    kinks : {"order-1", "branches"}
+        ``method.kinks``: models with ``abs``, ``min`` or ``max`` are stepped at order 1,
+        and with ``"branches"`` at `order` on steps whose a-priori box keeps every kink
+        on one side (:class:`CheckBranches`).
 
     Returns
     -------
@@ -313,8 +422,6 @@ def derive_programs(model, order):
     ModelError
         When substituting the parameter values cancels a singularity.
     """
-    if model.uses_kinks:
-        order = 1
     fixed = {p.symbol: sympy.Rational(p.lo.numerator, p.lo.denominator)
              for p in model.parameters if not p.is_interval}
     label = model.path or "<model text>"  # substitution must not cancel a singularity
@@ -324,32 +431,34 @@ def derive_programs(model, order):
                    for key, c in zip(model.constraint_keys, model.constraints))
     states = tuple(model.state_symbols)
     inputs = states + tuple(model.parameter_symbols)
-    x = sympy.Matrix(states)
-    coefficients = taylor_coefficients(equations, states, order)
     rates = _rates(limits, equations, states)
-    middle = coefficients[1:order]
-    # Df serves the mean-value step (f^[1] = f) and the invariant faces; models with
-    # kinks are stepped at order 1 and have no invariant faces
-    df = None if model.uses_kinks else sympy.Matrix(equations).jacobian(x)
-    field_jacobian = None if df is None else compile_expressions(list(df), inputs)
-    point = higher = None
-    if middle:
-        point = compile_expressions([e for c in middle for e in c], inputs)
-    if len(middle) > 1:
-        higher = compile_expressions([e for c in middle[1:] for e in c.jacobian(x)], inputs)
     on_tube = compile_expressions(list(equations) + rates, inputs)
-    curvatures = None if model.uses_kinks else \
-        compile_expressions(_rates(rates, equations, states), inputs)
-    remainder = compile_expressions(list(coefficients[order]), inputs)
-    return CheckPrograms(order=order, n=len(states), on_tube=on_tube, remainder=remainder,
-                         coefficients=point, jacobian=field_jacobian if middle else None,
-                         higher_jacobians=higher,
+    field_jacobian = curvatures = branches = None
+    if not model.uses_kinks:
+        taylor = _taylor_programs(equations, states, inputs, order)
+        # Df also serves the invariant faces
+        field_jacobian = compile_expressions(list(sympy.Matrix(equations).jacobian(
+            sympy.Matrix(states))), inputs)
+        curvatures = compile_expressions(_rates(rates, equations, states), inputs)
+    else:
+        # stepped at order 1 (f^[1] = f), no invariant faces; with branches at `order`
+        # where a step's tube keeps every kink on one side
+        taylor = {"order": 1, "remainder": compile_expressions(list(equations), inputs),
+                  "coefficients": None, "jacobian": None, "higher_jacobians": None,
+                  "cut_jacobian": False}
+        if kinks == "branches" and order > 1:
+            sites = _kink_sites(equations)
+            switches = compile_expressions([args[i] - args[j] for _, args, _ in sites
+                                            for i in range(len(args))
+                                            for j in range(i + 1, len(args))], inputs)
+            branches = CheckBranches(sites=sites, switches=switches, equations=equations,
+                                     states=states, inputs=inputs, order=order)
+    return CheckPrograms(n=len(states), on_tube=on_tube, **taylor,
                          limits=compile_expressions(list(limits), inputs),
                          field=compile_expressions(list(equations), inputs),
                          field_jacobian=field_jacobian, n_limits=len(limits),
-                         cut_jacobian=df is not None and _cut(df, states),
                          equations=equations, states=states, limit_expressions=limits,
-                         curvatures=curvatures)
+                         curvatures=curvatures, branches=branches)
 
 
 def with_one_limit(programs, model, j):

@@ -25,6 +25,8 @@ LABELS = ("safe", "doomed", "outside", "undecided")
 KINDS = ("limit", "inflow", "invariant", "no-outflow", "open")
 #: Frame rules of the steps (docs/method.md, step 3).
 FRAME_RULES = tuple(FRAME_KINDS)
+#: How models with abs, min or max are stepped (docs/certificate-format.md, method.kinks).
+KINK_RULES = ("order-1", "branches")
 
 
 class _Reader:
@@ -97,6 +99,7 @@ class CertificateData:
     A: np.ndarray
     version: int = 3
     frames: str = "qr"
+    kinks: str = "order-1"
     claim: object = None
     regions: list = None
     trapped: np.ndarray = None
@@ -173,6 +176,10 @@ def _parse(path, data):
     frames = method.get("frames", "qr")
     if frames not in FRAME_RULES:
         rd.fail("method.frames", f"expected one of {', '.join(FRAME_RULES)}")
+    # certificates written before steps used the smooth branches of kinks: order 1
+    kinks = method.get("kinks", "order-1")
+    if kinks not in KINK_RULES:
+        rd.fail("method.kinks", f"expected one of {', '.join(KINK_RULES)}")
     faces = _read_faces(rd, data, n)
     cells = rd.get(data, "cells", "cells", dict)
     L = rd.get(cells, "count", "cells.count", int)
@@ -230,7 +237,7 @@ def _parse(path, data):
                         crossing_upper=crossing, survival_lower=survival, horizon=horizon,
                         image_known=np.array(known, bool), succ_start=succ_start, succ=succ,
                         set0_m=set0_m, step_start=step_start, h=h, E=E, m=m, A=A,
-                        version=version, frames=frames,
+                        version=version, frames=frames, kinks=kinks,
                          claim=data.get("claim"), regions=regions, trapped=trapped,
                          trapped_whole=whole, param_floats=param_floats)
 

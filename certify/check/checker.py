@@ -589,7 +589,7 @@ def check_certificate(path, model=None, jobs=None, progress=None):
         return _verdict(cert, failures + [_global(f"the cells do not tile the window: {p}")
                                           for p in problems], start, 0, {}, revised, model,
                         narrowed=narrowed)
-    programs = derive_programs(the_model, cert.order)
+    programs = derive_programs(the_model, cert.order, cert.kinks)
     params = tuple((p.lo, p.hi) for p in the_model.parameters)
     open_faces, invariant_faces = [], []
     base = CheckContext(programs=programs, params=params, window=cert.window, open_faces=(),

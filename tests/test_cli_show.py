@@ -57,7 +57,8 @@ def test_show_interval_parameter_and_kink_note(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "  k for every value in [0.25, 0.75] 1/s" in out
     assert "  x' = -k*abs(x)" in out
-    assert "note: abs/min/max make the right-hand side non-smooth: the flow is stepped at order 1" in out
+    assert ("note: abs/min/max make the right-hand side non-smooth: a step whose tube may hold "
+            "a kink is taken at order 1") in out
 
 
 def test_show_json(capsys):

@@ -210,3 +210,20 @@ def test_unknown_kink_rule_is_a_malformed_certificate(tmp_path):
         json.dump(data, fh)
     with pytest.raises(CertificateError, match="method.kinks"):
         check_certificate(cert)
+
+
+@pytest.mark.parametrize("arithmetic", ["float", "ball", "fine", "endpoint"])
+def test_every_checker_arithmetic_takes_the_branch_steps(tmp_path, monkeypatch, arithmetic):
+    # each of the checker's passes alone re-derives the branch choice and verifies
+    from certify.check import checker
+
+    proof = prove(parse_model(OSCILLATOR), budget=Budget(max_depth=4, time_limit=1e9))
+    assert (proof.labelling.label == "safe").any()
+    write_proof(proof, tmp_path, figures=False)
+    monkeypatch.setattr(checker, "PASSES", (arithmetic,))
+    result = check_certificate(tmp_path / "certificate.json.gz", jobs=1)
+    assert result.valid, result.failures[:3]
+    # the control: stepped at order 1 throughout, the same steps prove too little
+    monkeypatch.setattr(checker, "derive_programs",
+                        lambda model, order, kinks: derive_programs(model, order, "order-1"))
+    assert not check_certificate(tmp_path / "certificate.json.gz", jobs=1).valid

@@ -191,7 +191,7 @@ def test_oscillator_certificate_is_valid_and_uses_the_region(oscillator_cert):
 
 
 def test_kinked_certificate_is_valid_and_uses_the_region(tmp_path):
-    # a model with a kink is stepped at order 1 and has no Jacobian program; its region
+    # a model with a kink has no Jacobian program of the model as written; its region
     # is linearised by central differences and proven with the natural interval form,
     # and the checker re-verifies it with its own arithmetic
     proof = prove(parse_model(KINKED), method=Method(), max_depth=5)

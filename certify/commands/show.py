@@ -12,8 +12,9 @@ HELP = "print a model as certify reads it: states, parameters, equations, limits
 EXITS = "0 done, 2 usage or input error, 130 interrupted"
 
 _KINK_NOTE = (
-    "abs/min/max make the right-hand side non-smooth: the flow is stepped at order 1 "
-    "(no derivative is taken through a kink)"
+    "abs/min/max make the right-hand side non-smooth: a step whose tube may hold a kink "
+    "is taken at order 1 (no derivative is taken through a kink), the others on the "
+    "smooth side they keep to"
 )
 
 

@@ -418,10 +418,33 @@ def _branch_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
     model's right-hand side is on its a-priori box ``E`` (``programs.branches``), and
     with `programs` (order 1) where a kink may lie in ``E``; also the order of each."""
     N = len(m)
+    order = np.empty(N, int)
+    out = None
+    for progs, rows in branch_groups(programs, elo, ehi, params):
+        part = _taylor_step(progs, m[rows], [tuple(a[rows] for a in one) for one in sets],
+                            xlo[rows], xhi[rows], elo[rows], ehi[rows], h[rows], params,
+                            frames)
+        if out is None:
+            out = _scatter_like(part, N)
+        _scatter(out, part, rows)
+        order[rows] = progs.order
+    return out, order
+
+
+def branch_groups(programs, elo, ehi, params):
+    """The boxes ``E`` grouped by the programs that hold on the whole box.
+
+    Returns
+    -------
+    list of (FlowPrograms, ndarray of int)
+        For a model without branches, `programs` and every row. Otherwise the rows where
+        a kink may lie in ``E`` with `programs` (order 1), then per smooth branch met the
+        rows it holds on, with its programs (``programs.branches``). Empty groups are
+        left out.
+    """
     branches = programs.branches
     if branches is None:
-        return (_taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames),
-                np.full(N, programs.order))
+        return [(programs, np.arange(len(elo)))]
     slo, shi = evaluate_boxes(branches.switches, elo, ehi, params)
     choice = chosen_arguments(branches.sites, slo, shi)
     known = np.all(choice >= 0, axis=1)
@@ -431,19 +454,7 @@ def _branch_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
         patterns, which = np.unique(choice[rows], axis=0, return_inverse=True)
         groups += [(branches.programs(tuple(int(v) for v in pattern)),
                     rows[which.ravel() == g]) for g, pattern in enumerate(patterns)]
-    order = np.empty(N, int)
-    out = None
-    for progs, rows in groups:
-        if len(rows) == 0:
-            continue
-        part = _taylor_step(progs, m[rows], [tuple(a[rows] for a in one) for one in sets],
-                            xlo[rows], xhi[rows], elo[rows], ehi[rows], h[rows], params,
-                            frames)
-        if out is None:
-            out = _scatter_like(part, N)
-        _scatter(out, part, rows)
-        order[rows] = progs.order
-    return out, order
+    return [(progs, rows) for progs, rows in groups if len(rows)]
 
 
 def _scatter_like(part, N):

@@ -21,8 +21,8 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .flow import (DeadlinePassed, STOPPED, flow_boxes, frame_count, join_results,
-                   select_results, truncate_results)
+from .flow import (DeadlinePassed, STOPPED, branch_groups, flow_boxes, frame_count,
+                   join_results, select_results, truncate_results)
 from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
                      OUTSIDE, SAFE, UNDECIDED)
 from .steps import StepStore
@@ -521,13 +521,18 @@ class _Prover:
         dlo = np.minimum(iv.mul(h, h, rlo, rlo)[0], 0.0)
         lower, _ = iv.add(glo, glo, dlo, dlo)
         kept = (lower >= 0) | (rlo >= 0)
-        curvatures = self.programs.limit_curvatures
         steps = np.flatnonzero(~np.all(kept, axis=1) & np.all((glo >= 0) & (glo_end >= 0), axis=1))
-        if curvatures is None or len(steps) == 0:
+        if len(steps) == 0:
             return kept
         # (c) a solution dips below the lower of its two step ends by at most h^2 M / 8,
-        # M an upper bound of the limit's second derivative along it
-        _, chi = evaluate_boxes(curvatures, e_lo[steps], e_hi[steps], self.params)
+        # M an upper bound of the limit's second derivative along it (on the smooth
+        # branch that a model with kinks is on the step's tube; none where a kink may lie)
+        chi = np.full((len(steps), glo.shape[1]), np.nan)
+        for programs, rows in branch_groups(self.programs, e_lo[steps], e_hi[steps],
+                                            self.params):
+            if programs.limit_curvatures is not None:
+                _, chi[rows] = evaluate_boxes(programs.limit_curvatures, e_lo[steps[rows]],
+                                              e_hi[steps[rows]], self.params)
         hs = h[steps]
         _, h2 = iv.mul(hs, hs, hs, hs)
         _, dip = iv.mul(h2, h2, chi, chi)

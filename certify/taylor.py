@@ -201,7 +201,7 @@ class Branches:
         if choice not in self._built:
             equations = branch_equations(self.equations, self.sites, choice)
             self._built[choice] = _build(equations, self.states, self.parameters,
-                                         self.limits, self.order, False)
+                                         self.limits, self.order, True)
         return self._built[choice]
 
 

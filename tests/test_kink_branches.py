@@ -227,3 +227,24 @@ def test_every_checker_arithmetic_takes_the_branch_steps(tmp_path, monkeypatch, 
     monkeypatch.setattr(checker, "derive_programs",
                         lambda model, order, kinks: derive_programs(model, order, "order-1"))
     assert not check_certificate(tmp_path / "certificate.json.gz", jobs=1).valid
+
+
+def test_curvature_rule_keeps_grazing_tubes_on_a_branch(tmp_path, monkeypatch):
+    # rule (c) of the kept test (docs/design.md, section 5) on the smooth branch of a
+    # step's tube: it decides more of the oscillator, and the checker agrees
+    from dataclasses import replace
+
+    from certify import taylor
+
+    model = parse_model(OSCILLATOR)
+    with_rule = prove(model, budget=Budget(max_depth=5, time_limit=1e9))
+    write_proof(with_rule, tmp_path, figures=False)
+    result = check_certificate(tmp_path / "certificate.json.gz")
+    assert result.valid, result.failures[:3]
+    branch_programs = taylor.Branches.programs
+    monkeypatch.setattr(taylor.Branches, "programs", lambda self, choice: replace(
+        branch_programs(self, choice), limit_curvatures=None))
+    taylor._with_branches.cache_clear()
+    without = prove(model, budget=Budget(max_depth=5, time_limit=1e9))
+    taylor._with_branches.cache_clear()
+    assert with_rule.fractions["undecided"] < without.fractions["undecided"]

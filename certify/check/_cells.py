@@ -270,31 +270,38 @@ def _taylor_by_branch(ar, progs, params, hh, X, E, point):
     programs of the smooth branch that ``f`` is on its tube ``E`` where the model has
     kinks and ``method.kinks`` is ``"branches"`` (:class:`CheckBranches`), else with
     `progs` (models with kinks: order 1)."""
-    branches = progs.branches
-    if branches is None:
+    if progs.branches is None:
         return _taylor(ar, progs, params, hh, X, E, point)
-    N = len(ar.lower(point[0]))
-    switch = evaluate(branches.switches, ar, list(E) + params)
-    positive = np.stack([np.broadcast_to(_true(ar.lower(s) >= 0), N) for s in switch], axis=1)
-    negative = np.stack([np.broadcast_to(_true(ar.upper(s) <= 0), N) for s in switch], axis=1)
-    choices = branches.choices(positive, negative)
-    known = np.all(choices >= 0, axis=1)
-    groups = [(None, np.flatnonzero(~known))]
-    patterns, which = np.unique(choices[known], axis=0, return_inverse=True)
-    groups += [(tuple(int(v) for v in p), np.flatnonzero(known)[which.ravel() == g])
-               for g, p in enumerate(patterns)]
-    n = progs.n
+    N, n = len(ar.lower(point[0])), progs.n
     Y = [ar.exact(np.zeros(N)) for _ in range(n)]
     D = [[ar.exact(np.zeros(N)) for _ in range(n)] for _ in range(n)]
-    for choice, rows in groups:
-        if len(rows) == 0:
-            continue
-        own = progs if choice is None else replace(progs, **branches.taylor(choice))
+    for own, rows in _branch_groups(ar, progs, params, E):
         part = [[ar.take(a, rows) for a in box] for box in (X, E, point)]
         y, d = _taylor(ar, own, params, ar.take(hh, rows), *part)
         Y = [ar.put(a, rows, b) for a, b in zip(Y, y)]
         D = [[ar.put(a, rows, b) for a, b in zip(row_a, row_b)] for row_a, row_b in zip(D, d)]
     return Y, D
+
+
+def _branch_groups(ar, progs, params, E):
+    """The steps grouped by the programs that hold on their whole tubes `E`: for a model
+    with branches (``progs.branches``) the steps where a kink may lie in ``E`` with
+    `progs` (order 1), then per smooth branch met its steps with its Taylor programs and
+    limit curvatures; otherwise every step with `progs`. Empty groups are left out."""
+    N = len(ar.lower(E[0]))
+    branches = progs.branches
+    if branches is None:
+        return [(progs, np.arange(N))]
+    switch = evaluate(branches.switches, ar, list(E) + params)
+    positive = np.stack([np.broadcast_to(_true(ar.lower(s) >= 0), N) for s in switch], axis=1)
+    negative = np.stack([np.broadcast_to(_true(ar.upper(s) <= 0), N) for s in switch], axis=1)
+    choices = branches.choices(positive, negative)
+    known = np.all(choices >= 0, axis=1)
+    groups = [(progs, np.flatnonzero(~known))]
+    patterns, which = np.unique(choices[known], axis=0, return_inverse=True)
+    groups += [(replace(progs, **branches.taylor(tuple(int(v) for v in pattern))),
+                np.flatnonzero(known)[which.ravel() == g]) for g, pattern in enumerate(patterns)]
+    return [(own, rows) for own, rows in groups if len(rows)]
 
 
 def _taylor(ar, progs, params, hh, X, E, point):
@@ -347,17 +354,23 @@ def _kept_by_curvature(ar, context, hh, E, g, g_end, kept_by):
     todo = ~np.all(kept_by, axis=0) if kept_by else np.zeros(0, bool)
     for s, e in zip(start, end):
         todo &= _true(s >= 0) & _true(e >= 0)
-    curvatures = context.programs.curvatures
-    if curvatures is None or not todo.any():
+    if not todo.any():
         return out
-    idx = np.flatnonzero(todo)
-    box = [ar.take(x, idx) for x in E]
-    M = _joined(ar, curvatures, ar.cover(box, ar.pieces.tube), _params(ar, context))
-    h2 = ar.pow_int(ar.take(hh, idx), 2)
-    for j, Mj in enumerate(M):
-        dip = ar.upper(ar.mul(h2, Mj))
-        s, e = start[j][idx], end[j][idx]
-        out[j][idx] = _true(dip <= 0) | (_true(s * 8 >= dip) & _true(e * 8 >= dip))
+    params = _params(ar, context)
+    todo_idx = np.flatnonzero(todo)
+    tubes = [ar.take(x, todo_idx) for x in E]
+    # on the smooth branch a model with kinks is on the tube; none where a kink may lie
+    for progs, rows in _branch_groups(ar, context.programs, params, tubes):
+        if progs.curvatures is None:
+            continue
+        idx = todo_idx[rows]
+        box = [ar.take(x, rows) for x in tubes]
+        M = _joined(ar, progs.curvatures, ar.cover(box, ar.pieces.tube), params)
+        h2 = ar.pow_int(ar.take(hh, idx), 2)
+        for j, Mj in enumerate(M):
+            dip = ar.upper(ar.mul(h2, Mj))
+            s, e = start[j][idx], end[j][idx]
+            out[j][idx] = _true(dip <= 0) | (_true(s * 8 >= dip) & _true(e * 8 >= dip))
     return out
 
 

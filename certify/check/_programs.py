@@ -306,6 +306,8 @@ class CheckBranches:
     equations : tuple of sympy.Expr
     states, inputs : tuple of sympy.Symbol
     order : int
+    limits : tuple of sympy.Expr
+        The limits ``g_j`` (for their curvatures along each branch).
     """
 
     sites: tuple
@@ -314,6 +316,7 @@ class CheckBranches:
     states: tuple
     inputs: tuple
     order: int
+    limits: tuple = ()
     built: dict = field(default_factory=dict, compare=False, repr=False)
 
     def choices(self, positive, negative):
@@ -345,14 +348,18 @@ class CheckBranches:
     def taylor(self, choice):
         """The Taylor programs of the branch `choice` (one argument index per site):
         ``order``, ``remainder``, ``coefficients``, ``jacobian``, ``higher_jacobians``,
-        ``cut_jacobian`` as in :class:`CheckPrograms`."""
+        ``cut_jacobian``, and the limits' ``curvatures`` along it, as in
+        :class:`CheckPrograms`."""
         if choice not in self.built:
             replacement = {}
             for (expr, args, _), k in zip(self.sites, choice):
                 replacement[expr] = args[k].xreplace(replacement)
             equations = tuple(e.xreplace(replacement) for e in self.equations)
-            self.built[choice] = _taylor_programs(equations, self.states, self.inputs,
-                                                  self.order)
+            programs = _taylor_programs(equations, self.states, self.inputs, self.order)
+            rates = _rates(self.limits, equations, self.states)
+            programs["curvatures"] = compile_expressions(_rates(rates, equations, self.states),
+                                                         self.inputs)
+            self.built[choice] = programs
         return self.built[choice]
 
 
@@ -452,7 +459,7 @@ def derive_programs(model, order, kinks="order-1"):
                                             for i in range(len(args))
                                             for j in range(i + 1, len(args))], inputs)
             branches = CheckBranches(sites=sites, switches=switches, equations=equations,
-                                     states=states, inputs=inputs, order=order)
+                                     states=states, inputs=inputs, order=order, limits=limits)
     return CheckPrograms(n=len(states), on_tube=on_tube, **taylor,
                          limits=compile_expressions(list(limits), inputs),
                          field=compile_expressions(list(equations), inputs),
@@ -472,8 +479,10 @@ def with_one_limit(programs, model, j):
     rates = _rates((g,), programs.equations, programs.states)
     curvatures = None if programs.curvatures is None else \
         compile_expressions(_rates(rates, programs.equations, programs.states), inputs)
+    branches = None if programs.branches is None else \
+        replace(programs.branches, limits=(g,), built={})
     return replace(programs, on_tube=compile_expressions(list(programs.equations) + rates,
-                                                         inputs),
+                                                         inputs), branches=branches,
                    limits=compile_expressions([g], inputs), n_limits=1, limit_expressions=(g,),
                    curvatures=curvatures)
 

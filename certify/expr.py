@@ -45,6 +45,8 @@ __all__ = [
     "substitute",
     "format_number",
     "is_number_in_range",
+    "kink_sites",
+    "branch_equations",
     "parse_constraint",
     "parse_expression",
 ]
@@ -792,6 +794,41 @@ class _TidyPrinter(StrPrinter):
             sign = "-" if coeff < 0 else ""
             return f"{sign}{self._print(abs(coeff))}*({self._print(rest)})"
         return super()._print_Mul(expr)
+
+
+def kink_sites(equations):
+    """The ``max``, ``min`` and ``abs`` of `equations`, innermost first, each once.
+
+    The prover and the checker both step a model with kinks on the smooth branches
+    these sites leave (docs/method.md, "Models with kinks").
+
+    Returns
+    -------
+    tuple of (sympy.Expr, tuple of sympy.Expr, bool)
+        Per site: the expression, its arguments (``abs(a)``: ``a`` and ``-a``) and
+        whether it is a maximum (``abs`` is the maximum of its two).
+    """
+    sites, seen = [], set()
+    for equation in equations:
+        for node in sympy.postorder_traversal(equation):
+            if node in seen or not isinstance(node, (sympy.Max, sympy.Min, sympy.Abs)):
+                continue
+            seen.add(node)
+            if isinstance(node, sympy.Abs):
+                sites.append((node, (node.args[0], -node.args[0]), True))
+            else:
+                sites.append((node, tuple(node.args), isinstance(node, sympy.Max)))
+    return tuple(sites)
+
+
+def branch_equations(equations, sites, choice):
+    """`equations` with site ``s`` of :func:`kink_sites` replaced by its argument
+    ``choice[s]`` (inner sites inside the chosen arguments replaced too): the smooth
+    branch that the equations are where every site keeps that argument."""
+    replacement = {}
+    for (expr, args, _), k in zip(sites, choice):
+        replacement[expr] = args[k].xreplace(replacement)
+    return tuple(e.xreplace(replacement) for e in equations)
 
 
 def format_expression(expr):

@@ -13,11 +13,12 @@ from functools import lru_cache
 import numpy as np
 import sympy
 
-from .expr import substitute
+from .expr import branch_equations, kink_sites, substitute
 from .program import Program, compile_program
 
 __all__ = ["FlowPrograms", "Branches", "taylor_coefficients", "flow_programs",
-           "fixed_parameters", "jacobian_is_cut", "kink_sites", "branch_equations"]
+           "fixed_parameters", "jacobian_is_cut", "chosen_arguments",
+           "switch_expressions"]
 
 
 def taylor_coefficients(equations, states, order):
@@ -95,42 +96,11 @@ class FlowPrograms:
     branches: "Branches | None" = None
 
 
-def kink_sites(equations):
-    """The ``max``, ``min`` and ``abs`` of `equations`, innermost first, each once.
-
-    Returns
-    -------
-    list of (sympy.Expr, tuple of sympy.Expr, bool)
-        Per site: the expression, its arguments and whether it is a maximum. ``abs(a)``
-        is the maximum of ``a`` and ``-a``.
-    """
-    sites, seen = [], set()
-    for equation in equations:
-        for node in sympy.postorder_traversal(equation):
-            if node in seen or not isinstance(node, (sympy.Max, sympy.Min, sympy.Abs)):
-                continue
-            seen.add(node)
-            if isinstance(node, sympy.Abs):
-                sites.append((node, (node.args[0], -node.args[0]), True))
-            else:
-                sites.append((node, tuple(node.args), isinstance(node, sympy.Max)))
-    return sites
-
-
 def switch_expressions(sites):
     """The differences ``a_i - a_j`` (``i < j``) of the arguments of every site, in site
     order: their signs on a box say which argument a site equals there."""
     return [args[i] - args[j] for _, args, _ in sites
             for i in range(len(args)) for j in range(i + 1, len(args))]
-
-
-def branch_equations(equations, sites, choice):
-    """`equations` with site ``s`` replaced by its argument ``choice[s]`` (inner sites
-    inside the chosen arguments replaced too)."""
-    replacement = {}
-    for (expr, args, _), k in zip(sites, choice):
-        replacement[expr] = args[k].xreplace(replacement)
-    return tuple(e.xreplace(replacement) for e in equations)
 
 
 def chosen_arguments(sites, lo, hi):
@@ -139,8 +109,8 @@ def chosen_arguments(sites, lo, hi):
 
     Parameters
     ----------
-    sites : list
-        :func:`kink_sites`.
+    sites : tuple
+        :func:`certify.expr.kink_sites`.
     lo, hi : ndarray, shape (N, D)
         Enclosures of :func:`switch_expressions` on the boxes.
 
@@ -178,7 +148,7 @@ class Branches:
     Attributes
     ----------
     sites : list
-        :func:`kink_sites` of the equations.
+        :func:`certify.expr.kink_sites` of the equations.
     switches : Program
         :func:`switch_expressions` of the sites.
     equations, states, parameters, limits : tuple

@@ -24,8 +24,10 @@ from certify.errors import CertificateError
 from certify.evaluate import parameter_enclosures
 from certify.flow import OK, flow_boxes
 from certify.model import parse_model
+from certify.expr import branch_equations, kink_sites
 from certify.prove import Budget, Method, prove, write_proof
-from certify.taylor import chosen_arguments, flow_programs, kink_sites, switch_expressions
+from certify.taylor import chosen_arguments, flow_programs, switch_expressions
+from test_trapping import KINKED
 
 ONE_STATE = """\
 [model]
@@ -37,22 +39,7 @@ x = "{rhs}"
 [constraints]
 x_cap = "x <= 1.9"
 """
-OSCILLATOR = """\
-[model]
-name = "oscillator with a stiffer spring beyond x = 1"
-[states]
-x = { range = [-2, 2] }
-y = { range = [-2, 2] }
-[parameters]
-k = 1
-c = 0.5
-[equations]
-x = "y"
-y = "-k*x - c*y - 4*max(x - 1, 0)"
-[constraints]
-x_cap = "x <= 1.5"
-x_floor = "x >= -1.5"
-"""
+OSCILLATOR = KINKED  # a damped oscillator with a stiffer spring beyond x = 1
 
 
 def _flow(text, lo, hi, horizon, kinks):
@@ -127,6 +114,26 @@ def test_chosen_argument_is_the_value_on_the_whole_box(site):
             np.broadcast_to(arguments[pick](grid[:, 0], grid[:, 1]), len(grid)),
             np.broadcast_to(value(grid[:, 0], grid[:, 1]), len(grid)), rtol=0, atol=1e-12)
     assert chosen > 30  # the test did test something
+
+
+def test_branch_of_nested_sites_equals_the_equation_where_it_is_chosen():
+    # sympy's own evaluation of the nested Max/Min/Abs is the reference
+    model = parse_model(SITE.format(site="max(x, min(y, 1 - x)) + abs(x*y - min(y, 1 - x))"))
+    x, y = model.state_symbols
+    sites = kink_sites(model.equations[:1])
+    assert len(sites) == 3  # min(y, 1 - x) once (inside both others), abs, max
+    switches = sympy.lambdify([x, y], switch_expressions(sites), "numpy")
+    pts = np.random.default_rng(5).uniform(-2, 2, (400, 2))
+    s = np.array(switches(pts[:, 0], pts[:, 1]), float).T
+    choice = chosen_arguments(sites, s, s)  # at a point every sign is known
+    assert np.all(choice >= 0)
+    value = sympy.lambdify([x, y], model.equations[0], "numpy")(pts[:, 0], pts[:, 1])
+    for c in np.unique(choice, axis=0):
+        rows = np.all(choice == c, axis=1)
+        branch = branch_equations(model.equations[:1], sites, tuple(int(v) for v in c))[0]
+        assert not branch.has(sympy.Max, sympy.Min, sympy.Abs)
+        got = sympy.lambdify([x, y], branch, "numpy")(pts[rows, 0], pts[rows, 1])
+        np.testing.assert_allclose(got, value[rows], rtol=0, atol=1e-12)
 
 
 def test_decay_through_abs_matches_the_closed_form_and_is_tighter():

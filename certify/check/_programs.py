@@ -33,7 +33,7 @@ import numpy as np
 import sympy
 
 from ..errors import CertificateError
-from ..expr import substitute
+from ..expr import branch_equations, kink_sites, substitute
 
 __all__ = ["Program", "CheckPrograms", "CheckBranches", "compile_expressions",
            "derive_programs", "with_one_limit"]
@@ -351,31 +351,13 @@ class CheckBranches:
         ``cut_jacobian``, and the limits' ``curvatures`` along it, as in
         :class:`CheckPrograms`."""
         if choice not in self.built:
-            replacement = {}
-            for (expr, args, _), k in zip(self.sites, choice):
-                replacement[expr] = args[k].xreplace(replacement)
-            equations = tuple(e.xreplace(replacement) for e in self.equations)
+            equations = branch_equations(self.equations, self.sites, choice)
             programs = _taylor_programs(equations, self.states, self.inputs, self.order)
             rates = _rates(self.limits, equations, self.states)
             programs["curvatures"] = compile_expressions(_rates(rates, equations, self.states),
                                                          self.inputs)
             self.built[choice] = programs
         return self.built[choice]
-
-
-def _kink_sites(equations):
-    """The ``max``/``min``/``abs`` of `equations`, innermost first, each once."""
-    sites, seen = [], set()
-    for equation in equations:
-        for node in sympy.postorder_traversal(equation):
-            if node in seen or not isinstance(node, (sympy.Max, sympy.Min, sympy.Abs)):
-                continue
-            seen.add(node)
-            if isinstance(node, sympy.Abs):
-                sites.append((node, (node.args[0], -node.args[0]), True))
-            else:
-                sites.append((node, tuple(node.args), isinstance(node, sympy.Max)))
-    return tuple(sites)
 
 
 def _taylor_programs(equations, states, inputs, order):
@@ -454,7 +436,7 @@ def derive_programs(model, order, kinks="order-1"):
                   "coefficients": None, "jacobian": None, "higher_jacobians": None,
                   "cut_jacobian": False}
         if kinks == "branches" and order > 1:
-            sites = _kink_sites(equations)
+            sites = kink_sites(equations)
             switches = compile_expressions([args[i] - args[j] for _, args, _ in sites
                                             for i in range(len(args))
                                             for j in range(i + 1, len(args))], inputs)

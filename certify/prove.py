@@ -254,9 +254,11 @@ class _Tubes:
         growth_limit = self.follow or GROWTH_LIMIT
         too_wide = np.max((end_hi - end_lo) / (cell_hi - cell_lo), axis=1) > growth_limit
         # an end box beyond an open side would escape: follow the trajectories until
-        # they come back into the window or cross a limit out there
+        # they come back into the window or cross a limit out there, however wide the
+        # box grows (stopped out there, the cell escapes whatever its width)
         ones = np.ones(len(end_lo), bool)
         away = self.clip(end_lo, end_hi, ones, ones)[2]
+        too_wide &= ~away
         trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
         moved = (inside | trapped) if self.follow else (left | inside | trapped)
         moved &= ~away & (t_lo >= self.method.min_horizon)

@@ -47,6 +47,7 @@ __all__ = [
     "is_number_in_range",
     "kink_sites",
     "branch_equations",
+    "switch_expressions",
     "parse_constraint",
     "parse_expression",
 ]
@@ -819,6 +820,13 @@ def kink_sites(equations):
             else:
                 sites.append((node, tuple(node.args), isinstance(node, sympy.Max)))
     return tuple(sites)
+
+
+def switch_expressions(sites):
+    """The differences ``a_i - a_j`` (``i < j``) of the arguments of every site, in site
+    order: their signs on a box say which argument a site equals there."""
+    return [args[i] - args[j] for _, args, _ in sites
+            for i in range(len(args)) for j in range(i + 1, len(args))]
 
 
 def branch_equations(equations, sites, choice):

@@ -13,12 +13,11 @@ from functools import lru_cache
 import numpy as np
 import sympy
 
-from .expr import branch_equations, kink_sites, substitute
+from .expr import branch_equations, kink_sites, substitute, switch_expressions
 from .program import Program, compile_program
 
 __all__ = ["FlowPrograms", "Branches", "taylor_coefficients", "flow_programs",
-           "fixed_parameters", "jacobian_is_cut", "chosen_arguments",
-           "switch_expressions"]
+           "fixed_parameters", "jacobian_is_cut", "chosen_arguments"]
 
 
 def taylor_coefficients(equations, states, order):
@@ -96,13 +95,6 @@ class FlowPrograms:
     branches: "Branches | None" = None
 
 
-def switch_expressions(sites):
-    """The differences ``a_i - a_j`` (``i < j``) of the arguments of every site, in site
-    order: their signs on a box say which argument a site equals there."""
-    return [args[i] - args[j] for _, args, _ in sites
-            for i in range(len(args)) for j in range(i + 1, len(args))]
-
-
 def chosen_arguments(sites, lo, hi):
     """Per box and site, the argument the site equals on the whole box, -1 where none
     is known.
@@ -112,7 +104,7 @@ def chosen_arguments(sites, lo, hi):
     sites : tuple
         :func:`certify.expr.kink_sites`.
     lo, hi : ndarray, shape (N, D)
-        Enclosures of :func:`switch_expressions` on the boxes.
+        Enclosures of :func:`certify.expr.switch_expressions` on the boxes.
 
     Returns
     -------
@@ -150,7 +142,7 @@ class Branches:
     sites : list
         :func:`certify.expr.kink_sites` of the equations.
     switches : Program
-        :func:`switch_expressions` of the sites.
+        :func:`certify.expr.switch_expressions` of the sites.
     equations, states, parameters, limits : tuple
         What the branch programs are compiled from.
     order : int

@@ -24,9 +24,9 @@ from certify.errors import CertificateError
 from certify.evaluate import parameter_enclosures
 from certify.flow import OK, flow_boxes
 from certify.model import parse_model
-from certify.expr import branch_equations, kink_sites
+from certify.expr import branch_equations, kink_sites, switch_expressions
 from certify.prove import Budget, Method, prove, write_proof
-from certify.taylor import chosen_arguments, flow_programs, switch_expressions
+from certify.taylor import chosen_arguments, flow_programs
 from test_trapping import KINKED
 
 ONE_STATE = """\

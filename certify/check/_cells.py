@@ -319,7 +319,8 @@ def _taylor(ar, progs, params, hh, X, E, point):
                 Y[i] = ar.add(Y[i], ar.mul(powers[k], coeff[(k - 1) * n + i]))
     Y = [ar.add(Y[i], ar.mul(powers[q], remainder[i])) for i in range(n)]
     # DT(J) = I + sum h^k Df^[k](J)
-    D = [[ar.exact(np.full(len(ar.lower(point[0])), float(i == j))) for j in range(n)] for i in range(n)]
+    N = len(ar.lower(point[0]))
+    D = [[ar.exact(np.full(N, float(i == j))) for j in range(n)] for i in range(n)]
     if q > 1:
         # the Jacobian of f on J cut at m into 2^n parts where the prover cuts its own J
         J = [ar.hull(X[k], point[k]) for k in range(n)]

@@ -33,7 +33,7 @@ import numpy as np
 import sympy
 
 from ..errors import CertificateError
-from ..expr import branch_equations, kink_sites, substitute
+from ..expr import branch_equations, kink_sites, substitute, switch_expressions
 
 __all__ = ["Program", "CheckPrograms", "CheckBranches", "compile_expressions",
            "derive_programs", "with_one_limit"]
@@ -437,9 +437,7 @@ def derive_programs(model, order, kinks="order-1"):
                   "cut_jacobian": False}
         if kinks == "branches" and order > 1:
             sites = kink_sites(equations)
-            switches = compile_expressions([args[i] - args[j] for _, args, _ in sites
-                                            for i in range(len(args))
-                                            for j in range(i + 1, len(args))], inputs)
+            switches = compile_expressions(switch_expressions(sites), inputs)
             branches = CheckBranches(sites=sites, switches=switches, equations=equations,
                                      states=states, inputs=inputs, order=order, limits=limits)
     return CheckPrograms(n=len(states), on_tube=on_tube, **taylor,

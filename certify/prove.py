@@ -49,9 +49,6 @@ MAX_PIECE = 16384
 #: A followed tube (:meth:`_Prover.extend`) stops once its end box is this many times
 #: wider than its cell along some axis, not where it leaves the cell.
 FOLLOW_GROWTH_LIMIT = 4.0
-#: How much wider than its cell a followed tube beyond an open side may grow before it
-#: stops.
-AWAY_GROWTH_LIMIT = 16.0
 #: Cells per piece (and worker) of a followed round that the time limit cuts short: the
 #: pieces flowed before the limit are kept, the one it interrupts is lost.
 FOLLOW_PIECE = 2048
@@ -255,16 +252,11 @@ class _Tubes:
         _, gh = evaluate_limits(self.programs, end_lo, end_hi, self.params)
         crossed = np.any(gh < 0, axis=1)
         growth_limit = self.follow or GROWTH_LIMIT
-        widening = np.max((end_hi - end_lo) / (cell_hi - cell_lo), axis=1)
-        too_wide = widening > growth_limit
+        too_wide = np.max((end_hi - end_lo) / (cell_hi - cell_lo), axis=1) > growth_limit
         # an end box beyond an open side would escape: follow the trajectories until
-        # they come back into the window or cross a limit out there; a followed tube
-        # up to a wider growth limit (stopped out there, its cell escapes whatever its
-        # width)
+        # they come back into the window or cross a limit out there
         ones = np.ones(len(end_lo), bool)
         away = self.clip(end_lo, end_hi, ones, ones)[2]
-        if self.follow:
-            too_wide &= ~away | (widening > AWAY_GROWTH_LIMIT)
         trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
         moved = (inside | trapped) if self.follow else (left | inside | trapped)
         moved &= ~away & (t_lo >= self.method.min_horizon)

@@ -921,31 +921,3 @@ def test_transition_graph_edges_cover_simulated_images(certified):
                        for k in range(2))]
         assert held, (c, start, T, end)
 
-
-def test_a_followed_tube_beyond_an_open_side_grows_further_before_it_stops():
-    # the growth limit stops tubes whose images only widen further; beyond an open side
-    # a stopped tube would leave its cell undecided whatever its width, so a followed
-    # tube goes on there up to a wider limit (docs/proof-loop.md, "One cell: its tube
-    # and image"); tubes of a refinement round keep the plain limit
-    from dataclasses import replace
-
-    from certify.prove import (AWAY_GROWTH_LIMIT, FOLLOW_GROWTH_LIMIT, GROWTH_LIMIT, Budget,
-                               Method, _Prover)
-
-    prover = _Prover(load_model(ROTATION), Method(), Budget(), None)
-    kinds = {(f["axis"], f["side"]): f["kind"] for f in prover.faces}
-    assert kinds[(0, "lo")] == "open"  # x = -0.6, inside the limit x >= -0.9
-    cell_lo, cell_hi = np.array([[-0.6, 0.0]]), np.array([[-0.5, 0.1]])
-    late = np.array([10.0])
-    followed = replace(prover.tubes, follow=FOLLOW_GROWTH_LIMIT)
-
-    def stops(tubes, x_lo, x_hi, widening):
-        half = widening * 0.1 / 2  # along y, the cell's side times `widening`
-        return tubes.stops(cell_lo, cell_hi, np.array([[x_lo, -half]]),
-                           np.array([[x_hi, half]]), late).stop[0]
-
-    between = (max(GROWTH_LIMIT, FOLLOW_GROWTH_LIMIT) + AWAY_GROWTH_LIMIT) / 2
-    assert not stops(followed, -0.75, -0.65, between)  # beyond the open side
-    assert stops(followed, 0.0, 0.1, between)  # inside the window
-    assert stops(followed, -0.75, -0.65, 2 * AWAY_GROWTH_LIMIT)
-    assert stops(prover.tubes, -0.75, -0.65, between)

@@ -8,7 +8,8 @@ Run from the worktree root::
 Proves MODEL with ``Budget(max_depth=DEPTH, time_limit=1e9)`` (the other budget and
 method fields as the model file sets them) in this process, with timers around the
 functions of each phase. A phase's seconds exclude the timed phases it calls (a
-labelling inside the pruning counts as labelling), so the rows add up to the whole.
+labelling inside the pruning counts as labelling), so the rows add up to the whole;
+likewise the megabytes by which the peak resident set size rose during a phase.
 With ``--out`` it writes the certificate (no figures, the summary's seconds set to 0)
 and prints its sha256, to compare two versions of the code on the same proof.
 """
@@ -59,22 +60,40 @@ PHASES = {
 }
 
 _seconds = {name: 0.0 for name in PHASES}
+#: Megabytes by which the peak resident set size rose while the phase ran (not in a
+#: timed callee): where the peak of a proof is set.
+_raised = {name: 0.0 for name in PHASES}
 _stack = []
+_peak = [0.0]
+
+
+def _max_rss():
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _note_peak():
+    """Count the rise of the peak since the last note to the phase running."""
+    peak = _max_rss()
+    if _stack:
+        _raised[_stack[-1][0]] += peak - _peak[0]
+    _peak[0] = peak
 
 
 def _timed(name, fn):
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
-        _stack.append(0.0)  # seconds of timed callees
+        _note_peak()
+        _stack.append([name, 0.0])  # seconds of timed callees
         start = time.perf_counter()
         try:
             return fn(*args, **kwargs)
         finally:
             spent = time.perf_counter() - start
-            inner = _stack.pop()
+            _note_peak()
+            inner = _stack.pop()[1]
             _seconds[name] += spent - inner
             if _stack:
-                _stack[-1] += spent
+                _stack[-1][1] += spent
     return wrapper
 
 
@@ -97,6 +116,7 @@ def main(argv=None):
     args = ap.parse_args(argv)
     install()
     model = load_model(args.model)
+    _peak[0] = _max_rss()
     budget = prove.Budget(max_depth=args.depth, time_limit=1e9,
                           max_cells=int(model.settings.get("max_cells", 400_000)))
     wall0, cpu0 = time.perf_counter(), time.process_time()
@@ -108,12 +128,12 @@ def main(argv=None):
           f"stop: {proof.stop_reason}")
     print(f"wall {wall:.1f} s, CPU {cpu:.1f} s, peak RSS "
           f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
-    print("| phase | seconds | share |")
-    print("|---|---|---|")
+    print("| phase | seconds | share | peak RSS raised (MB) |")
+    print("|---|---|---|---|")
     for name, s in sorted(_seconds.items(), key=lambda kv: -kv[1]):
-        print(f"| {name} | {s:.1f} | {100 * s / wall:.1f} % |")
+        print(f"| {name} | {s:.1f} | {100 * s / wall:.1f} % | {_raised[name]:.0f} |")
     print(f"| other (loop, split, volumes) | {wall - timed:.1f} | "
-          f"{100 * (wall - timed) / wall:.1f} % |")
+          f"{100 * (wall - timed) / wall:.1f} % | |")
     if args.out:
         # the summary's seconds would differ between runs: the certificate compared is
         # the proof's alone

@@ -23,6 +23,9 @@ __all__ = ["CellTree", "index_dtype"]
 
 #: Pairs (query, node) tried at once by :meth:`CellTree.leaves_meeting`, roughly.
 FRONTIER = 1 << 19
+#: Most states for which the children a box meets are looked up in a table of
+#: ``4^n x 2^n`` bytes (:meth:`CellTree._children_meeting`).
+MEET_TABLE_STATES = 6
 
 
 def index_dtype(size):
@@ -58,6 +61,7 @@ class CellTree:
         self.first_child = np.full(1, -1)
         self.lo, self.hi = self._geometry(self.depth, self.index)
         self._offsets = np.array(list(product((0, 1), repeat=self.n)), np.int64)
+        self._meet_table = None  # :meth:`_children_meeting`
 
     def __len__(self):
         return len(self.depth)
@@ -182,27 +186,60 @@ class CellTree:
         return query, np.concatenate(out_leaf)
 
     def _meeting_block(self, q, qlo, qhi, strict):
-        """:meth:`leaves_meeting` for the queries `q`; also the most pairs at one level."""
-        node = np.zeros(len(q), int)
-        out_q, out_leaf = [np.zeros(0, int)], [np.zeros(0, int)]
+        """:meth:`leaves_meeting` for the queries `q`; also the most pairs at one level.
+
+        The walk goes down from the root and makes only the children that meet a box.
+        A child's float side along an axis is its parent's lower or upper half there,
+        the sides of the first child (all lower halves) or of the last (all upper), so
+        two tests per axis decide all ``2^n`` children. A strict test ``lo < b`` is
+        ``lo <= `` the float below ``b`` (NaN fails both).
+        """
+        bound_hi = np.where(strict[q], np.nextafter(qhi[q], -np.inf), qhi[q])
+        bound_lo = np.where(strict[q], np.nextafter(qlo[q], np.inf), qlo[q])
         k = len(self._offsets)
-        widest = 0
-        while len(q):
-            widest = max(widest, len(q))
-            below = np.where(strict[q], self.lo[node] < qhi[q], self.lo[node] <= qhi[q])
-            above = np.where(strict[q], self.hi[node] > qlo[q], self.hi[node] >= qlo[q])
-            meet = np.all(below & above, axis=1)
-            q, node = q[meet], node[meet]
+        mine = np.flatnonzero(np.all((self.lo[0] <= bound_hi) & (self.hi[0] >= bound_lo),
+                                     axis=1))
+        node = np.zeros(len(mine), int)
+        out_q, out_leaf = [np.zeros(0, int)], [np.zeros(0, int)]
+        widest = len(q)
+        while len(mine):
             child = self.first_child[node]
             leaf = child < 0
-            out_q.append(q[leaf])
+            out_q.append(q[mine[leaf]])
             out_leaf.append(node[leaf])
-            q = np.repeat(q[~leaf], k)
-            node = (child[~leaf][:, None] + np.arange(k)[None]).reshape(-1)
+            mine, child = mine[~leaf], child[~leaf]
+            widest = max(widest, k * len(mine))
+            blo, bhi = bound_lo[mine], bound_hi[mine]
+            last = child + (k - 1)
+            lower = (self.lo[child] <= bhi) & (self.hi[child] >= blo)
+            higher = (self.lo[last] <= bhi) & (self.hi[last] >= blo)
+            meet = self._children_meeting(lower, higher)
+            # row-major: per parent, its meeting children in order
+            parent, offset = np.nonzero(meet)
+            mine, node = mine[parent], child[parent] + offset
         query = np.concatenate(out_q)
         leaf = np.concatenate(out_leaf)
         order = np.argsort(query, kind="stable")
         return query[order], leaf[order], widest
+
+    def _children_meeting(self, lower, higher):
+        """Per parent, which of its ``2^n`` children meet a box, from whether the lower
+        and the upper half along each axis do (`lower`, `higher`, shape ``(P, n)``): up
+        to MEET_TABLE_STATES states a table looked up by the ``2n`` bits."""
+        upper = self._offsets.T.astype(bool)  # (n, 2^n): the child's half along each axis
+        if self.n > MEET_TABLE_STATES:
+            meet = np.ones((len(lower), len(self._offsets)), bool)
+            for axis in range(self.n):
+                meet &= np.where(upper[axis], higher[:, axis, None], lower[:, axis, None])
+            return meet
+        if self._meet_table is None:
+            bits = np.array(list(product((0, 1), repeat=2 * self.n)), bool)[:, ::-1]
+            low, high = bits[:, 0::2], bits[:, 1::2]
+            self._meet_table = np.all(np.where(upper[None], high[:, :, None],
+                                               low[:, :, None]), axis=1)
+        weights = 1 << np.arange(2 * self.n)
+        code = lower @ weights[0::2] + higher @ weights[1::2]
+        return self._meet_table[code]
 
     def leaf_containing(self, points):
         """For each point, one leaf whose float box contains it (-1 if outside the window).

@@ -17,6 +17,8 @@ from . import interval as iv
 __all__ = ["CellFacts", "Labelling", "label_cells", "reversed_graph", "unit_weights"]
 
 SAFE, DOOMED, OUTSIDE, UNDECIDED = "safe", "doomed", "outside", "undecided"
+#: Edges copied at a time by :func:`_compress_into`.
+COMPRESS_BLOCK = 1 << 22
 
 
 @dataclass
@@ -93,14 +95,33 @@ def reversed_graph(n_nodes, src, dst, keep, starts=()):
     Edge lists can hold a hundred edges a cell: they are copied once, in their (narrow)
     index type, and freed once the matrix is made.
     """
+    return _reversed_graph(n_nodes, src, dst, keep, [starts])
+
+
+def _reversed_graph(n_nodes, src, dst, keep, starts):
+    """:func:`reversed_graph` with one super node per list in `starts`: node
+    ``n_nodes + j`` has edges to the nodes ``starts[j]``."""
     k = int(np.count_nonzero(keep))
-    rows = np.empty(k + len(starts), dst.dtype)
-    cols = np.empty(k + len(starts), src.dtype)
-    np.compress(keep, dst, out=rows[:k])
-    np.compress(keep, src, out=cols[:k])
-    rows[k:], cols[k:] = n_nodes, starts
-    return sp.csr_matrix((np.ones(len(rows), bool), (rows, cols)),
-                         shape=(n_nodes + 1, n_nodes + 1))
+    first = k + np.cumsum([0] + [len(s) for s in starts])
+    rows = np.empty(first[-1], dst.dtype)
+    cols = np.empty(first[-1], src.dtype)
+    _compress_into(keep, dst, rows)
+    _compress_into(keep, src, cols)
+    for j, nodes in enumerate(starts):
+        rows[first[j]:first[j + 1]], cols[first[j]:first[j + 1]] = n_nodes + j, nodes
+    size = n_nodes + len(starts)
+    return sp.csr_matrix((np.ones(len(rows), bool), (rows, cols)), shape=(size, size))
+
+
+def _compress_into(keep, values, out):
+    """``values[keep]`` written to the start of `out`, a block at a time (as fast as a
+    boolean index, without a second copy of the whole list; ``np.compress`` with ``out``
+    took ten times as long)."""
+    done = 0
+    for first in range(0, len(values), COMPRESS_BLOCK):
+        part = values[first:first + COMPRESS_BLOCK][keep[first:first + COMPRESS_BLOCK]]
+        out[done:done + len(part)] = part
+        done += len(part)
 
 
 def unit_weights(graph):
@@ -113,23 +134,22 @@ def _reachable(n_nodes, src, dst, keep, targets):
     """Nodes that reach a target along the edges `keep` (BFS on the reversed graph)."""
     if not targets.any():
         return np.zeros(n_nodes, bool)
-    g = unit_weights(reversed_graph(n_nodes, src, dst, keep, np.flatnonzero(targets)))
-    order = breadth_first_order(g, n_nodes, directed=True, return_predecessors=False)
-    out = np.zeros(n_nodes + 1, bool)
+    graph = reversed_graph(n_nodes, src, dst, keep, np.flatnonzero(targets))
+    return _reached(graph, n_nodes, n_nodes)
+
+
+def _reached(graph, start, n_nodes):
+    """The nodes below `n_nodes` that a BFS from the node `start` of `graph` reaches."""
+    order = breadth_first_order(unit_weights(graph), start, directed=True,
+                                return_predecessors=False)
+    out = np.zeros(graph.shape[0], bool)
     out[order] = True
     return out[:n_nodes]
 
 
-def _safe(facts, L):
-    trapped = np.zeros(L, bool) if facts.trapped is None else facts.trapped >= 0
-    candidate = (~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes) | trapped
-    keep_edge = ~facts.outside[facts.dst] & ~trapped[facts.src]
-    targets = ~candidate & ~facts.outside
-    bad = _reachable(L, facts.src, facts.dst, keep_edge, targets)
-    return candidate & ~bad
-
-
-def _doomed(facts, L, safe):
+def _doomed(facts, L, safe, reverse):
+    """Doomed ranks and crossing bounds; `reverse` holds, per leaf that is not outside,
+    its predecessors in its row."""
     rank = np.full(L, -1)
     upper = np.full(L, np.inf)
     zero = facts.outside | np.isfinite(facts.crossing)
@@ -137,10 +157,13 @@ def _doomed(facts, L, safe):
     rank[zero] = 0
     upper[zero] = np.where(facts.outside[zero], 0.0, facts.crossing[zero])
     eligible = facts.flow_ok & ~facts.escapes & ~safe & ~zero
-    out_degree = np.bincount(facts.src, minlength=L)
-    # only the structure is used: one byte an edge
-    reverse = sp.csr_matrix((np.ones(len(facts.src), bool), (facts.dst, facts.src)), shape=(L, L))
-    remaining = out_degree - np.bincount(facts.src[zero[facts.dst]], minlength=L)
+    src, dst = facts.src, facts.dst
+    if np.any(src[1:] < src[:-1]):  # the prover's edges come sorted by source
+        order = np.argsort(src, kind="stable")
+        src, dst = src[order], dst[order]
+    start = np.searchsorted(src, np.arange(L + 1))
+    out_degree = np.diff(start)
+    remaining = out_degree - np.bincount(src[zero[dst]], minlength=L)
     # a cell whose whole image lies where it is harmless has crossed by its horizon
     new = eligible & (remaining == 0)
     r = 0
@@ -148,32 +171,39 @@ def _doomed(facts, L, safe):
         r += 1
         rank[new] = r
         cells = np.flatnonzero(new)
-        succ_max = np.zeros(L)
-        edge = new[facts.src]
-        np.maximum.at(succ_max, facts.src[edge], upper[facts.dst[edge]])
-        _, up = iv.add(facts.horizon_hi[cells], facts.horizon_hi[cells],
-                       succ_max[cells], succ_max[cells])
+        # the largest bound among each cell's successors (0 for none), from its edges
+        counts = out_degree[cells]
+        ends = np.cumsum(counts)
+        edges = np.arange(ends[-1]) + np.repeat(start[cells] - (ends - counts), counts)
+        succ_max = np.zeros(len(cells))
+        some = counts > 0
+        if edges.size:
+            succ_max[some] = np.maximum(0.0, np.maximum.reduceat(upper[dst[edges]],
+                                                                 (ends - counts)[some]))
+        _, up = iv.add(facts.horizon_hi[cells], facts.horizon_hi[cells], succ_max, succ_max)
         upper[cells] = up
-        preds = reverse[cells].indices
-        np.subtract.at(remaining, preds, 1)
+        remaining -= np.bincount(reverse[cells].indices, minlength=L)[:L]
         new = eligible & (rank < 0) & (remaining == 0)
     return rank, upper
 
 
-def _survival(facts, L, label):
-    """Lower bounds L_c = min(first_unkept_c, T_c + min_d L_d) over non-outside successors."""
-    source = np.where(facts.outside, 0.0, facts.first_unkept)
+def _survival(facts, L, label, graph, source):
+    """Lower bounds L_c = min(first_unkept_c, T_c + min_d L_d) over non-outside successors.
+
+    `graph` (:func:`_graph`) has the edges into leaves that are not outside, reversed,
+    and a super node ``L + 1`` with edges to the leaves where `source` (the bound from a
+    leaf's own facts) is finite.
+    """
     finite = np.isfinite(source)
-    super_node = L
-    g = reversed_graph(L, facts.src, facts.dst, ~facts.outside[facts.dst], np.flatnonzero(finite))
-    if g.nnz == 0:
+    super_node = L + 1
+    if graph.indptr[L] == 0 and not finite.any():
         return np.where(finite, source, np.inf)
     # an edge d -> c weighs T_c, one from the super node source_c + 1 (shifted by 1 so
     # that zero weights survive the sparse format)
-    w = facts.horizon_lo[g.indices]
-    first = g.indptr[super_node]
-    w[first:] = source[g.indices[first:]] + 1.0
-    g = sp.csr_matrix((w, g.indices, g.indptr), shape=g.shape)
+    w = facts.horizon_lo[graph.indices]
+    first = graph.indptr[super_node]
+    w[first:] = source[graph.indices[first:]] + 1.0
+    g = sp.csr_matrix((w, graph.indices, graph.indptr), shape=graph.shape)
     dist = dijkstra(g, directed=True, indices=super_node)[:L] - 1.0
     # float sums may round up: scale down so every bound stays a lower bound
     dist = np.where(np.isfinite(dist),
@@ -196,12 +226,30 @@ def label_cells(facts):
     Labelling
     """
     L = len(facts.outside)
-    safe = _safe(facts, L)
-    rank, upper = _doomed(facts, L, safe)
+    trapped = np.zeros(L, bool) if facts.trapped is None else facts.trapped >= 0
+    # safe: the candidates that reach no target along edges into leaves that are not
+    # outside and out of leaves that are not trapped
+    candidate = (~facts.outside & facts.flow_ok & facts.kept & ~facts.escapes) | trapped
+    targets = ~candidate & ~facts.outside
+    safe = None
+    if trapped.any():
+        # a graph of its own, freed before the shared one below is made
+        safe = candidate & ~_reachable(L, facts.src, facts.dst,
+                                       ~facts.outside[facts.dst] & ~trapped[facts.src], targets)
+        targets[:] = False
+    source = np.where(facts.outside, 0.0, facts.first_unkept)
+    # one matrix of the edges into leaves that are not outside, reversed, serves the
+    # three fixpoints (edge lists can hold a hundred edges a cell): super node L leads
+    # to the safe test's targets, L + 1 to the leaves whose survival bound starts finite
+    graph = _reversed_graph(L, facts.src, facts.dst, ~facts.outside[facts.dst],
+                            [np.flatnonzero(targets), np.flatnonzero(np.isfinite(source))])
+    if safe is None:
+        safe = candidate & ~_reached(graph, L, L)
+    rank, upper = _doomed(facts, L, safe, graph)
     label = np.full(L, UNDECIDED, dtype=object)
     label[safe] = SAFE
     label[rank >= 0] = DOOMED
     label[facts.outside] = OUTSIDE
     label = label.astype(str)
-    survival = _survival(facts, L, label)
+    survival = _survival(facts, L, label, graph, source)
     return Labelling(label=label, rank=rank, crossing_upper=upper, survival_lower=survival)

@@ -418,6 +418,10 @@ def _branch_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
     model's right-hand side is on its a-priori box ``E`` (``programs.branches``), and
     with `programs` (order 1) where a kink may lie in ``E``; also the order of each."""
     N = len(m)
+    if programs.branches is None:
+        # one group of every row: no copies of the batch on each step
+        return (_taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames),
+                np.full(N, programs.order))
     order = np.empty(N, int)
     out = None
     for progs, rows in branch_groups(programs, elo, ehi, params):

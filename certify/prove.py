@@ -1086,7 +1086,7 @@ def short_of_budget(tree, wanted, budget, n_leaves, elapsed, last_round):
     """
     if len(wanted) == 0:
         return None
-    room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
+    room = _split_room(tree, budget, n_leaves)
     if room <= 0:
         return f"cell limit {budget.max_cells} reached"
     per_split = _seconds_per_split(tree, last_round)
@@ -1106,6 +1106,11 @@ def time_fit(tree, budget, elapsed, last_round):
     if not per_split:
         return 0
     return max(int(TIME_FIT_SHARE * (budget.time_limit - elapsed) / per_split), 0)
+
+
+def _split_room(tree, budget, n_leaves):
+    """How many leaves can be split (each adds 2^n - 1 leaves) within the cell limit."""
+    return (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
 
 
 def _seconds_per_split(tree, last_round):
@@ -1129,7 +1134,7 @@ def split_shallowest(tree, wanted, budget, n_leaves, elapsed, most=None):
     """
     if elapsed >= budget.time_limit:
         return None, f"time limit {budget.time_limit:g} s reached"
-    room = (budget.max_cells - n_leaves) // (2 ** tree.n - 1)
+    room = _split_room(tree, budget, n_leaves)
     if room <= 0:
         return None, f"cell limit {budget.max_cells} reached"
     if most is not None:

@@ -34,7 +34,7 @@ from .evaluate import evaluate_boxes
 from .taylor import chosen_arguments
 
 __all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
-           "join_results", "select_results", "truncate_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
+           "join_results", "truncate_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
 
 #: A parallelepiped frame with a larger condition number is replaced by its QR factor.
 FRAME_CONDITION_LIMIT = 1e3
@@ -712,8 +712,8 @@ def join_results(parts):
     return FlowResult(**joined)
 
 
-def truncate_results(result, n_steps):
-    """The flows of `result` cut after their first ``n_steps[b]`` steps.
+def truncate_results(result, n_steps, boxes=None):
+    """The flows of `result` (or of its boxes `boxes`) cut after ``n_steps[b]`` steps.
 
     A flow's first steps are a flow in their own right (each step starts from the end of
     the one before), stopped at the end of its last kept step: that end box is its image
@@ -724,35 +724,32 @@ def truncate_results(result, n_steps):
     ----------
     result : FlowResult
     n_steps : ndarray of int, shape (N,)
-        Steps kept per box, between 1 and ``result.n_steps`` (a box that keeps all its
-        steps is left as it was).
+        Steps kept per box, between 1 and that box's ``n_steps`` (a box that keeps all
+        its steps is left as it was).
+    boxes : ndarray of int, shape (N,), optional
+        The boxes of `result` to take, in that order (default: all of them). Only their
+        kept steps are copied.
 
     Returns
     -------
     FlowResult
     """
+    boxes = np.arange(len(result.n_steps)) if boxes is None else np.asarray(boxes, int)
     n_steps = np.asarray(n_steps, int)
-    cut = n_steps < result.n_steps
-    starts, out = _first_steps(result, result.step_start, n_steps)
-    boxes = {name: getattr(result, name).copy() for name in _BOX_FIELDS}
-    last = result.step_start[cut] + n_steps[cut] - 1
-    boxes["n_steps"] = n_steps.copy()
-    boxes["status"][cut] = STOPPED
-    boxes["t_lo"][cut], boxes["t_hi"][cut] = iv.add(result.t0_lo[last], result.t0_hi[last],
-                                                    result.h[last], result.h[last])
-    boxes["image_lo"][cut], boxes["image_hi"][cut] = result.end_lo[last], result.end_hi[last]
+    step_start = result.step_start[boxes]
+    cut = n_steps < result.n_steps[boxes]
+    starts, out = _first_steps(result, step_start, n_steps)
+    fields = {name: getattr(result, name)[boxes] for name in _BOX_FIELDS}
+    last = step_start[cut] + n_steps[cut] - 1
+    fields["n_steps"] = n_steps.copy()
+    fields["status"][cut] = STOPPED
+    fields["t_lo"][cut], fields["t_hi"][cut] = iv.add(result.t0_lo[last], result.t0_hi[last],
+                                                      result.h[last], result.h[last])
+    fields["image_lo"][cut], fields["image_hi"][cut] = result.end_lo[last], result.end_hi[last]
     # the sets at the horizon belong to the whole flow: a cut flow has none (NaN)
     for name in ("image_m", "image_A", "image_r_lo", "image_r_hi"):
-        boxes[name][cut] = np.nan
-    return FlowResult(**out, **boxes, step_start=starts)
-
-
-def select_results(result, boxes):
-    """The flows of the boxes `boxes` of `result` (in that order), with their steps."""
-    boxes = np.asarray(boxes, int)
-    starts, out = _first_steps(result, result.step_start[boxes], result.n_steps[boxes])
-    out.update({name: getattr(result, name)[boxes] for name in _BOX_FIELDS})
-    return FlowResult(**out, step_start=starts)
+        fields[name][cut] = np.nan
+    return FlowResult(**out, **fields, step_start=starts)
 
 
 def _first_steps(result, step_start, n_steps):

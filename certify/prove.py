@@ -22,7 +22,7 @@ from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
 from .flow import (DeadlinePassed, STOPPED, branch_groups, flow_boxes, frame_count,
-                   join_results, select_results, truncate_results)
+                   join_results, truncate_results)
 from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
                      OUTSIDE, SAFE, UNDECIDED)
 from .steps import StepStore
@@ -67,6 +67,8 @@ PRUNE_ROUNDS = 3
 PRUNE_GAIN = 0.01
 #: Most passes that cut followed tubes at a decisive step end (:meth:`_Prover.extend`).
 DECISIVE_PASSES = 4
+#: Candidate step ends whose successors are looked up at a time (:meth:`_Prover._step_ends`).
+STEP_END_BLOCK = 1 << 16
 
 
 @dataclass(frozen=True)
@@ -300,13 +302,16 @@ class _StepEnds:
     """Step ends at which followed tubes could be cut (:meth:`_Prover._step_ends`).
 
     Per candidate: ``box`` (its flow), ``pos`` (its step within the flow), ``kept``
-    (every step up to it keeps the limits); and the pairs ``query`` (candidate),
-    ``leaf`` (leaf number) of the leaves its box meets.
+    (every step up to it keeps the limits), ``doomed_next`` and ``safe_next`` (its box
+    meets a leaf labelled doomed, safe); and the pairs ``query`` (candidate), ``leaf``
+    (leaf number) of the undecided leaves its box meets.
     """
 
     box: np.ndarray
     pos: np.ndarray
     kept: np.ndarray
+    doomed_next: np.ndarray
+    safe_next: np.ndarray
     query: np.ndarray
     leaf: np.ndarray
 
@@ -540,12 +545,19 @@ class _Prover:
         kept[steps] |= (ends >= 0) & ((dip <= 0) | (8 * ends >= dip))
         return kept
 
-    def _step_ends(self, result, leaves):
-        """The step ends at which the flows of `result` could be cut, and their successors.
+    def _step_ends(self, result, leaves, label, pending):
+        """The step ends at which the `pending` flows of `result` could be cut.
 
         A tube may end at any step end (the checker re-derives everything from the steps
         kept). The candidates are the step ends past ``min_horizon`` whose clipped box
-        does not escape; their successors are found among `leaves` as for an image.
+        does not escape; their successors are found among `leaves` as for an image. The
+        passes only decide undecided leaves, and a decided leaf keeps its label, so per
+        candidate it is enough to keep whether it meets a leaf labelled doomed or safe
+        under `label` and which undecided leaves it meets; candidates that meet both a
+        doomed and a safe leaf, or a safe leaf after a step not kept, can never be chosen
+        and are left out. The steps are taken in blocks of :data:`STEP_END_BLOCK`, so
+        that no array of all their boxes or successors is made (on a 4D model at depth
+        5, with every pair at once, the passes took over 5 GB).
         """
         S, N = len(result.h), len(result.n_steps)
         box = np.repeat(np.arange(N), result.n_steps)
@@ -554,17 +566,37 @@ class _Prover:
         first_bad = np.full(N, S)
         np.minimum.at(first_bad, box[~kept], pos[~kept])
         t1_lo, _ = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
-        ones = np.ones(S, bool)
-        lo, hi, escapes = self.tubes.clip(result.end_lo, result.end_hi, ones, ones)
-        steps = np.flatnonzero((t1_lo >= self.method.min_horizon) & ~escapes
-                               & np.all(lo <= hi, axis=1))
+        candidate = (t1_lo >= self.method.min_horizon) & pending[box]
         number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
         number[leaves] = np.arange(len(leaves))
-        query, leaf = self.tree.leaves_meeting(lo[steps], hi[steps],
-                                               strict=self._thick_axes(lo[steps], hi[steps]))
-        return _StepEnds(box=box[steps], pos=pos[steps],
-                         kept=pos[steps] < first_bad[box[steps]], query=query,
-                         leaf=number[leaf])
+        doomed, safe, undecided = label == DOOMED, label == SAFE, label == UNDECIDED
+        dtype, found = index_dtype(S), 0
+        parts = []
+        for first in range(0, S, STEP_END_BLOCK):
+            rows = first + np.flatnonzero(candidate[first:first + STEP_END_BLOCK])
+            ones = np.ones(len(rows), bool)
+            lo, hi, escapes = self.tubes.clip(result.end_lo[rows], result.end_hi[rows],
+                                              ones, ones)
+            usable = ~escapes & np.all(lo <= hi, axis=1)
+            rows, lo, hi = rows[usable], lo[usable], hi[usable]
+            query, leaf = self.tree.leaves_meeting(lo, hi, strict=self._thick_axes(lo, hi))
+            leaf = number[leaf]
+            doomed_next = np.bincount(query, doomed[leaf], len(rows)) > 0
+            safe_next = np.bincount(query, safe[leaf], len(rows)) > 0
+            rows_kept = pos[rows] < first_bad[box[rows]]
+            hopeful = ~(safe_next & (doomed_next | ~rows_kept))
+            renumber = found + np.cumsum(hopeful) - 1
+            found += int(hopeful.sum())
+            pair = undecided[leaf] & hopeful[query]
+            parts.append((rows[hopeful], rows_kept[hopeful], doomed_next[hopeful],
+                          safe_next[hopeful], renumber[query[pair]].astype(dtype), leaf[pair]))
+        if found == 0:
+            return None
+        rows, rows_kept, doomed_next, safe_next, query, leaf = (
+            np.concatenate(column) for column in zip(*parts))
+        return _StepEnds(box=box[rows], pos=pos[rows], kept=rows_kept,
+                         doomed_next=doomed_next, safe_next=safe_next, query=query,
+                         leaf=leaf)
 
     @staticmethod
     def _decisive_ends(ends, label, n_steps, pending):
@@ -573,12 +605,11 @@ class _Prover:
         or outside under `label`; all of them for flows without one or not `pending`.
         The labels are a guess only: the labelling that follows decides."""
         count = len(ends.box)
-        outside = label == OUTSIDE
         # per leaf first: string compares on the (many) pairs would be slow
-        not_safe = ((label != SAFE) & ~outside)[ends.leaf]
-        not_doomed = ((label != DOOMED) & ~outside)[ends.leaf]
-        not_safe = np.bincount(ends.query, not_safe, count) > 0
-        not_doomed = np.bincount(ends.query, not_doomed, count) > 0
+        not_safe = ends.doomed_next | (np.bincount(ends.query, (label != SAFE)[ends.leaf],
+                                                   count) > 0)
+        not_doomed = ends.safe_next | (np.bincount(ends.query, (label != DOOMED)[ends.leaf],
+                                                   count) > 0)
         decisive = ((~not_safe & ends.kept) | ~not_doomed) & pending[ends.box]
         first = np.full(len(n_steps), np.iinfo(np.int64).max)
         np.minimum.at(first, ends.box[decisive], ends.pos[decisive])
@@ -656,13 +687,15 @@ class _Prover:
         # under a deadline: the step ends, a pass and the last labelling cost about three
         # labellings, every further pass and the last one about two
         passes = DECISIVE_PASSES if self._time_left() >= 3 * self.label_seconds else 0
-        ends = self._step_ends(full, leaves) if passes else None
+        ends = self._step_ends(full, leaves, label, pending) if passes else None
+        if ends is None:
+            passes = 0
         for _ in range(passes):
             keep = self._decisive_ends(ends, label, full.n_steps, pending)
             cut = np.flatnonzero(keep < full.n_steps)
             if len(cut) == 0:
                 break
-            tubes = truncate_results(select_results(full, cut), keep[cut])
+            tubes = truncate_results(full, keep[cut], boxes=cut)
             chosen = todo[cut]
             _, label, back, _ = self._try_tubes(
                 chosen, lambda: self._record_tubes(chosen, tubes))

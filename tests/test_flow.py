@@ -21,7 +21,7 @@ from scipy.linalg import expm
 
 from certify import interval as iv
 from certify.flow import (NO_ENCLOSURE, NOT_FINITE, OK, STEP_LIMIT, STOPPED, flow_boxes,
-                          hull_of_set, interval_inverse, select_results, truncate_results)
+                          hull_of_set, interval_inverse, truncate_results)
 from certify.taylor import _build
 
 x, y, s, k, r = sympy.symbols("x y s k r", real=True)
@@ -578,9 +578,8 @@ def test_selected_and_truncated_flows_are_flows_of_their_own():
                    max_horizon=2.0)
     assert (R.status == OK).all() and (R.n_steps >= 4).all()
     boxes = np.array([2, 0])
-    picked = select_results(R, boxes)
     keep = np.array([R.n_steps[2] // 2, R.n_steps[0]])
-    T = truncate_results(picked, keep)
+    T = truncate_results(R, keep, boxes=boxes)
     np.testing.assert_array_equal(T.n_steps, keep)
     for i, b in enumerate(boxes):
         for name in ("h", "e_lo", "e_hi", "end_lo", "end_hi", "t0_lo"):

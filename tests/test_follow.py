@@ -80,6 +80,22 @@ def test_cut_tubes_keep_every_decided_label_and_decide_more(runs, uncut):
     assert followed.fractions["undecided"] < uncut.fractions["undecided"]
 
 
+def test_step_ends_looked_up_in_small_blocks_give_the_same_proof(runs):
+    # the candidate step ends of the passes are looked up in blocks and only what can
+    # still decide is kept of each block; the blocks' size must not change the proof
+    block = prove_module.STEP_END_BLOCK
+    prove_module.STEP_END_BLOCK = 7
+    try:
+        small = prove(runs[0], max_depth=DEPTH, follow_undecided=True)
+    finally:
+        prove_module.STEP_END_BLOCK = block
+    followed = runs[2]
+    np.testing.assert_array_equal(small.leaves, followed.leaves)
+    np.testing.assert_array_equal(small.labelling.label, followed.labelling.label)
+    np.testing.assert_array_equal(small.labelling.crossing_upper,
+                                  followed.labelling.crossing_upper)
+
+
 def _numeric(model, exprs):
     """Float functions of the states (sympy lambdify; the fermenter's parameters are
     numbers, ``lo == hi``)."""

@@ -117,6 +117,8 @@ class ImageSetStore:
         self.n, self.K = n, K
         self.row = np.full(0, -1)
         self._arrays = self._empty(0)
+        self._count = 0
+        self._pending = []  # sets put since the arrays were last joined
 
     def _empty(self, count):
         n, K = self.n, self.K
@@ -128,10 +130,17 @@ class ImageSetStore:
         top = int(nodes.max(initial=-1)) + 1
         if top > len(self.row):
             self.row = np.concatenate([self.row, np.full(top - len(self.row), -1)])
-        first = len(self._arrays["m"])
-        for key, value in sets.items():
-            self._arrays[key] = np.concatenate([self._arrays[key], value])
-        self.row[nodes] = first + np.arange(len(nodes))
+        self.row[nodes] = self._count + np.arange(len(nodes))
+        self._count += len(nodes)
+        # joined when next read: a round puts its flows piece by piece
+        self._pending.append(sets)
+
+    def _joined(self):
+        if self._pending:
+            self._arrays = {key: np.concatenate([value] + [p[key] for p in self._pending])
+                            for key, value in self._arrays.items()}
+            self._pending = []
+        return self._arrays
 
     def take(self, nodes):
         """The sets of `nodes` (NaN rows where none is stored)."""
@@ -140,8 +149,9 @@ class ImageSetStore:
         rows[known] = self.row[nodes[known]]
         out = self._empty(len(nodes))
         have = rows >= 0
+        arrays = self._joined()
         for key in out:
-            out[key][have] = self._arrays[key][rows[have]]
+            out[key][have] = arrays[key][rows[have]]
         return out
 
     def keep_only(self, nodes):
@@ -149,7 +159,7 @@ class ImageSetStore:
         kept = self.take(nodes)
         have = np.all(np.isfinite(kept["m"]), axis=1)
         self.row[:] = -1
-        self._arrays = self._empty(0)
+        self._arrays, self._count = self._empty(0), 0
         self.put(nodes[have], {k: v[have] for k, v in kept.items()})
 
     def misses_that_help(self, src, dst, lo, hi, holds):

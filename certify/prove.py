@@ -385,8 +385,8 @@ class _Prover:
         """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
         where they leave their cells and stop at the growth limit `follow`
         (:meth:`extend`), only as many as end before the deadline (less the time of
-        FOLLOW_RESERVE labellings). Returns the nodes flowed and their flows (None if
-        none)."""
+        FOLLOW_RESERVE labellings). Returns the nodes flowed and, with `follow`, their
+        flows (None otherwise, or if none)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -396,25 +396,30 @@ class _Prover:
         todo = nodes[~outside]
         if len(todo) == 0:
             return todo, None
+        self.left_cell[nodes[outside]] = False
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
         if follow is None:
-            tubes = self.tubes
-            result = self._flows(tubes, cell_lo, cell_hi, self.deadline)
-        else:
-            tubes = replace(self.tubes, follow=follow)
-            result = self._flows_in_time(tubes, cell_lo, cell_hi)
-            if result is None:
-                return todo[:0], None
-            todo = todo[:len(result.n_steps)]
-            cell_lo, cell_hi = cell_lo[:len(todo)], cell_hi[:len(todo)]
-        self._tube_facts(todo, result)
-        self._put_image_sets(todo, result)
-        if self.follows:
-            ends = tubes.stops(cell_lo, cell_hi, result.image_lo, result.image_hi, result.t_lo)
-            self.left_cell[nodes[outside]] = False
-            self.left_cell[todo] = ends.left_cell & (result.status == STOPPED)
-        self.steps.add(todo, result)
+            # piece by piece: a round's flows joined would hold all its steps at once
+            for rows, result in self._flow_pieces(self.tubes, cell_lo, cell_hi,
+                                                  self.deadline):
+                self._take_flows(self.tubes, todo[rows], result)
+            return todo, None
+        tubes = replace(self.tubes, follow=follow)
+        result = self._flows_in_time(tubes, cell_lo, cell_hi)
+        if result is None:
+            return todo[:0], None
+        todo = todo[:len(result.n_steps)]
+        self._take_flows(tubes, todo, result)
         return todo, result
+
+    def _take_flows(self, tubes, nodes, result):
+        """The facts, image sets and steps of `nodes` from their flows `result`, and
+        whether each tube stopped only where it left its cell."""
+        self._record_tubes(nodes, result)
+        if self.follows:
+            ends = tubes.stops(self.tree.lo[nodes], self.tree.hi[nodes], result.image_lo,
+                               result.image_hi, result.t_lo)
+            self.left_cell[nodes] = ends.left_cell & (result.status == STOPPED)
 
     def _put_image_sets(self, nodes, result):
         if self.image_sets is not None:
@@ -422,23 +427,30 @@ class _Prover:
                                         "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
 
     def _flows(self, tubes, cell_lo, cell_hi, deadline):
-        """The flows of a round's new cells, in pieces of at most MAX_PIECE cells, on the
-        runner's workers if any (a cell's flow depends on that cell alone)."""
+        """The flows of cells, joined (:meth:`_flow_pieces`)."""
+        parts = [result for _, result in self._flow_pieces(tubes, cell_lo, cell_hi, deadline)]
+        return parts[0] if len(parts) == 1 else join_results(parts)
+
+    def _flow_pieces(self, tubes, cell_lo, cell_hi, deadline):
+        """Yield ``(rows, flows)`` for the cells in pieces of at most MAX_PIECE, in order,
+        flowed on the runner's workers if any (a cell's flow depends on that cell alone);
+        here one at a time, on workers all at once."""
         n = len(cell_lo)
-        n_pieces = -(-n // MAX_PIECE)
+        n_pieces = max(-(-n // MAX_PIECE), 1)
         if not self.runner.parallel:
-            if n_pieces <= 1:
-                return tubes.flow(cell_lo, cell_hi, deadline)
-            return join_results([tubes.flow(cell_lo[k], cell_hi[k], deadline)
-                                 for k in np.array_split(np.arange(n), n_pieces)])
+            for rows in np.array_split(np.arange(n), n_pieces):
+                yield rows, tubes.flow(cell_lo[rows], cell_hi[rows], deadline)
+            return
         pieces = np.array_split(np.arange(n), max(n_pieces, min(2 * self.runner.n_workers,
-                                                                -(-n // MIN_PIECE)), 1))
+                                                                -(-n // MIN_PIECE))))
         try:
             parts = self.runner.map(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
                                                   for k in pieces], deadline)
         except DeadlineReached:
             raise DeadlinePassed from None
-        return join_results(parts)
+        parts.reverse()
+        for rows in pieces:
+            yield rows, parts.pop()
 
     def _flows_in_time(self, tubes, cell_lo, cell_hi):
         """The flows of the first cells, in pieces of FOLLOW_PIECE cells a worker, that

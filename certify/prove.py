@@ -632,26 +632,28 @@ class _Prover:
         for the trajectories that keep the limits up to ``T`` (the tube boxes of boxes
         whose tubes do not reach past an open face, `tube_open`, are cut to the window,
         :func:`certify.faces.cut_to_window`)."""
-        slo, shi = np.empty(result.e_lo.shape), np.empty(result.e_lo.shape)
+        lo, hi = np.zeros((n_boxes, self.n)), np.zeros((n_boxes, self.n))
         # boxes whose steps fill about STEP_SLICE rows at a time (a box's steps together:
         # the cut at invariant faces looks at all of them)
         cuts = np.unique(np.append(np.searchsorted(
             result.step_start, np.arange(0, len(result.h), STEP_SLICE)), n_boxes))
         for first, last in zip(cuts[:-1], cuts[1:]):
-            rows = slice(result.step_start[first],
-                         result.step_start[first] + result.n_steps[first:last].sum())
+            start = result.step_start[first]
+            counts = result.n_steps[first:last]
+            rows = slice(start, start + counts.sum())
             owner = box_of_step[rows] - first
             elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo[rows],
                                               result.e_hi[rows], owner, last - first)
             elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step[rows]])
             flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
             h = result.h[rows, None]
-            slo[rows], shi[rows] = iv.mul(h, h, flo, fhi)
-        lo, hi = np.zeros((n_boxes, self.n)), np.zeros((n_boxes, self.n))
-        for j in range(int(result.n_steps.max(initial=0))):
-            boxes = np.flatnonzero(result.n_steps > j)
-            s = result.step_start[boxes] + j
-            lo[boxes], hi[boxes] = iv.add(lo[boxes], hi[boxes], slo[s], shi[s])
+            slo, shi = iv.mul(h, h, flo, fhi)
+            # each box's sum in step order
+            own_start = result.step_start[first:last] - start
+            for j in range(int(counts.max(initial=0))):
+                boxes = np.flatnonzero(counts > j)
+                steps, boxes = own_start[boxes] + j, first + boxes
+                lo[boxes], hi[boxes] = iv.add(lo[boxes], hi[boxes], slo[steps], shi[steps])
         return lo, hi
 
     def _tube_past_open_faces(self, result, box_of_step, n_boxes):

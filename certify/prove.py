@@ -709,10 +709,9 @@ class _Prover:
             cut = np.flatnonzero(keep < full.n_steps)
             if len(cut) == 0:
                 break
-            tubes = truncate_results(full, keep[cut], boxes=cut)
             chosen = todo[cut]
             _, label, back, _ = self._try_tubes(
-                chosen, lambda: self._record_tubes(chosen, tubes))
+                chosen, lambda: self._record_cut_tubes(chosen, full, cut, keep[cut]))
             if back.all() or self._time_left() < 2 * self.label_seconds:
                 break
             pending[cut[~back]] = False
@@ -750,6 +749,14 @@ class _Prover:
         if saved_sets is not None:
             self.image_sets.put(nodes[back], {k: v[back] for k, v in saved_sets.items()})
         return leaves, labelling.label, back, out
+
+    def _record_cut_tubes(self, nodes, result, boxes, n_steps):
+        """The facts, image sets and steps of `nodes` from the flows `boxes` of `result`
+        cut after `n_steps` steps, in pieces of MAX_PIECE flows (a copy of every cut flow
+        at once would hold most of a followed round's steps twice)."""
+        for rows in np.array_split(np.arange(len(nodes)), max(-(-len(nodes) // MAX_PIECE), 1)):
+            self._record_tubes(nodes[rows],
+                               truncate_results(result, n_steps[rows], boxes=boxes[rows]))
 
     def _record_tubes(self, nodes, result):
         """The facts, image sets and steps of `nodes` from the flows `result`."""

@@ -135,7 +135,15 @@ class Runner:
         return self.pool is not None or self.client is not None
 
     def map(self, function, tasks, deadline=None):
-        """``[function(*args) for args in tasks]``, the results in the order of `tasks`.
+        """``[function(*args) for args in tasks]``, the results in the order of `tasks`
+        (:meth:`in_order`)."""
+        return list(self.in_order(function, tasks, deadline))
+
+    def in_order(self, function, tasks, deadline=None):
+        """Yield ``function(*args)`` for each of `tasks`, in their order.
+
+        All calls are submitted at once; each result is let go of once yielded, so the
+        results held are those finished ahead of the one awaited.
 
         Parameters
         ----------
@@ -149,20 +157,21 @@ class Runner:
             watch the deadline itself).
         """
         if not self.parallel:
-            return [function(*args) for args in tasks]
+            for args in tasks:
+                yield function(*args)
+            return
         futures = list(self._submit(function, dict(enumerate(tasks))))
-        results = []
         try:
-            for future in futures:
+            for k in range(len(futures)):
                 timeout = None if deadline is None else max(deadline - time.monotonic(), 0.0)
                 try:
-                    results.append(future.result(timeout=timeout))
+                    result = futures[k].result(timeout=timeout)
                 except TimeoutError:
                     raise DeadlineReached from None
-            return results
+                futures[k] = None
+                yield result
         finally:
-            if len(results) < len(futures):
-                self._cancel(futures)
+            self._cancel([future for future in futures if future is not None])
 
     def results(self, function, tasks):
         """Yield ``(key, function(*args))`` for ``tasks = {key: args}`` as they finish.

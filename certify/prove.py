@@ -434,7 +434,8 @@ class _Prover:
     def _flow_pieces(self, tubes, cell_lo, cell_hi, deadline):
         """Yield ``(rows, flows)`` for the cells in pieces of at most MAX_PIECE, in order,
         flowed on the runner's workers if any (a cell's flow depends on that cell alone);
-        here one at a time, on workers all at once."""
+        here one at a time, on workers all at once (each piece's records let go of once
+        taken)."""
         n = len(cell_lo)
         n_pieces = max(-(-n // MAX_PIECE), 1)
         if not self.runner.parallel:
@@ -443,14 +444,15 @@ class _Prover:
             return
         pieces = np.array_split(np.arange(n), max(n_pieces, min(2 * self.runner.n_workers,
                                                                 -(-n // MIN_PIECE))))
+        parts = self.runner.in_order(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
+                                                   for k in pieces], deadline)
         try:
-            parts = self.runner.map(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
-                                                  for k in pieces], deadline)
+            for rows in pieces:
+                yield rows, next(parts)
         except DeadlineReached:
             raise DeadlinePassed from None
-        parts.reverse()
-        for rows in pieces:
-            yield rows, parts.pop()
+        finally:
+            parts.close()
 
     def _flows_in_time(self, tubes, cell_lo, cell_hi):
         """The flows of the first cells, in pieces of FOLLOW_PIECE cells a worker, that

@@ -11,6 +11,8 @@ several pieces.
 
 from __future__ import annotations
 
+import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -20,10 +22,13 @@ from certify import load_model, prove
 from certify.certificate import certificate_data
 from certify.cli import main
 from certify.errors import UsageError
+from certify.executors import DeadlineReached, open_runner
 from certify.flow import flow_boxes, join_results
 from certify.prove import MIN_PIECE
 from certify.taylor import flow_programs
 from certify.evaluate import parameter_enclosures
+
+prove_module = sys.modules["certify.prove"]  # the package exports a function of that name
 
 DATA = Path(__file__).resolve().parent / "data"
 SIR = DATA / "prove_sir_cap.toml"
@@ -81,6 +86,26 @@ def test_dask_local_cluster_gives_the_same_certificate(sir, in_process):
     assert np.array_equal(proof.facts.src, in_process.facts.src)
     assert np.array_equal(proof.facts.dst, in_process.facts.dst)
     _same(_certificate(proof), _certificate(in_process))
+
+
+def test_rounds_taken_in_small_pieces_give_the_same_certificate(sir, in_process):
+    # a round's flows are taken piece by piece (facts, image sets, steps of each piece);
+    # pieces of 100 cells must give the proof of the default pieces
+    piece = prove_module.MAX_PIECE
+    prove_module.MAX_PIECE = 100
+    try:
+        proof = prove(sir, max_depth=DEPTH, time_limit=1e6)
+    finally:
+        prove_module.MAX_PIECE = piece
+    _same(_certificate(proof), _certificate(in_process))
+
+
+def test_results_come_in_order_and_the_deadline_cancels_the_rest():
+    with open_runner("local", workers=2) as runner:
+        assert list(runner.in_order(pow, [(2, k) for k in range(9)])) == \
+            [2 ** k for k in range(9)]
+        with pytest.raises(DeadlineReached):
+            list(runner.in_order(time.sleep, [(1.0,)] * 6, deadline=time.monotonic() + 0.2))
 
 
 def test_pieces_joined_equal_the_batch_flowed_whole(sir):

@@ -69,6 +69,8 @@ PRUNE_GAIN = 0.01
 DECISIVE_PASSES = 4
 #: Candidate step ends whose successors are looked up at a time (:meth:`_Prover._step_ends`).
 STEP_END_BLOCK = 1 << 16
+#: Successor pairs of step ends tested at a time (:func:`_any_of`).
+PAIR_BLOCK = 1 << 22
 
 
 @dataclass(frozen=True)
@@ -289,6 +291,17 @@ class _Tubes:
             _, gh = evaluate_limits(self.programs, slo, shi, self.params)
             escapes[np.flatnonzero(pokes)[~np.any(gh < 0, axis=1)]] = True
         return np.maximum(lo, lo_lo), np.minimum(hi, hi_hi), escapes
+
+
+def _any_of(query, leaf, flagged, count):
+    """Per query number below `count`: whether one of its pairs ``(query, leaf)`` has a
+    `flagged` leaf; in blocks of PAIR_BLOCK pairs (counting the flags of hundreds of
+    millions of pairs would take 16 bytes a pair)."""
+    out = np.zeros(count, bool)
+    for first in range(0, len(query), PAIR_BLOCK):
+        pairs = slice(first, first + PAIR_BLOCK)
+        out[query[pairs][flagged[leaf[pairs]]]] = True
+    return out
 
 
 def _flow_piece(tubes, cell_lo, cell_hi):
@@ -595,8 +608,8 @@ class _Prover:
             rows, lo, hi = rows[usable], lo[usable], hi[usable]
             query, leaf = self.tree.leaves_meeting(lo, hi, strict=self._thick_axes(lo, hi))
             leaf = number[leaf]
-            doomed_next = np.bincount(query, doomed[leaf], len(rows)) > 0
-            safe_next = np.bincount(query, safe[leaf], len(rows)) > 0
+            doomed_next = _any_of(query, leaf, doomed, len(rows))
+            safe_next = _any_of(query, leaf, safe, len(rows))
             rows_kept = pos[rows] < first_bad[box[rows]]
             hopeful = ~(safe_next & (doomed_next | ~rows_kept))
             renumber = found + np.cumsum(hopeful) - 1
@@ -620,10 +633,8 @@ class _Prover:
         The labels are a guess only: the labelling that follows decides."""
         count = len(ends.box)
         # per leaf first: string compares on the (many) pairs would be slow
-        not_safe = ends.doomed_next | (np.bincount(ends.query, (label != SAFE)[ends.leaf],
-                                                   count) > 0)
-        not_doomed = ends.safe_next | (np.bincount(ends.query, (label != DOOMED)[ends.leaf],
-                                                   count) > 0)
+        not_safe = ends.doomed_next | _any_of(ends.query, ends.leaf, label != SAFE, count)
+        not_doomed = ends.safe_next | _any_of(ends.query, ends.leaf, label != DOOMED, count)
         decisive = ((~not_safe & ends.kept) | ~not_doomed) & pending[ends.box]
         first = np.full(len(n_steps), np.iinfo(np.int64).max)
         np.minimum.at(first, ends.box[decisive], ends.pos[decisive])

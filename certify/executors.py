@@ -16,11 +16,13 @@ import uuid
 
 from certify.errors import UsageError
 
-__all__ = ["EXECUTORS", "DeadlineReached", "Runner", "check_executor", "dask_client",
-           "default_workers", "local_pool", "open_runner"]
+__all__ = ["EXECUTORS", "MOST_FLOW_WORKERS", "DeadlineReached", "Runner", "check_executor",
+           "dask_client", "default_workers", "flow_workers", "local_pool", "open_runner"]
 
 #: Where the work can run.
 EXECUTORS = ("local", "dask")
+#: Most processes `certify prove` flows on by default (each holds a piece of a round).
+MOST_FLOW_WORKERS = 4
 
 
 class DeadlineReached(Exception):
@@ -54,6 +56,13 @@ def check_executor(executor, scheduler, workers):
 def default_workers(workers=None):
     """`workers`, or by default one process per core of this machine."""
     return workers or os.cpu_count() or 1
+
+
+def flow_workers():
+    """Processes for the flows of a 3D or 4D proof by default: one per core, at most
+    MOST_FLOW_WORKERS; None (the flows run in this process) on a machine of one core."""
+    workers = min(default_workers(), MOST_FLOW_WORKERS)
+    return workers if workers > 1 else None
 
 
 def _start_method():

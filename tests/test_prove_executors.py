@@ -22,6 +22,7 @@ from certify import load_model, prove
 from certify.certificate import certificate_data
 from certify.cli import main
 from certify.errors import UsageError
+from certify import executors
 from certify.executors import DeadlineReached, open_runner
 from certify.flow import flow_boxes, join_results
 from certify.prove import MIN_PIECE
@@ -30,7 +31,8 @@ from certify.evaluate import parameter_enclosures
 
 prove_module = sys.modules["certify.prove"]  # the package exports a function of that name
 
-DATA = Path(__file__).resolve().parent / "data"
+ROOT = Path(__file__).resolve().parent.parent
+DATA = ROOT / "tests" / "data"
 SIR = DATA / "prove_sir_cap.toml"
 DEPTH = 6
 
@@ -106,6 +108,29 @@ def test_results_come_in_order_and_the_deadline_cancels_the_rest():
             [2 ** k for k in range(9)]
         with pytest.raises(DeadlineReached):
             list(runner.in_order(time.sleep, [(1.0,)] * 6, deadline=time.monotonic() + 0.2))
+
+
+@pytest.mark.parametrize("cores, workers", [(1, None), (2, 2), (None, None), (64, 4)])
+def test_flow_workers_are_the_cores_up_to_a_cap(monkeypatch, cores, workers):
+    monkeypatch.setattr(executors.os, "cpu_count", lambda: cores)
+    assert executors.flow_workers() == workers
+
+
+@pytest.mark.parametrize("model, states", [(ROOT / "models" / "microbial_food_chain.toml", 3),
+                                           (SIR, 2)])
+def test_cli_flows_models_of_three_states_on_a_pool_by_default(monkeypatch, tmp_path, model,
+                                                               states):
+    asked = []
+
+    def record(model, **options):
+        asked.append(options)
+        return prove(model, **options)
+
+    monkeypatch.setattr(prove_module, "prove", record)
+    assert main(["prove", str(model), "--max-depth", "2", "--out", str(tmp_path / "o"),
+                 "--quiet"]) == 0
+    expected = executors.flow_workers() if states >= 3 else None
+    assert asked[0]["workers"] == expected and asked[0]["executor"] == "local"
 
 
 def test_pieces_joined_equal_the_batch_flowed_whole(sir):

@@ -6,6 +6,7 @@ import sys
 import time
 
 from certify.errors import UsageError
+from certify.executors import MOST_FLOW_WORKERS
 
 __all__ = ["HELP", "EXITS", "add_arguments", "run", "parse_param", "run_proof",
            "add_budget_arguments", "add_depth_argument", "check_depth", "progress_bar"]
@@ -31,7 +32,9 @@ def add_arguments(parser):
     parser.add_argument("--workers", type=int, metavar="N",
                         help="processes of the LocalCluster (default: all cores); with "
                              "--executor local, a process pool of N processes (default: "
-                             "none, the flows run in this process)")
+                             "for models of 3 or more states one per core, at most "
+                             f"{MOST_FLOW_WORKERS}; otherwise none, the flows run in "
+                             "this process)")
 
 
 def add_budget_arguments(parser):
@@ -121,7 +124,7 @@ def run_proof(model_path, args, default_out=None):
     """Load, prove, write outputs; shared by ``prove`` and ``demo``. Returns exit code."""
     from pathlib import Path
 
-    from certify.executors import check_executor
+    from certify.executors import check_executor, flow_workers
     from certify.files import output_folder
     from certify.prove import prove, write_proof
     from certify.report import summary_table
@@ -143,6 +146,8 @@ def run_proof(model_path, args, default_out=None):
     progress = None if args.quiet else progress_bar()
     if model.controls:
         return _run_policy(model, out, args, progress)
+    if executor == "local" and workers is None and len(model.states) >= 3:
+        workers = flow_workers()
     proof = prove(model, max_depth=args.max_depth, max_cells=args.max_cells,
                   time_limit=args.time_limit, progress=progress, executor=executor,
                   scheduler=scheduler, workers=workers)

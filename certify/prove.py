@@ -304,6 +304,12 @@ def _any_of(query, leaf, flagged, count):
     return out
 
 
+def _in_pieces(n, most):
+    """The rows ``0 .. n - 1`` in the fewest pieces of at most `most` rows, in order (one
+    empty piece when `n` is 0)."""
+    return np.array_split(np.arange(n), max(-(-n // most), 1))
+
+
 def _flow_piece(tubes, cell_lo, cell_hi):
     """The flows of one piece of a round's batch (a task of a worker)."""
     with np.errstate(all="ignore"):
@@ -450,13 +456,13 @@ class _Prover:
         here one at a time, on workers all at once (each piece's records let go of once
         taken)."""
         n = len(cell_lo)
-        n_pieces = max(-(-n // MAX_PIECE), 1)
         if not self.runner.parallel:
-            for rows in np.array_split(np.arange(n), n_pieces):
+            for rows in _in_pieces(n, MAX_PIECE):
                 yield rows, tubes.flow(cell_lo[rows], cell_hi[rows], deadline)
             return
-        pieces = np.array_split(np.arange(n), max(n_pieces, min(2 * self.runner.n_workers,
-                                                                -(-n // MIN_PIECE))))
+        pieces = np.array_split(np.arange(n), max(-(-n // MAX_PIECE), 1,
+                                                  min(2 * self.runner.n_workers,
+                                                      -(-n // MIN_PIECE))))
         parts = self.runner.in_order(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
                                                    for k in pieces], deadline)
         try:
@@ -475,10 +481,8 @@ class _Prover:
         if self.deadline is None:
             return self._flows(tubes, cell_lo, cell_hi, None)
         until = self.deadline - FOLLOW_RESERVE * self.label_seconds
-        n = len(cell_lo)
-        size = FOLLOW_PIECE * self.runner.n_workers
         parts = []
-        for k in np.array_split(np.arange(n), max(-(-n // size), 1)):
+        for k in _in_pieces(len(cell_lo), FOLLOW_PIECE * self.runner.n_workers):
             try:
                 parts.append(self._flows(tubes, cell_lo[k], cell_hi[k], until))
             except DeadlinePassed:
@@ -767,7 +771,7 @@ class _Prover:
         """The facts, image sets and steps of `nodes` from the flows `boxes` of `result`
         cut after `n_steps` steps, in pieces of MAX_PIECE flows (a copy of every cut flow
         at once would hold most of a followed round's steps twice)."""
-        for rows in np.array_split(np.arange(len(nodes)), max(-(-len(nodes) // MAX_PIECE), 1)):
+        for rows in _in_pieces(len(nodes), MAX_PIECE):
             self._record_tubes(nodes[rows],
                                truncate_results(result, n_steps[rows], boxes=boxes[rows]))
 

@@ -17,7 +17,7 @@ from .expr import branch_equations, kink_sites, substitute, switch_expressions
 from .program import Program, compile_program
 
 __all__ = ["FlowPrograms", "Branches", "taylor_coefficients", "flow_programs",
-           "fixed_parameters", "jacobian_is_cut", "chosen_arguments"]
+           "fixed_parameters", "jacobian_is_cut", "centered_entries", "chosen_arguments"]
 
 
 def taylor_coefficients(equations, states, order):
@@ -68,6 +68,12 @@ class FlowPrograms:
     cut_jacobian : bool
         Evaluate ``jacobian`` on the ``2^n`` parts into which the point ``m`` cuts the
         mean-value box (see :func:`jacobian_is_cut`).
+    centered : tuple of int
+        Row-major indices of the Jacobian entries that the mean-value step also encloses
+        by their centered form (see :func:`centered_entries`); empty for none.
+    hessian : Program or None
+        ``d Df_e / d x_l`` for each entry ``e`` of `centered` and each state ``l`` in
+        that order (``len(centered) * n`` outputs); None when `centered` is empty.
     limits : Program
         ``g_j`` (one output per constraint; satisfied where ``g_j >= 0``).
     limit_rates : Program
@@ -88,6 +94,8 @@ class FlowPrograms:
     jacobian: Program | None
     higher_jacobians: Program | None
     cut_jacobian: bool
+    centered: tuple
+    hessian: Program | None
     remainder: Program
     limits: Program
     limit_rates: Program
@@ -190,6 +198,9 @@ def _build(equations, states, parameters, limits, order, smooth=True):
     curvatures = None
     if smooth:
         curvatures = compile_program(lie_derivatives(rates, equations, states), inputs)
+    centered = centered_entries(df, states) if middle else ()
+    hessian = (compile_program([sympy.diff(df[e], s) for e in centered for s in states],
+                               inputs) if centered else None)
     return FlowPrograms(
         order=order,
         n=len(states),
@@ -198,6 +209,8 @@ def _build(equations, states, parameters, limits, order, smooth=True):
         jacobian=jacobian,
         higher_jacobians=higher,
         cut_jacobian=jacobian_is_cut(df, states),
+        centered=centered,
+        hessian=hessian,
         remainder=compile_program(list(coeffs[order]), inputs),
         limits=compile_program(list(limits), inputs),
         limit_rates=compile_program(rates, inputs),
@@ -262,6 +275,27 @@ def fixed_parameters(model):
     """``((symbol, Rational), ...)`` for the parameters given as numbers."""
     return tuple((p.symbol, sympy.Rational(p.lo.numerator, p.lo.denominator))
                  for p in model.parameters if not p.is_interval)
+
+
+def centered_entries(df, states):
+    """Row-major indices of the entries of the Jacobian ``df`` of ``f`` that the
+    mean-value step also encloses by their centered form on ``J``.
+
+    ``Df_e(J)`` lies in ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` for any point
+    ``m`` of ``J`` (mean-value theorem), and the step uses the intersection of that with
+    the natural interval extension. The centered form's excess over the true range
+    shrinks with the square of ``J``'s width, the natural extension's only with its
+    width: on the 3D food chain at cells of 1/64, the natural ``Df(J)`` was about 3.5
+    times as wide as the range of ``Df`` over ``J``, and the enclosure of a cell grew
+    to 15 times the width of its true image within four time scales (4.5 times with
+    the centered form). Chosen for three or more states (in two, the Jacobian is cut
+    where that pays, see :func:`jacobian_is_cut`) and for the entries that are not
+    constant in the states.
+    """
+    if len(states) <= 2:
+        return ()
+    return tuple(e for e, entry in enumerate(df)
+                 if any(sympy.diff(entry, s) != 0 for s in states))
 
 
 def jacobian_is_cut(df, states):

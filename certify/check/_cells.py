@@ -328,6 +328,8 @@ def _taylor(ar, progs, params, hh, X, E, point):
         jac = _joined(ar, progs.jacobian,
                       [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
                       params)
+        if progs.hessian is not None:
+            jac = _centered_jacobian(ar, progs, params, jac, J, point)
         if q > 2:
             jac = jac + _joined(ar, progs.higher_jacobians,
                                 ar.cover(J, ar.pieces.jacobians[-1]), params)
@@ -337,6 +339,27 @@ def _taylor(ar, progs, params, hh, X, E, point):
                     term = ar.mul(powers[k], jac[(k - 1) * n * n + i * n + j])
                     D[i][j] = ar.add(D[i][j], term)
     return Y, D
+
+
+def _centered_jacobian(ar, progs, params, jac, J, point):
+    """``Df(J)`` with each entry of ``progs.centered`` intersected with its centered form
+    ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``) where that
+    form is finite. `point` (``m``) lies in ``J``, so by the mean-value theorem the form
+    holds every value of ``Df_e`` on ``J``."""
+    n = progs.n
+    at_m = evaluate(progs.jacobian, ar, list(point) + params)
+    hessian = _joined(ar, progs.hessian, ar.cover(J, ar.pieces.jacobians[0]), params)
+    offsets = [ar.sub(J[l], point[l]) for l in range(n)]
+    jac = list(jac)
+    for k, e in enumerate(progs.centered):
+        form = at_m[e]
+        for l in range(n):
+            form = ar.add(form, ar.mul(hessian[k * n + l], offsets[l]))
+        rows = np.flatnonzero(np.broadcast_to(ar.finite(form), len(ar.lower(point[0]))))
+        if len(rows):
+            jac[e] = ar.put(jac[e], rows, ar.intersect(ar.take(jac[e], rows),
+                                                       ar.take(form, rows)))
+    return jac
 
 
 def _kept_by_curvature(ar, context, hh, E, g, g_end, kept_by):

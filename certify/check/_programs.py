@@ -265,6 +265,11 @@ class CheckPrograms:
     curvatures : Program or None
         The second derivatives of the limits along the solutions (m outputs); None for
         models with kinks.
+    centered : tuple of int
+        Row-major indices of the Jacobian entries also enclosed by their centered form
+        on the mean-value box (docs/method.md, step 4); empty for none.
+    hessian : Program or None
+        ``d Df_e / d x_l`` for each entry ``e`` of `centered` and each state ``l``.
     """
 
     order: int
@@ -284,6 +289,8 @@ class CheckPrograms:
     limit_expressions: tuple = ()
     curvatures: Program | None = None
     branches: "CheckBranches | None" = None
+    centered: tuple = ()
+    hessian: Program | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -367,6 +374,7 @@ def _taylor_programs(equations, states, inputs, order):
     coefficients = taylor_coefficients(equations, states, order)
     middle = coefficients[1:order]
     df = sympy.Matrix(equations).jacobian(x)
+    centered = _centered(df, states) if middle else ()
     return {"order": order,
             "remainder": compile_expressions(list(coefficients[order]), inputs),
             "coefficients": compile_expressions([e for c in middle for e in c], inputs)
@@ -375,7 +383,10 @@ def _taylor_programs(equations, states, inputs, order):
             "higher_jacobians": compile_expressions(
                 [e for c in middle[1:] for e in c.jacobian(x)], inputs)
             if len(middle) > 1 else None,
-            "cut_jacobian": _cut(df, states)}
+            "cut_jacobian": _cut(df, states),
+            "centered": centered,
+            "hessian": compile_expressions([sympy.diff(df[e], s) for e in centered
+                                            for s in states], inputs) if centered else None}
 
 
 def taylor_coefficients(equations, states, order):
@@ -434,7 +445,7 @@ def derive_programs(model, order, kinks="order-1"):
         # where a step's tube keeps every kink on one side
         taylor = {"order": 1, "remainder": compile_expressions(list(equations), inputs),
                   "coefficients": None, "jacobian": None, "higher_jacobians": None,
-                  "cut_jacobian": False}
+                  "cut_jacobian": False, "centered": (), "hessian": None}
         if kinks == "branches" and order > 1:
             sites = kink_sites(equations)
             switches = compile_expressions(switch_expressions(sites), inputs)
@@ -479,3 +490,13 @@ def _cut(df, states):
         return False
     return any(not entry.is_polynomial(*states) or sympy.Poly(entry, *states).total_degree() > 1
                for entry in df)
+
+
+def _centered(df, states):
+    """The prover's rule for the Jacobian entries it also encloses by their centered
+    form (docs/method.md, step 4): in three or more states, the entries that are not
+    constant in the states. Using the form is sound either way."""
+    if len(states) <= 2:
+        return ()
+    return tuple(e for e, entry in enumerate(df)
+                 if any(sympy.diff(entry, s) != 0 for s in states))

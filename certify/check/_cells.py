@@ -9,7 +9,8 @@ arithmetics of :mod:`certify.check._arith`. For step ``k`` of a cell (stored: st
   then every solution from ``X_k`` stays in ``E`` on ``[0, h]``;
 * mean-value Taylor step: ``Y = T(m_k) + h^q f^[q](E)``, ``M = DT(J) A_k`` with
   ``J = hull(X_k, m_k)`` (for ``Df`` cut at ``m_k`` into ``2^n`` parts where the
-  prover cuts its own); the checker's own new coordinates
+  prover cuts its own, and intersected with its centered form at ``m_k`` where the
+  prover uses that); the checker's own new coordinates
   ``r_{k+1} = B (Y - m_{k+1}) + (B M) r_k`` with ``B`` enclosing ``A_{k+1}^-1``, and
   ``X_{k+1} = hull(m_{k+1} + A_{k+1} r_{k+1}) ∩ (Y + M r_k)``;
 * a limit ``g`` is kept on the step when ``g(X_k) + [0, h] (grad g . f)(E) >= 0`` or
@@ -328,11 +329,11 @@ def _taylor(ar, progs, params, hh, X, E, point):
         jac = _joined(ar, progs.jacobian,
                       [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
                       params)
-        if progs.hessian is not None:
-            jac = _centered_jacobian(ar, progs, params, jac, J, point)
         if q > 2:
             jac = jac + _joined(ar, progs.higher_jacobians,
                                 ar.cover(J, ar.pieces.jacobians[-1]), params)
+        if progs.hessian is not None:
+            jac = _centered_jacobian(ar, progs, params, jac, J, point)
         for k in range(1, q):
             for i in range(n):
                 for j in range(n):
@@ -342,12 +343,15 @@ def _taylor(ar, progs, params, hh, X, E, point):
 
 
 def _centered_jacobian(ar, progs, params, jac, J, point):
-    """``Df(J)`` with each entry of ``progs.centered`` intersected with its centered form
-    ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``) where that
+    """The Jacobians ``Df^[k](J)`` (row-major, one after the other) with each entry of
+    ``progs.centered`` intersected with its centered form
+    ``G_e(m) + sum_l (d G_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``) where that
     form is finite. `point` (``m``) lies in ``J``, so by the mean-value theorem the form
-    holds every value of ``Df_e`` on ``J``."""
+    holds every value of ``G_e`` on ``J``."""
     n = progs.n
     at_m = evaluate(progs.jacobian, ar, list(point) + params)
+    if progs.centered[-1] >= n * n:
+        at_m = at_m + evaluate(progs.higher_jacobians, ar, list(point) + params)
     hessian = _joined(ar, progs.hessian, ar.cover(J, ar.pieces.jacobians[0]), params)
     offsets = [ar.sub(J[l], point[l]) for l in range(n)]
     jac = list(jac)

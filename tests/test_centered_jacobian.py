@@ -1,0 +1,157 @@
+"""The centered form of the Jacobian on the mean-value box (docs/method.md, step 4).
+
+In three or more states the step encloses each entry of the Jacobians of ``f^[1] = f``
+and ``f^[2]`` that is not constant in the states by ``G_e(m) + sum_l (d G_e / d x_l)(J)
+(J_l - m_l)`` as well as by its natural interval extension, and uses the intersection
+(checked here on ``Df``). Checked here against the mean-value
+theorem (common practice): the enclosure holds the Jacobian at points of ``J``, evaluated
+independently with sympy's ``lambdify``; it is never wider than the natural extension;
+its excess over the sampled range shrinks with the square of ``J``'s width (second
+order), the natural extension's only linearly. The checker derives the same entries.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import sympy
+
+from certify import parse_model
+from certify.check._programs import derive_programs
+from certify.evaluate import evaluate_boxes, parameter_enclosures
+from certify.flow import _centered_jacobian
+from certify.taylor import centered_entries, flow_programs
+
+# Hastings & Powell 1991, "Chaos in a three-species food chain", scaled form with their
+# parameters a1 = 5, b1 = 3, a2 = 0.1, b2 = 2, d1 = 0.4, d2 = 0.01 (from memory).
+CHAIN = """
+[model]
+name = "Hastings-Powell chain"
+[states]
+x = { range = [0, 1] }
+y = { range = [0, 0.5] }
+z = { range = [7, 11] }
+[parameters]
+a1 = 5
+b1 = 3
+a2 = 0.1
+b2 = 2
+d1 = 0.4
+d2 = 0.01
+[equations]
+x = "x*(1 - x) - a1*x*y/(1 + b1*x)"
+y = "a1*x*y/(1 + b1*x) - a2*y*z/(1 + b2*y) - d1*y"
+z = "a2*y*z/(1 + b2*y) - d2*z"
+[limits]
+floor = "z >= 7.5"
+"""
+
+# Lotka-Volterra competition of two species (common textbook form): two states.
+PLANE = """
+[model]
+name = "competition"
+[states]
+u = { range = [0, 2] }
+v = { range = [0, 2] }
+[equations]
+u = "u*(1 - u - v/2)"
+v = "v*(1 - v - u/3)"
+[limits]
+floor = "u >= 0.1"
+"""
+
+
+def _sympy_jacobian(model):
+    """The Jacobian as a numpy function of the states, by sympy (independent of the
+    compiled programs)."""
+    x, y, z = sympy.symbols("x y z")
+    a1, b1, a2, b2, d1, d2 = 5, 3, sympy.Rational(1, 10), 2, sympy.Rational(2, 5), \
+        sympy.Rational(1, 100)
+    f = sympy.Matrix([x * (1 - x) - a1 * x * y / (1 + b1 * x),
+                      a1 * x * y / (1 + b1 * x) - a2 * y * z / (1 + b2 * y) - d1 * y,
+                      a2 * y * z / (1 + b2 * y) - d2 * z])
+    return sympy.lambdify((x, y, z), f.jacobian([x, y, z]), "numpy")
+
+
+def _boxes(rng, count, width):
+    """Random boxes of the given widths (per axis) inside the chain's window, and a
+    point `m` in each (the set's centre in a step: anywhere in J)."""
+    lo = np.array([0.0, 0.0, 7.0]) + rng.random((count, 3)) * (np.array([1, 0.5, 4]) - width)
+    hi = lo + width
+    m = lo + rng.random((count, 3)) * width
+    return lo, hi, m
+
+
+def _enclosures(programs, params, lo, hi, m):
+    """The natural ``Df(J)`` and the step's Jacobians ``Df^[k](J)`` with the centered
+    form (``Df`` first)."""
+    natural = evaluate_boxes(programs.jacobian, lo, hi, params)
+    higher = evaluate_boxes(programs.higher_jacobians, lo, hi, params)
+    both = [np.concatenate([a, b], axis=1) for a, b in zip(natural, higher)]
+    return natural, _centered_jacobian(programs, *both, lo, hi, m, params)
+
+
+def _sampled_range(jac, lo, hi, per_side=6):
+    """Entrywise min and max of the Jacobian on a grid of each box (floats)."""
+    t = np.linspace(0, 1, per_side)
+    grid = np.array(np.meshgrid(t, t, t, indexing="ij")).reshape(3, -1).T
+    points = lo[:, None, :] + grid[None] * (hi - lo)[:, None, :]
+    values = np.array([[np.array(jac(*p), float).ravel() for p in box] for box in points])
+    return values.min(axis=1), values.max(axis=1)
+
+
+def test_centered_enclosure_holds_the_jacobian_and_is_no_wider():
+    model = parse_model(CHAIN)
+    programs = flow_programs(model, 4)
+    params = parameter_enclosures(model)
+    assert programs.hessian is not None and len(programs.centered) > 0
+    rng = np.random.default_rng(7)
+    lo, hi, m = _boxes(rng, 60, np.array([0.05, 0.02, 0.1]))
+    (nlo, nhi), (clo, chi) = _enclosures(programs, params, lo, hi, m)
+    smin, smax = _sampled_range(_sympy_jacobian(model), lo, hi)
+    clo, chi = clo[:, :9], chi[:, :9]
+    assert np.all(clo <= smin) and np.all(chi >= smax)
+    assert np.all(clo >= nlo) and np.all(chi <= nhi)
+    # the intersection tightens the entries it is applied to
+    entries = [e for e in programs.centered if e < 9]
+    assert np.mean((chi - clo)[:, entries] < (nhi - nlo)[:, entries]) > 0.5
+
+
+def test_centered_excess_shrinks_with_the_square_of_the_box():
+    model = parse_model(CHAIN)
+    programs = flow_programs(model, 4)
+    params = parameter_enclosures(model)
+    jac = _sympy_jacobian(model)
+    entries = [e for e in programs.centered if e < 9]
+    excess = {}
+    for scale in (1.0, 0.25):
+        rng = np.random.default_rng(11)
+        lo, hi, _ = _boxes(rng, 40, scale * np.array([0.08, 0.04, 0.2]))
+        m = 0.5 * (lo + hi)
+        (nlo, nhi), (clo, chi) = _enclosures(programs, params, lo, hi, m)
+        clo, chi = clo[:, :9], chi[:, :9]
+        smin, smax = _sampled_range(jac, lo, hi)
+        sampled = (smax - smin)[:, entries]
+        excess[scale] = (np.median(((chi - clo)[:, entries] - sampled).sum(axis=1)),
+                         np.median(((nhi - nlo)[:, entries] - sampled).sum(axis=1)))
+    centered_ratio = excess[1.0][0] / excess[0.25][0]
+    natural_ratio = excess[1.0][1] / excess[0.25][1]
+    # a quarter of the width: second order gives 16, first order 4
+    assert centered_ratio > 8
+    assert natural_ratio < 6
+
+
+def test_checker_derives_the_same_entries():
+    for text in (CHAIN, PLANE):
+        model = parse_model(text)
+        prover = flow_programs(model, 4)
+        checker = derive_programs(model, 4)
+        assert checker.centered == prover.centered
+        assert (checker.hessian is None) == (prover.hessian is None)
+    # two states: the Jacobian is cut where that pays instead (no centered entries)
+    assert flow_programs(parse_model(PLANE), 4).centered == ()
+    x, y, z = sympy.symbols("x y z")
+    df = sympy.Matrix([x * y, -z, 3 * x]).jacobian([x, y, z])  # rows [y, x, 0], [0, 0, -1], [3, 0, 0]
+    assert centered_entries([df], (x, y, z)) == (0, 1)
+    # the second matrix's entries follow the first's (9 of them)
+    assert centered_entries([df, sympy.Matrix([[x, 0, 0], [0, 0, 0], [0, 0, 1]])],
+                            (x, y, z)) == (0, 1, 9)

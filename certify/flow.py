@@ -286,20 +286,16 @@ def _split_at_point(program, lo, hi, point, params):
 
 
 def _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params):
-    """The Jacobians ``Df^[k](J)`` (row-major, one after the other) with each entry of
-    ``programs.centered`` intersected with its centered form
-    ``G_e(m) + sum_l (d G_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``), where that
-    form is finite (:func:`certify.taylor.centered_entries`).
+    """``Df(J)`` with each entry of ``programs.centered`` intersected with its centered
+    form ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``),
+    where that form is finite (:func:`certify.taylor.centered_entries`).
 
-    `m` lies in ``J``, so the mean-value theorem puts every value of ``G_e`` on ``J`` in
-    the form; the checker applies the same rule to its own ``J`` and ``m``.
+    `m` lies in ``J``, so the mean-value theorem puts every value of ``Df_e`` on ``J``
+    in the form; the checker applies the same rule to its own ``J`` and ``m``.
     """
     n = m.shape[1]
     entries = list(programs.centered)
     at_lo, at_hi = evaluate_boxes(programs.jacobian, m, m, params)
-    if entries[-1] >= n * n:
-        hlo_m, hhi_m = evaluate_boxes(programs.higher_jacobians, m, m, params)
-        at_lo, at_hi = np.concatenate([at_lo, hlo_m], 1), np.concatenate([at_hi, hhi_m], 1)
     hlo, hhi = evaluate_boxes(programs.hessian, jlo, jhi, params)
     dlo, dhi = iv.sub(jlo, jhi, m, m)
     clo, chi = at_lo[:, entries], at_hi[:, entries]
@@ -407,11 +403,11 @@ def _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
             glo, ghi = _split_at_point(programs.jacobian, jlo, jhi, m, params)
         else:
             glo, ghi = evaluate_boxes(programs.jacobian, jlo, jhi, params)
+        if programs.hessian is not None:
+            glo, ghi = _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params)
         if q > 2:
             wlo, whi = evaluate_boxes(programs.higher_jacobians, jlo, jhi, params)
             glo, ghi = np.concatenate([glo, wlo], axis=1), np.concatenate([ghi, whi], axis=1)
-        if programs.hessian is not None:
-            glo, ghi = _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params)
         for k in range(1, q):
             g_lo = glo[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
             g_hi = ghi[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)

@@ -329,11 +329,11 @@ def _taylor(ar, progs, params, hh, X, E, point):
         jac = _joined(ar, progs.jacobian,
                       [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
                       params)
+        if progs.hessian is not None:
+            jac = _centered_jacobian(ar, progs, params, jac, J, point)
         if q > 2:
             jac = jac + _joined(ar, progs.higher_jacobians,
                                 ar.cover(J, ar.pieces.jacobians[-1]), params)
-        if progs.hessian is not None:
-            jac = _centered_jacobian(ar, progs, params, jac, J, point)
         for k in range(1, q):
             for i in range(n):
                 for j in range(n):
@@ -343,15 +343,12 @@ def _taylor(ar, progs, params, hh, X, E, point):
 
 
 def _centered_jacobian(ar, progs, params, jac, J, point):
-    """The Jacobians ``Df^[k](J)`` (row-major, one after the other) with each entry of
-    ``progs.centered`` intersected with its centered form
-    ``G_e(m) + sum_l (d G_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``) where that
+    """``Df(J)`` with each entry of ``progs.centered`` intersected with its centered form
+    ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``) where that
     form is finite. `point` (``m``) lies in ``J``, so by the mean-value theorem the form
-    holds every value of ``G_e`` on ``J``."""
+    holds every value of ``Df_e`` on ``J``."""
     n = progs.n
     at_m = evaluate(progs.jacobian, ar, list(point) + params)
-    if progs.centered[-1] >= n * n:
-        at_m = at_m + evaluate(progs.higher_jacobians, ar, list(point) + params)
     hessian = _joined(ar, progs.hessian, ar.cover(J, ar.pieces.jacobians[0]), params)
     offsets = [ar.sub(J[l], point[l]) for l in range(n)]
     jac = list(jac)

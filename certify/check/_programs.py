@@ -266,11 +266,10 @@ class CheckPrograms:
         The second derivatives of the limits along the solutions (m outputs); None for
         models with kinks.
     centered : tuple of int
-        Indices, into the row-major Jacobians of ``f^[1], f^[2], ...`` one after the
-        other, of the entries also enclosed by their centered form on the mean-value box
-        (docs/method.md, step 4); empty for none.
+        Row-major indices of the Jacobian entries also enclosed by their centered form
+        on the mean-value box (docs/method.md, step 4); empty for none.
     hessian : Program or None
-        ``d G_e / d x_l`` for each entry ``G_e`` of `centered` and each state ``l``.
+        ``d Df_e / d x_l`` for each entry ``e`` of `centered` and each state ``l``.
     """
 
     order: int
@@ -375,19 +374,18 @@ def _taylor_programs(equations, states, inputs, order):
     coefficients = taylor_coefficients(equations, states, order)
     middle = coefficients[1:order]
     df = sympy.Matrix(equations).jacobian(x)
-    higher = [c.jacobian(x) for c in middle[1:]]
-    entries = [e for d in ([df] + higher)[:len(middle)] for e in d]
-    centered = _centered(([df] + higher)[:len(middle)], states)
+    centered = _centered(df, states) if middle else ()
     return {"order": order,
             "remainder": compile_expressions(list(coefficients[order]), inputs),
             "coefficients": compile_expressions([e for c in middle for e in c], inputs)
             if middle else None,
             "jacobian": compile_expressions(list(df), inputs) if middle else None,
-            "higher_jacobians": compile_expressions([e for d in higher for e in d], inputs)
-            if higher else None,
+            "higher_jacobians": compile_expressions(
+                [e for c in middle[1:] for e in c.jacobian(x)], inputs)
+            if len(middle) > 1 else None,
             "cut_jacobian": _cut(df, states),
             "centered": centered,
-            "hessian": compile_expressions([sympy.diff(entries[e], s) for e in centered
+            "hessian": compile_expressions([sympy.diff(df[e], s) for e in centered
                                             for s in states], inputs) if centered else None}
 
 
@@ -494,13 +492,11 @@ def _cut(df, states):
                for entry in df)
 
 
-def _centered(jacobians, states):
-    """The prover's rule for the entries it also encloses by their centered form
-    (docs/method.md, step 4): in three or more states, the entries of the Jacobians of
-    ``f^[1]`` and ``f^[2]`` (row-major, one after the other) that are not constant in the
-    states. Using the form is sound either way."""
+def _centered(df, states):
+    """The prover's rule for the Jacobian entries it also encloses by their centered
+    form (docs/method.md, step 4): in three or more states, the entries that are not
+    constant in the states. Using the form is sound either way."""
     if len(states) <= 2:
         return ()
-    entries = [e for d in jacobians[:2] for e in d]
-    return tuple(k for k, entry in enumerate(entries)
+    return tuple(e for e, entry in enumerate(df)
                  if any(sympy.diff(entry, s) != 0 for s in states))

@@ -19,6 +19,7 @@ from certify.check._programs import derive_programs
 from certify.evaluate import evaluate_boxes, parameter_enclosures
 from certify.flow import _centered_jacobian
 from certify.taylor import centered_entries, flow_programs
+from test_points import COMPETITION  # two competing species: a model of two states
 
 # Hastings & Powell 1991, "Chaos in a three-species food chain", scaled form with their
 # parameters a1 = 5, b1 = 3, a2 = 0.1, b2 = 2, d1 = 0.4, d2 = 0.01 (from memory).
@@ -42,20 +43,6 @@ y = "a1*x*y/(1 + b1*x) - a2*y*z/(1 + b2*y) - d1*y"
 z = "a2*y*z/(1 + b2*y) - d2*z"
 [limits]
 floor = "z >= 7.5"
-"""
-
-# Lotka-Volterra competition of two species (common textbook form): two states.
-PLANE = """
-[model]
-name = "competition"
-[states]
-u = { range = [0, 2] }
-v = { range = [0, 2] }
-[equations]
-u = "u*(1 - u - v/2)"
-v = "v*(1 - v - u/3)"
-[limits]
-floor = "u >= 0.1"
 """
 
 
@@ -135,14 +122,14 @@ def test_centered_excess_shrinks_with_the_square_of_the_box():
 
 
 def test_checker_derives_the_same_entries():
-    for text in (CHAIN, PLANE):
+    for text in (CHAIN, COMPETITION):
         model = parse_model(text)
         prover = flow_programs(model, 4)
         checker = derive_programs(model, 4)
         assert checker.centered == prover.centered
         assert (checker.hessian is None) == (prover.hessian is None)
     # two states: the Jacobian is cut where that pays instead (no centered entries)
-    assert flow_programs(parse_model(PLANE), 4).centered == ()
+    assert flow_programs(parse_model(COMPETITION), 4).centered == ()
     x, y, z = sympy.symbols("x y z")
     # rows [y, x, 0], [0, 0, -1], [3, 0, 0]: only the first two entries vary
     df = sympy.Matrix([x * y, -z, 3 * x]).jacobian([x, y, z])

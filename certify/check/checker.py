@@ -47,7 +47,7 @@ CHUNK_STEPS = 8000
 FLOAT_CHUNK_STEPS = 250_000
 #: Time unit of the exact step-time sums: every double is a multiple of 2**-1074.
 TIME_SCALE = 1074
-#: Cells whose image's leaves are looked up and tested together when judging.
+#: Range of cell numbers whose images' leaves are looked up and tested together when judging.
 JUDGE_BLOCK = 16_384
 
 
@@ -710,18 +710,19 @@ def _judge_all(cert, facts, tree, cells, unproven_regions=()):
     use = facts.image.astype(bool) & ~facts.empty
     sel = np.asarray(cells)[use[cells]]
     missing = {}
-    # in blocks of cells: in four states an image meets hundreds of leaves, and the
-    # pairs of every cell at once, with their image sets, filled 20 GB on 400,000 cells
-    for first in range(0, len(sel), JUDGE_BLOCK):
-        block = sel[first:first + JUDGE_BLOCK]
+    # by ranges of cell numbers: in four states an image meets hundreds of leaves, and
+    # the pairs of every cell at once, with their image sets, filled 20 GB on 400,000 cells
+    for first in range(0, cert.L, JUDGE_BLOCK):
+        last = min(first + JUDGE_BLOCK, cert.L)
+        block = sel[(sel >= first) & (sel < last)]
+        if len(block) == 0:
+            continue
         q, leaf = _leaves_meeting(tree, facts.grid_lo[block], facts.grid_hi[block])
         src = block[q]
-        starts = cert.succ_start[block]
-        counts = cert.succ_start[block + 1] - starts
-        ends = np.cumsum(counts)
-        rows = np.repeat(starts - (ends - counts), counts) + np.arange(ends[-1] if len(ends) else 0)
-        listed = np.repeat(block, counts).astype(np.int64) * cert.L + cert.succ[rows]
-        unlisted = ~np.isin(src.astype(np.int64) * cert.L + leaf, listed)
+        owner = np.repeat(np.arange(first, last), np.diff(cert.succ_start[first:last + 1]))
+        listed = cert.succ[cert.succ_start[first]:cert.succ_start[last]]
+        unlisted = ~np.isin(src.astype(np.int64) * cert.L + leaf,
+                            owner.astype(np.int64) * cert.L + listed)
         src, leaf = src[unlisted], leaf[unlisted]
         for s, d in zip(*_met(cert, facts, src, leaf)):
             missing.setdefault(s, d)

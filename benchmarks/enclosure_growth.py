@@ -45,6 +45,7 @@ from certify.model import load_model  # noqa: E402
 from certify.prove import Method  # noqa: E402
 from certify.taylor import flow_programs  # noqa: E402
 from certify.time_scale import time_scale  # noqa: E402
+from mixed_floor import cell_offsets  # noqa: E402
 
 
 def draw_cells(model, programs, params, depth, count, seed):
@@ -76,9 +77,8 @@ def trajectories(programs, params, starts, times):
 
 
 def grid_points(lo, hi, per_side=5):
-    """``per_side^n`` points on a regular grid of the box ``[lo, hi]``."""
-    axes = [np.linspace(a, b, per_side) for a, b in zip(lo, hi)]
-    return np.array(np.meshgrid(*axes, indexing="ij")).reshape(len(lo), -1).T
+    """``per_side^n`` points on a regular grid of the box ``[lo, hi]``, corners included."""
+    return lo + cell_offsets(len(lo), per_side) * (hi - lo)
 
 
 def jacobian_ratios(programs, params, xlo, xhi, m):

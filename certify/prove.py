@@ -363,6 +363,7 @@ class _Prover:
         self.progress = progress
         self.deadline = None  # set by _prove: a time.monotonic() the flow must not run past
         self.label_seconds = 0.0  # how long the last labelling took
+        self.label_pairs = 0  # and how many (leaf, successor) pairs it looked up
         self.followed = None  # (tubes followed, tubes to follow) of the followed round
         self.params = parameter_enclosures(model)
         self.programs = flow_programs(model, method.order, method.kinks)
@@ -423,13 +424,7 @@ class _Prover:
                                                   self.deadline):
                 self._take_flows(self.tubes, todo[rows], result)
             return todo, None
-        tubes = replace(self.tubes, follow=follow)
-        result = self._flows_in_time(tubes, cell_lo, cell_hi)
-        if result is None:
-            return todo[:0], None
-        todo = todo[:len(result.n_steps)]
-        self._take_flows(tubes, todo, result)
-        return todo, result
+        return self._flows_in_time(replace(self.tubes, follow=follow), todo)
 
     def _take_flows(self, tubes, nodes, result):
         """The facts, image sets and steps of `nodes` from their flows `result`, and
@@ -473,21 +468,48 @@ class _Prover:
         finally:
             parts.close()
 
-    def _flows_in_time(self, tubes, cell_lo, cell_hi):
-        """The flows of the first cells, in pieces of FOLLOW_PIECE cells a worker, that
-        end before the deadline less FOLLOW_RESERVE labellings (the one of these tubes
-        and the last of the round); None when not one piece does. Without a deadline,
-        all of them."""
+    def _flows_in_time(self, tubes, nodes):
+        """Flow and take the tubes of the first `nodes`, in pieces of FOLLOW_PIECE cells a
+        worker, while they end before the deadline less FOLLOW_RESERVE labellings (the
+        one of these tubes and the last of the round). Returns the nodes taken and
+        their flows joined (None when not one piece was). Without a deadline, all.
+
+        Longer tubes have wider images, hence more successors, and a labelling costs
+        about in proportion to them: the labellings kept in reserve are the last one's
+        time scaled by the pairs that the images taken so far add. A piece is not
+        started when the last one's time would take it past the reserve.
+        """
+        lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         if self.deadline is None:
-            return self._flows(tubes, cell_lo, cell_hi, None)
-        until = self.deadline - FOLLOW_RESERVE * self.label_seconds
-        parts = []
-        for k in _in_pieces(len(cell_lo), FOLLOW_PIECE * self.runner.n_workers):
+            result = self._flows(tubes, lo, hi, None)
+            self._take_flows(tubes, nodes, result)
+            return nodes, result
+        parts, taken, added, piece_seconds = [], 0, 0, 0.0
+        for k in _in_pieces(len(nodes), FOLLOW_PIECE * self.runner.n_workers):
+            labelling = self.label_seconds * (1.0 + added / max(self.label_pairs, 1))
+            until = self.deadline - FOLLOW_RESERVE * labelling
+            started = time.monotonic()
+            if started + piece_seconds > until:
+                break
             try:
-                parts.append(self._flows(tubes, cell_lo[k], cell_hi[k], until))
+                part = self._flows(tubes, lo[k], hi[k], until)
             except DeadlinePassed:
                 break
-        return join_results(parts) if parts else None
+            before = self._pairs(self.image_lo[nodes[k]], self.image_hi[nodes[k]])
+            self._take_flows(tubes, nodes[k], part)
+            added += max(self._pairs(part.image_lo, part.image_hi) - before, 0)
+            parts.append(part)
+            taken += len(k)
+            piece_seconds = time.monotonic() - started
+        if not parts:
+            return nodes[:0], None
+        return nodes[:taken], join_results(parts)
+
+    def _pairs(self, image_lo, image_hi):
+        """How many (image, leaf) pairs a labelling would look up for these image boxes."""
+        usable = np.all(image_lo <= image_hi, axis=1)
+        lo, hi = image_lo[usable], image_hi[usable]
+        return len(self.tree.leaves_meeting(lo, hi, strict=self._thick_axes(lo, hi))[0])
 
     def _tube_facts(self, todo, result):
         S = len(result.h)
@@ -794,6 +816,7 @@ class _Prover:
         query_nodes = np.flatnonzero(usable)[nonempty].astype(number.dtype)
         qlo, qhi = qlo[nonempty], qhi[nonempty]
         q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
+        self.label_pairs = len(q)
         # edges can be many: each pair array is freed once mapped, not held through the
         # labelling
         src = query_nodes[q]

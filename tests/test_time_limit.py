@@ -114,6 +114,27 @@ def test_followed_round_keeps_the_pieces_flowed_before_the_limit(monkeypatch):
     assert _valid(proof)
 
 
+def test_followed_round_stops_when_its_labelling_would_pass_the_limit(monkeypatch):
+    # Followed tubes have wider images: a labelling of them takes longer than the last
+    # one in proportion to the pairs it looks up. Images that add a vast number of pairs
+    # make the foreseen labelling end past the limit, so no piece after the first is
+    # flowed; the first keeps its followed tubes and the checker agrees.
+    model = load_model(FOOD_CHAIN)
+    start_depth = prove_module.Method().start_depth
+    first = prove(model, max_depth=start_depth, follow_undecided=False)
+    monkeypatch.setattr(prove_module, "FOLLOW_PIECE", 2)
+    calls = iter(range(10 ** 6))
+    # counted before (old images: none) and after taking each piece (new: very many)
+    monkeypatch.setattr(prove_module._Prover, "_pairs",
+                        lambda self, lo, hi: 10 ** 15 * (next(calls) % 2))
+    proof = prove(model, max_depth=start_depth, time_limit=600)
+    done, total = map(int, re.search(r"short: (\d+) of (\d+) tubes", proof.stop_reason).groups())
+    assert done == 2 < total
+    decided = first.labelling.label != "undecided"
+    np.testing.assert_array_equal(proof.labelling.label[decided], first.labelling.label[decided])
+    assert _valid(proof)
+
+
 def test_short_of_budget_foresees_the_next_round():
     # the last splitting round took 10 s for 100 new cells; splitting 50 leaves of a
     # 3-state model makes 400 cells, about 40 s (common practice: a linear forecast)

@@ -288,7 +288,8 @@ def _split_at_point(program, lo, hi, point, params):
 def _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params):
     """``Df(J)`` with each entry of ``programs.centered`` intersected with its centered
     form ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``),
-    where that form is finite (:func:`certify.taylor.centered_entries`).
+    where that form is finite (:func:`certify.taylor.centered_entries`); and the
+    enclosure ``hlo, hhi`` of the second derivatives ``programs.hessian`` on ``J``.
 
     `m` lies in ``J``, so the mean-value theorem puts every value of ``Df_e`` on ``J``
     in the form; the checker applies the same rule to its own ``J`` and ``m``.
@@ -306,7 +307,36 @@ def _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params):
     glo, ghi = glo.copy(), ghi.copy()
     glo[:, entries] = np.where(usable, np.maximum(glo[:, entries], clo), glo[:, entries])
     ghi[:, entries] = np.where(usable, np.minimum(ghi[:, entries], chi), ghi[:, entries])
-    return glo, ghi
+    return glo, ghi, hlo, hhi
+
+
+def _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, jlo, jhi, params):
+    """``Df^[2](J)`` (the first ``n * n`` columns of `wlo`, `whi`) intersected, where
+    finite, with its product form ``(Df(J) Df(J) + sum_k D Df_.k(J) f_k(J)) / 2``.
+
+    ``f^[2] = Df f / 2``, so ``Df^[2] = (Df Df + D^2f[f]) / 2`` with ``D^2f[f]_ij =
+    sum_k (d^2 f_i / dx_j dx_k) f_k``: the product takes the centered ``Df(J)``
+    (:func:`_centered_jacobian`), whose entries are 2-4 times narrower than their
+    natural extension, and the Hessian entries ``hlo, hhi`` of ``programs.centered``
+    (the other entries of ``Df`` are constant in the states). Products are folded in
+    the order of ``k``; the checker applies the same rule to its own ``J``.
+    """
+    N, n = jlo.shape
+    flo, fhi = evaluate_boxes(programs.field, jlo, jhi, params)
+    G = glo.reshape(N, n, n), ghi.reshape(N, n, n)
+    plo, phi = imatmul(*G, *G)
+    for p, e in enumerate(programs.centered):
+        i, j = divmod(e, n)
+        for k in range(n):
+            tlo, thi = iv.mul(hlo[:, p * n + k], hhi[:, p * n + k], flo[:, k], fhi[:, k])
+            plo[:, i, j], phi[:, i, j] = iv.add(plo[:, i, j], phi[:, i, j], tlo, thi)
+    plo, phi = iv.mul(plo.reshape(N, n * n), phi.reshape(N, n * n), 0.5, 0.5)
+    usable = np.isfinite(plo) & np.isfinite(phi)
+    wlo, whi = wlo.copy(), whi.copy()
+    first = slice(0, n * n)
+    wlo[:, first] = np.where(usable, np.maximum(wlo[:, first], plo), wlo[:, first])
+    whi[:, first] = np.where(usable, np.minimum(whi[:, first], phi), whi[:, first])
+    return wlo, whi
 
 
 def _ordered_columns(mid, width):
@@ -404,9 +434,12 @@ def _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
         else:
             glo, ghi = evaluate_boxes(programs.jacobian, jlo, jhi, params)
         if programs.hessian is not None:
-            glo, ghi = _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params)
+            glo, ghi, hlo, hhi = _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params)
         if q > 2:
             wlo, whi = evaluate_boxes(programs.higher_jacobians, jlo, jhi, params)
+            if programs.hessian is not None:
+                wlo, whi = _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, jlo,
+                                             jhi, params)
             glo, ghi = np.concatenate([glo, wlo], axis=1), np.concatenate([ghi, whi], axis=1)
         for k in range(1, q):
             g_lo = glo[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)

@@ -7,6 +7,8 @@ theorem (common practice): the enclosure holds the Jacobian at points of ``J``, 
 independently with sympy's ``lambdify``; it is never wider than the natural extension;
 its excess over the sampled range shrinks with the square of ``J``'s width (second
 order), the natural extension's only linearly. The checker derives the same entries.
+The Jacobian of ``f^[2] = Df f / 2`` (the second Taylor coefficient, by definition) is
+also enclosed by the product ``(Df(J) Df(J) + D^2f(J)[f(J)]) / 2``, checked the same way.
 """
 
 from __future__ import annotations
@@ -17,7 +19,7 @@ import sympy
 from certify import parse_model
 from certify.check._programs import derive_programs
 from certify.evaluate import evaluate_boxes, parameter_enclosures
-from certify.flow import _centered_jacobian
+from certify.flow import _centered_jacobian, _product_jacobian
 from certify.taylor import centered_entries, flow_programs
 from test_points import COMPETITION  # two competing species: a model of two states
 
@@ -46,15 +48,17 @@ floor = "z >= 7.5"
 """
 
 
-def _sympy_jacobian(model):
-    """The Jacobian as a numpy function of the states, by sympy (independent of the
-    compiled programs)."""
+def _sympy_jacobian(model, coefficient=1):
+    """The Jacobian of ``f`` (or, with `coefficient` 2, of ``f^[2] = Df f / 2``) as a
+    numpy function of the states, by sympy (independent of the compiled programs)."""
     x, y, z = sympy.symbols("x y z")
     a1, b1, a2, b2, d1, d2 = 5, 3, sympy.Rational(1, 10), 2, sympy.Rational(2, 5), \
         sympy.Rational(1, 100)
     f = sympy.Matrix([x * (1 - x) - a1 * x * y / (1 + b1 * x),
                       a1 * x * y / (1 + b1 * x) - a2 * y * z / (1 + b2 * y) - d1 * y,
                       a2 * y * z / (1 + b2 * y) - d2 * z])
+    if coefficient == 2:
+        f = f.jacobian([x, y, z]) * f / 2
     return sympy.lambdify((x, y, z), f.jacobian([x, y, z]), "numpy")
 
 
@@ -70,7 +74,7 @@ def _boxes(rng, count, width):
 def _enclosures(programs, params, lo, hi, m):
     """The natural ``Df(J)`` and the step's ``Df(J)`` with the centered form."""
     natural = evaluate_boxes(programs.jacobian, lo, hi, params)
-    return natural, _centered_jacobian(programs, *natural, lo, hi, m, params)
+    return natural, _centered_jacobian(programs, *natural, lo, hi, m, params)[:2]
 
 
 def _sampled_range(jac, lo, hi, per_side=6):
@@ -96,6 +100,24 @@ def test_centered_enclosure_holds_the_jacobian_and_is_no_wider():
     # the intersection tightens the entries it is applied to
     entries = list(programs.centered)
     assert np.mean((chi - clo)[:, entries] < (nhi - nlo)[:, entries]) > 0.5
+
+
+def test_product_form_holds_the_jacobian_of_the_second_coefficient():
+    model = parse_model(CHAIN)
+    programs = flow_programs(model, 4)
+    params = parameter_enclosures(model)
+    rng = np.random.default_rng(5)
+    lo, hi, m = _boxes(rng, 60, np.array([0.05, 0.02, 0.1]))
+    natural = evaluate_boxes(programs.jacobian, lo, hi, params)
+    glo, ghi, hlo, hhi = _centered_jacobian(programs, *natural, lo, hi, m, params)
+    wlo, whi = evaluate_boxes(programs.higher_jacobians, lo, hi, params)
+    plo, phi = _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, lo, hi, params)
+    smin, smax = _sampled_range(_sympy_jacobian(model, coefficient=2), lo, hi)
+    assert np.all(plo[:, :9] <= smin) and np.all(phi[:, :9] >= smax)
+    assert np.all(plo >= wlo) and np.all(phi <= whi)
+    # only the Jacobian of f^[2] is narrowed, and on most boxes as a whole
+    np.testing.assert_array_equal(plo[:, 9:], wlo[:, 9:])
+    assert np.mean((phi - plo)[:, :9].sum(axis=1) < (whi - wlo)[:, :9].sum(axis=1)) > 0.5
 
 
 def test_centered_excess_shrinks_with_the_square_of_the_box():

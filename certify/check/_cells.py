@@ -330,10 +330,13 @@ def _taylor(ar, progs, params, hh, X, E, point):
                       [c for part in parts for c in ar.cover(part, ar.pieces.jacobians[0])],
                       params)
         if progs.hessian is not None:
-            jac = _centered_jacobian(ar, progs, params, jac, J, point)
+            jac, hessian = _centered_jacobian(ar, progs, params, jac, J, point)
         if q > 2:
-            jac = jac + _joined(ar, progs.higher_jacobians,
-                                ar.cover(J, ar.pieces.jacobians[-1]), params)
+            higher = _joined(ar, progs.higher_jacobians, ar.cover(J, ar.pieces.jacobians[-1]),
+                             params)
+            if progs.hessian is not None:
+                higher = _product_jacobian(ar, progs, params, jac, hessian, higher, J)
+            jac = jac + higher
         for k in range(1, q):
             for i in range(n):
                 for j in range(n):
@@ -345,8 +348,9 @@ def _taylor(ar, progs, params, hh, X, E, point):
 def _centered_jacobian(ar, progs, params, jac, J, point):
     """``Df(J)`` with each entry of ``progs.centered`` intersected with its centered form
     ``Df_e(m) + sum_l (d Df_e / d x_l)(J) (J_l - m_l)`` (folded left over ``l``) where that
-    form is finite. `point` (``m``) lies in ``J``, so by the mean-value theorem the form
-    holds every value of ``Df_e`` on ``J``."""
+    form is finite, and the second derivatives ``progs.hessian`` on ``J``. `point`
+    (``m``) lies in ``J``, so by the mean-value theorem the form holds every value of
+    ``Df_e`` on ``J``."""
     n = progs.n
     at_m = evaluate(progs.jacobian, ar, list(point) + params)
     hessian = _joined(ar, progs.hessian, ar.cover(J, ar.pieces.jacobians[0]), params)
@@ -356,11 +360,42 @@ def _centered_jacobian(ar, progs, params, jac, J, point):
         form = at_m[e]
         for l in range(n):
             form = ar.add(form, ar.mul(hessian[k * n + l], offsets[l]))
-        rows = np.flatnonzero(np.broadcast_to(ar.finite(form), len(ar.lower(point[0]))))
-        if len(rows):
-            jac[e] = ar.put(jac[e], rows, ar.intersect(ar.take(jac[e], rows),
-                                                       ar.take(form, rows)))
-    return jac
+        jac[e] = _narrowed(ar, jac[e], form, len(ar.lower(point[0])))
+    return jac, hessian
+
+
+def _product_jacobian(ar, progs, params, jac, hessian, higher, J):
+    """``Df^[2](J)`` (the first ``n * n`` entries of `higher`) intersected, where finite,
+    with ``(Df(J) Df(J) + D^2f(J)[f(J)]) / 2``: ``f^[2] = Df f / 2`` by definition of the
+    Taylor coefficients, so ``Df^[2] = (Df Df + D^2f[f]) / 2`` with ``D^2f[f]_ij =
+    sum_k (d^2 f_i / dx_j dx_k) f_k``. `jac` is the centered ``Df(J)``; the second
+    derivatives are those of ``progs.centered`` (the other entries of ``Df`` are
+    constant in the states). Sums fold left over the inner index, then over ``k``."""
+    n = progs.n
+    field = _joined(ar, progs.field, ar.cover(J, ar.pieces.jacobians[0]), params)
+    product = []
+    for i in range(n):
+        for j in range(n):
+            acc = ar.mul(jac[i * n], jac[j])
+            for l in range(1, n):
+                acc = ar.add(acc, ar.mul(jac[i * n + l], jac[l * n + j]))
+            product.append(acc)
+    for p, e in enumerate(progs.centered):
+        for k in range(n):
+            product[e] = ar.add(product[e], ar.mul(hessian[p * n + k], field[k]))
+    N = len(ar.lower(J[0]))
+    half = ar.exact(np.full(N, 0.5))
+    return [_narrowed(ar, higher[e], ar.mul(half, product[e]), N) if e < n * n else higher[e]
+            for e in range(len(higher))]
+
+
+def _narrowed(ar, a, form, N):
+    """`a` intersected with `form` on the `N` rows where `form` is finite (both enclose
+    one value)."""
+    rows = np.flatnonzero(np.broadcast_to(ar.finite(form), N))
+    if len(rows) == 0:
+        return a
+    return ar.put(a, rows, ar.intersect(ar.take(a, rows), ar.take(form, rows)))
 
 
 def _kept_by_curvature(ar, context, hh, E, g, g_end, kept_by):

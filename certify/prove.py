@@ -53,7 +53,8 @@ FOLLOW_GROWTH_LIMIT = 4.0
 #: pieces flowed before the limit are kept, the one it interrupts is lost.
 FOLLOW_PIECE = 2048
 #: Labellings' worth of time a followed round keeps from the time limit for its own
-#: labelling and the last one; its decisive passes run only in time its flows leave.
+#: labelling and the last one (more as its wider images add successors, see
+#: :meth:`_Prover._flows_in_time`); its decisive passes run only in time its flows leave.
 FOLLOW_RESERVE = 2
 #: Share of the time a followed round left that a last, partial round may take: its
 #: leaves are as many as fit at the last splitting round's seconds per new cell.
@@ -474,10 +475,11 @@ class _Prover:
         one of these tubes and the last of the round). Returns the nodes taken and
         their flows joined (None when not one piece was). Without a deadline, all.
 
-        Longer tubes have wider images, hence more successors, and a labelling costs
-        about in proportion to them: the labellings kept in reserve are the last one's
-        time scaled by the pairs that the images taken so far add. A piece is not
-        started when the last one's time would take it past the reserve.
+        Longer tubes have wider images, hence more successors, and a labelling's time
+        grows about in proportion to them: the reserve is FOLLOW_RESERVE times the last
+        labelling's time plus that time in the proportion of the (leaf, successor) pairs
+        that the images taken so far add to it. A piece is not started when the last
+        one's time would take it past the reserve.
         """
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         if self.deadline is None:
@@ -486,8 +488,8 @@ class _Prover:
             return nodes, result
         parts, taken, added, piece_seconds = [], 0, 0, 0.0
         for k in _in_pieces(len(nodes), FOLLOW_PIECE * self.runner.n_workers):
-            labelling = self.label_seconds * (1.0 + added / max(self.label_pairs, 1))
-            until = self.deadline - FOLLOW_RESERVE * labelling
+            reserve = self.label_seconds * (FOLLOW_RESERVE + added / max(self.label_pairs, 1))
+            until = self.deadline - reserve
             started = time.monotonic()
             if started + piece_seconds > until:
                 break

@@ -303,11 +303,7 @@ def _centered_jacobian(programs, glo, ghi, jlo, jhi, m, params):
     for l in range(n):
         plo, phi = iv.mul(hlo[:, l::n], hhi[:, l::n], dlo[:, l:l + 1], dhi[:, l:l + 1])
         clo, chi = iv.add(clo, chi, plo, phi)
-    usable = np.isfinite(clo) & np.isfinite(chi)
-    glo, ghi = glo.copy(), ghi.copy()
-    glo[:, entries] = np.where(usable, np.maximum(glo[:, entries], clo), glo[:, entries])
-    ghi[:, entries] = np.where(usable, np.minimum(ghi[:, entries], chi), ghi[:, entries])
-    return glo, ghi, hlo, hhi
+    return (*_narrowed(glo, ghi, entries, clo, chi), hlo, hhi)
 
 
 def _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, jlo, jhi, params):
@@ -331,12 +327,17 @@ def _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, jlo, jhi, params):
             tlo, thi = iv.mul(hlo[:, p * n + k], hhi[:, p * n + k], flo[:, k], fhi[:, k])
             plo[:, i, j], phi[:, i, j] = iv.add(plo[:, i, j], phi[:, i, j], tlo, thi)
     plo, phi = iv.mul(plo.reshape(N, n * n), phi.reshape(N, n * n), 0.5, 0.5)
-    usable = np.isfinite(plo) & np.isfinite(phi)
-    wlo, whi = wlo.copy(), whi.copy()
-    first = slice(0, n * n)
-    wlo[:, first] = np.where(usable, np.maximum(wlo[:, first], plo), wlo[:, first])
-    whi[:, first] = np.where(usable, np.minimum(whi[:, first], phi), whi[:, first])
-    return wlo, whi
+    return _narrowed(wlo, whi, slice(0, n * n), plo, phi)
+
+
+def _narrowed(lo, hi, columns, flo, fhi):
+    """Copies of `lo`, `hi` with `columns` intersected with the enclosures `flo`, `fhi`
+    of the same values where both of these bounds are finite."""
+    usable = np.isfinite(flo) & np.isfinite(fhi)
+    lo, hi = lo.copy(), hi.copy()
+    lo[:, columns] = np.where(usable, np.maximum(lo[:, columns], flo), lo[:, columns])
+    hi[:, columns] = np.where(usable, np.minimum(hi[:, columns], fhi), hi[:, columns])
+    return lo, hi
 
 
 def _ordered_columns(mid, width):

@@ -89,7 +89,7 @@ def jacobian_ratios(programs, params, xlo, xhi, m):
     natural = evaluate_boxes(programs.jacobian, jlo, jhi, params)
     step = natural
     if programs.hessian is not None:
-        step = _centered_jacobian(programs, *natural, jlo, jhi, m[None], params)
+        step = _centered_jacobian(programs, *natural, jlo, jhi, m[None], params)[:2]
     values = programs.jacobian.point_at(grid_points(jlo[0], jhi[0]),
                                         [0.5 * (a + b) for a, b in params])
     sampled = values.max(axis=0) - values.min(axis=0)

@@ -511,7 +511,7 @@ class _Prover:
         """How many (image, leaf) pairs a labelling would look up for these image boxes."""
         usable = np.all(image_lo <= image_hi, axis=1)
         lo, hi = image_lo[usable], image_hi[usable]
-        return len(self.tree.leaves_meeting(lo, hi, strict=self._thick_axes(lo, hi))[0])
+        return len(self._leaves_met(lo, hi)[0])
 
     def _tube_facts(self, todo, result):
         S = len(result.h)
@@ -634,7 +634,7 @@ class _Prover:
                                               ones, ones)
             usable = ~escapes & np.all(lo <= hi, axis=1)
             rows, lo, hi = rows[usable], lo[usable], hi[usable]
-            query, leaf = self.tree.leaves_meeting(lo, hi, strict=self._thick_axes(lo, hi))
+            query, leaf = self._leaves_met(lo, hi)
             leaf = number[leaf]
             doomed_next = _any_of(query, leaf, doomed, len(rows))
             safe_next = _any_of(query, leaf, safe, len(rows))
@@ -702,14 +702,15 @@ class _Prover:
         return tube_past_open_faces(self.faces, self.window_sides, result.e_lo, result.e_hi,
                                     box_of_step, n_boxes)
 
-    def _thick_axes(self, lo, hi):
-        """Axes along which a clipped image meets the exact window in more than a point.
+    def _leaves_met(self, lo, hi):
+        """``(query, leaf)`` pairs of the leaves that the clipped image boxes meet.
 
-        Along those axes a successor must overlap the image's interior (cells that only
-        touch it are not needed to cover it, see :meth:`CellTree.leaves_meeting`).
+        Along the axes where a box meets the exact window in more than a point, a leaf
+        must overlap the box's interior (cells that only touch it are not needed to
+        cover it, see :meth:`CellTree.leaves_meeting`).
         """
         _, lo_hi, hi_lo, _ = self.window_sides
-        return (lo < hi) & (hi > lo_hi) & (lo < hi_lo)
+        return self.tree.leaves_meeting(lo, hi, strict=(lo < hi) & (hi > lo_hi) & (lo < hi_lo))
 
     def extend(self, nodes, growth_limit):
         """Follow the tubes of undecided leaves further; keep the longer tubes that decide.
@@ -817,7 +818,7 @@ class _Prover:
         nonempty = np.all(qlo <= qhi, axis=1)
         query_nodes = np.flatnonzero(usable)[nonempty].astype(number.dtype)
         qlo, qhi = qlo[nonempty], qhi[nonempty]
-        q, leaf = self.tree.leaves_meeting(qlo, qhi, strict=self._thick_axes(qlo, qhi))
+        q, leaf = self._leaves_met(qlo, qhi)
         self.label_pairs = len(q)
         # edges can be many: each pair array is freed once mapped, not held through the
         # labelling

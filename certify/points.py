@@ -6,7 +6,8 @@ Three results explain a map of fates (docs/design.md, section 7):
   each in a box proven (Krawczyk) to hold exactly one for every parameter value, the
   rest of the window proven free of them or listed as unresolved.
 * **Stability** (:func:`classify_stability`): Routh-Hurwitz conditions on the
-  characteristic polynomial of the interval Jacobian over the equilibrium's box.
+  characteristic polynomial of the interval Jacobian over the equilibrium's box (with
+  interval parameters, over the boxes that enclose it on pieces of the parameter box).
 * **Limit surfaces** (:func:`analyse_limits`): on each ``g = 0`` the boxes where the
   flow provably leaves the limits (``dg/dt < 0``) or returns (``dg/dt > 0``), and the
   tangency set ``g = 0, dg/dt = 0`` with the sign of ``d2g/dt2``.
@@ -18,7 +19,7 @@ through tangency points where the flow turns back into the limits.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import lru_cache
 from itertools import combinations
 
@@ -301,6 +302,41 @@ def _box_stability(jacobian, lo, hi, params, interval_params, scale, max_pieces=
     return np.array(words, dtype=object)
 
 
+def _stability_by_parameter_pieces(system, lo, hi, scale, max_pieces=64):
+    """Stability of the equilibrium in ``[lo, hi]``, decided on pieces of the box of
+    the interval parameters.
+
+    Over the whole parameter box the equilibrium's box is as wide as the equilibrium
+    moves, and :func:`_box_stability` pairs every state in it with every parameter
+    value, most of them far from any equilibrium. Here the parameter box is halved
+    level by level (at most `max_pieces` pieces); on each piece the equilibrium is
+    enclosed again in ``[lo, hi]`` (:func:`find_roots`, which must clear the rest of
+    the box), and every box found must carry the same word with that piece's
+    parameters. A word that two pieces disagree on ends the search: the stability
+    changes inside the parameter box (or cannot be told apart from a change).
+    """
+    which = list(system.interval_params)
+    if not which or system.jacobian is None:
+        return "undetermined"
+    plo, phi = system.params[which, 0][None], system.params[which, 1][None]
+    while len(plo) * 2 ** len(which) <= max_pieces:
+        plo, phi = split_boxes(plo, phi)
+        words = set()
+        for piece_lo, piece_hi in zip(plo, phi):
+            params = system.params.copy()
+            params[which, 0], params[which, 1] = piece_lo, piece_hi
+            search = find_roots(replace(system, params=params), lo, hi)
+            if not search.complete:
+                return "undetermined"
+            words.update(_box_stability(system.jacobian, search.lo, search.hi, params,
+                                        which, scale))
+        if len(words - {"undetermined"}) > 1:
+            return "undetermined"
+        if len(words) == 1 and "undetermined" not in words:
+            return words.pop()
+    return "undetermined"
+
+
 # ---------------------------------------------------------------------------- equilibria
 
 
@@ -416,6 +452,9 @@ def find_equilibria(model, *, max_depth=12, max_boxes=20_000):
         if len(search.lo) and programs.jacobian is not None:
             stability = _box_stability(programs.jacobian, search.lo, search.hi, params,
                                        system.interval_params, hi - lo)
+            for k in np.flatnonzero(stability == "undetermined"):
+                stability[k] = _stability_by_parameter_pieces(
+                    system, search.lo[k], search.hi[k], hi - lo)
         else:
             stability = np.full(len(search.lo), "undetermined", dtype=object)
         position = _limit_position(model, search.lo, search.hi)

@@ -6,6 +6,7 @@ threshold, or an independent library (numpy eigenvalues, scipy.optimize.root).
 
 from __future__ import annotations
 
+import importlib
 import json
 from fractions import Fraction
 from pathlib import Path
@@ -26,6 +27,8 @@ from certify.points import (
     explaining_curves,
     find_equilibria,
 )
+
+points_module = importlib.import_module("certify.points")
 
 FERMENTER = Path(__file__).resolve().parent.parent / "models" / "fermenter.toml"
 
@@ -215,11 +218,15 @@ def test_fermenter_interval_dilution_rate_keeps_each_equilibrium_in_its_box():
 
 @pytest.mark.parametrize("b,expected", [("1.5", "stable"), ("2.5", "unstable"),
                                         (("1.4", "1.6"), "stable"),
-                                        (("2.4", "2.6"), "unstable")])
+                                        (("2.4", "2.6"), "unstable"),
+                                        (("1.5", "1.9"), "stable"),
+                                        (("2.1", "2.5"), "unstable"),
+                                        (("1.8", "2.2"), "undetermined")])
 def test_brusselator_stability_changes_at_the_hopf_value(b, expected):
     # Prigogine & Lefever 1968; REFERENCES.md R10: equilibrium (a, b/a), trace b - 1 - a^2,
     # det a^2 > 0, so stable below b = 1 + a^2 = 2 and unstable (a focus, not a saddle)
-    # above; margins of at least 0.4 on either side.
+    # above; margins of at least 0.1 on either side, and a range across the Hopf value,
+    # where no single word is true.
     model = parse_model(BRUSSELATOR).with_parameters({"b": b})
     result = find_equilibria(model)
     assert len(result.equilibria) == 1 and result.complete
@@ -249,6 +256,38 @@ def test_lorenz_hurwitz_threshold(rho, expected):
         eq = box_of(result, (sign * c, sign * c, mpmath.mpf(rho) - 1))
         assert eq is not None and eq.stability == expected
     assert box_of(result, (0, 0, 0)).stability == "saddle"
+
+
+def test_wide_parameter_ranges_are_decided_on_pieces_of_the_range():
+    # Brusselator (R10 above): for b in [1.5, 1.9] the equilibrium (1, b) moves along
+    # the whole of y in [1.5, 1.9]; pairing every y of that box with every b (the box
+    # alone) holds unstable matrices (y = 1.9 with b = 1.5 gives trace 0.3), so only the
+    # pieces of the parameter range prove it stable.
+    model = parse_model(BRUSSELATOR).with_parameters({"b": ("1.5", "1.9")})
+    (eq,) = find_equilibria(model).equilibria
+    programs = points_module._programs(model)
+    params = points_module._params(model)
+    lo, hi = np.array([[a for a, _ in eq.box]], float), np.array([[b for _, b in eq.box]], float)
+    whole = points_module._box_stability(programs.jacobian, lo, hi, params, (1,),
+                                         np.array([4.0, 4.0]))
+    assert whole[0] == "undetermined" and eq.stability == "stable"
+
+
+@pytest.mark.parametrize("rho,expected", [(("10", "20"), "stable"), (("26", "30"), "saddle"),
+                                          (("20", "30"), "undetermined")])
+def test_lorenz_outer_equilibria_over_a_range_of_rho(rho, expected):
+    # Lorenz 1963; REFERENCES.md R12 (as above): C+- stable for rho < 470/19 = 24.7368,
+    # saddles above it. Over rho in [10, 20] they move by 2.4 along x and y and 10 along z,
+    # and a range across 24.7368 has no single word.
+    model = parse_model(LORENZ).with_parameters({"rho": rho})
+    result = find_equilibria(model)
+    assert len(result.equilibria) == 3 and result.complete
+    lo, hi = (mpmath.mpf(v) for v in rho)
+    for sign in (-1, 1):
+        for r in (lo, hi, (lo + hi) / 2):
+            c = mpmath.sqrt(mpmath.mpf(8) / 3 * (r - 1))
+            eq = box_of(result, (sign * c, sign * c, r - 1))
+            assert eq is not None and eq.stability == expected
 
 
 def test_routh_hurwitz_against_numpy_eigenvalues():

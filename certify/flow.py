@@ -330,6 +330,35 @@ def _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, jlo, jhi, params):
     return _narrowed(wlo, whi, slice(0, n * n), plo, phi)
 
 
+def _first_order_at_centre(programs, hlo, hhi, jlo, jhi, m, h, params):
+    """``Df(m)``, and the enclosure ``(h/2) sum_(j,l) (d^2 f / dx_j dx_l)(J) d_j d_l``
+    (``d = J - m``) of what ``h (f(x) - f(m) - Df(m) (x - m))`` can be for ``x`` in ``J``.
+
+    Taylor's formula with integral remainder gives ``f(x) - f(m) - Df(m) d =
+    int_0^1 (1 - s) D^2f(m + s d)[d, d] ds``, and ``int_0^1 (1 - s) ds = 1/2``. The second
+    derivatives ``hlo, hhi`` are those of ``programs.centered`` on ``J`` (the other
+    entries of ``Df`` are constant in the states); ``d_j^2`` is a square (never
+    negative). Sums fold over the entries, then over ``l``; the checker folds its own
+    in the same order.
+    """
+    N, n = m.shape
+    at_lo, at_hi = evaluate_boxes(programs.jacobian, m, m, params)
+    dlo, dhi = iv.sub(jlo, jhi, m, m)
+    qlo, qhi = np.zeros((N, n)), np.zeros((N, n))
+    for p, e in enumerate(programs.centered):
+        i, j = divmod(e, n)
+        for l in range(n):
+            if l == j:
+                plo, phi = iv.pow_int(dlo[:, j], dhi[:, j], 2)
+            else:
+                plo, phi = iv.mul(dlo[:, j], dhi[:, j], dlo[:, l], dhi[:, l])
+            tlo, thi = iv.mul(hlo[:, p * n + l], hhi[:, p * n + l], plo, phi)
+            qlo[:, i], qhi[:, i] = iv.add(qlo[:, i], qhi[:, i], tlo, thi)
+    half_lo, half_hi = iv.mul(h, h, 0.5, 0.5)
+    qlo, qhi = iv.mul(half_lo[:, None], half_hi[:, None], qlo, qhi)
+    return at_lo, at_hi, qlo, qhi
+
+
 def _narrowed(lo, hi, columns, flo, fhi):
     """Copies of `lo`, `hi` with `columns` intersected with the enclosures `flo`, `fhi`
     of the same values where both of these bounds are finite."""
@@ -442,6 +471,17 @@ def _taylor_step(programs, m, sets, xlo, xhi, elo, ehi, h, params, frames):
                 wlo, whi = _product_jacobian(programs, glo, ghi, hlo, hhi, wlo, whi, jlo,
                                              jhi, params)
             glo, ghi = np.concatenate([glo, wlo], axis=1), np.concatenate([ghi, whi], axis=1)
+        if programs.hessian is not None:
+            # h Df at m, and the rest of h (f(x) - f(m)) in Y (docs/method.md, exact order,
+            # step 4)
+            at_lo, at_hi, qlo, qhi = _first_order_at_centre(programs, hlo, hhi, jlo, jhi,
+                                                            m, h, params)
+            # rows where the rest is not finite keep h Df(J)
+            rows = np.flatnonzero(np.all(np.isfinite(qlo) & np.isfinite(qhi), axis=1)
+                                  & np.all(np.isfinite(at_lo) & np.isfinite(at_hi), axis=1))
+            ylo, yhi = ylo.copy(), yhi.copy()
+            ylo[rows], yhi[rows] = iv.add(ylo[rows], yhi[rows], qlo[rows], qhi[rows])
+            glo[rows, :n * n], ghi[rows, :n * n] = at_lo[rows], at_hi[rows]
         for k in range(1, q):
             g_lo = glo[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)
             g_hi = ghi[:, (k - 1) * n * n:k * n * n].reshape(N, n, n)

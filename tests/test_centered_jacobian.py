@@ -9,6 +9,9 @@ its excess over the sampled range shrinks with the square of ``J``'s width (seco
 order), the natural extension's only linearly. The checker derives the same entries.
 The Jacobian of ``f^[2] = Df f / 2`` (the second Taylor coefficient, by definition) is
 also enclosed by the product ``(Df(J) Df(J) + D^2f(J)[f(J)]) / 2``, checked the same way.
+The step's first-order term takes ``Df(m)`` and leaves the rest of ``h (f(x) - f(m))`` to
+``(h/2) D^2f(J)[J - m, J - m]`` (docs/method.md, exact order, step 4), checked against
+sympy.
 """
 
 from __future__ import annotations
@@ -19,7 +22,7 @@ import sympy
 from certify import parse_model
 from certify.check._programs import derive_programs
 from certify.evaluate import evaluate_boxes, parameter_enclosures
-from certify.flow import _centered_jacobian, _product_jacobian
+from certify.flow import _centered_jacobian, _first_order_at_centre, _product_jacobian
 from certify.taylor import centered_entries, flow_programs
 from test_points import COMPETITION  # two competing species: a model of two states
 
@@ -141,6 +144,54 @@ def test_centered_excess_shrinks_with_the_square_of_the_box():
     # a quarter of the width: second order gives 16, first order 4
     assert centered_ratio > 8
     assert natural_ratio < 6
+
+
+def _sympy_field(model):
+    """``f`` of the chain and its Jacobian as numpy functions (sympy, independent of the
+    compiled programs)."""
+    x, y, z = sympy.symbols("x y z")
+    a1, b1, a2, b2, d1, d2 = 5, 3, sympy.Rational(1, 10), 2, sympy.Rational(2, 5), \
+        sympy.Rational(1, 100)
+    f = sympy.Matrix([x * (1 - x) - a1 * x * y / (1 + b1 * x),
+                      a1 * x * y / (1 + b1 * x) - a2 * y * z / (1 + b2 * y) - d1 * y,
+                      a2 * y * z / (1 + b2 * y) - d2 * z])
+    return (sympy.lambdify((x, y, z), f, "numpy"),
+            sympy.lambdify((x, y, z), f.jacobian([x, y, z]), "numpy"))
+
+
+def test_second_order_rest_holds_what_the_first_order_term_at_m_leaves():
+    # Taylor's formula with integral remainder (common practice): for x in J,
+    # h (f(x) - f(m) - Df(m) (x - m)) = h int_0^1 (1 - s) D^2f(m + s (x - m))[x - m, x - m] ds,
+    # which the step encloses by (h/2) D^2f(J)[J - m, J - m]; checked at grid points of J
+    # with f and Df from sympy
+    model = parse_model(CHAIN)
+    programs = flow_programs(model, 4)
+    params = parameter_enclosures(model)
+    field, jac = _sympy_field(model)
+    rng = np.random.default_rng(3)
+    lo, hi, m = _boxes(rng, 60, np.array([0.05, 0.02, 0.1]))
+    h = np.full(len(lo), 0.125)
+    natural = evaluate_boxes(programs.jacobian, lo, hi, params)
+    _, _, hlo, hhi = _centered_jacobian(programs, *natural, lo, hi, m, params)
+    at_lo, at_hi, qlo, qhi = _first_order_at_centre(programs, hlo, hhi, lo, hi, m, h, params)
+    t = np.linspace(0, 1, 5)
+    grid = np.array(np.meshgrid(t, t, t, indexing="ij")).reshape(3, -1).T
+    for b in range(len(lo)):
+        at_m = np.array(jac(*m[b]), float)
+        assert np.all(at_lo[b].reshape(3, 3) <= at_m) and np.all(at_hi[b].reshape(3, 3) >= at_m)
+        for point in lo[b] + grid * (hi[b] - lo[b]):
+            d = point - m[b]
+            rest = h[b] * (np.array(field(*point), float).ravel()
+                           - np.array(field(*m[b]), float).ravel() - at_m @ d)
+            slack = 1e-12 * (1 + np.abs(rest))   # the float evaluation of the reference
+            assert np.all(qlo[b] <= rest + slack) and np.all(qhi[b] >= rest - slack)
+    # second order: a quarter of the box gives about a sixteenth of the width
+    small_lo, small_hi = m - (m - lo) / 4, m + (hi - m) / 4
+    natural = evaluate_boxes(programs.jacobian, small_lo, small_hi, params)
+    _, _, hlo, hhi = _centered_jacobian(programs, *natural, small_lo, small_hi, m, params)
+    _, _, slo, shi = _first_order_at_centre(programs, hlo, hhi, small_lo, small_hi, m, h,
+                                            params)
+    assert np.median((shi - slo).sum(axis=1) / (qhi - qlo).sum(axis=1)) < 1 / 10
 
 
 def test_checker_derives_the_same_entries():

@@ -337,6 +337,17 @@ def _taylor(ar, progs, params, hh, X, E, point):
             if progs.hessian is not None:
                 higher = _product_jacobian(ar, progs, params, jac, hessian, higher, J)
             jac = jac + higher
+        if progs.hessian is not None:
+            at_m, rest = _first_order_at_centre(ar, progs, params, hessian, J, point, hh)
+            # rows where the rest is not finite keep h Df(J)
+            usable = np.ones(N, bool)
+            for a in list(rest) + list(at_m[:n * n]):
+                usable &= np.broadcast_to(ar.finite(a), N)
+            rows = np.flatnonzero(usable)
+            Y = [ar.put(Y[i], rows, ar.add(ar.take(Y[i], rows), ar.take(rest[i], rows)))
+                 for i in range(n)]
+            jac = [ar.put(jac[e], rows, ar.take(at_m[e], rows)) for e in range(n * n)] \
+                + list(jac[n * n:])
         for k in range(1, q):
             for i in range(n):
                 for j in range(n):
@@ -362,6 +373,27 @@ def _centered_jacobian(ar, progs, params, jac, J, point):
             form = ar.add(form, ar.mul(hessian[k * n + l], offsets[l]))
         jac[e] = _narrowed(ar, jac[e], form, len(ar.lower(point[0])))
     return jac, hessian
+
+
+def _first_order_at_centre(ar, progs, params, hessian, J, point, hh):
+    """``Df(m)``, and ``(h/2) sum_(j,l) (d^2 f / dx_j dx_l)(J) d_j d_l`` with ``d = J - m``:
+    by Taylor's formula with integral remainder it holds ``h (f(x) - f(m) - Df(m) (x - m))``
+    for every ``x`` in ``J`` (``int_0^1 (1 - s) ds = 1/2``). The second derivatives are
+    those of ``progs.centered``; ``d_j^2`` is a square. Sums fold over the entries, then
+    over ``l``, as the prover's."""
+    n = progs.n
+    N = len(ar.lower(point[0]))
+    at_m = evaluate(progs.jacobian, ar, list(point) + params)
+    offsets = [ar.sub(J[l], point[l]) for l in range(n)]
+    rest = [ar.exact(np.zeros(N)) for _ in range(n)]
+    for p, e in enumerate(progs.centered):
+        i, j = divmod(e, n)
+        for l in range(n):
+            pair = (ar.pow_int(offsets[j], 2) if l == j
+                    else ar.mul(offsets[j], offsets[l]))
+            rest[i] = ar.add(rest[i], ar.mul(hessian[p * n + l], pair))
+    half_h = ar.mul(hh, ar.exact(np.full(N, 0.5)))
+    return at_m, [ar.mul(half_h, r) for r in rest]
 
 
 def _product_jacobian(ar, progs, params, jac, hessian, higher, J):

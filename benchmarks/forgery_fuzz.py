@@ -6,7 +6,7 @@ Run from the repository root::
                                                 [--families label claims ...]
                                                 [--mutants 100] [--seed 1] [--show 5]
 
-For each subject (:data:`SUBJECTS`: three models proven at low depth, two claim
+For each subject (:data:`SUBJECTS`: four models proven at low depth, two claim
 certificates of ``certify claim``, and a version-2 certificate from the tests' data) it
 writes the certificate, checks it VALID, and checks its own claims against simulation at
 sample points of every cell (a cross-check of the prover and of the oracle). Then, per
@@ -121,6 +121,24 @@ z = "0.2*x - 0.3*z"
 xcap = "x <= 0.8"
 zfloor = "z >= -0.6"
 """, {"max_depth": 2, "start_depth": 2}, 100.0),
+    # three coupled relaxations with products of states, nonlinear in three states (the
+    # checker's centered and product forms of the Jacobians at work): a stable node at
+    # the origin (eigenvalues -1, -1, -1.5) with a trapping region; a large y z drives
+    # x over its cap
+    "relaxations": ("""\
+[model]
+name = "three coupled relaxations"
+[states]
+x = [-1, 1]
+y = [-1, 1]
+z = [-1, 1]
+[equations]
+x = "-x + 2*y*z"
+y = "-y + 0.5*x*z"
+z = "-1.5*z + x*y/(1 + x^2)"
+[limits]
+cap = "x <= 0.6"
+""", {"max_depth": 4, "start_depth": 2}, 100.0),
     # a version-2 certificate (stored frames m, A per step) of the demo fermenter at
     # depth 3, read from the tests' data instead of proven: its model is the stored text
     # claim certificates (``certify claim``) on the damped rotation: a safe region near the

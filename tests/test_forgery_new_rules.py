@@ -475,6 +475,17 @@ def test_a_window_that_is_not_the_models_is_rejected(rotation, tmp_path, capsys)
     assert "window differs" in _rejected(rotation, tmp_path, capsys, change)
 
 
+def test_a_window_side_beyond_the_floats_is_malformed(rotation, tmp_path, capsys):
+    # found by benchmarks/forgery_fuzz.py (the 3D subject): a side of 1e400 made the
+    # checker's cell midpoints overflow before the window was compared with the model's
+    def change(data):
+        data["window"][1][1] = "1e400"
+    forged = _tampered(rotation, tmp_path, change)
+    with pytest.raises(CertificateError, match=r"window\[1\]"):
+        check_certificate(forged, jobs=1)
+    assert _check_cli(forged, capsys) == 2
+
+
 # -- tubes stored as their first steps ---------------------------------------------------
 def _crossing_time(x0, x1=Fraction(1, 10)):
     """Closed form travel time of the harvested stock (q = 0.16) from x0 down to x1 < x0 < 0.2."""

@@ -27,6 +27,8 @@ KINDS = ("limit", "inflow", "invariant", "no-outflow", "open")
 FRAME_RULES = tuple(FRAME_KINDS)
 #: How models with abs, min or max are stepped (docs/certificate-format.md, method.kinks).
 KINK_RULES = ("order-1", "branches")
+#: Largest magnitude of a window side: cells, their midpoints and widths must be floats.
+WINDOW_BOUND = Fraction(2) ** 1000
 
 
 class _Reader:
@@ -167,6 +169,8 @@ def _parse(path, data):
         lo, hi = (rd.fraction(v, f"window[{k}]") for v in side)
         if not lo < hi:
             rd.fail(f"window[{k}]", "lo must be below hi")
+        if max(abs(lo), abs(hi)) > WINDOW_BOUND:
+            rd.fail(f"window[{k}]", "a side beyond 2^1000 in magnitude (cells must be floats)")
         window.append((lo, hi))
     method = rd.get(data, "method", "method", dict)
     order = rd.get(method, "order", "method.order")

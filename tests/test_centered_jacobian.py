@@ -51,15 +51,21 @@ floor = "z >= 7.5"
 """
 
 
-def _sympy_jacobian(model, coefficient=1):
-    """The Jacobian of ``f`` (or, with `coefficient` 2, of ``f^[2] = Df f / 2``) as a
-    numpy function of the states, by sympy (independent of the compiled programs)."""
+def _sympy_chain():
+    """The states and ``f`` of CHAIN in sympy (independent of the compiled programs)."""
     x, y, z = sympy.symbols("x y z")
     a1, b1, a2, b2, d1, d2 = 5, 3, sympy.Rational(1, 10), 2, sympy.Rational(2, 5), \
         sympy.Rational(1, 100)
     f = sympy.Matrix([x * (1 - x) - a1 * x * y / (1 + b1 * x),
                       a1 * x * y / (1 + b1 * x) - a2 * y * z / (1 + b2 * y) - d1 * y,
                       a2 * y * z / (1 + b2 * y) - d2 * z])
+    return (x, y, z), f
+
+
+def _sympy_jacobian(model, coefficient=1):
+    """The Jacobian of ``f`` (or, with `coefficient` 2, of ``f^[2] = Df f / 2``) as a
+    numpy function of the states, by sympy (independent of the compiled programs)."""
+    (x, y, z), f = _sympy_chain()
     if coefficient == 2:
         f = f.jacobian([x, y, z]) * f / 2
     return sympy.lambdify((x, y, z), f.jacobian([x, y, z]), "numpy")
@@ -146,17 +152,11 @@ def test_centered_excess_shrinks_with_the_square_of_the_box():
     assert natural_ratio < 6
 
 
-def _sympy_field(model):
-    """``f`` of the chain and its Jacobian as numpy functions (sympy, independent of the
-    compiled programs)."""
-    x, y, z = sympy.symbols("x y z")
-    a1, b1, a2, b2, d1, d2 = 5, 3, sympy.Rational(1, 10), 2, sympy.Rational(2, 5), \
-        sympy.Rational(1, 100)
-    f = sympy.Matrix([x * (1 - x) - a1 * x * y / (1 + b1 * x),
-                      a1 * x * y / (1 + b1 * x) - a2 * y * z / (1 + b2 * y) - d1 * y,
-                      a2 * y * z / (1 + b2 * y) - d2 * z])
-    return (sympy.lambdify((x, y, z), f, "numpy"),
-            sympy.lambdify((x, y, z), f.jacobian([x, y, z]), "numpy"))
+def _sympy_field():
+    """``f`` of the chain and its Jacobian as numpy functions (sympy)."""
+    states, f = _sympy_chain()
+    return (sympy.lambdify(states, f, "numpy"),
+            sympy.lambdify(states, f.jacobian(list(states)), "numpy"))
 
 
 def test_second_order_rest_holds_what_the_first_order_term_at_m_leaves():
@@ -167,7 +167,7 @@ def test_second_order_rest_holds_what_the_first_order_term_at_m_leaves():
     model = parse_model(CHAIN)
     programs = flow_programs(model, 4)
     params = parameter_enclosures(model)
-    field, jac = _sympy_field(model)
+    field, jac = _sympy_field()
     rng = np.random.default_rng(3)
     lo, hi, m = _boxes(rng, 60, np.array([0.05, 0.02, 0.1]))
     h = np.full(len(lo), 0.125)

@@ -268,7 +268,8 @@ def test_wide_parameter_ranges_are_decided_on_pieces_of_the_range():
     programs = points_module._programs(model)
     params = points_module._params(model)
     lo, hi = np.array([[a for a, _ in eq.box]], float), np.array([[b for _, b in eq.box]], float)
-    whole = points_module._box_stability(programs.jacobian, lo, hi, params, (1,),
+    whole = points_module._box_stability(programs.jacobian, lo, hi, params,
+                                         points_module._interval_positions(model),
                                          np.array([4.0, 4.0]))
     assert whole[0] == "undetermined" and eq.stability == "stable"
 

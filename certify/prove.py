@@ -21,6 +21,7 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
+from .follow_order import follow_order
 from .flow import (DeadlinePassed, STOPPED, branch_groups, flow_boxes, frame_count,
                    join_results, truncate_results)
 from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
@@ -1108,7 +1109,7 @@ def _prove(model, method, budget, progress, focus, runner):
                 short = short_of_budget(tree, und, budget, len(leaves), elapsed, last_round)
                 if len(und) == 0 or short:
                     extend, follow, instead_of_refining = FOLLOW_GROWTH_LIMIT, False, short
-                    new = wanted
+                    new = follow_order(tree, leaves, labelling, facts, wanted)
                     continue
             if instead_of_refining:
                 # the time the followed round left: as many splits as fit in it

@@ -25,6 +25,7 @@ from certify.certificate import certificate_data, write_certificate
 from certify.check import check_certificate
 from certify.container import decode_array, encode_array
 from certify.model import load_model
+from certify.follow_order import follow_order
 from certify.prove import prove
 
 prove_module = sys.modules["certify.prove"]  # the package exports a function of that name
@@ -184,3 +185,36 @@ def test_the_cell_limit_runs_the_followed_round(runs, tmp_path):
     path = tmp_path / "limited.json.gz"
     write_certificate(path, certificate_data(followed, {}))
     assert check_certificate(path, jobs=1).valid
+
+
+def test_the_followed_round_takes_the_leaves_with_prospects_first(runs):
+    # certify/follow_order.py, checked against a plain walk over the edges: first the
+    # leaves whose tubes keep the limits with safe decided successors only, then those
+    # that may still go either way; leaves with successors of both fates, or with a
+    # failed tube and no doomed or outside successor, are left out
+    plain = runs[1]
+    facts, label = plain.facts, plain.labelling.label
+    successors = [set() for _ in plain.leaves]
+    for s, d in zip(facts.src, facts.dst):
+        successors[s].add(label[d])
+    failed = ~facts.flow_ok | ~facts.kept | facts.escapes
+
+    def rank(k):
+        safe = "safe" in successors[k]
+        against = bool(successors[k] & {"doomed", "outside"})
+        if not failed[k] and safe and not against:
+            return 0
+        if (not failed[k] and not against) or (against and not safe):
+            return 1
+        return 2
+
+    undecided = np.flatnonzero(label == "undecided")
+    wanted = plain.leaves[undecided]
+    chosen = follow_order(plain.tree, plain.leaves, plain.labelling, facts, wanted)
+    position = {leaf: k for k, leaf in enumerate(plain.leaves)}
+    ranks = [rank(position[leaf]) for leaf in chosen]
+    expected = sorted((rank(k), n) for n, k in enumerate(undecided) if rank(k) < 2)
+    assert ranks == [r for r, _ in expected]
+    np.testing.assert_array_equal(chosen, wanted[[n for _, n in expected]])
+    assert {0, 1} <= set(ranks)  # not vacuous
+    assert len(chosen) < len(wanted)

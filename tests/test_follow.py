@@ -187,12 +187,20 @@ def test_the_cell_limit_runs_the_followed_round(runs, tmp_path):
     assert check_certificate(path, jobs=1).valid
 
 
-def test_the_followed_round_takes_the_leaves_with_prospects_first(runs):
+@pytest.fixture(scope="module")
+def food_chain_plain():
+    """The library's food chain at depth 4 without followed tubes (some of its undecided
+    leaves have a safe successor and a doomed one)."""
+    return prove(load_model(ROOT / "models" / "microbial_food_chain.toml"), max_depth=4,
+                 follow_undecided=False)
+
+
+def test_the_followed_round_takes_the_leaves_with_prospects_first(food_chain_plain):
     # certify/follow_order.py, checked against a plain walk over the edges: first the
     # leaves whose tubes keep the limits with safe decided successors only, then those
-    # that may still go either way; leaves with successors of both fates, or with a
-    # failed tube and no doomed or outside successor, are left out
-    plain = runs[1]
+    # with no safe successor; leaves with a safe successor and either a doomed or
+    # outside one or a failed tube are left out
+    plain = food_chain_plain
     facts, label = plain.facts, plain.labelling.label
     successors = [set() for _ in plain.leaves]
     for s, d in zip(facts.src, facts.dst):
@@ -202,11 +210,9 @@ def test_the_followed_round_takes_the_leaves_with_prospects_first(runs):
     def rank(k):
         safe = "safe" in successors[k]
         against = bool(successors[k] & {"doomed", "outside"})
-        if not failed[k] and safe and not against:
-            return 0
-        if (not failed[k] and not against) or (against and not safe):
+        if not safe:
             return 1
-        return 2
+        return 2 if failed[k] or against else 0
 
     undecided = np.flatnonzero(label == "undecided")
     wanted = plain.leaves[undecided]

@@ -83,6 +83,7 @@ def npzd(p):
 
 # model stem -> (system builder, interval parameters, long horizon in model time)
 MODELS = {"seihr_beds": (seihr, {}, 3000.0),
+          "seihr_wide": (seihr, {}, 3000.0),
           "cstr_jacket": (cstr, {}, 300.0),
           "glucose_minimal": (glucose, {}, 5000.0),
           "glucose_wideX": (glucose, {}, 5000.0),

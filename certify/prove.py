@@ -21,9 +21,9 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .follow_order import follow_order
 from .flow import (DeadlinePassed, STOPPED, branch_groups, flow_boxes, frame_count,
                    join_results, truncate_results)
+from .follow_order import follow_order
 from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
                      OUTSIDE, SAFE, UNDECIDED)
 from .steps import StepStore

@@ -6,7 +6,8 @@ others are given back. The checker verifies the stored tubes whatever their leng
 these tests check that (a) no leaf decided without following loses or changes its label
 (the monotonicity argument of docs/proof-loop.md), (b) the certificate passes the
 independent checker and a tube with a step dropped is rejected, and (c) the new labels
-agree with scipy simulation of the model (DOP853, rtol 1e-10: common practice).
+agree with scipy simulation of the model (DOP853, rtol 1e-10: common practice);
+(d) the round takes the leaves in the order of certify/follow_order.py.
 """
 
 from __future__ import annotations
@@ -24,8 +25,8 @@ from scipy.integrate import solve_ivp
 from certify.certificate import certificate_data, write_certificate
 from certify.check import check_certificate
 from certify.container import decode_array, encode_array
-from certify.model import load_model
 from certify.follow_order import follow_order
+from certify.model import load_model
 from certify.prove import prove
 
 prove_module = sys.modules["certify.prove"]  # the package exports a function of that name

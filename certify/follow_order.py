@@ -55,21 +55,13 @@ def follow_order(tree, leaves, labelling, facts, wanted):
         keep a limit are left out. Within a rank, the order of `wanted`.
     """
     label = labelling.label
-    n_leaves = len(leaves)
-    safe_next = _has_successor(facts, label == SAFE, n_leaves)
-    against_next = _has_successor(facts, (label == DOOMED) | (label == OUTSIDE), n_leaves)
-    own_failure = ~facts.flow_ok | ~facts.kept | facts.escapes
+    safe_next = facts.has_successor_in(label == SAFE)
+    against_next = facts.has_successor_in((label == DOOMED) | (label == OUTSIDE))
     # 0: kept tube, safe successors only; 1: no safe successor; 2: left out
-    rank = np.where(safe_next, np.where(own_failure | against_next, 2, 0), 1)
+    rank = np.where(safe_next, np.where(facts.own_failure() | against_next, 2, 0), 1)
     number = np.full(len(tree), -1)
-    number[leaves] = np.arange(n_leaves)
+    number[leaves] = np.arange(len(leaves))
     wanted_rank = rank[number[wanted]]
     order = np.argsort(wanted_rank, kind="stable")
     return wanted[order[wanted_rank[order] < 2]]
 
-
-def _has_successor(facts, among, n_leaves):
-    """Per leaf: some successor of it is one of the leaves `among` (a mask by position)."""
-    has = np.zeros(n_leaves, bool)
-    has[facts.src[among[facts.dst]]] = True
-    return has

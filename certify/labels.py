@@ -65,6 +65,17 @@ class CellFacts:
     trapped: np.ndarray | None = None
     trapped_whole: np.ndarray | None = None
 
+    def own_failure(self):
+        """Per leaf: its own facts fail (no image, a limit not kept, or an escape)."""
+        return ~self.flow_ok | ~self.kept | self.escapes
+
+    def has_successor_in(self, among):
+        """Per leaf: some successor of it is one of the leaves `among` (a mask by
+        position)."""
+        has = np.zeros(len(self.outside), bool)
+        has[self.src[among[self.dst]]] = True
+        return has
+
 
 @dataclass
 class Labelling:

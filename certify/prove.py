@@ -1019,7 +1019,7 @@ def _causes_first(tree, leaves, labelling, facts, wanted, spare):
         return wanted
     L = len(leaves)
     und = labelling.label == UNDECIDED
-    own = ~facts.flow_ok | ~facts.kept | facts.escapes
+    own = facts.own_failure()
     inner = und[facts.src] & und[facts.dst]
     # the cycles of the reversed graph are those of the graph
     g = unit_weights(reversed_graph(L, facts.src, facts.dst, inner))
@@ -1031,8 +1031,7 @@ def _causes_first(tree, leaves, labelling, facts, wanted, spare):
     cyclic[facts.src[inner & (facts.src == facts.dst)]] = True
     # per leaf first: labels gathered per edge take 36 bytes an edge
     decided = (labelling.label != UNDECIDED) & (labelling.label != OUTSIDE)
-    border = np.zeros(L, bool)
-    border[facts.src[decided[facts.dst]]] = True
+    border = facts.has_successor_in(decided)
     cause = und & (own | cyclic | border)
     number = np.full(len(tree), -1)
     number[leaves] = np.arange(L)

@@ -23,6 +23,7 @@ from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
 from .flow import (DeadlinePassed, STOPPED, branch_groups, flow_boxes, frame_count,
                    join_results, truncate_results)
+from .fate_grid import FateGrid, fate_grid
 from .follow_order import follow_order
 from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
                      OUTSIDE, SAFE, UNDECIDED)
@@ -217,6 +218,9 @@ class _Tubes:
     #: None: tubes stop where they leave their cells (at GROWTH_LIMIT); a growth limit:
     #: followed tubes (:meth:`_Prover.extend`) that go on there and stop at that limit
     follow: float | None = None
+    #: for followed tubes, the fates before their round (:mod:`certify.fate_grid`): a
+    #: tube stops at an end box that meets one fate only
+    fates: FateGrid | None = None
 
     @cached_property
     def programs(self):
@@ -264,10 +268,12 @@ class _Tubes:
         ones = np.ones(len(end_lo), bool)
         away = self.clip(end_lo, end_hi, ones, ones)[2]
         trapped = in_regions(self.regions.regions, end_lo, end_hi)  # R keeps them
-        moved = (inside | trapped) if self.follow else (left | inside | trapped)
+        settled = (self.fates.one_fate(end_lo, end_hi) if self.fates is not None
+                   else np.zeros(len(end_lo), bool))
+        moved = (inside | trapped | settled) if self.follow else (left | inside | trapped)
         moved &= ~away & (t_lo >= self.method.min_horizon)
         return _Stop(stop=moved | crossed | too_wide,
-                     left_cell=moved & ~inside & ~trapped & ~crossed & ~too_wide)
+                     left_cell=moved & ~inside & ~trapped & ~settled & ~crossed & ~too_wide)
 
     def clip(self, lo, hi, ok, tube_open):
         """Cut images to the window; flag images whose outside parts may matter.
@@ -403,12 +409,12 @@ class _Prover:
         """Compute the facts of new leaves."""
         self._analyse(nodes)
 
-    def _analyse(self, nodes, follow=None):
+    def _analyse(self, nodes, follow=None, fates=None):
         """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
-        where they leave their cells and stop at the growth limit `follow`
-        (:meth:`extend`), only as many as end before the deadline (less the time of
-        FOLLOW_RESERVE labellings). Returns the nodes flowed and, with `follow`, their
-        flows (None otherwise, or if none)."""
+        where they leave their cells and stop at the growth limit `follow` or where their
+        end box meets one fate of the grid `fates` (:meth:`extend`), only as many as end
+        before the deadline (less the time of FOLLOW_RESERVE labellings). Returns the
+        nodes flowed and, with `follow`, their flows (None otherwise, or if none)."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -426,7 +432,7 @@ class _Prover:
                                                   self.deadline):
                 self._take_flows(self.tubes, todo[rows], result)
             return todo, None
-        return self._flows_in_time(replace(self.tubes, follow=follow), todo)
+        return self._flows_in_time(replace(self.tubes, follow=follow, fates=fates), todo)
 
     def _take_flows(self, tubes, nodes, result):
         """The facts, image sets and steps of `nodes` from their flows `result`, and
@@ -713,8 +719,12 @@ class _Prover:
         _, lo_hi, hi_lo, _ = self.window_sides
         return self.tree.leaves_meeting(lo, hi, strict=(lo < hi) & (hi > lo_hi) & (lo < hi_lo))
 
-    def extend(self, nodes, growth_limit):
+    def extend(self, nodes, growth_limit, fates=None):
         """Follow the tubes of undecided leaves further; keep the longer tubes that decide.
+
+        A followed tube stops at the growth limit, or at the first end box that meets one
+        fate only of the grid `fates` (the labelling before the round,
+        :mod:`certify.fate_grid`): all it was followed for.
 
         Replacing the facts of undecided leaves never undecides another leaf (a decided
         leaf's successors are decided), so the leaves still undecided with their longer
@@ -736,7 +746,7 @@ class _Prover:
         """
         nodes = nodes[self.left_cell[nodes]]
         leaves, label, back, (todo, full) = self._try_tubes(
-            nodes, lambda: self._analyse(nodes, follow=growth_limit))
+            nodes, lambda: self._analyse(nodes, follow=growth_limit, fates=fates))
         self.followed = (len(todo), len(nodes))
         if full is None:
             return self.label()
@@ -1071,7 +1081,8 @@ def _prove(model, method, budget, progress, focus, runner):
             round_start = time.monotonic()
             if extend:
                 # a followed round keeps the tubes it flowed in time
-                leaves, facts, labelling = prover.extend(new, extend)
+                leaves, facts, labelling = prover.extend(
+                    new, extend, fate_grid(tree, leaves, labelling.label))
             else:
                 prover.analyse(new)
                 if snapshot is not None and time.monotonic() >= deadline:

@@ -1,0 +1,138 @@
+"""Where a labelling's fates lie, on a uniform grid: does a box meet one fate only?
+
+A followed tube (docs/proof-loop.md, "Followed tubes at the maximum depth") runs until
+its end box grows past a limit, and the round then keeps the tubes that decide. A tube
+whose end box already lies on leaves of one fate (safe, or doomed, besides outside
+leaves) under the labelling made before the round has reached what it was followed
+for: stopping it there saves the rest of its steps. On the library's food chain at
+depth 6, the tubes that the round decided spent two fifths of their steps after such an
+end.
+
+This is a choice of where a tube ends, not a fact of the proof: the labelling that
+follows decides every label from the stored steps, and the checker re-derives it. So
+the grid may be coarse (it is capped at :data:`MOST_CELLS` cells) and its lookups need
+no outward rounding; a grid cell counts as one fate only when every leaf meeting it has
+that fate or is outside.
+"""
+
+from __future__ import annotations
+
+from itertools import product
+
+import numpy as np
+
+from .labels import DOOMED, OUTSIDE, SAFE
+
+__all__ = ["FateGrid", "fate_grid"]
+
+#: Most cells of a fate grid (a grid coarser than the leaves is built beyond it).
+MOST_CELLS = 1 << 21
+
+
+class FateGrid:
+    """Counts of the leaves that keep each grid cell from being of one fate.
+
+    Parameters
+    ----------
+    origin, width : ndarray, shape (n,)
+        The window's lower corner and the grid cells' sides.
+    not_safe, not_doomed : ndarray of int32, shape ``(size,) * n``
+        Per grid cell, how many leaves meeting it are neither safe nor outside (resp.
+        neither doomed nor outside).
+    """
+
+    def __init__(self, origin, width, not_safe, not_doomed):
+        self.origin = np.asarray(origin, float)
+        self.width = np.asarray(width, float)
+        self.size = not_safe.shape[0]
+        self.not_safe = not_safe
+        self.not_doomed = not_doomed
+        self._sums = None
+
+    def __getstate__(self):
+        # the summed tables are four times the counts: a worker makes its own
+        return {k: v for k, v in self.__dict__.items() if k != "_sums"} | {"_sums": None}
+
+    def one_fate(self, lo, hi):
+        """Per box ``[lo, hi]`` (shape (N, n)): every grid cell it meets is safe or
+        outside, or every one is doomed or outside."""
+        if self._sums is None:
+            self._sums = (_summed(self.not_safe), _summed(self.not_doomed))
+        with np.errstate(invalid="ignore"):
+            first = np.floor((lo - self.origin) / self.width)
+            last = np.floor((hi - self.origin) / self.width) + 1
+        usable = np.all(np.isfinite(first) & np.isfinite(last), axis=1)
+        first = np.clip(np.nan_to_num(first), 0, self.size).astype(np.int64)
+        last = np.clip(np.nan_to_num(last), 0, self.size).astype(np.int64)
+        usable &= np.all(last > first, axis=1)
+        safe_only = _box_sums(self._sums[0], first, last) == 0
+        doomed_only = _box_sums(self._sums[1], first, last) == 0
+        return usable & (safe_only | doomed_only)
+
+
+def fate_grid(tree, leaves, label):
+    """The fate grid of a labelling.
+
+    Parameters
+    ----------
+    tree : certify.cells.CellTree
+    leaves : ndarray of int
+        Node ids of the leaves.
+    label : ndarray of str
+        Their labels.
+
+    Returns
+    -------
+    FateGrid
+        On a grid of ``2^g`` cells a side, ``g`` the deepest leaf's depth or less, so
+        that the grid has at most :data:`MOST_CELLS` cells.
+    """
+    n = tree.n
+    depth = tree.depth[leaves]
+    g = int(min(depth.max(), max(MOST_CELLS.bit_length() - 1, n) // n))
+    size = 1 << g
+    index = tree.index[leaves]
+    # per leaf the range of grid cells it covers (a deeper leaf: the one holding it)
+    shift = (g - depth)[:, None]
+    coarse = shift >= 0
+    first = np.where(coarse, index << np.maximum(shift, 0), index >> np.maximum(-shift, 0))
+    last = np.where(coarse, (index + 1) << np.maximum(shift, 0), first + 1)
+    blocks_safe = (label != SAFE) & (label != OUTSIDE)
+    blocks_doomed = (label != DOOMED) & (label != OUTSIDE)
+    lo, _, hi, _ = tree.window_bounds()
+    return FateGrid(lo, (hi - lo) / size,
+                    _block_counts(first[blocks_safe], last[blocks_safe], size, n),
+                    _block_counts(first[blocks_doomed], last[blocks_doomed], size, n))
+
+
+def _block_counts(first, last, size, n):
+    """Per grid cell, how many of the blocks ``[first, last)`` hold it (added as
+    differences at the blocks' corners, then summed along each axis)."""
+    diff = np.zeros((size + 1,) * n, np.int32)
+    for corner in product((0, 1), repeat=n):
+        at = tuple(np.where(c, last[:, k], first[:, k]) for k, c in enumerate(corner))
+        np.add.at(diff, at, (-1) ** sum(corner))
+    for k in range(n):
+        np.cumsum(diff, axis=k, out=diff)
+    return diff[(slice(0, size),) * n]
+
+
+def _summed(counts):
+    """The summed table ``S[i] = sum of counts[j] for j < i`` (one more cell a side)."""
+    n = counts.ndim
+    table = np.zeros(tuple(s + 1 for s in counts.shape), np.int64)
+    table[(slice(1, None),) * n] = counts
+    for k in range(n):
+        np.cumsum(table, axis=k, out=table)
+    return table
+
+
+def _box_sums(table, first, last):
+    """Sums of the counts over the grid boxes ``[first, last)`` (inclusion-exclusion
+    over the corners of a summed table)."""
+    n = first.shape[1]
+    total = np.zeros(len(first), np.int64)
+    for corner in product((0, 1), repeat=n):
+        at = tuple(np.where(c, last[:, k], first[:, k]) for k, c in enumerate(corner))
+        total += (-1) ** (n - sum(corner)) * table[at]
+    return total

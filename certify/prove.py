@@ -749,7 +749,7 @@ class _Prover:
             nodes, lambda: self._analyse(nodes, follow=growth_limit, fates=fates))
         self.followed = (len(todo), len(nodes))
         if full is None:
-            return self.label()
+            return self.label(prune_gain=self._last_gain())
         pending = np.isin(todo, nodes[back])
         # under a deadline: the step ends, a pass and the last labelling cost about three
         # labellings, every further pass and the last one about two
@@ -768,7 +768,14 @@ class _Prover:
             if back.all() or self._time_left() < 2 * self.label_seconds:
                 break
             pending[cut[~back]] = False
-        return self.label()
+        return self.label(prune_gain=self._last_gain())
+
+    def _last_gain(self):
+        """The share of undecided leaves that pruning must free in the labellings of
+        the followed round, the proof's last: any, when the time left holds all their
+        rounds twice over (PRUNE_GAIN saves time in the rounds that split leaves)."""
+        enough = self._time_left() >= 2 * (PRUNE_ROUNDS + 1) * self.label_seconds
+        return 0.0 if enough else PRUNE_GAIN
 
     def _time_left(self):
         """Seconds to the deadline (inf without one)."""
@@ -791,7 +798,7 @@ class _Prover:
         saved_sets = self.image_sets.take(nodes) if self.image_sets is not None else None
         refs = self.steps.refs(nodes)
         out = replace_tubes()
-        leaves, facts, labelling = self.label()
+        leaves, facts, labelling = self.label(prune_gain=self._last_gain())
         del facts  # its edges are made again later: not held through the next labelling
         number = np.full(len(self.tree), -1)
         number[leaves] = np.arange(len(leaves))
@@ -818,7 +825,16 @@ class _Prover:
         self.steps.add(nodes, result)
 
     # -- labelling ---------------------------------------------------------------------
-    def label(self):
+    def label(self, prune_gain=PRUNE_GAIN):
+        """Label the leaves; successors that image sets miss are dropped while that
+        frees the share `prune_gain` of the undecided leaves (:meth:`_prune_successors`).
+
+        Returns
+        -------
+        leaves : ndarray of int
+        facts : CellFacts
+        labelling : Labelling
+        """
         started = time.monotonic()
         leaves = self.tree.leaves()
         # edges can outnumber the cells a hundredfold: leaf numbers as narrow as they fit
@@ -850,14 +866,15 @@ class _Prover:
         del src, dst  # facts hold them (pruning replaces them there)
         labelling = label_cells(facts)
         if self.image_sets is not None:
-            facts, labelling = self._prune_successors(leaves, number, facts, labelling)
+            facts, labelling = self._prune_successors(leaves, number, facts, labelling,
+                                                      prune_gain)
         self.label_seconds = time.monotonic() - started
         return leaves, facts, labelling
 
-    def _prune_successors(self, leaves, number, facts, labelling):
+    def _prune_successors(self, leaves, number, facts, labelling, gain):
         """Drop successors that undecided leaves' image sets miss where that may decide
-        them, and label again; up to PRUNE_ROUNDS times, while that frees enough leaves
-        (PRUNE_GAIN).
+        them, and label again; up to PRUNE_ROUNDS times, while that frees the share
+        `gain` of the undecided leaves (and at least one).
 
         `labelling` is the one with every successor; `number` maps tree nodes to leaf
         numbers (-1 for inner nodes). The other leaves' successors are
@@ -894,7 +911,8 @@ class _Prover:
             tested = np.zeros(len(leaves), bool)
             tested[held] = True
             freed &= tested
-            if np.count_nonzero(freed) < PRUNE_GAIN * np.count_nonzero(undecided):
+            n_freed = np.count_nonzero(freed)
+            if n_freed == 0 or n_freed < gain * np.count_nonzero(undecided):
                 break
             keep = np.ones(len(facts.src), bool)
             keep[test[missed]] = False

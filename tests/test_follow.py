@@ -49,14 +49,21 @@ def runs(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def uncut(runs):
-    """The same followed proof without the passes that cut followed tubes short."""
-    passes = prove_module.DECISIVE_PASSES
-    prove_module.DECISIVE_PASSES = 0
+def passes_alone(runs, tmp_path_factory):
+    """The followed proof without and with the cutting passes, and the certificate of
+    the second, its tubes not stopped where they meet one fate (certify/fate_grid.py):
+    on this model that stop leaves the passes nothing to cut."""
+    grid, passes = prove_module.fate_grid, prove_module.DECISIVE_PASSES
+    prove_module.fate_grid = lambda *args: None
     try:
-        return prove(runs[0], max_depth=DEPTH, follow_undecided=True)
+        cut = prove(runs[0], max_depth=DEPTH, follow_undecided=True)
+        prove_module.DECISIVE_PASSES = 0
+        uncut = prove(runs[0], max_depth=DEPTH, follow_undecided=True)
     finally:
-        prove_module.DECISIVE_PASSES = passes
+        prove_module.fate_grid, prove_module.DECISIVE_PASSES = grid, passes
+    path = tmp_path_factory.mktemp("passes") / "cut.json.gz"
+    write_certificate(path, certificate_data(cut, {}))
+    return uncut, cut, path
 
 
 def test_following_keeps_every_decided_label_and_decides_more(runs):
@@ -70,10 +77,10 @@ def test_following_keeps_every_decided_label_and_decides_more(runs):
     assert followed.fractions["undecided"] < plain.fractions["undecided"]
 
 
-def test_cut_tubes_keep_every_decided_label_and_decide_more(runs, uncut):
+def test_cut_tubes_keep_every_decided_label_and_decide_more(passes_alone):
     # cutting a followed tube at a step end whose successors share a fate replaces the
     # facts of undecided leaves only (docs/proof-loop.md): no decided leaf may change
-    followed = runs[2]
+    uncut, followed, _ = passes_alone
     np.testing.assert_array_equal(uncut.leaves, followed.leaves)
     before, after = uncut.labelling.label, followed.labelling.label
     decided = before != "undecided"
@@ -82,16 +89,17 @@ def test_cut_tubes_keep_every_decided_label_and_decide_more(runs, uncut):
     assert followed.fractions["undecided"] < uncut.fractions["undecided"]
 
 
-def test_step_ends_looked_up_in_small_blocks_give_the_same_proof(runs):
+def test_step_ends_looked_up_in_small_blocks_give_the_same_proof(runs, passes_alone):
     # the candidate step ends of the passes are looked up in blocks and only what can
     # still decide is kept of each block; the blocks' size must not change the proof
-    block = prove_module.STEP_END_BLOCK
+    block, grid = prove_module.STEP_END_BLOCK, prove_module.fate_grid
     prove_module.STEP_END_BLOCK = 7
+    prove_module.fate_grid = lambda *args: None
     try:
         small = prove(runs[0], max_depth=DEPTH, follow_undecided=True)
     finally:
-        prove_module.STEP_END_BLOCK = block
-    followed = runs[2]
+        prove_module.STEP_END_BLOCK, prove_module.fate_grid = block, grid
+    followed = passes_alone[1]
     np.testing.assert_array_equal(small.leaves, followed.leaves)
     np.testing.assert_array_equal(small.labelling.label, followed.labelling.label)
     np.testing.assert_array_equal(small.labelling.crossing_upper,
@@ -141,10 +149,13 @@ def test_followed_certificate_passes_the_checker(runs):
 
 
 @pytest.mark.parametrize("reference", ["plain", "uncut"])
-def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, uncut, reference, tmp_path):
+def test_a_followed_tube_with_a_step_dropped_is_rejected(runs, passes_alone, reference,
+                                                          tmp_path):
     # a leaf decided by following (reference plain) or by a cut tube (reference uncut)
-    _, plain, followed, path = runs
-    before = {"plain": plain, "uncut": uncut}[reference]
+    if reference == "plain":
+        _, before, followed, path = runs
+    else:
+        before, followed, path = passes_alone
     gained = np.flatnonzero((before.labelling.label == "undecided")
                             & (followed.labelling.label != "undecided"))
     with gzip.open(path, "rb") as f:

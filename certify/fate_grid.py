@@ -27,37 +27,38 @@ __all__ = ["FateGrid", "fate_grid"]
 
 #: Most cells of a fate grid (a grid coarser than the leaves is built beyond it).
 MOST_CELLS = 1 << 21
+#: Bits of a grid cell's code: it meets a leaf that is neither safe nor outside, one that
+#: is neither doomed nor outside.
+NOT_SAFE, NOT_DOOMED = 1, 2
 
 
 class FateGrid:
-    """Counts of the leaves that keep each grid cell from being of one fate.
+    """Which grid cells meet a leaf that keeps them from being of one fate.
 
     Parameters
     ----------
     origin, width : ndarray, shape (n,)
         The window's lower corner and the grid cells' sides.
-    not_safe, not_doomed : ndarray of int32, shape ``(size,) * n``
-        Per grid cell, how many leaves meeting it are neither safe nor outside (resp.
-        neither doomed nor outside).
+    code : ndarray of uint8, shape ``(size,) * n``
+        Per grid cell, the bits NOT_SAFE and NOT_DOOMED.
     """
 
-    def __init__(self, origin, width, not_safe, not_doomed):
+    def __init__(self, origin, width, code):
         self.origin = np.asarray(origin, float)
         self.width = np.asarray(width, float)
-        self.size = not_safe.shape[0]
-        self.not_safe = not_safe
-        self.not_doomed = not_doomed
+        self.size = code.shape[0]
+        self.code = code
         self._sums = None
 
     def __getstate__(self):
-        # the summed tables are four times the counts: a worker makes its own
+        # the batches carry the codes (a byte a cell); a worker makes its own tables
         return {k: v for k, v in self.__dict__.items() if k != "_sums"} | {"_sums": None}
 
     def one_fate(self, lo, hi):
         """Per box ``[lo, hi]`` (shape (N, n)): every grid cell it meets is safe or
         outside, or every one is doomed or outside."""
         if self._sums is None:
-            self._sums = (_summed(self.not_safe), _summed(self.not_doomed))
+            self._sums = tuple(_summed(self.code & bit) for bit in (NOT_SAFE, NOT_DOOMED))
         with np.errstate(invalid="ignore"):
             first = np.floor((lo - self.origin) / self.width)
             last = np.floor((hi - self.origin) / self.width) + 1
@@ -97,31 +98,32 @@ def fate_grid(tree, leaves, label):
     coarse = shift >= 0
     first = np.where(coarse, index << np.maximum(shift, 0), index >> np.maximum(-shift, 0))
     last = np.where(coarse, (index + 1) << np.maximum(shift, 0), first + 1)
-    blocks_safe = (label != SAFE) & (label != OUTSIDE)
-    blocks_doomed = (label != DOOMED) & (label != OUTSIDE)
+    code = np.zeros((size,) * n, np.uint8)
+    for bit, fate in ((NOT_SAFE, SAFE), (NOT_DOOMED, DOOMED)):
+        against = (label != fate) & (label != OUTSIDE)
+        code |= np.where(_held(first[against], last[against], size, n), bit, 0).astype(np.uint8)
     lo, _, hi, _ = tree.window_bounds()
-    return FateGrid(lo, (hi - lo) / size,
-                    _block_counts(first[blocks_safe], last[blocks_safe], size, n),
-                    _block_counts(first[blocks_doomed], last[blocks_doomed], size, n))
+    return FateGrid(lo, (hi - lo) / size, code)
 
 
-def _block_counts(first, last, size, n):
-    """Per grid cell, how many of the blocks ``[first, last)`` hold it (added as
-    differences at the blocks' corners, then summed along each axis)."""
+def _held(first, last, size, n):
+    """Per grid cell, whether one of the blocks ``[first, last)`` holds it (counts added
+    as differences at the blocks' corners, then summed along each axis)."""
     diff = np.zeros((size + 1,) * n, np.int32)
     for corner in product((0, 1), repeat=n):
         at = tuple(np.where(c, last[:, k], first[:, k]) for k, c in enumerate(corner))
         np.add.at(diff, at, (-1) ** sum(corner))
     for k in range(n):
         np.cumsum(diff, axis=k, out=diff)
-    return diff[(slice(0, size),) * n]
+    return diff[(slice(0, size),) * n] > 0
 
 
-def _summed(counts):
-    """The summed table ``S[i] = sum of counts[j] for j < i`` (one more cell a side)."""
-    n = counts.ndim
-    table = np.zeros(tuple(s + 1 for s in counts.shape), np.int64)
-    table[(slice(1, None),) * n] = counts
+def _summed(flags):
+    """The summed table ``S[i] = number of flags[j] set for j < i`` (one more cell a
+    side; int32 holds the at most MOST_CELLS of them)."""
+    n = flags.ndim
+    table = np.zeros(tuple(s + 1 for s in flags.shape), np.int32)
+    table[(slice(1, None),) * n] = flags != 0
     for k in range(n):
         np.cumsum(table, axis=k, out=table)
     return table

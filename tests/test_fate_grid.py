@@ -10,6 +10,7 @@ fate, the leaves agree; and it does say so inside decided leaves.
 
 from __future__ import annotations
 
+import pickle
 from pathlib import Path
 
 import numpy as np
@@ -69,3 +70,15 @@ def test_inside_a_leaf_the_grid_knows_its_fate(food_chain):
     said = grid.one_fate(lo + inset, hi - inset)
     assert {"safe", "doomed", "undecided"} <= set(label)
     np.testing.assert_array_equal(said, label != "undecided")
+
+
+def test_a_grid_sent_to_a_worker_answers_alike(food_chain):
+    # the batches of a followed round carry the grid to other processes (pickled without
+    # its summed tables, which the worker makes again)
+    proof = food_chain
+    tree, leaves, label = proof.tree, proof.leaves, proof.labelling.label
+    grid = fate_grid(tree, leaves, label)
+    lo, hi = tree.lo[leaves], tree.hi[leaves]
+    here = grid.one_fate(lo, hi)
+    sent = pickle.loads(pickle.dumps(grid))
+    np.testing.assert_array_equal(sent.one_fate(lo, hi), here)

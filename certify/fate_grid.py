@@ -110,9 +110,8 @@ def _held(first, last, size, n):
     """Per grid cell, whether one of the blocks ``[first, last)`` holds it (counts added
     as differences at the blocks' corners, then summed along each axis)."""
     diff = np.zeros((size + 1,) * n, np.int32)
-    for corner in product((0, 1), repeat=n):
-        at = tuple(np.where(c, last[:, k], first[:, k]) for k, c in enumerate(corner))
-        np.add.at(diff, at, (-1) ** sum(corner))
+    for uppers, at in _corners(first, last):
+        np.add.at(diff, at, (-1) ** uppers)
     for k in range(n):
         np.cumsum(diff, axis=k, out=diff)
     return diff[(slice(0, size),) * n] > 0
@@ -134,7 +133,15 @@ def _box_sums(table, first, last):
     over the corners of a summed table)."""
     n = first.shape[1]
     total = np.zeros(len(first), np.int64)
-    for corner in product((0, 1), repeat=n):
-        at = tuple(np.where(c, last[:, k], first[:, k]) for k, c in enumerate(corner))
-        total += (-1) ** (n - sum(corner)) * table[at]
+    for uppers, at in _corners(first, last):
+        total += (-1) ** (n - uppers) * table[at]
     return total
+
+
+def _corners(first, last):
+    """Yield, per corner of the boxes ``[first, last)`` (shape (N, n)), how many of its
+    coordinates are upper ones and its index tuple."""
+    n = first.shape[1]
+    for corner in product((0, 1), repeat=n):
+        yield sum(corner), tuple(np.where(c, last[:, k], first[:, k])
+                                 for k, c in enumerate(corner))

@@ -58,7 +58,7 @@ class FateGrid:
         """Per box ``[lo, hi]`` (shape (N, n)): every grid cell it meets is safe or
         outside, or every one is doomed or outside."""
         if self._sums is None:
-            self._sums = tuple(_summed(self.code & bit) for bit in (NOT_SAFE, NOT_DOOMED))
+            self._sums = np.stack([_summed(self.code & bit) for bit in (NOT_SAFE, NOT_DOOMED)])
         with np.errstate(invalid="ignore"):
             first = np.floor((lo - self.origin) / self.width)
             last = np.floor((hi - self.origin) / self.width) + 1
@@ -66,9 +66,9 @@ class FateGrid:
         first = np.clip(np.nan_to_num(first), 0, self.size).astype(np.int64)
         last = np.clip(np.nan_to_num(last), 0, self.size).astype(np.int64)
         usable &= np.all(last > first, axis=1)
-        safe_only = _box_sums(self._sums[0], first, last) == 0
-        doomed_only = _box_sums(self._sums[1], first, last) == 0
-        return usable & (safe_only | doomed_only)
+        # cells keeping the box from being safe, and from being doomed
+        against = _box_sums(self._sums, first, last)
+        return usable & np.any(against == 0, axis=0)
 
 
 def fate_grid(tree, leaves, label):
@@ -128,13 +128,14 @@ def _summed(flags):
     return table
 
 
-def _box_sums(table, first, last):
-    """Sums of the counts over the grid boxes ``[first, last)`` (inclusion-exclusion
-    over the corners of a summed table)."""
+def _box_sums(tables, first, last):
+    """Per stacked summed table, the sums of its counts over the grid boxes
+    ``[first, last)`` (inclusion-exclusion over the boxes' corners, looked up once for
+    all tables); shape (tables, N)."""
     n = first.shape[1]
-    total = np.zeros(len(first), np.int64)
+    total = np.zeros((len(tables), len(first)), np.int64)
     for uppers, at in _corners(first, last):
-        total += (-1) ** (n - uppers) * table[at]
+        total += (-1) ** (n - uppers) * tables[(slice(None),) + at]
     return total
 
 

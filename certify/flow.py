@@ -258,8 +258,8 @@ def _apriori(programs, xlo, xhi, h, params, iterations=4):
     blo = np.minimum(tlo, iv.round_down(tlo + BLEND * (out_lo - tlo)))
     bhi = np.maximum(thi, iv.round_up(thi + BLEND * (out_hi - thi)))
     blo, bhi = np.maximum(blo, out_lo), np.minimum(bhi, out_hi)
-    # bounds binary32 holds: the certificate stores them in half the bytes
-    blo, bhi = iv.outward_single(blo, bhi)
+    # short bounds (trailing zero bits, binary32): the certificate stores them compactly
+    blo, bhi = iv.outward_coarse(blo, bhi)
     nlo, nhi = _reach(programs, xlo, xhi, hh, blo, bhi, params)
     blended = ok & _is_apriori(programs, nlo, nhi, blo, bhi, params)
     out_lo[tight], out_hi[tight] = tlo[tight], thi[tight]

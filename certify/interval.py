@@ -36,12 +36,14 @@ __all__ = [
     "sqrt", "exp", "log", "sin", "cos", "tan", "atan", "tanh", "sinh", "cosh",
     "iabs", "imin", "imax", "hull", "intersect", "enclose_fraction", "enclose_constant",
     "certainly_lt", "certainly_le", "possibly_lt", "possibly_le", "is_usable",
-    "round_down", "round_up", "outward_single", "outward_pair", "sum_error",
+    "round_down", "round_up", "outward_single", "outward_coarse", "outward_pair",
+    "sum_error",
 ]
 
 _INF = np.inf
 _MAX = float(np.finfo(float).max)
 _ULP = 2.0 ** -52
+_SINGLE_MAX = float(np.finfo(np.float32).max)
 _TINY = 2.0 ** -1074
 _REL = 2.0 ** -49
 _ABS = 2.0 ** -1000
@@ -90,7 +92,37 @@ def outward_single(lo, hi):
         down = np.where(down > lo, np.nextafter(down, np.float32(-_INF)), down)
         up = np.where(up < hi, np.nextafter(up, np.float32(_INF)), up)
     down, up = down.astype(float), up.astype(float)
-    return (np.where(np.isfinite(down), down, lo), np.where(np.isfinite(up), up, hi))
+    return (np.where(np.isfinite(down) & (np.abs(lo) <= _SINGLE_MAX), down, lo),
+            np.where(np.isfinite(up) & (np.abs(hi) <= _SINGLE_MAX), up, hi))
+
+
+def outward_coarse(lo, hi, bits=8):
+    """Widen ``[lo, hi]`` to multiples of a power of two, then to binary32 bounds.
+
+    The power of two is the largest one at most ``(hi - lo) / 2**bits``: each bound
+    moves by less than that, while its trailing bits become zeros, which the
+    certificate's compression stores almost for free (docs/certificate-format.md).
+    Empty, point, infinite and NaN intervals, and those whose power of two would be
+    subnormal, are only widened by :func:`outward_single`.
+
+    Returns
+    -------
+    lo, hi : ndarray
+        ``lo' <= lo`` and ``hi' >= hi``, both float64 arrays.
+    """
+    lo, hi = np.asarray(lo, float), np.asarray(hi, float)
+    with np.errstate(invalid="ignore", over="ignore"):
+        width = hi - lo
+        _, e = np.frexp(width)
+        power = e - 1 - bits
+        usable = np.isfinite(width) & (width > 0) & (power > -1000)
+        power = np.where(usable, power, 0)
+        # scaling by a power of two is exact unless it underflows; min / max keep
+        # the bounds outward in that case too
+        down = np.minimum(np.ldexp(np.floor(np.ldexp(lo, -power)), power), lo)
+        up = np.maximum(np.ldexp(np.ceil(np.ldexp(hi, -power)), power), hi)
+    return outward_single(np.where(usable & np.isfinite(down), down, lo),
+                          np.where(usable & np.isfinite(up), up, hi))
 
 
 def sum_error(a, b):

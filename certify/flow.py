@@ -23,7 +23,7 @@ See docs/method.md for the exact order of operations, which the checker repeats.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from itertools import product
 
 import numpy as np
@@ -33,7 +33,7 @@ from . import stacked
 from .evaluate import evaluate_boxes
 from .taylor import chosen_arguments
 
-__all__ = ["DeadlinePassed", "FlowResult", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
+__all__ = ["DeadlinePassed", "FlowResult", "FlowStart", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
            "join_results", "truncate_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
 
 #: A parallelepiped frame with a larger condition number is replaced by its QR factor.
@@ -138,6 +138,9 @@ class FlowResult:
         The sets ``image_m + image_A[:, k] [image_r[:, k]]`` at the horizon, one per
         frame of the rule (K of them), each enclosing the flow of the box there (NaN
         where the flow failed).
+    next_h : ndarray, shape (N,)
+        The size the box's next step would have had (NaN where the flow failed or was
+        cut): with the image sets and box, where a longer flow resumes (:class:`FlowStart`).
     h : ndarray, shape (S,)
         Step sizes.
     t0_lo, t0_hi : ndarray, shape (S,)
@@ -166,6 +169,7 @@ class FlowResult:
     image_A: np.ndarray
     image_r_lo: np.ndarray
     image_r_hi: np.ndarray
+    next_h: np.ndarray
     h: np.ndarray
     t0_lo: np.ndarray
     t0_hi: np.ndarray
@@ -596,13 +600,68 @@ def _coarse(h, rest):
                                               exp - STEP_BITS))
 
 
+@dataclass
+class FlowStart:
+    """Where the flows of a batch resume: per box, the state of an earlier flow of it at
+    the end of its last step. Rows whose ``h`` is NaN start from their box instead.
+
+    Attributes
+    ----------
+    m, A, r_lo, r_hi : ndarray, shapes (N, n), (N, K, n, n), (N, K, n), (N, K, n)
+        The sets ``m + A[:, k] [r[:, k]]``, one per frame of the rule.
+    x_lo, x_hi : ndarray, shape (N, n)
+        The box.
+    t_lo, t_hi : ndarray, shape (N,)
+        Enclosure of the time.
+    h : ndarray, shape (N,)
+        Size of the next step.
+    steps : ndarray of int, shape (N,)
+        Steps taken to get there (they count toward ``max_steps``).
+    """
+
+    m: np.ndarray
+    A: np.ndarray
+    r_lo: np.ndarray
+    r_hi: np.ndarray
+    x_lo: np.ndarray
+    x_hi: np.ndarray
+    t_lo: np.ndarray
+    t_hi: np.ndarray
+    h: np.ndarray
+    steps: np.ndarray
+
+    @classmethod
+    def of(cls, result):
+        """Where the flows of `result` (a :class:`FlowResult`) would go on."""
+        return cls(m=result.image_m, A=result.image_A, r_lo=result.image_r_lo,
+                   r_hi=result.image_r_hi, x_lo=result.image_lo, x_hi=result.image_hi,
+                   t_lo=result.t_lo, t_hi=result.t_hi, h=result.next_h,
+                   steps=result.n_steps)
+
+    def take(self, rows):
+        """The starts of the boxes `rows`."""
+        return FlowStart(**{f.name: getattr(self, f.name)[rows] for f in fields(self)})
+
+    def put(self, front, t_lo, t_hi, steps_left):
+        """Write the resuming rows into a fresh flow's front and times (in place);
+        return the steps each box has left."""
+        on = np.isfinite(self.h)
+        front.m[on] = self.m[on]
+        for k, (A, r_lo, r_hi) in enumerate(front.sets):
+            A[on], r_lo[on], r_hi[on] = self.A[on, k], self.r_lo[on, k], self.r_hi[on, k]
+        front.x_lo[on], front.x_hi[on] = self.x_lo[on], self.x_hi[on]
+        front.h = np.where(on, self.h, front.h)
+        t_lo[on], t_hi[on] = self.t_lo[on], self.t_hi[on]
+        return np.where(on, steps_left - self.steps, steps_left)
+
+
 class DeadlinePassed(Exception):
     """:func:`flow_boxes` was given a deadline and it passed before the batch was done."""
 
 
 def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
                max_step=0.25, min_step=1e-6, max_steps=400, should_stop=None, deadline=None,
-               frames="qr+parallelepiped", keep_sets=True):
+               frames="qr+parallelepiped", keep_sets=True, start=None):
     """Enclose the flow of every box of a batch up to a horizon per box.
 
     Parameters
@@ -636,6 +695,11 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     keep_sets : bool
         Keep each step's (QR) set ``m + A [r]``; without, those fields of the result are
         None (the boxes alone take about half the memory).
+    start : FlowStart, optional
+        Where the flows of some boxes resume: from the end of an earlier flow of the box
+        (its image sets and box, time and next step size) rather than from the box. The
+        result then holds the steps after that end only, the same steps as the flow from
+        the box would take there (:meth:`FlowStart.of`).
 
     Returns
     -------
@@ -662,19 +726,51 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
     m0 = 0.5 * (lo + hi)
     r0lo, _ = iv.sub(lo, lo, m0, m0)
     _, r0hi = iv.sub(hi, hi, m0, m0)
-    ids = np.arange(N)
-    m = m0.copy()
-    sets = [(np.broadcast_to(np.eye(n), (N, n, n)).copy(), r0lo.copy(), r0hi.copy())
-            for _ in _FRAMES[frames]]
-    xlo, xhi = lo.copy(), hi.copy()
     # the first step obeys the same caps as later ones
-    h = _coarse(min(float(step), max_step), np.maximum(max_h, min_step))
+    front = _Front(ids=np.arange(N), m=m0.copy(),
+                   sets=[(np.broadcast_to(np.eye(n), (N, n, n)).copy(), r0lo.copy(), r0hi.copy())
+                         for _ in _FRAMES[frames]],
+                   x_lo=lo.copy(), x_hi=hi.copy(),
+                   h=_coarse(min(float(step), max_step), np.maximum(max_h, min_step)))
+    next_h = np.full(N, np.nan)
+    steps_left = np.full(N, max_steps)
+
+    def retire(mask):
+        # boxes of the front that end here keep its box, sets and next step size
+        rows = front.ids[mask]
+        image_lo[rows], image_hi[rows] = front.x_lo[mask], front.x_hi[mask]
+        image_sets.put(rows, front.m[mask], [tuple(a[mask] for a in one) for one in front.sets])
+        next_h[rows] = front.h[mask]
+        front.keep(~mask)
+
+    def ends_here(mask):
+        # of the front's boxes `mask`, at a step end: those that end there
+        ids, t1lo = front.ids, t_lo[front.ids]
+        finish = mask & (t1lo >= max_h[ids])
+        sel = np.flatnonzero(mask & ~finish & (t1lo >= min_h[ids]))
+        if should_stop is not None and len(sel):
+            stop = np.asarray(should_stop(ids[sel], front.x_lo[sel], front.x_hi[sel], t1lo[sel],
+                                          t_hi[ids[sel]]), bool)
+            status[ids[sel[stop]]] = STOPPED
+            finish[sel[stop]] = True
+        return finish
+
+    if start is not None:
+        steps_left = start.put(front, t_lo, t_hi, steps_left)
+        # a resumed flow meets the stop rules first where the earlier flow went on
+        retire(ends_here(np.isfinite(start.h)))
     records = []
-    for _ in range(max_steps):
-        if len(ids) == 0:
+    while True:
+        # boxes out of steps keep the image at the time they reached
+        spent = n_steps[front.ids] >= steps_left[front.ids]
+        status[front.ids[spent]] = STEP_LIMIT
+        retire(spent)
+        if len(front.ids) == 0:
             break
         if deadline is not None and time.monotonic() >= deadline:
             raise DeadlinePassed
+        ids, m, sets, xlo, xhi, h = (front.ids, front.m, front.sets, front.x_lo, front.x_hi,
+                                     front.h)
         elo, ehi, ok = _apriori(programs, xlo, xhi, h, params)
         clean = ok.copy()
         while not ok.all():
@@ -701,37 +797,40 @@ def flow_boxes(programs, lo, hi, params, *, min_horizon, max_horizon, step=0.1,
                         elo[good], ehi[good], *recorded, endlo[good], endhi[good]))
         t_lo[ids[good]], t_hi[ids[good]] = t1lo[good], t1hi[good]
         n_steps[ids[good]] += 1
-        done = bad.copy()
-        past_min = good & (t1lo >= min_h[ids])
-        finish = good & (t1lo >= max_h[ids])
-        if should_stop is not None and past_min.any():
-            sel = np.flatnonzero(past_min & ~finish)
-            if len(sel):
-                stop = np.asarray(should_stop(ids[sel], endlo[sel], endhi[sel], t1lo[sel],
-                                              t1hi[sel]), bool)
-                status[ids[sel[stop]]] = STOPPED
-                finish[sel[stop]] = True
-        image_lo[ids[finish]], image_hi[ids[finish]] = endlo[finish], endhi[finish]
-        image_sets.put(ids[finish], new_m[finish], [tuple(a[finish] for a in one)
-                                                    for one in new_sets])
-        done |= finish
-        keep = ~done
         with np.errstate(divide="ignore", invalid="ignore"):
             factor = np.clip((REMAINDER_SHARE / growth) ** (1.0 / order), 0.5, 1.25)
         factor = np.where(np.isfinite(factor), factor, 0.5)
         factor = np.where(clean, factor, np.minimum(factor, 1.0))
-        ids, h = ids[keep], (h * factor)[keep]
-        m = new_m[keep]
-        sets = [tuple(a[keep] for a in one) for one in new_sets]
-        xlo, xhi = endlo[keep], endhi[keep]
         # never step past the largest horizon by much
-        h = _coarse(np.minimum(h, max_step), np.maximum(max_h[ids] - t_lo[ids], min_step))
-    status[ids] = STEP_LIMIT
-    # boxes that ran out of steps keep the image at the time they reached
-    image_lo[ids], image_hi[ids] = xlo, xhi
-    image_sets.put(ids, m, sets)
+        h = _coarse(np.minimum(h * factor, max_step),
+                    np.maximum(max_h[ids] - t_lo[ids], min_step))
+        front.move(new_m, new_sets, endlo, endhi, h)
+        front.keep(good)
+        retire(ends_here(np.ones(len(front.ids), bool)))
     return _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi,
-                     m0, r0lo, r0hi, image_sets)
+                     m0, r0lo, r0hi, image_sets, next_h)
+
+
+@dataclass
+class _Front:
+    """The boxes of a batch still flowing, with their sets, boxes and next step sizes."""
+
+    ids: np.ndarray
+    m: np.ndarray
+    sets: list
+    x_lo: np.ndarray
+    x_hi: np.ndarray
+    h: np.ndarray
+
+    def keep(self, mask):
+        """Keep only the boxes `mask`."""
+        self.ids, self.m, self.h = self.ids[mask], self.m[mask], self.h[mask]
+        self.x_lo, self.x_hi = self.x_lo[mask], self.x_hi[mask]
+        self.sets = [tuple(a[mask] for a in one) for one in self.sets]
+
+    def move(self, m, sets, x_lo, x_hi, h):
+        """Every box on to the end of its step."""
+        self.m, self.sets, self.x_lo, self.x_hi, self.h = m, sets, x_lo, x_hi, h
 
 
 class _ImageSets:
@@ -750,7 +849,7 @@ class _ImageSets:
 
 
 def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0, r0lo, r0hi,
-              image_sets):
+              image_sets, next_h):
     shapes = [(), (), (), (), (n,), (n,), (n,), (n,), (n,), (n, n), (n,), (n,), (n,), (n,)]
     parts = [list(c) for c in zip(*records)] if records else [[np.zeros((0,) + s)]
                                                               for s in shapes]
@@ -769,7 +868,7 @@ def _assemble(records, N, n, status, n_steps, t_lo, t_hi, image_lo, image_hi, m0
                       t_hi=t_hi, image_lo=image_lo, image_hi=image_hi, set0_m=m0,
                       set0_r_lo=r0lo, set0_r_hi=r0hi, image_m=image_sets.m,
                       image_A=image_sets.A, image_r_lo=image_sets.r_lo,
-                      image_r_hi=image_sets.r_hi, h=h, t0_lo=t0lo, t0_hi=t0hi,
+                      image_r_hi=image_sets.r_hi, next_h=next_h, h=h, t0_lo=t0lo, t0_hi=t0hi,
                       x_lo=xlo, x_hi=xhi, e_lo=elo, e_hi=ehi, m=m, A=A, r_lo=rlo,
                       r_hi=rhi, end_lo=endlo, end_hi=endhi)
 
@@ -783,7 +882,8 @@ def _step_starts(n_steps):
 _STEP_FIELDS = ("h", "t0_lo", "t0_hi", "x_lo", "x_hi", "e_lo", "e_hi", "m", "A", "r_lo", "r_hi",
                 "end_lo", "end_hi")
 _BOX_FIELDS = ("status", "n_steps", "t_lo", "t_hi", "image_lo", "image_hi", "set0_m",
-               "set0_r_lo", "set0_r_hi", "image_m", "image_A", "image_r_lo", "image_r_hi")
+               "set0_r_lo", "set0_r_hi", "image_m", "image_A", "image_r_lo", "image_r_hi",
+               "next_h")
 
 
 def join_results(parts):
@@ -847,7 +947,7 @@ def truncate_results(result, n_steps, boxes=None):
                                                       result.h[last], result.h[last])
     fields["image_lo"][cut], fields["image_hi"][cut] = result.end_lo[last], result.end_hi[last]
     # the sets at the horizon belong to the whole flow: a cut flow has none (NaN)
-    for name in ("image_m", "image_A", "image_r_lo", "image_r_hi"):
+    for name in ("image_m", "image_A", "image_r_lo", "image_r_hi", "next_h"):
         fields[name][cut] = np.nan
     return FlowResult(**out, **fields, step_start=starts)
 

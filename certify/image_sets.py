@@ -105,7 +105,8 @@ def _miss(m, inverses, r_lo, r_hi, box_lo, box_hi):
 
 
 class ImageSetStore:
-    """The image sets of the cells that may still need them, by tree node.
+    """The image sets of the cells that may still need them, by tree node, with what a
+    longer tube from the cell needs to go on from there.
 
     Parameters
     ----------
@@ -123,10 +124,14 @@ class ImageSetStore:
     def _empty(self, count):
         n, K = self.n, self.K
         return {"m": np.full((count, n), np.nan), "A": np.full((count, K, n, n), np.nan),
-                "r_lo": np.full((count, K, n), np.nan), "r_hi": np.full((count, K, n), np.nan)}
+                "r_lo": np.full((count, K, n), np.nan), "r_hi": np.full((count, K, n), np.nan),
+                "x_lo": np.full((count, n), np.nan), "x_hi": np.full((count, n), np.nan),
+                "next_h": np.full(count, np.nan)}
 
     def put(self, nodes, sets):
-        """Store `sets` (a dict of the arrays ``m, A, r_lo, r_hi``, rows as `nodes`)."""
+        """Store `sets` (a dict of the arrays ``m, A, r_lo, r_hi``, and ``x_lo, x_hi,
+        next_h``: the box at the tube's end and the size its next step would have, where
+        a longer tube goes on, :class:`certify.flow.FlowStart`; rows as `nodes`)."""
         top = int(nodes.max(initial=-1)) + 1
         if top > len(self.row):
             self.row = np.concatenate([self.row, np.full(top - len(self.row), -1)])

@@ -21,13 +21,13 @@ import scipy.sparse as sp
 from . import interval as iv
 from .cells import CellTree, index_dtype
 from .executors import DeadlineReached, Runner, open_runner
-from .flow import (DeadlinePassed, STOPPED, branch_groups, flow_boxes, frame_count,
-                   join_results, truncate_results)
+from .flow import (DeadlinePassed, FlowStart, STOPPED, branch_groups, flow_boxes,
+                   frame_count, join_results, truncate_results)
 from .fate_grid import FateGrid, fate_grid
 from .follow_order import follow_order
 from .labels import (CellFacts, Labelling, label_cells, reversed_graph, unit_weights, DOOMED,
                      OUTSIDE, SAFE, UNDECIDED)
-from .steps import StepStore
+from .steps import StepBatch, StepStore
 from .taylor import flow_programs
 from .trapping import find_regions, in_regions, trapped_cells
 from .faces import (analyse_faces, cut_at_invariant_faces, cut_to_window,
@@ -231,8 +231,9 @@ class _Tubes:
         # compiled programs do not pickle: a worker compiles its own
         return {k: v for k, v in self.__dict__.items() if k != "programs"}
 
-    def flow(self, cell_lo, cell_hi, deadline=None):
-        """The flows of the cells ``[cell_lo, cell_hi]`` (a :class:`FlowResult`).
+    def flow(self, cell_lo, cell_hi, deadline=None, start=None):
+        """The flows of the cells ``[cell_lo, cell_hi]`` (a :class:`FlowResult`), from the
+        cells or, for the rows of `start` (a :class:`FlowStart`), on from there.
 
         Each cell's flow depends on that cell alone, so a batch cut into pieces gives
         the same records as the batch whole.
@@ -245,7 +246,7 @@ class _Tubes:
                           min_horizon=0.0, max_horizon=m.max_horizon,
                           step=m.step, max_step=m.max_step, min_step=m.min_step,
                           max_steps=m.max_steps, should_stop=should_stop, deadline=deadline,
-                          frames=m.frames, keep_sets=False)
+                          frames=m.frames, keep_sets=False, start=start)
 
     def stops(self, cell_lo, cell_hi, end_lo, end_hi, t_lo):
         """Where a tube from each cell, with the box `end` at time `t_lo`, stops, and why.
@@ -318,10 +319,10 @@ def _in_pieces(n, most):
     return np.array_split(np.arange(n), max(-(-n // most), 1))
 
 
-def _flow_piece(tubes, cell_lo, cell_hi):
+def _flow_piece(tubes, cell_lo, cell_hi, start):
     """The flows of one piece of a round's batch (a task of a worker)."""
     with np.errstate(all="ignore"):
-        return tubes.flow(cell_lo, cell_hi)
+        return tubes.flow(cell_lo, cell_hi, start=start)
 
 
 @dataclass(frozen=True)
@@ -341,6 +342,24 @@ class _StepEnds:
     safe_next: np.ndarray
     query: np.ndarray
     leaf: np.ndarray
+
+
+@dataclass(frozen=True)
+class _FirstParts:
+    """What followed tubes take over from the tubes they go on from (:meth:`_Prover.extend`):
+    per tube where its flow resumes (``start``), the facts of its steps so far
+    (``first_unkept``, ``crossing``), and those steps (``steps``, for the drift bound, the
+    open faces and the certificate)."""
+
+    start: FlowStart
+    first_unkept: np.ndarray
+    crossing: np.ndarray
+    steps: StepBatch
+
+    def take(self, rows):
+        """The first parts of the tubes `rows`."""
+        return _FirstParts(start=self.start.take(rows), first_unkept=self.first_unkept[rows],
+                           crossing=self.crossing[rows], steps=self.steps.keep(rows))
 
 
 #: The per-node facts of :class:`_Prover` and their value for a new node. All but
@@ -409,12 +428,8 @@ class _Prover:
         """Compute the facts of new leaves."""
         self._analyse(nodes)
 
-    def _analyse(self, nodes, follow=None, fates=None):
-        """The facts of `nodes` from their tubes; with `follow`, tubes that do not stop
-        where they leave their cells and stop at the growth limit `follow` or where their
-        end box meets one fate of the grid `fates` (:meth:`extend`), only as many as end
-        before the deadline (less the time of FOLLOW_RESERVE labellings). Returns the
-        nodes flowed and, with `follow`, their flows (None otherwise, or if none)."""
+    def _analyse(self, nodes):
+        """The facts of `nodes` from their tubes."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -423,37 +438,80 @@ class _Prover:
         self.first_unkept[nodes[outside]] = 0.0
         todo = nodes[~outside]
         if len(todo) == 0:
-            return todo, None
+            return
         self.left_cell[nodes[outside]] = False
         cell_lo, cell_hi = self.tree.lo[todo], self.tree.hi[todo]
-        if follow is None:
-            # piece by piece: a round's flows joined would hold all its steps at once
-            for rows, result in self._flow_pieces(self.tubes, cell_lo, cell_hi,
-                                                  self.deadline):
-                self._take_flows(self.tubes, todo[rows], result)
-            return todo, None
-        return self._flows_in_time(replace(self.tubes, follow=follow, fates=fates), todo)
+        # piece by piece: a round's flows joined would hold all its steps at once
+        for rows, result in self._flow_pieces(self.tubes, cell_lo, cell_hi, self.deadline):
+            self._take_flows(self.tubes, todo[rows], result)
 
-    def _take_flows(self, tubes, nodes, result):
-        """The facts, image sets and steps of `nodes` from their flows `result`, and
-        whether each tube stopped only where it left its cell."""
-        self._record_tubes(nodes, result)
+    def _follow(self, nodes, growth_limit, fates):
+        """Flow the tubes of `nodes` on from where they end, as tubes that do not stop
+        where they leave their cells and stop at `growth_limit` or where their end box
+        meets one fate of the grid `fates` (:meth:`extend`), only as many as end before
+        the deadline (less the time of FOLLOW_RESERVE labellings).
+
+        Returns
+        -------
+        taken : ndarray
+            The nodes flowed, the first of `nodes`.
+        result : FlowResult or None
+            Their flows from where the tubes ended (None when not one was flowed).
+        first : _FirstParts
+            The tubes they went on from.
+        """
+        first = self._first_parts(nodes)
+        taken, result = self._flows_in_time(replace(self.tubes, follow=growth_limit,
+                                                    fates=fates), nodes, first)
+        return taken, result, first.take(np.arange(len(taken)))
+
+    def _tube_ends(self, nodes):
+        """Per node: the end of its tube is stored, so that a longer tube can go on from
+        there (:meth:`_put_image_sets`)."""
+        if self.image_sets is None:
+            return np.zeros(len(nodes), bool)
+        return np.isfinite(self.image_sets.take(nodes)["next_h"])
+
+    def _first_parts(self, nodes):
+        """The tubes of `nodes` as first parts of longer ones (:class:`_FirstParts`); each
+        node's tube end is stored (:meth:`_tube_ends`)."""
+        ends = self.image_sets.take(nodes)
+        start = self.steps.offsets(nodes)
+        steps = StepBatch(n_steps=np.diff(start), step_start=start[:-1],
+                          h=self.steps.gather(nodes, "h", start),
+                          E=self.steps.gather(nodes, "E", start))
+        return _FirstParts(
+            start=FlowStart(m=ends["m"], A=ends["A"], r_lo=ends["r_lo"], r_hi=ends["r_hi"],
+                            x_lo=ends["x_lo"], x_hi=ends["x_hi"],
+                            t_lo=self.horizon_lo[nodes], t_hi=self.horizon_hi[nodes],
+                            h=ends["next_h"], steps=steps.n_steps),
+            first_unkept=self.first_unkept[nodes].copy(), crossing=self.crossing[nodes].copy(),
+            steps=steps)
+
+    def _take_flows(self, tubes, nodes, result, first=None):
+        """The facts, image sets and steps of `nodes` from their flows `result` (on from
+        `first`, if given), and whether each tube stopped only where it left its cell."""
+        self._record_tubes(nodes, result, first)
         if self.follows:
             ends = tubes.stops(self.tree.lo[nodes], self.tree.hi[nodes], result.image_lo,
                                result.image_hi, result.t_lo)
             self.left_cell[nodes] = ends.left_cell & (result.status == STOPPED)
 
     def _put_image_sets(self, nodes, result):
+        """Keep the sets at the tubes' ends, and where their flows would go on."""
         if self.image_sets is not None:
             self.image_sets.put(nodes, {"m": result.image_m, "A": result.image_A,
-                                        "r_lo": result.image_r_lo, "r_hi": result.image_r_hi})
+                                        "r_lo": result.image_r_lo, "r_hi": result.image_r_hi,
+                                        "x_lo": result.image_lo, "x_hi": result.image_hi,
+                                        "next_h": result.next_h})
 
-    def _flows(self, tubes, cell_lo, cell_hi, deadline):
+    def _flows(self, tubes, cell_lo, cell_hi, deadline, start=None):
         """The flows of cells, joined (:meth:`_flow_pieces`)."""
-        parts = [result for _, result in self._flow_pieces(tubes, cell_lo, cell_hi, deadline)]
+        parts = [result for _, result in self._flow_pieces(tubes, cell_lo, cell_hi, deadline,
+                                                           start)]
         return parts[0] if len(parts) == 1 else join_results(parts)
 
-    def _flow_pieces(self, tubes, cell_lo, cell_hi, deadline):
+    def _flow_pieces(self, tubes, cell_lo, cell_hi, deadline, start=None):
         """Yield ``(rows, flows)`` for the cells in pieces of at most MAX_PIECE, in order,
         flowed on the runner's workers if any (a cell's flow depends on that cell alone);
         here one at a time, on workers all at once (each piece's records let go of once
@@ -461,13 +519,15 @@ class _Prover:
         n = len(cell_lo)
         if not self.runner.parallel:
             for rows in _in_pieces(n, MAX_PIECE):
-                yield rows, tubes.flow(cell_lo[rows], cell_hi[rows], deadline)
+                yield rows, tubes.flow(cell_lo[rows], cell_hi[rows], deadline,
+                                       None if start is None else start.take(rows))
             return
         pieces = np.array_split(np.arange(n), max(-(-n // MAX_PIECE), 1,
                                                   min(2 * self.runner.n_workers,
                                                       -(-n // MIN_PIECE))))
-        parts = self.runner.in_order(_flow_piece, [(tubes, cell_lo[k], cell_hi[k])
-                                                   for k in pieces], deadline)
+        parts = self.runner.in_order(
+            _flow_piece, [(tubes, cell_lo[k], cell_hi[k], None if start is None else start.take(k))
+                          for k in pieces], deadline)
         try:
             for rows in pieces:
                 yield rows, next(parts)
@@ -476,11 +536,12 @@ class _Prover:
         finally:
             parts.close()
 
-    def _flows_in_time(self, tubes, nodes):
-        """Flow and take the tubes of the first `nodes`, in pieces of FOLLOW_PIECE cells a
-        worker, while they end before the deadline less FOLLOW_RESERVE labellings (the
-        one of these tubes and the last of the round). Returns the nodes taken and
-        their flows joined (None when not one piece was). Without a deadline, all.
+    def _flows_in_time(self, tubes, nodes, first):
+        """Flow and take the tubes of the first `nodes`, on from their `first` parts, in
+        pieces of FOLLOW_PIECE cells a worker, while they end before the deadline less
+        FOLLOW_RESERVE labellings (the one of these tubes and the last of the round).
+        Returns the nodes taken and their flows joined (None when not one piece was).
+        Without a deadline, all.
 
         Longer tubes have wider images, hence more successors, and a labelling's time
         grows about in proportion to them: the reserve is FOLLOW_RESERVE times the last
@@ -490,8 +551,8 @@ class _Prover:
         """
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         if self.deadline is None:
-            result = self._flows(tubes, lo, hi, None)
-            self._take_flows(tubes, nodes, result)
+            result = self._flows(tubes, lo, hi, None, first.start)
+            self._take_flows(tubes, nodes, result, first)
             return nodes, result
         parts, taken, added, piece_seconds = [], 0, 0, 0.0
         for k in _in_pieces(len(nodes), FOLLOW_PIECE * self.runner.n_workers):
@@ -501,11 +562,11 @@ class _Prover:
             if started + piece_seconds > until:
                 break
             try:
-                part = self._flows(tubes, lo[k], hi[k], until)
+                part = self._flows(tubes, lo[k], hi[k], until, first.start.take(k))
             except DeadlinePassed:
                 break
             before = self._pairs(self.image_lo[nodes[k]], self.image_hi[nodes[k]])
-            self._take_flows(tubes, nodes[k], part)
+            self._take_flows(tubes, nodes[k], part, first.take(k))
             added += max(self._pairs(part.image_lo, part.image_hi) - before, 0)
             parts.append(part)
             taken += len(k)
@@ -520,30 +581,34 @@ class _Prover:
         lo, hi = image_lo[usable], image_hi[usable]
         return len(self._leaves_met(lo, hi)[0])
 
-    def _tube_facts(self, todo, result):
+    def _tube_facts(self, todo, result, steps, first=None):
+        """The facts of the tubes of `todo`: the flows `result`, on from their `first`
+        parts if given; `steps` are all their steps (:meth:`_record_tubes`)."""
         S = len(result.h)
         box_of_step = np.repeat(np.arange(len(todo)), result.n_steps)
         # crossed: the rank-0 crossings, a step end box wholly violating one limit
         kept_step, crossed = self._step_verdicts(result)
         t0_lo = result.t0_lo
         unkept_time = np.where(kept_step, np.inf, t0_lo)
-        first_unkept = np.full(len(todo), np.inf)
+        first_unkept = np.full(len(todo), np.inf) if first is None else first.first_unkept.copy()
         np.minimum.at(first_unkept, box_of_step, unkept_time)
         _, t1_hi = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
-        crossing = np.full(len(todo), np.inf)
+        crossing = np.full(len(todo), np.inf) if first is None else first.crossing.copy()
         np.minimum.at(crossing, box_of_step, np.where(crossed, t1_hi, np.inf))
         # a flow that failed after some steps still proves its last end box at the time
         # reached: that box is the image, and the time reached the horizon
         last = result.step_start + result.n_steps - 1
-        ok = result.n_steps > 0
-        raw_lo = np.where(ok[:, None], result.end_lo[np.maximum(last, 0)], np.nan) if S \
-            else result.image_lo
-        raw_hi = np.where(ok[:, None], result.end_hi[np.maximum(last, 0)], np.nan) if S \
-            else result.image_hi
+        new = result.n_steps > 0
+        raw_lo = np.full_like(result.image_lo, np.nan) if first is None else first.start.x_lo.copy()
+        raw_hi = np.full_like(result.image_hi, np.nan) if first is None else first.start.x_hi.copy()
+        raw_lo[new], raw_hi[new] = result.end_lo[last[new]], result.end_hi[last[new]]
+        ok = steps.n_steps > 0
         # every trajectory moved by the integral of f over its tube: x(T) - x(0) lies in
         # the sum of h f(E) over the steps, which caps images along resting directions
-        tube_open = self._tube_past_open_faces(result, box_of_step, len(todo))
-        dlo, dhi = self._drift(result, box_of_step, len(todo), tube_open)
+        box_of_step = np.repeat(np.arange(len(todo)), steps.n_steps)
+        tube_open = tube_past_open_faces(self.faces, self.window_sides, steps.E[..., 0],
+                                         steps.E[..., 1], box_of_step, len(todo))
+        dlo, dhi = self._drift(steps, box_of_step, len(todo), tube_open)
         moved_lo, _ = iv.add(self.tree.lo[todo], self.tree.lo[todo], dlo, dhi)
         _, moved_hi = iv.add(self.tree.hi[todo], self.tree.hi[todo], dlo, dhi)
         raw_lo = np.where(ok[:, None], np.fmax(raw_lo, moved_lo), raw_lo)
@@ -607,8 +672,9 @@ class _Prover:
         kept[steps] |= (ends >= 0) & ((dip <= 0) | (8 * ends >= dip))
         return kept
 
-    def _step_ends(self, result, leaves, label, pending):
-        """The step ends at which the `pending` flows of `result` could be cut.
+    def _step_ends(self, result, first, leaves, label, pending):
+        """The step ends at which the `pending` flows of `result` (on from their `first`
+        parts) could be cut.
 
         A tube may end at any step end (the checker re-derives everything from the steps
         kept). The candidates are the step ends past ``min_horizon`` whose clipped box
@@ -625,7 +691,8 @@ class _Prover:
         box = np.repeat(np.arange(N), result.n_steps)
         pos = np.arange(S) - result.step_start[box]
         kept, _ = self._step_verdicts(result)
-        first_bad = np.full(N, S)
+        # a first part with a step not kept: no step end after it is kept
+        first_bad = np.where(np.isinf(first.first_unkept), S, 0)
         np.minimum.at(first_bad, box[~kept], pos[~kept])
         t1_lo, _ = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
         candidate = (t1_lo >= self.method.min_horizon) & pending[box]
@@ -675,39 +742,34 @@ class _Prover:
         np.minimum.at(first, ends.box[decisive], ends.pos[decisive])
         return np.where(first < n_steps, first + 1, n_steps)
 
-    def _drift(self, result, box_of_step, n_boxes, tube_open):
-        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps of ``h f(E)``,
-        for the trajectories that keep the limits up to ``T`` (the tube boxes of boxes
-        whose tubes do not reach past an open face, `tube_open`, are cut to the window,
-        :func:`certify.faces.cut_to_window`)."""
+    def _drift(self, batch, box_of_step, n_boxes, tube_open):
+        """Per box, an enclosure of ``x(T) - x(0)``: the sum over its steps `batch` (a
+        :class:`StepBatch`) of ``h f(E)``, for the trajectories that keep the limits up to
+        ``T`` (the tube boxes of boxes whose tubes do not reach past an open face,
+        `tube_open`, are cut to the window, :func:`certify.faces.cut_to_window`)."""
         lo, hi = np.zeros((n_boxes, self.n)), np.zeros((n_boxes, self.n))
         # boxes whose steps fill about STEP_SLICE rows at a time (a box's steps together:
         # the cut at invariant faces looks at all of them)
         cuts = np.unique(np.append(np.searchsorted(
-            result.step_start, np.arange(0, len(result.h), STEP_SLICE)), n_boxes))
+            batch.step_start, np.arange(0, len(batch.h), STEP_SLICE)), n_boxes))
         for first, last in zip(cuts[:-1], cuts[1:]):
-            start = result.step_start[first]
-            counts = result.n_steps[first:last]
+            start = batch.step_start[first]
+            counts = batch.n_steps[first:last]
             rows = slice(start, start + counts.sum())
             owner = box_of_step[rows] - first
-            elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, result.e_lo[rows],
-                                              result.e_hi[rows], owner, last - first)
+            elo, ehi = cut_at_invariant_faces(self.faces, self.model.window, batch.E[rows, :, 0],
+                                              batch.E[rows, :, 1], owner, last - first)
             elo, ehi = cut_to_window(self.window_sides, elo, ehi, tube_open[box_of_step[rows]])
             flo, fhi = evaluate_boxes(self.programs.field, elo, ehi, self.params)
-            h = result.h[rows, None]
+            h = batch.h[rows, None]
             slo, shi = iv.mul(h, h, flo, fhi)
             # each box's sum in step order
-            own_start = result.step_start[first:last] - start
+            own_start = batch.step_start[first:last] - start
             for j in range(int(counts.max(initial=0))):
                 boxes = np.flatnonzero(counts > j)
                 steps, boxes = own_start[boxes] + j, first + boxes
                 lo[boxes], hi[boxes] = iv.add(lo[boxes], hi[boxes], slo[steps], shi[steps])
         return lo, hi
-
-    def _tube_past_open_faces(self, result, box_of_step, n_boxes):
-        """Per box: does some a-priori box reach beyond an open face of the window?"""
-        return tube_past_open_faces(self.faces, self.window_sides, result.e_lo, result.e_hi,
-                                    box_of_step, n_boxes)
 
     def _leaves_met(self, lo, hi):
         """``(query, leaf)`` pairs of the leaves that the clipped image boxes meet.
@@ -744,9 +806,9 @@ class _Prover:
         leaves, facts, labelling
             As :meth:`label`.
         """
-        nodes = nodes[self.left_cell[nodes]]
-        leaves, label, back, (todo, full) = self._try_tubes(
-            nodes, lambda: self._analyse(nodes, follow=growth_limit, fates=fates))
+        nodes = nodes[self.left_cell[nodes] & self._tube_ends(nodes)]
+        leaves, label, back, (todo, full, first) = self._try_tubes(
+            nodes, lambda: self._follow(nodes, growth_limit, fates))
         self.followed = (len(todo), len(nodes))
         if full is None:
             return self.label(prune_gain=self._last_gain())
@@ -754,7 +816,7 @@ class _Prover:
         # under a deadline: the step ends, a pass and the last labelling cost about three
         # labellings, every further pass and the last one about two
         passes = DECISIVE_PASSES if self._time_left() >= 3 * self.label_seconds else 0
-        ends = self._step_ends(full, leaves, label, pending) if passes else None
+        ends = self._step_ends(full, first, leaves, label, pending) if passes else None
         if ends is None:
             passes = 0
         for _ in range(passes):
@@ -764,7 +826,7 @@ class _Prover:
                 break
             chosen = todo[cut]
             _, label, back, _ = self._try_tubes(
-                chosen, lambda: self._record_cut_tubes(chosen, full, cut, keep[cut]))
+                chosen, lambda: self._record_cut_tubes(chosen, full, first, cut, keep[cut]))
             if back.all() or self._time_left() < 2 * self.label_seconds:
                 break
             pending[cut[~back]] = False
@@ -810,19 +872,26 @@ class _Prover:
             self.image_sets.put(nodes[back], {k: v[back] for k, v in saved_sets.items()})
         return leaves, labelling.label, back, out
 
-    def _record_cut_tubes(self, nodes, result, boxes, n_steps):
+    def _record_cut_tubes(self, nodes, result, first, boxes, n_steps):
         """The facts, image sets and steps of `nodes` from the flows `boxes` of `result`
-        cut after `n_steps` steps, in pieces of MAX_PIECE flows (a copy of every cut flow
-        at once would hold most of a followed round's steps twice)."""
+        (on from `first`) cut after `n_steps` of their steps, in pieces of MAX_PIECE flows
+        (a copy of every cut flow at once would hold most of a followed round's steps
+        twice)."""
         for rows in _in_pieces(len(nodes), MAX_PIECE):
             self._record_tubes(nodes[rows],
-                               truncate_results(result, n_steps[rows], boxes=boxes[rows]))
+                               truncate_results(result, n_steps[rows], boxes=boxes[rows]),
+                               first.take(boxes[rows]))
 
-    def _record_tubes(self, nodes, result):
-        """The facts, image sets and steps of `nodes` from the flows `result`."""
-        self._tube_facts(nodes, result)
+    def _record_tubes(self, nodes, result, first=None):
+        """The facts, image sets and steps of `nodes` from the flows `result`, on from
+        their `first` parts if given (the tubes' steps are theirs, then those of
+        `result`)."""
+        steps = StepBatch.from_flow(result)
+        if first is not None:
+            steps = first.steps.followed_by(steps)
+        self._tube_facts(nodes, result, steps, first)
         self._put_image_sets(nodes, result)
-        self.steps.add(nodes, result)
+        self.steps.add(nodes, steps)
 
     # -- labelling ---------------------------------------------------------------------
     def label(self, prune_gain=PRUNE_GAIN):

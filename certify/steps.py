@@ -57,6 +57,21 @@ class StepBatch:
         """Step rows of `boxes`, box after box in step order."""
         return _runs(self.step_start[boxes], self.n_steps[boxes])
 
+    def followed_by(self, other):
+        """The steps of each box of this batch, then those of the same box in `other`."""
+        n_steps = self.n_steps + other.n_steps
+        step_start = np.cumsum(n_steps) - n_steps
+        mine = _runs(step_start, self.n_steps)
+        theirs = _runs(step_start + self.n_steps, other.n_steps)
+        joined = {}
+        for key in STEP_KEYS:
+            a, b = getattr(self, key), getattr(other, key)
+            out = np.empty((int(n_steps.sum()),) + a.shape[1:], a.dtype)
+            out[mine], out[theirs] = a[self.rows(np.arange(len(n_steps)))], b[other.rows(
+                np.arange(len(n_steps)))]
+            joined[key] = out
+        return StepBatch(n_steps=n_steps, step_start=step_start, **joined)
+
     def keep(self, boxes):
         """A batch of only `boxes`: box ``i`` of it is ``boxes[i]`` of this one."""
         rows = self.rows(boxes)
@@ -85,12 +100,12 @@ class StepStore:
         self.batches: list[StepBatch] = []
         self.ref = np.full((0, 2), -1)   # (batch, box in batch) per node, -1 where none
 
-    def add(self, nodes, result):
-        """Keep the steps of a flow of the cells `nodes` (a FlowResult, box order)."""
+    def add(self, nodes, batch):
+        """Keep the steps of the cells `nodes` (a :class:`StepBatch`, box order)."""
         top = int(nodes.max(initial=-1)) + 1
         if top > len(self.ref):
             self.ref = np.concatenate([self.ref, np.full((top - len(self.ref), 2), -1)])
-        self.batches.append(StepBatch.from_flow(result))
+        self.batches.append(batch)
         self.ref[nodes] = np.stack([np.full(len(nodes), len(self.batches) - 1),
                                     np.arange(len(nodes))], 1)
 

@@ -20,8 +20,8 @@ from hypothesis import strategies as st
 from scipy.linalg import expm
 
 from certify import interval as iv
-from certify.flow import (NO_ENCLOSURE, NOT_FINITE, OK, STEP_LIMIT, STOPPED, flow_boxes,
-                          hull_of_set, interval_inverse, truncate_results)
+from certify.flow import (NO_ENCLOSURE, NOT_FINITE, OK, STEP_LIMIT, STOPPED, FlowStart,
+                          flow_boxes, hull_of_set, interval_inverse, truncate_results)
 from certify.taylor import _build
 
 x, y, s, k, r = sympy.symbols("x y s k r", real=True)
@@ -375,6 +375,63 @@ def test_step_limit_keeps_the_image_reached():
         for x0 in (1.0, 2.0):
             assert_in_box(R.image_lo[0], R.image_hi[0],
                           [x0 * mpmath.exp(-mpf_time(T))], "step-limit image")
+
+
+def test_resumed_flow_takes_the_steps_of_one_flow_and_holds_the_solution():
+    # Van der Pol, mu = 1, flowed to t = 1 (stopping at the first step end past it) and
+    # then on from there to t = 3: the same steps, bit for bit, as one flow to t = 3, and
+    # the image holds the solution from mpmath.odefun (30 digits)
+    P = programs([y, (1 - x ** 2) * y - x], (x, y))
+    lo = np.array([[1.0, 0.5], [-1.2, 0.3], [0.2, -1.0]])
+    hi = lo + np.array([[0.01, 0.02], [0.005, 0.01], [0.02, 0.01]])
+    whole = flow_boxes(P, lo, hi, [], min_horizon=3.0, max_horizon=3.0)
+    first = flow_boxes(P, lo, hi, [], min_horizon=1.0, max_horizon=3.0,
+                       should_stop=lambda ids, *rest: np.ones(len(ids), bool))
+    assert np.all(first.status == STOPPED)
+    rest = flow_boxes(P, lo, hi, [], min_horizon=3.0, max_horizon=3.0,
+                      start=FlowStart.of(first))
+    for b in range(len(lo)):
+        for name in ("h", "e_lo", "e_hi", "end_lo", "end_hi", "t0_lo"):
+            joined = np.concatenate([getattr(first, name)[first.steps_of(b)],
+                                     getattr(rest, name)[rest.steps_of(b)]])
+            np.testing.assert_array_equal(getattr(whole, name)[whole.steps_of(b)], joined)
+    np.testing.assert_array_equal(rest.image_lo, whole.image_lo)
+    np.testing.assert_array_equal(rest.t_hi, whole.t_hi)
+    with mpmath.workdps(30):
+        for b in range(len(lo)):
+            T = step_end_times(first, b)[-1] + step_end_times(rest, b)[-1]
+            for corner in product(*zip(lo[b], hi[b])):
+                solution = mpmath.odefun(lambda t, z: [z[1], (1 - z[0] ** 2) * z[1] - z[0]],
+                                         0, [mpmath.mpf(c) for c in corner])
+                assert_in_box(rest.image_lo[b], rest.image_hi[b], solution(mpf_time(T)),
+                              "resumed Van der Pol image")
+
+
+def test_resumed_flow_meets_the_stop_rule_and_step_limit_where_it_resumes():
+    # decay x' = -x: a flow resumed with no steps left ends at once with its start;
+    # one resumed past min_horizon is first asked whether it stops where it resumes
+    P = programs([-x], (x,))
+    lo, hi = np.array([[1.0], [2.0]]), np.array([[1.1], [2.1]])
+    first = flow_boxes(P, lo, hi, [], min_horizon=0.5, max_horizon=5.0, max_steps=40,
+                       should_stop=lambda ids, *rest: np.ones(len(ids), bool))
+    start = FlowStart.of(first)
+    start.steps[0] = 40
+    asked = []
+
+    def stop_second(ids, end_lo, end_hi, t_lo, t_hi):
+        asked.append((ids.copy(), end_lo.copy()))
+        return ids == 1
+
+    rest = flow_boxes(P, lo, hi, [], min_horizon=0.5, max_horizon=5.0, max_steps=40,
+                      should_stop=stop_second, start=start)
+    assert rest.status[0] == STEP_LIMIT and rest.n_steps[0] == 0
+    assert rest.status[1] == STOPPED and rest.n_steps[1] == 0
+    np.testing.assert_array_equal(rest.image_lo, first.image_lo)
+    np.testing.assert_array_equal(rest.next_h, first.next_h)
+    # both are asked at their ends (as one flow would be at that step end), then the
+    # one without steps left ends there
+    np.testing.assert_array_equal(asked[0][0], [0, 1])
+    np.testing.assert_array_equal(asked[0][1], first.image_lo)
 
 
 def test_first_step_respects_max_step_and_horizon():

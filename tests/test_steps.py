@@ -18,7 +18,7 @@ import sympy
 import certify.cells as cells_module
 from certify.cells import CellTree
 from certify.flow import flow_boxes
-from certify.steps import StepStore
+from certify.steps import StepBatch, StepStore
 from certify.taylor import _build
 
 x = sympy.Symbol("x", real=True)
@@ -55,9 +55,9 @@ def assert_holds_decay(store, node, x0_lo, x0_hi):
 def test_store_keeps_what_it_is_given_and_forgets_split_cells():
     store = StepStore(1)
     first = decay_flow([1.0, 2.0, 3.0], 0.01)
-    store.add(np.array([0, 1, 2]), first)
+    store.add(np.array([0, 1, 2]), StepBatch.from_flow(first))
     second = decay_flow([4.0, 5.0], 0.01)
-    store.add(np.array([5, 6]), second)
+    store.add(np.array([5, 6]), StepBatch.from_flow(second))
     # the stored records are the flow's own, bit for bit
     for node, (R, b) in {1: (first, 1), 6: (second, 1)}.items():
         rows = R.steps_of(b)
@@ -65,7 +65,7 @@ def test_store_keeps_what_it_is_given_and_forgets_split_cells():
         np.testing.assert_array_equal(store.gather(np.array([node]), "E")[..., 0], R.e_lo[rows])
         np.testing.assert_array_equal(store.gather(np.array([node]), "E")[..., 1], R.e_hi[rows])
     mark = store.snapshot()
-    store.add(np.array([7]), decay_flow([6.0], 0.01))
+    store.add(np.array([7]), StepBatch.from_flow(decay_flow([6.0], 0.01)))
     store.restore(mark)
     assert store.offsets(np.array([7]))[-1] == 0
     # nodes 0, 1 and 5 were split: their steps go, the batches shrink (compaction)
@@ -76,21 +76,35 @@ def test_store_keeps_what_it_is_given_and_forgets_split_cells():
     assert_holds_decay(store, 6, 5.0, 5.01)
 
 
+def test_followed_by_puts_each_box_steps_after_its_own():
+    # a followed tube's steps: those of its first part, then those it went on with
+    first = StepBatch.from_flow(decay_flow([1.0, 2.0, 3.0], 0.01))
+    then = StepBatch.from_flow(decay_flow([4.0, 5.0, 6.0], 0.02))
+    joined = first.followed_by(then)
+    np.testing.assert_array_equal(joined.n_steps, first.n_steps + then.n_steps)
+    for b in range(3):
+        for key in ("h", "E"):
+            mine = getattr(first, key)[first.rows(np.array([b]))]
+            theirs = getattr(then, key)[then.rows(np.array([b]))]
+            np.testing.assert_array_equal(getattr(joined, key)[joined.rows(np.array([b]))],
+                                          np.concatenate([mine, theirs]))
+
+
 def test_replaced_steps_are_given_back_and_restored():
     # a followed tube replaces a cell's steps (certify/prove.py, extend): set_refs gives
     # the old ones back, restore() undoes a replacement made after the snapshot
     store = StepStore(1)
     short = decay_flow([1.0, 2.0], 0.01)
-    store.add(np.array([0, 1]), short)
+    store.add(np.array([0, 1]), StepBatch.from_flow(short))
     old = store.refs(np.array([1]))
     mark = store.snapshot()
     longer = flow_boxes(_build((-x,), (x,), (), (), 4), np.array([[2.0]]), np.array([[2.01]]),
                         [], min_horizon=3.0, max_horizon=3.0, step=0.1)
-    store.add(np.array([1]), longer)
+    store.add(np.array([1]), StepBatch.from_flow(longer))
     np.testing.assert_array_equal(store.gather(np.array([1]), "h"), longer.h)
     store.set_refs(np.array([1]), old)
     np.testing.assert_array_equal(store.gather(np.array([1]), "h"), short.h[short.steps_of(1)])
-    store.add(np.array([1]), longer)
+    store.add(np.array([1]), StepBatch.from_flow(longer))
     store.restore(mark)
     np.testing.assert_array_equal(store.gather(np.array([1]), "h"), short.h[short.steps_of(1)])
     assert_holds_decay(store, 1, 2.0, 2.01)

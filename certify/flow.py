@@ -33,8 +33,9 @@ from . import stacked
 from .evaluate import evaluate_boxes
 from .taylor import chosen_arguments
 
-__all__ = ["DeadlinePassed", "FlowResult", "FlowStart", "flow_boxes", "imatmul", "interval_inverse", "hull_of_set",
-           "join_results", "truncate_results", "qr_frame", "parallelepiped_frame", "FRAME_RULES"]
+__all__ = ["DeadlinePassed", "FlowResult", "FlowStart", "flow_boxes", "imatmul",
+           "interval_inverse", "hull_of_set", "join_results", "truncate_results", "qr_frame",
+           "parallelepiped_frame", "FRAME_RULES"]
 
 #: A parallelepiped frame with a larger condition number is replaced by its QR factor.
 FRAME_CONDITION_LIMIT = 1e3
@@ -632,7 +633,8 @@ class FlowStart:
 
     @classmethod
     def of(cls, result):
-        """Where the flows of `result` (a :class:`FlowResult`) would go on."""
+        """Where the flows of `result` (a :class:`FlowResult` of flows from their boxes)
+        would go on."""
         return cls(m=result.image_m, A=result.image_A, r_lo=result.image_r_lo,
                    r_hi=result.image_r_hi, x_lo=result.image_lo, x_hi=result.image_hi,
                    t_lo=result.t_lo, t_hi=result.t_hi, h=result.next_h,

@@ -425,11 +425,7 @@ class _Prover:
 
     # -- per-cell analysis -------------------------------------------------------------
     def analyse(self, nodes):
-        """Compute the facts of new leaves."""
-        self._analyse(nodes)
-
-    def _analyse(self, nodes):
-        """The facts of `nodes` from their tubes."""
+        """Compute the facts of new leaves from their tubes."""
         self._grow()
         lo, hi = self.tree.lo[nodes], self.tree.hi[nodes]
         glo, ghi = evaluate_limits(self.programs, lo, hi, self.params)
@@ -584,7 +580,6 @@ class _Prover:
     def _tube_facts(self, todo, result, steps, first=None):
         """The facts of the tubes of `todo`: the flows `result`, on from their `first`
         parts if given; `steps` are all their steps (:meth:`_record_tubes`)."""
-        S = len(result.h)
         box_of_step = np.repeat(np.arange(len(todo)), result.n_steps)
         # crossed: the rank-0 crossings, a step end box wholly violating one limit
         kept_step, crossed = self._step_verdicts(result)
@@ -599,16 +594,18 @@ class _Prover:
         # reached: that box is the image, and the time reached the horizon
         last = result.step_start + result.n_steps - 1
         new = result.n_steps > 0
-        raw_lo = np.full_like(result.image_lo, np.nan) if first is None else first.start.x_lo.copy()
-        raw_hi = np.full_like(result.image_hi, np.nan) if first is None else first.start.x_hi.copy()
+        if first is None:
+            raw_lo, raw_hi = (np.full_like(result.image_lo, np.nan) for _ in range(2))
+        else:  # a followed tube without new steps ends where its first part ended
+            raw_lo, raw_hi = first.start.x_lo.copy(), first.start.x_hi.copy()
         raw_lo[new], raw_hi[new] = result.end_lo[last[new]], result.end_hi[last[new]]
         ok = steps.n_steps > 0
         # every trajectory moved by the integral of f over its tube: x(T) - x(0) lies in
         # the sum of h f(E) over the steps, which caps images along resting directions
-        box_of_step = np.repeat(np.arange(len(todo)), steps.n_steps)
+        owner = np.repeat(np.arange(len(todo)), steps.n_steps)
         tube_open = tube_past_open_faces(self.faces, self.window_sides, steps.E[..., 0],
-                                         steps.E[..., 1], box_of_step, len(todo))
-        dlo, dhi = self._drift(steps, box_of_step, len(todo), tube_open)
+                                         steps.E[..., 1], owner, len(todo))
+        dlo, dhi = self._drift(steps, owner, len(todo), tube_open)
         moved_lo, _ = iv.add(self.tree.lo[todo], self.tree.lo[todo], dlo, dhi)
         _, moved_hi = iv.add(self.tree.hi[todo], self.tree.hi[todo], dlo, dhi)
         raw_lo = np.where(ok[:, None], np.fmax(raw_lo, moved_lo), raw_lo)

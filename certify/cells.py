@@ -112,6 +112,13 @@ class CellTree:
         """Ids of the current leaves."""
         return np.flatnonzero(self.first_child < 0)
 
+    def leaf_numbers(self, leaves):
+        """Per node of the tree, its position in `leaves` (-1 for nodes not in it), in
+        the narrowest integer type that holds the positions."""
+        number = np.full(len(self), -1, index_dtype(len(leaves)))
+        number[leaves] = np.arange(len(leaves))
+        return number
+
     def split(self, cells):
         """Split leaves into ``2^n`` children each.
 

@@ -263,8 +263,9 @@ def _apriori(programs, xlo, xhi, h, params, iterations=4):
     blo = np.minimum(tlo, iv.round_down(tlo + BLEND * (out_lo - tlo)))
     bhi = np.maximum(thi, iv.round_up(thi + BLEND * (out_hi - thi)))
     blo, bhi = np.maximum(blo, out_lo), np.minimum(bhi, out_hi)
-    # short bounds (trailing zero bits, binary32): the certificate stores them compactly
-    blo, bhi = iv.outward_coarse(blo, bhi)
+    # short bounds (trailing zero bits, binary32), around the tight box: the certificate
+    # stores them compactly
+    blo, bhi = iv.short_bounds(blo, bhi, tlo, thi)
     nlo, nhi = _reach(programs, xlo, xhi, hh, blo, bhi, params)
     blended = ok & _is_apriori(programs, nlo, nhi, blo, bhi, params)
     out_lo[tight], out_hi[tight] = tlo[tight], thi[tight]

@@ -59,8 +59,7 @@ def follow_order(tree, leaves, labelling, facts, wanted):
     against_next = facts.has_successor_in((label == DOOMED) | (label == OUTSIDE))
     # 0: kept tube, safe successors only; 1: no safe successor; 2: left out
     rank = np.where(safe_next, np.where(facts.own_failure() | against_next, 2, 0), 1)
-    number = np.full(len(tree), -1)
-    number[leaves] = np.arange(len(leaves))
+    number = tree.leaf_numbers(leaves)
     wanted_rank = rank[number[wanted]]
     order = np.argsort(wanted_rank, kind="stable")
     return wanted[order[wanted_rank[order] < 2]]

@@ -36,7 +36,7 @@ __all__ = [
     "sqrt", "exp", "log", "sin", "cos", "tan", "atan", "tanh", "sinh", "cosh",
     "iabs", "imin", "imax", "hull", "intersect", "enclose_fraction", "enclose_constant",
     "certainly_lt", "certainly_le", "possibly_lt", "possibly_le", "is_usable",
-    "round_down", "round_up", "outward_single", "outward_coarse", "outward_pair",
+    "round_down", "round_up", "outward_single", "short_bounds", "outward_pair",
     "sum_error",
 ]
 
@@ -96,19 +96,21 @@ def outward_single(lo, hi):
             np.where(np.isfinite(up) & (np.abs(hi) <= _SINGLE_MAX), up, hi))
 
 
-def outward_coarse(lo, hi, bits=8):
-    """Widen ``[lo, hi]`` to multiples of a power of two, then to binary32 bounds.
+def short_bounds(lo, hi, inner_lo, inner_hi, bits=8):
+    """Bounds near ``lo, hi`` that binary32 holds with trailing zero bits.
 
-    The power of two is the largest one at most ``(hi - lo) / 2**bits``: each bound
-    moves by less than that, while its trailing bits become zeros, which the
-    certificate's compression stores almost for free (docs/certificate-format.md).
-    Empty, point, infinite and NaN intervals, and those whose power of two would be
-    subnormal, are only widened by :func:`outward_single`.
+    Each bound moves to the nearest multiple of the largest power of two at most
+    ``(hi - lo) / 2**bits``, or to the next multiple outward where the nearest one would
+    cut into ``[inner_lo, inner_hi]`` (which ``[lo, hi]`` holds); the certificate's
+    compression stores such bounds almost for free (docs/certificate-format.md). A
+    bound may so move inward by up to half that power of two: the caller verifies
+    whatever the box must satisfy. Empty, point, infinite and NaN intervals, and those
+    whose power of two would be subnormal, are only widened by :func:`outward_single`.
 
     Returns
     -------
     lo, hi : ndarray
-        ``lo' <= lo`` and ``hi' >= hi``, both float64 arrays.
+        Float64 arrays with ``lo' <= inner_lo`` and ``hi' >= inner_hi``.
     """
     lo, hi = np.asarray(lo, float), np.asarray(hi, float)
     with np.errstate(invalid="ignore", over="ignore"):
@@ -117,12 +119,15 @@ def outward_coarse(lo, hi, bits=8):
         power = e - 1 - bits
         usable = np.isfinite(width) & (width > 0) & (power > -1000)
         power = np.where(usable, power, 0)
-        # scaling by a power of two is exact unless it underflows; min / max keep
-        # the bounds outward in that case too
-        down = np.minimum(np.ldexp(np.floor(np.ldexp(lo, -power)), power), lo)
-        up = np.maximum(np.ldexp(np.ceil(np.ldexp(hi, -power)), power), hi)
-    return outward_single(np.where(usable & np.isfinite(down), down, lo),
-                          np.where(usable & np.isfinite(up), up, hi))
+        # scaling by a power of two is exact unless it underflows; the comparisons with
+        # the inner box keep it inside in that case too
+        down = np.ldexp(np.round(np.ldexp(lo, -power)), power)
+        down = np.where(down > inner_lo, np.ldexp(np.floor(np.ldexp(inner_lo, -power)), power),
+                        down)
+        up = np.ldexp(np.round(np.ldexp(hi, -power)), power)
+        up = np.where(up < inner_hi, np.ldexp(np.ceil(np.ldexp(inner_hi, -power)), power), up)
+        usable &= np.isfinite(down) & np.isfinite(up) & (down <= inner_lo) & (up >= inner_hi)
+    return outward_single(np.where(usable, down, lo), np.where(usable, up, hi))
 
 
 def sum_error(a, b):

@@ -76,8 +76,7 @@ def cells_meeting(pp, region):
     lo = np.array([float(region[s.name][0]) for s in pp.model.states])
     hi = np.array([float(region[s.name][1]) for s in pp.model.states])
     leaves = pp.tree.leaves_meeting(np.nextafter(lo, -np.inf)[None], np.nextafter(hi, np.inf)[None])[1]
-    number = np.full(len(pp.tree), -1)
-    number[pp.leaves] = np.arange(len(pp.leaves))
+    number = pp.tree.leaf_numbers(pp.leaves)
     out = []
     for node in np.unique(leaves).tolist():
         box = pp.tree.exact_box(node)

@@ -693,8 +693,7 @@ class _Prover:
         np.minimum.at(first_bad, box[~kept], pos[~kept])
         t1_lo, _ = iv.add(result.t0_lo, result.t0_hi, result.h, result.h)
         candidate = (t1_lo >= self.method.min_horizon) & pending[box]
-        number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
-        number[leaves] = np.arange(len(leaves))
+        number = self.tree.leaf_numbers(leaves)
         doomed, safe, undecided = label == DOOMED, label == SAFE, label == UNDECIDED
         dtype, found = index_dtype(S), 0
         parts = []
@@ -859,8 +858,7 @@ class _Prover:
         out = replace_tubes()
         leaves, facts, labelling = self.label(prune_gain=self._last_gain())
         del facts  # its edges are made again later: not held through the next labelling
-        number = np.full(len(self.tree), -1)
-        number[leaves] = np.arange(len(leaves))
+        number = self.tree.leaf_numbers(leaves)
         back = labelling.label[number[nodes]] == UNDECIDED
         for k in _TUBE_FACTS:
             getattr(self, k)[nodes[back]] = saved[k][back]
@@ -904,8 +902,7 @@ class _Prover:
         started = time.monotonic()
         leaves = self.tree.leaves()
         # edges can outnumber the cells a hundredfold: leaf numbers as narrow as they fit
-        number = np.full(len(self.tree), -1, index_dtype(len(leaves)))
-        number[leaves] = np.arange(len(leaves))
+        number = self.tree.leaf_numbers(leaves)
         usable = self.flow_ok[leaves] & ~self.outside[leaves]
         qlo, qhi = self.image_lo[leaves[usable]], self.image_hi[leaves[usable]]
         nonempty = np.all(qlo <= qhi, axis=1)
@@ -1127,8 +1124,7 @@ def _causes_first(tree, leaves, labelling, facts, wanted, spare):
     decided = (labelling.label != UNDECIDED) & (labelling.label != OUTSIDE)
     border = facts.has_successor_in(decided)
     cause = und & (own | cyclic | border)
-    number = np.full(len(tree), -1)
-    number[leaves] = np.arange(L)
+    number = tree.leaf_numbers(leaves)
     first = wanted[cause[number[wanted]]]
     # holding leaves back pays only when most of them wait: a round that splits half
     # of them anyway costs about what one splitting all does, and the leaves held back

@@ -58,3 +58,13 @@ def test_leaves_meeting_are_the_leaves_whose_boxes_meet():
             want |= {(i, int(c)) for c in leaves[np.all(below & above, axis=1)]}
         assert found == want
         assert len(want) > 5 * len(lo)  # boxes meet many leaves, some none
+
+
+def test_leaf_numbers_name_each_leaf_by_its_position():
+    tree = CellTree([(Fraction(0), Fraction(1)), (Fraction(0), Fraction(2))])
+    tree.split(tree.split([0])[[0, 3]])
+    leaves = tree.leaves()[::-1]   # any order the caller keeps its leaves in
+    number = tree.leaf_numbers(leaves)
+    np.testing.assert_array_equal(number[leaves], np.arange(len(leaves)))
+    others = np.setdiff1d(np.arange(len(tree)), leaves)
+    assert len(others) and np.all(number[others] == -1)

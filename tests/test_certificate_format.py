@@ -25,7 +25,7 @@ from certify.check._read import read_for_check
 from certify.container import (READABLE_VERSIONS, VERSION, decode_array, encode_array,
                                load_certificate_json)
 from certify.errors import CertificateError
-from certify.interval import outward_coarse, outward_single
+from certify.interval import outward_single, short_bounds
 from certify.model import load_model
 from certify.prove import prove
 
@@ -108,24 +108,29 @@ def test_outward_single_encloses_and_is_binary32():
             assert abs(v) > 3.4e38 or struct.unpack("<f", struct.pack("<f", v))[0] == v
 
 
-def test_outward_coarse_encloses_moves_little_and_ends_in_zero_bits():
+def test_short_bounds_keep_the_inner_box_move_little_and_end_in_zero_bits():
     # exact rational comparison (Fraction) of IEEE 754 doubles: common practice
     rng = np.random.default_rng(4)
     lo = rng.normal(size=500) * 10.0 ** rng.integers(-30, 30, size=500)
-    hi = lo + np.abs(lo) * 10.0 ** rng.uniform(-6, 0, size=500)
-    down, up = outward_coarse(lo, hi, bits=8)
-    for a, b, x, y in zip(lo, hi, down, up):
-        width = Fraction(b) - Fraction(a)
-        assert Fraction(a) - width / 2**8 - Fraction(abs(a)) / 2**23 <= Fraction(x) <= Fraction(a)
-        assert Fraction(b) <= Fraction(y) <= Fraction(b) + width / 2**8 + Fraction(abs(b)) / 2**23
+    width = np.abs(lo) * 10.0 ** rng.uniform(-6, 0, size=500)
+    hi = lo + width
+    # an inner box that leaves no room on some sides and some room on others
+    room = rng.choice([0.0, 0.01, 0.2], size=(2, 500))
+    inner_lo, inner_hi = lo + room[0] * width, hi - room[1] * width
+    down, up = short_bounds(lo, hi, inner_lo, inner_hi, bits=8)
+    for a, b, c, d, x, y in zip(lo, hi, inner_lo, inner_hi, down, up):
+        w = Fraction(b) - Fraction(a)
+        assert Fraction(x) <= Fraction(c) and Fraction(y) >= Fraction(d)
+        assert abs(Fraction(x) - Fraction(a)) <= w / 2**8 + Fraction(abs(a)) / 2**23
+        assert abs(Fraction(y) - Fraction(b)) <= w / 2**8 + Fraction(abs(b)) / 2**23
         for v in (x, y):
             bits = struct.unpack("<I", struct.pack("<f", v))[0]
             assert struct.unpack("<f", struct.pack("<f", v))[0] == v
-            if abs(v) < 2**6 * float(width):   # a bound within 64 widths of 0: 16 bits
+            if abs(v) < 2**6 * float(w):   # a bound within 64 widths of 0: 16 bits
                 assert bits & 0xFF == 0
     # degenerate intervals are only rounded to binary32
     odd_lo, odd_hi = np.array([2.0, -np.inf, np.nan]), np.array([2.0, 1.0, 1.0])
-    got = outward_coarse(odd_lo, odd_hi)
+    got = short_bounds(odd_lo, odd_hi, odd_lo, odd_hi)
     want = outward_single(odd_lo, odd_hi)
     np.testing.assert_array_equal(got[0], want[0])
     np.testing.assert_array_equal(got[1], want[1])

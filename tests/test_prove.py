@@ -17,6 +17,7 @@ import re
 import tempfile
 from collections import Counter
 from dataclasses import dataclass
+from fractions import Fraction
 from pathlib import Path
 from typing import Callable
 
@@ -25,6 +26,7 @@ import pytest
 from scipy.integrate import DOP853, solve_ivp
 
 from certify import ModelError, load_model, parse_model, prove, read_certificate
+from certify.cells import CellTree
 from certify.cli import main
 
 prove_module = importlib.import_module("certify.prove")
@@ -656,7 +658,6 @@ cap = "x <= 2"
 
 
 def _face_kinds(model, order):
-    from certify.cells import CellTree
     from certify.evaluate import parameter_enclosures
     from certify.faces import analyse_faces
     from certify.taylor import flow_programs
@@ -822,14 +823,19 @@ def test_refinement_splits_cycles_failures_and_borders_first():
     expected |= {int(a) for a, b in zip(src, dst)
                  if label[a] == "undecided" and label[b] in ("safe", "doomed")}
     leaves = np.arange(L)
+    # a tree with at least L nodes; the leaves' numbers are nodes 0 .. L-1 of it
+    tree = CellTree([(Fraction(0), Fraction(1))])
+    new = np.array([0])
+    while len(tree) < L:
+        new = tree.split(new)
     causes_first = prove_module._causes_first
     # a tight cell budget: the causes alone
-    first = causes_first(leaves, leaves, labelling, facts, und, False)
+    first = causes_first(tree, leaves, labelling, facts, und, False)
     assert 0 < len(expected) < len(und)
     assert set(first.tolist()) == expected
     # with no cause left, every wanted leaf is split
     waiting = np.array(sorted(set(und.tolist()) - expected))
-    assert set(causes_first(leaves, leaves, labelling, facts, waiting, True)) \
+    assert set(causes_first(tree, leaves, labelling, facts, waiting, True)) \
         == set(waiting.tolist())
     # with a spare budget, the waiting leaves are held back only while the causes are
     # fewer than half of the wanted leaves
@@ -837,10 +843,10 @@ def test_refinement_splits_cycles_failures_and_borders_first():
     few = np.sort(np.concatenate([causes[:len(waiting) // 3], waiting]))
     many = np.sort(np.concatenate([causes, waiting[:len(causes) // 2]]))
     assert 0 < 2 * len(causes[:len(waiting) // 3]) < len(few)
-    assert set(causes_first(leaves, leaves, labelling, facts, few, True)) \
+    assert set(causes_first(tree, leaves, labelling, facts, few, True)) \
         == set(causes[:len(waiting) // 3].tolist())
-    assert set(causes_first(leaves, leaves, labelling, facts, many, True)) == set(many.tolist())
-    assert set(causes_first(leaves, leaves, labelling, facts, many, False)) == expected
+    assert set(causes_first(tree, leaves, labelling, facts, many, True)) == set(many.tolist())
+    assert set(causes_first(tree, leaves, labelling, facts, many, False)) == expected
 
 
 def test_successors_cover_the_image_and_touching_leaves_are_left_out():

@@ -61,15 +61,15 @@ class StepBatch:
         """The steps of each box of this batch, then those of the same box in `other`."""
         n_steps = self.n_steps + other.n_steps
         step_start = np.cumsum(n_steps) - n_steps
+        boxes = np.arange(len(n_steps))
         mine = _runs(step_start, self.n_steps)
         theirs = _runs(step_start + self.n_steps, other.n_steps)
         joined = {}
         for key in STEP_KEYS:
-            a, b = getattr(self, key), getattr(other, key)
-            out = np.empty((int(n_steps.sum()),) + a.shape[1:], a.dtype)
-            out[mine], out[theirs] = a[self.rows(np.arange(len(n_steps)))], b[other.rows(
-                np.arange(len(n_steps)))]
-            joined[key] = out
+            values = getattr(self, key)[self.rows(boxes)]
+            joined[key] = np.empty((int(n_steps.sum()),) + values.shape[1:], values.dtype)
+            joined[key][mine] = values
+            joined[key][theirs] = getattr(other, key)[other.rows(boxes)]
         return StepBatch(n_steps=n_steps, step_start=step_start, **joined)
 
     def keep(self, boxes):

@@ -78,7 +78,7 @@ def build_parser():
         sub = subparsers.add_parser(name, help=module.HELP, description=module.HELP,
                                     epilog=f"Exit codes: {module.EXITS}.")
         module.add_arguments(sub)
-        sub.set_defaults(run=module.run)
+        sub.set_defaults(run=module.run, command_parser=sub)
     return parser
 
 
@@ -98,7 +98,11 @@ def main(argv=None):
     """
     parser = build_parser()
     try:
-        args = parser.parse_args(argv)
+        args, extras = parser.parse_known_args(argv)
+        if extras:
+            # the command's own usage line, not the top level's, says what it takes
+            getattr(args, "command_parser", parser).error(
+                f"unrecognized arguments: {' '.join(extras)}")
     except SystemExit as exc:  # --help, --version and argparse's own usage errors
         return exc.code if isinstance(exc.code, int) else 0 if exc.code is None else 2
     if args.command is None:

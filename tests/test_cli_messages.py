@@ -290,3 +290,15 @@ def test_the_progress_bar_names_a_starting_round_and_rounds_down():
     bar(4, 4100, 1.0, 13.0)
     assert bar.bar.n == 100.0
     bar.close()
+
+
+@pytest.mark.parametrize("argv, command, unknown", [
+    (["prove", str(FERMENTER), "-o", "out"], "prove", "-o out"),
+    (["check", "-x", "cert.json.gz"], "check", "-x"),
+])
+def test_an_unknown_option_is_named_with_its_command_usage(argv, command, unknown, capsys):
+    # common practice (argparse): the usage shown is the command's, which lists what it takes
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert f"usage: certify {command}" in err
+    assert f"certify {command}: error: unrecognized arguments: {unknown}" in err

@@ -147,12 +147,15 @@ class ImageSetStore:
             self._pending = []
         return self._arrays
 
-    def take(self, nodes):
-        """The sets of `nodes` (NaN rows where none is stored)."""
+    def take(self, nodes, keys=None):
+        """The sets of `nodes` (NaN rows where none is stored); only the arrays `keys`
+        when given."""
         rows = np.full(len(nodes), -1)
         known = nodes < len(self.row)
         rows[known] = self.row[nodes[known]]
         out = self._empty(len(nodes))
+        if keys is not None:
+            out = {key: out[key] for key in keys}
         have = rows >= 0
         arrays = self._joined()
         for key in out:

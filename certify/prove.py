@@ -466,7 +466,7 @@ class _Prover:
         there (:meth:`_put_image_sets`)."""
         if self.image_sets is None:
             return np.zeros(len(nodes), bool)
-        return np.isfinite(self.image_sets.take(nodes)["next_h"])
+        return np.isfinite(self.image_sets.take(nodes, ["next_h"])["next_h"])
 
     def _first_parts(self, nodes):
         """The tubes of `nodes` as first parts of longer ones (:class:`_FirstParts`); each
@@ -557,12 +557,13 @@ class _Prover:
             started = time.monotonic()
             if started + piece_seconds > until:
                 break
+            piece = first.take(k)
             try:
-                part = self._flows(tubes, lo[k], hi[k], until, first.start.take(k))
+                part = self._flows(tubes, lo[k], hi[k], until, piece.start)
             except DeadlinePassed:
                 break
             before = self._pairs(self.image_lo[nodes[k]], self.image_hi[nodes[k]])
-            self._take_flows(tubes, nodes[k], part, first.take(k))
+            self._take_flows(tubes, nodes[k], part, piece)
             added += max(self._pairs(part.image_lo, part.image_hi) - before, 0)
             parts.append(part)
             taken += len(k)
@@ -991,7 +992,7 @@ class _Prover:
         a leaf of a label `against`: a leaf containing ``m`` meets every set, and is a
         successor when ``m`` lies within the open image box."""
         cells = np.flatnonzero(np.any([hope for hope, _ in hopes], axis=0))
-        m = self.image_sets.take(leaves[cells])["m"]
+        m = self.image_sets.take(leaves[cells], ["m"])["m"]
         within = np.all((self.image_lo[leaves[cells]] < m) & (m < self.image_hi[leaves[cells]]),
                         axis=1)
         cells, m = cells[within], m[within]
